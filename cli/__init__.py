@@ -1,0 +1,1 @@
+"""Command-line layer of ntrans: a thin shell over the library API."""

@@ -1,0 +1,78 @@
+"""One exception hierarchy for ntrans.
+
+Every error a user can cause derives from :class:`NtransError` and also from the
+matching builtin (``ValueError``, ``OSError``), so callers may catch either.  Messages
+are one sentence: what was found, what is allowed, what to do.  The command line turns
+any :class:`NtransError` into that sentence on stderr and exit code 2.
+
+Warnings are classes too (:class:`NtransWarning` and subclasses) so users can filter
+and tests can assert them.
+"""
+
+from __future__ import annotations
+
+
+class NtransError(Exception):
+    """Base class of every error ntrans raises on purpose."""
+
+    exit_code: int = 2
+
+
+class InputError(NtransError, ValueError):
+    """An input (file, option, value) is not usable as given."""
+
+
+class InputFileError(NtransError, OSError):
+    """An input file is missing or cannot be read."""
+
+
+class CRSError(InputError):
+    """A coordinate reference system is missing, geographic, or unusable."""
+
+
+class GeometryError(InputError):
+    """A vector layer's geometry is empty, of the wrong type, or inconsistent."""
+
+
+class StageSpecError(InputError):
+    """A stage or depth specification cannot be parsed."""
+
+
+class RoughnessError(InputError):
+    """Roughness classes or n values are missing or invalid."""
+
+
+class ProjectFileError(InputError):
+    """A project file has an unknown key, a wrong type, or a missing value."""
+
+
+class OutputExistsError(NtransError, FileExistsError):
+    """The output folder already exists and ``overwrite`` was not given."""
+
+
+class OutputError(NtransError, OSError):
+    """An output could not be written (or would overwrite an input)."""
+
+
+class BundleError(NtransError, ValueError):
+    """A handover bundle is incomplete or does not match its manifest."""
+
+
+class NtransWarning(UserWarning):
+    """Base class of every warning ntrans emits."""
+
+
+class GeometryRepairedWarning(NtransWarning):
+    """Invalid polygons were repaired before use."""
+
+
+class PartialCoverageWarning(NtransWarning):
+    """Some cells or faces are partly outside the DEM or over nodata."""
+
+
+class RoughnessRangeWarning(NtransWarning):
+    """An n value lies outside the published range for its kind of surface."""
+
+
+class DryWetMismatchWarning(NtransWarning):
+    """Items wet in one model family and dry in the other were left out of a fit."""
