@@ -1,0 +1,424 @@
+"""Benchmark: cell / face stage tables with ntrans against generic reference pipelines.
+
+For each case size (about N one-metre pixels, a Voronoi mesh of ~N/200 cells) this runs
+every pipeline in its own subprocess, times it, measures its peak memory, checks that the
+tables agree, and prints one table.  Results also go to ``bench/_cases/results.json``.
+
+    python bench/bench_tables.py                       # sizes 1e6,1e7
+    python bench/bench_tables.py --sizes 1e6,1e7,1e8   # the 1e8 case on request
+    python bench/bench_tables.py --sizes 1e6 --pipelines ntrans_cells,exactextract
+
+Pipelines:
+  ntrans_cells     build_tables(..., faces=False)           cell stage table only
+  ntrans_faces     build_tables(..., faces=True)            cells + faces
+  ntrans_workers   build_tables(..., faces=True, workers=W) local Dask cluster of W workers
+  ntrans_adjust    adjust_roughness(n=0.035, flat -> subgrid, lumped closure, 30 depths)
+  exactextract     exactextract pixel lists + numpy per cell (reference_pipelines.py)
+  rasterstats      rasterstats custom statistic, pixel-centre rule (smallest case only)
+  floor            read the DEM + one numpy sort of all pixels
+
+Seconds are measured inside the subprocess around the pipeline call (imports excluded,
+Dask cluster start-up included); cpu_s is user + system time of the subprocess and its
+reaped children (os.wait4).  Peak memory is the larger of the subprocess's ru_maxrss and
+the largest sampled sum of resident memory over the subprocess and all its descendants
+(psutil, every 50 ms; counts the Dask workers, may double-count shared pages).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import shutil
+import subprocess
+import sys
+import time
+import traceback
+from pathlib import Path
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE))
+
+from make_case import CASES_DIR, cached_case, case_folder, estimate_case_bytes  # noqa: E402
+
+ALL_PIPELINES = [
+    "ntrans_cells",
+    "ntrans_faces",
+    "ntrans_workers",
+    "ntrans_adjust",
+    "exactextract",
+    "rasterstats",
+    "floor",
+]
+TABLE_PIPELINES = {"ntrans_cells", "ntrans_faces", "ntrans_workers", "exactextract",
+                   "rasterstats"}
+FACE_PIPELINES = {"ntrans_faces", "ntrans_workers", "ntrans_adjust"}
+BYTES_DISK_PER_PIXEL = 60  # case + the largest pipeline output + temporary rasters (rough)
+BYTES_MEMORY_PER_PIXEL = 60  # peak of the heaviest pipeline (rough, from the 1e7 case)
+
+
+# --------------------------------------------------------------------------- child side
+def _run_child(job_path: Path) -> None:
+    """Run one pipeline described by a JSON job file; write its result JSON."""
+    job = json.loads(job_path.read_text())
+    name = job["pipeline"]
+    out = Path(job["out"])
+    common = {"out": out, "id_field": "cell_id"}
+    if name.startswith("ntrans_"):
+        import ntrans.adjust
+        import ntrans.tables  # noqa: F401  (import before the clock starts)
+    if name == "exactextract" or name == "rasterstats" or name == "floor":
+        import reference_pipelines as ref
+
+        if name == "exactextract":
+            import exactextract  # noqa: F401
+        if name == "rasterstats":
+            import rasterstats  # noqa: F401
+    import warnings
+
+    from ntrans.stages import parse_spec
+
+    result: dict = {"pipeline": name}
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        t0 = time.perf_counter()
+        if name in ("ntrans_cells", "ntrans_faces", "ntrans_workers"):
+            res = ntrans.tables.build_tables(
+                job["dem"], job["cells"], stages=job["stages"],
+                faces=name != "ntrans_cells",
+                workers=job["workers"] if name == "ntrans_workers" else None,
+                overwrite=True, **common,
+            )
+            result.update(n_cells=res.n_cells, n_faces=res.n_faces, n_stages=res.n_stages,
+                          n_tiles=res.n_tiles, n_partial=res.n_partial)
+        elif name == "ntrans_adjust":
+            res = ntrans.adjust.adjust_roughness(
+                job["dem"], job["cells"], n=0.035, source="flat", target="subgrid",
+                closure="lumped", depths=job["depths"], overwrite=True, **common,
+            )
+            result.update(n_stages=len(parse_spec(job["depths"])),
+                          classes=json.loads(res.classes.to_json(orient="records"))
+                          if hasattr(res.classes, "to_json") else str(res.classes))
+        else:
+            detail = ref.PIPELINES[name](job["dem"], job["cells"], parse_spec(job["stages"]),
+                                         **common)
+            result["detail"] = detail
+        result["seconds"] = time.perf_counter() - t0
+    result["warnings"] = sorted({f"{w.category.__name__}: {w.message}"[:200] for w in caught})
+    Path(job["result"]).write_text(json.dumps(result, default=str))
+
+
+# --------------------------------------------------------------------------- parent side
+def _run_pipeline(name: str, job: dict, run_dir: Path) -> dict:
+    """Start one pipeline subprocess, sample its memory, return its result dict."""
+    import psutil
+
+    run_dir.mkdir(parents=True, exist_ok=True)
+    job = {**job, "pipeline": name, "out": str(run_dir / "out"),
+           "result": str(run_dir / "result.json")}
+    job_path = run_dir / "job.json"
+    job_path.write_text(json.dumps(job))
+    Path(job["result"]).unlink(missing_ok=True)
+    log = open(run_dir / "log.txt", "w")  # noqa: SIM115  (closed below)
+    t0 = time.perf_counter()
+    proc = subprocess.Popen(
+        [sys.executable, str(Path(__file__).resolve()), "--child", str(job_path)],
+        stdout=log, stderr=subprocess.STDOUT, cwd=str(HERE.parent),
+    )
+    parent = psutil.Process(proc.pid)
+    peak_tree = 0
+    while True:
+        pid, status, usage = os.wait4(proc.pid, os.WNOHANG)
+        if pid != 0:
+            break
+        try:
+            rss = parent.memory_info().rss
+            for child in parent.children(recursive=True):
+                try:
+                    rss += child.memory_info().rss
+                except psutil.Error:
+                    pass
+            peak_tree = max(peak_tree, rss)
+        except psutil.Error:
+            pass
+        time.sleep(0.05)
+    wall = time.perf_counter() - t0
+    proc.returncode = os.waitstatus_to_exitcode(status)
+    log.close()
+    outcome = {"pipeline": name, "returncode": proc.returncode, "wall_s": wall,
+               "cpu_s": usage.ru_utime + usage.ru_stime,
+               "maxrss_mb": usage.ru_maxrss / 1024.0, "tree_peak_mb": peak_tree / 2**20}
+    outcome["peak_mb"] = max(outcome["maxrss_mb"], outcome["tree_peak_mb"])
+    result_path = Path(job["result"])
+    if proc.returncode == 0 and result_path.exists():
+        outcome.update(json.loads(result_path.read_text()))
+    else:
+        tail = (run_dir / "log.txt").read_text().splitlines()[-15:]
+        outcome["error"] = "\n".join(tail)
+    return outcome
+
+
+def _relative_difference(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """|a - b| / max(|a|, |b|) where that is positive, else 0."""
+    scale = np.maximum(np.abs(a), np.abs(b))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(scale > 0, np.abs(a - b) / np.where(scale > 0, scale, 1.0), 0.0)
+
+
+def _inside_ids(case: Path) -> np.ndarray:
+    """cell_id of the cells lying wholly inside the DEM extent."""
+    import geopandas as gpd
+    import rasterio
+    import shapely
+
+    with rasterio.open(case / "dem.tif") as src:
+        extent = shapely.box(*src.bounds)
+    frame = gpd.read_file(case / "cells.gpkg", engine="pyogrio")
+    inside = shapely.covers(extent, frame.geometry.values)
+    return frame["cell_id"].to_numpy()[inside]
+
+
+def _compare(table_a: Path, table_b: Path, ids: np.ndarray,
+             columns=("wet_area", "volume", "bed_area", "hydraulic_radius")) -> dict:
+    """Max / p99 / median relative difference per column over cells in ``ids``."""
+    import pandas as pd
+
+    cols = ["cell_id", "stage", *columns]
+    a = pd.read_parquet(table_a, columns=cols)
+    b = pd.read_parquet(table_b, columns=cols)
+    a = a[a["cell_id"].isin(ids)].sort_values(["cell_id", "stage"], kind="stable")
+    b = b[b["cell_id"].isin(ids)].sort_values(["cell_id", "stage"], kind="stable")
+    if len(a) != len(b) or not (
+        np.array_equal(a["cell_id"].to_numpy(), b["cell_id"].to_numpy())
+        and np.allclose(a["stage"].to_numpy(), b["stage"].to_numpy(), rtol=0, atol=1e-9)
+    ):
+        return {"error": f"rows differ: {len(a)} vs {len(b)} (cell_id, stage)"}
+    out = {"rows": len(a)}
+    for col in columns:
+        x, y = a[col].to_numpy(), b[col].to_numpy()
+        both = np.isfinite(x) & np.isfinite(y)
+        nan_mismatch = int((np.isfinite(x) != np.isfinite(y)).sum())
+        rel = _relative_difference(x[both], y[both])
+        out[col] = {
+            "max": float(rel.max()) if rel.size else 0.0,
+            "p99": float(np.quantile(rel, 0.99)) if rel.size else 0.0,
+            "median": float(np.median(rel)) if rel.size else 0.0,
+            "over_1e-6": int((rel > 1e-6).sum()),
+            "nan_mismatch": nan_mismatch,
+        }
+    if "volume" in columns:
+        tot_a, tot_b = a.groupby("stage")["volume"].sum(), b.groupby("stage")["volume"].sum()
+        out["total_volume_max_rel"] = float(_relative_difference(tot_a.to_numpy(),
+                                                                 tot_b.to_numpy()).max())
+    return out
+
+
+def _fits(n_pixels: float, folder: Path) -> str | None:
+    """None if the case fits on disk and in memory, else the reason."""
+    folder.parent.mkdir(parents=True, exist_ok=True)
+    need_disk = BYTES_DISK_PER_PIXEL * n_pixels
+    if not (folder / "case.json").exists():
+        need_disk += estimate_case_bytes(n_pixels)
+    free_disk = shutil.disk_usage(folder.parent).free
+    if free_disk < need_disk:
+        return f"needs ~{need_disk / 1e9:.1f} GB of disk, {free_disk / 1e9:.1f} GB free"
+    avail = os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
+    need_mem = BYTES_MEMORY_PER_PIXEL * n_pixels
+    if avail < need_mem:
+        return f"needs ~{need_mem / 1e9:.1f} GB of memory, {avail / 1e9:.1f} GB available"
+    return None
+
+
+def _stage_spec(meta: dict, n_stages: int) -> str:
+    """n_stages absolute stages from the 1st to the 90th elevation percentile (mm rounded)."""
+    q = meta["z_quantiles"]
+    values = np.round(np.linspace(q["p01"], q["p90"], n_stages), 3)
+    return ",".join(f"{v:.3f}" for v in values)
+
+
+def _depth_spec(n_stages: int, top: float = 3.0) -> str:
+    values = np.round(np.linspace(top / n_stages, top, n_stages), 4)
+    return ",".join(f"{v:.4f}" for v in values)
+
+
+def _label(n: float) -> str:
+    exp = int(np.floor(np.log10(n)))
+    mant = n / 10**exp
+    return f"{mant:g}e{exp}" if mant != 1 else f"1e{exp}"
+
+
+def _fmt(value, spec: str) -> str:
+    if value is None or (isinstance(value, float) and not np.isfinite(value)):
+        return "-"
+    return format(value, spec)
+
+
+def print_table(rows: list[dict]) -> str:
+    head = (f"{'case':<5} {'pipeline':<15} {'seconds':>8} {'cpu_s':>7} {'Mpx/s':>7} "
+            f"{'cell-stg/s':>11} {'face-stg/s':>11} {'peak MB':>8} {'x ntrans':>8} "
+            f"{'x floor':>8}")
+    lines = [head, "-" * len(head)]
+    for r in rows:
+        if "error" in r or r.get("seconds") is None:
+            lines.append(f"{r['case']:<5} {r['pipeline']:<15} FAILED (see runs/{r['pipeline']}"
+                         f"/log.txt): {str(r.get('error', '')).splitlines()[-1:]}")
+            continue
+        lines.append(
+            f"{r['case']:<5} {r['pipeline']:<15} {_fmt(r['seconds'], '8.2f')} "
+            f"{_fmt(r['cpu_s'], '7.1f')} {_fmt(r.get('mpx_per_s'), '7.2f')} "
+            f"{_fmt(r.get('cell_stages_per_s'), '11.3g')} "
+            f"{_fmt(r.get('face_stages_per_s'), '11.3g')} {_fmt(r['peak_mb'], '8.0f')} "
+            f"{_fmt(r.get('x_ntrans'), '8.2f')} {_fmt(r.get('x_floor'), '8.1f')}"
+        )
+    text = "\n".join(lines)
+    print(text, flush=True)
+    return text
+
+
+def _agreement_lines(case: str, agreement: dict) -> list[str]:
+    lines = []
+    for pair, res in agreement.items():
+        if "error" in res:
+            lines.append(f"{case} {pair}: {res['error']}")
+            continue
+        parts = [f"{col} max {res[col]['max']:.1e} (p99 {res[col]['p99']:.1e}, "
+                 f"{res[col]['over_1e-6']} > 1e-6)"
+                 for col in ("volume", "wet_area", "bed_area") if col in res]
+        extra = (f"; total volume per stage max {res['total_volume_max_rel']:.1e}"
+                 if "total_volume_max_rel" in res else "")
+        lines.append(f"{case} {pair} [{res['rows']} cell-stages]: " + "; ".join(parts) + extra)
+    return lines
+
+
+def run(sizes: list[float], n_stages: int, workers: int, pipelines: list[str],
+        keep_outputs: bool) -> dict:
+    results: dict = {"started": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+                     "python": sys.version.split()[0], "cpus": os.cpu_count(),
+                     "stages": n_stages, "workers": workers, "cases": []}
+    all_rows: list[dict] = []
+    all_agree: list[str] = []
+    smallest = min(sizes)
+    for size in sizes:
+        label = _label(size)
+        folder = case_folder(size)
+        reason = _fits(size, folder)
+        if reason is not None:
+            msg = f"skipping case {label}: {reason}"
+            print(msg, flush=True)
+            results["cases"].append({"case": label, "skipped": msg})
+            continue
+        t0 = time.perf_counter()
+        folder, meta = cached_case(size)
+        print(f"\ncase {label}: {meta['rows']} x {meta['cols']} pixels, {meta['n_cells']} cells "
+              f"({folder}, ready in {time.perf_counter() - t0:.1f} s)", flush=True)
+        job = {"dem": str(folder / "dem.tif"), "cells": str(folder / "cells.gpkg"),
+               "stages": _stage_spec(meta, n_stages), "depths": _depth_spec(n_stages),
+               "workers": workers}
+        runs = folder / "runs"
+        rows = []
+        for name in pipelines:
+            if name == "rasterstats" and size != smallest:
+                continue
+            print(f"  running {name} ...", end=" ", flush=True)
+            outcome = _run_pipeline(name, job, runs / name)
+            outcome["case"] = label
+            print("failed" if "error" in outcome else f"{outcome['seconds']:.1f} s "
+                  f"(peak {outcome['peak_mb']:.0f} MB)", flush=True)
+            rows.append(outcome)
+        by_name = {r["pipeline"]: r for r in rows if "error" not in r}
+        n_faces = next((by_name[p].get("n_faces") for p in ("ntrans_faces", "ntrans_workers")
+                        if p in by_name and by_name[p].get("n_faces")), None)
+        base = by_name.get("ntrans_cells", {}).get("seconds")
+        floor = by_name.get("floor", {}).get("seconds")
+        for r in rows:
+            if "error" in r:
+                continue
+            s = r["seconds"]
+            r["mpx_per_s"] = meta["n_pixels"] / s / 1e6
+            n_st = r.get("n_stages", n_stages)
+            if r["pipeline"] in TABLE_PIPELINES or r["pipeline"] == "ntrans_adjust":
+                r["cell_stages_per_s"] = meta["n_cells"] * n_st / s
+            if r["pipeline"] in FACE_PIPELINES and n_faces:
+                r["face_stages_per_s"] = n_faces * n_st / s
+            r["x_ntrans"] = s / base if base else None
+            r["x_floor"] = s / floor if floor else None
+        # agreement
+        agreement = {}
+        try:
+            ids = _inside_ids(folder)
+            ref_table = runs / "exactextract" / "out" / "cell_stage.parquet"
+            nt_table = runs / "ntrans_cells" / "out" / "cell_stage.parquet"
+            pairs = [("ntrans_cells vs exactextract", nt_table, ref_table),
+                     ("ntrans_faces vs ntrans_cells",
+                      runs / "ntrans_faces" / "out" / "cell_stage.parquet", nt_table),
+                     ("ntrans_workers vs ntrans_cells",
+                      runs / "ntrans_workers" / "out" / "cell_stage.parquet", nt_table),
+                     ("rasterstats (pixel centre) vs exactextract",
+                      runs / "rasterstats" / "out" / "cell_stage.parquet", ref_table)]
+            for pair, a, b in pairs:
+                if a.exists() and b.exists() and a.parent.parent.name in by_name \
+                        and b.parent.parent.name in by_name:
+                    agreement[pair] = _compare(a, b, ids)
+        except Exception:  # noqa: BLE001  (a benchmark reports, it does not stop)
+            agreement["error"] = {"error": traceback.format_exc(limit=3)}
+        lines = _agreement_lines(label, agreement)
+        all_agree.extend(lines)
+        print("\n".join(lines), flush=True)
+        results["cases"].append({"case": label, "meta": meta, "stages": job["stages"],
+                                 "depths": job["depths"], "n_faces": n_faces,
+                                 "rows": rows, "agreement": agreement})
+        all_rows.extend(rows)
+        if not keep_outputs:
+            for name in pipelines:
+                shutil.rmtree(runs / name / "out", ignore_errors=True)
+        CASES_DIR.mkdir(parents=True, exist_ok=True)
+        (CASES_DIR / "results.json").write_text(json.dumps(results, indent=2, default=str))
+    print("\n" + "=" * 100)
+    print(f"stages per item: {n_stages}; workers for ntrans_workers: {workers}; "
+          f"cpus: {os.cpu_count()}")
+    table = print_table(all_rows)
+    print("\nagreement (relative difference |a-b|/max(|a|,|b|), cells wholly inside the DEM):")
+    print("\n".join(all_agree))
+    print("rasterstats uses the pixel-centre rule (no coverage fractions): it is not exact, "
+          "so only loose agreement is expected.")
+    print("x ntrans = seconds / seconds of ntrans_cells of the same case; "
+          "x floor = seconds / seconds of floor (read DEM + sort all pixels).")
+    results["table"] = table
+    results["agreement_text"] = all_agree
+    results["finished"] = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
+    (CASES_DIR / "results.json").write_text(json.dumps(results, indent=2, default=str))
+    print(f"results: {CASES_DIR / 'results.json'}")
+    return results
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(
+        description=__doc__.splitlines()[0],
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog="\n".join(__doc__.splitlines()[2:]),
+    )
+    parser.add_argument("--sizes", default="1e6,1e7",
+                        help="comma list of pixel counts (default 1e6,1e7; add 1e8 on request)")
+    parser.add_argument("--stages", type=int, default=30, help="stages (and depths) per item")
+    parser.add_argument("--workers", type=int, default=2, help="Dask workers for ntrans_workers")
+    parser.add_argument("--pipelines", default=",".join(ALL_PIPELINES),
+                        help=f"comma list out of {','.join(ALL_PIPELINES)}")
+    parser.add_argument("--keep-outputs", action="store_true",
+                        help="keep each pipeline's output folder under the case's runs/")
+    parser.add_argument("--child", type=Path, help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.child is not None:
+        _run_child(args.child)
+        return
+    sizes = [float(s) for s in args.sizes.split(",") if s.strip()]
+    pipelines = [p.strip() for p in args.pipelines.split(",") if p.strip()]
+    unknown = sorted(set(pipelines) - set(ALL_PIPELINES))
+    if unknown:
+        parser.error(f"unknown pipelines {unknown}; choose from {ALL_PIPELINES}")
+    run(sizes, args.stages, args.workers, pipelines, args.keep_outputs)
+
+
+if __name__ == "__main__":
+    main()

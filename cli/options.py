@@ -1,0 +1,195 @@
+"""Command-line options shared by several commands, defined once.
+
+Each name below is a decorator adding one ``click`` option; the option's Python name is
+the library's keyword name, so ``build_tables(**kwargs)`` takes them as they come.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import Any
+
+import click
+
+F = Callable[..., Any]
+
+dem = click.option(
+    "--dem",
+    required=True,
+    type=click.Path(dir_okay=False, path_type=str),
+    help="Terrain raster (GeoTIFF) in a projected CRS; horizontal units (metre or foot) "
+    "come from the CRS, elevations in the vertical units.",
+)
+
+cells = click.option(
+    "--cells",
+    required=True,
+    type=click.Path(path_type=str),
+    help="Mesh cells as polygons (GeoPackage, Shapefile, ...) in the DEM's CRS.",
+)
+
+id_field = click.option(
+    "--id-field",
+    default=None,
+    metavar="NAME",
+    help="Attribute holding unique cell ids (default: feature order, from 0).",
+)
+
+
+stages = click.option(
+    "--stages",
+    default=None,
+    metavar="SPEC",
+    help="Water-surface elevations to tabulate, in the DEM's vertical units: "
+    "start:stop:step (stop included when on the grid) or a comma list.  "
+    "Give exactly one of --stages and --depths.",
+)
+
+depths = click.option(
+    "--depths",
+    default=None,
+    metavar="SPEC",
+    help="Depths to tabulate, in the DEM's vertical units, above each cell's and each "
+    "face's lowest terrain point: start:stop:step or a comma list.  "
+    "Give exactly one of --stages and --depths.",
+)
+
+vertical_units = click.option(
+    "--vertical-units",
+    type=click.Choice(["metre", "foot", "us_survey_foot"]),
+    default=None,
+    help="Units of the DEM's elevations when they differ from the CRS's horizontal "
+    "units (default: the same as horizontal).",
+)
+
+coverage = click.option(
+    "--coverage",
+    type=click.Choice(["exact", "centre"]),
+    default="exact",
+    show_default=True,
+    help="How a cell takes a pixel: 'exact' by the fraction of the pixel's plan area "
+    "(square CRS units) it covers, 'centre' wholly when the pixel centre is inside.",
+)
+
+elevation_rule = click.option(
+    "--elevation-rule",
+    type=click.Choice(["mean", "min", "median", "centroid", "field"]),
+    default="mean",
+    show_default=True,
+    help="Flat-cell bed elevation (vertical units): terrain mean, min or median over the "
+    "cell (area-weighted), terrain at the centroid, or the --elevation-field attribute.",
+)
+
+elevation_field = click.option(
+    "--elevation-field",
+    default=None,
+    metavar="NAME",
+    help="Cell attribute with the flat bed elevation (vertical units) from the source "
+    "model; used with --elevation-rule field.",
+)
+
+face_rule = click.option(
+    "--face-rule",
+    type=click.Choice(["higher", "mean", "min", "profile_mean"]),
+    default="higher",
+    show_default=True,
+    help="Flat-face bed elevation (vertical units): the higher, mean or lower of the two "
+    "adjacent flat-cell elevations, or the mean of the face's terrain profile.",
+)
+
+face_spacing = click.option(
+    "--face-spacing",
+    type=click.FloatRange(min=0, min_open=True),
+    default=None,
+    metavar="LENGTH",
+    help="Profile sampling step along faces, in horizontal CRS units "
+    "(default: half a pixel).",
+)
+
+snap_tolerance = click.option(
+    "--snap-tolerance",
+    type=click.FloatRange(min=0),
+    default=None,
+    metavar="LENGTH",
+    help="Distance in horizontal CRS units within which cell borders count as shared "
+    "(default: 1% of the pixel size).",
+)
+
+out = click.option(
+    "--out",
+    required=True,
+    type=click.Path(file_okay=False, path_type=str),
+    help="Output folder (written whole or not at all).",
+)
+
+overwrite = click.option(
+    "--overwrite",
+    is_flag=True,
+    default=False,
+    help="Replace the output folder if it exists.",
+)
+
+csv = click.option(
+    "--csv",
+    is_flag=True,
+    default=False,
+    help="Also write every table as CSV.",
+)
+
+tile_size = click.option(
+    "--tile-size",
+    type=click.IntRange(min=1),
+    default=1024,
+    show_default=True,
+    metavar="PIXELS",
+    help="Tile edge in DEM pixels; cells are processed tile by tile, which bounds memory.",
+)
+
+workers = click.option(
+    "--workers",
+    type=click.IntRange(min=1),
+    default=None,
+    metavar="N",
+    help="Run tiles on a local Dask cluster of N worker processes (default: this process).",
+)
+
+scheduler = click.option(
+    "--scheduler",
+    default=None,
+    metavar="ADDRESS",
+    help="Run tiles on an existing Dask scheduler, e.g. tcp://host:8786.",
+)
+
+
+def tables_options(func: F) -> F:
+    """Every option of the ``tables`` job, in --help order."""
+    for deco in reversed(
+        [
+            dem,
+            cells,
+            id_field,
+            stages,
+            depths,
+            vertical_units,
+            coverage,
+            elevation_rule,
+            elevation_field,
+            face_rule,
+            face_spacing,
+            snap_tolerance,
+            out,
+            overwrite,
+            csv,
+            tile_size,
+            workers,
+            scheduler,
+        ]
+    ):
+        func = deco(func)
+    return func
+
+
+def check_stages_or_depths(stages_value: str | None, depths_value: str | None) -> None:
+    """Exactly one of --stages / --depths; a usage error (exit 2) otherwise."""
+    if (stages_value is None) == (depths_value is None):
+        raise click.UsageError("give exactly one of --stages and --depths")

@@ -1,0 +1,55 @@
+"""``ntrans run``: the whole job from a project file, into one handover bundle."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import click
+
+from ntrans.cautions import CAUTIONS
+
+
+def echo_summary(result: Any) -> None:
+    """Print the bundle's location, the n per class, and the cautions."""
+    click.echo(f"bundle: {result.folder}")
+    click.echo(f"report: {result.report}")
+    if result.zip is not None:
+        click.echo(f"zip:    {result.zip}")
+    frame = result.n_by_class
+    cols = [c for c in ("class", "n_source", "n_target", "ratio", "flags") if c in frame.columns]
+    if cols:
+        click.echo("")
+        click.echo(frame[cols].to_string(index=False, na_rep="-", float_format=lambda v: f"{v:.4g}"))
+    bias = result.summary.get("stage_bias_unadjusted") or {}
+    after = result.summary.get("stage_bias_adjusted") or {}
+    if bias.get("median") is not None and after.get("median") is not None:
+        unit = {"metre": "m", "foot": "ft"}.get(result.summary.get("units", {}).get("vertical"), "")
+        click.echo(
+            f"\nmedian stage error: {bias['median']:+.3f} {unit} with n carried over, "
+            f"{after['median']:+.3f} {unit} with the adjusted n"
+        )
+    click.echo("")
+    for caution in CAUTIONS:
+        click.echo(f"Caution: {caution}")
+
+
+@click.command("run")
+@click.argument("project", type=click.Path(dir_okay=False, path_type=str))
+@click.option(
+    "--overwrite",
+    is_flag=True,
+    default=None,
+    help="Replace the bundle folder if it exists (default: the project's outputs.overwrite).",
+)
+@click.pass_context
+def command(ctx: click.Context, project: str, overwrite: bool | None) -> None:
+    """Run the whole job of PROJECT (a TOML project file): stage tables, n per class,
+    maps, plots, report and manifest, written as one bundle folder.
+
+    Create a project file with ``ntrans init``.
+    """
+    from ntrans.project import run_project
+
+    quiet = bool(ctx.meta.get("ntrans.quiet", False))
+    result = run_project(project, overwrite=overwrite or None, progress=not quiet)
+    echo_summary(result)

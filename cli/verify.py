@@ -1,0 +1,23 @@
+"""``ntrans verify``: check a handover bundle against its manifest."""
+
+from __future__ import annotations
+
+import click
+
+
+@click.command("verify")
+@click.argument("bundle", type=click.Path(exists=True, path_type=str))
+def command(bundle: str) -> None:
+    """Re-hash every file of BUNDLE (a folder or its zip) and compare with manifest.json.
+
+    Lists missing, changed and extra files; exits with code 2 when anything differs.
+    """
+    from ntrans.bundle import verify_bundle
+
+    result = verify_bundle(bundle)
+    for line in result.lines():
+        click.echo(line)
+    if result.ok:
+        click.echo(f"ok: {result.summary()}")
+        return
+    result.raise_for_differences()

@@ -1,0 +1,845 @@
+"""``adjust_roughness()``: equivalent Manning's n per roughness class (``ntrans adjust``).
+
+Flow: read and check the DEM, the cells and the roughness inputs (nothing is written
+when any of them is bad) -> faces of the whole mesh -> tiles (:mod:`ntrans.engine`) ->
+pass 1, per tile, pure numpy: pixel weights, surface factor, flat elevations, face
+profiles with a roughness class per segment and a class per pixel, then the per (item,
+class) sufficient statistics of both families at the window stages
+(:mod:`ntrans.translate`) -> one global class fit -> pass 2, per tile: n ratios,
+conveyances and stage bias per face (and cell) -> tables, maps, summary.
+
+The *fit domain* is the faces, unless a subgrid side uses the ``cell`` closure (friction
+applied per cell): then the cells are fitted (lumped radius V / A_bed; a ``strip``
+closure on cells means the conveyance form).  Faces are always tabulated; with the
+``cell`` closure their target is evaluated with the lumped radius, for reference.
+
+The second pass recomputes each tile's geometry instead of keeping it, so memory stays
+bounded by one tile plus the (item, class, stage) statistics.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import os
+import time
+import warnings
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import shapely
+
+from . import __version__
+from .cautions import CAUTIONS
+from .engine import (
+    COVERAGE_MODES,
+    ELEVATION_RULES,
+    FACE_RULES,
+    make_tasks,
+    plan_tiles,
+)
+from .errors import DryWetMismatchWarning, InputError, RoughnessError
+from .roughness import (
+    AREA_TOLERANCE,
+    OVERLAP_RULES,
+    RoughnessModel,
+    class_at_points,
+    class_index_on_window,
+    load_roughness,
+    outside_range,
+)
+from .stages import StageSpec
+from .translate import (
+    COMPOSITES,
+    CellGeometry,
+    ClassStats,
+    FaceGeometry,
+    FlatGeometry,
+    conveyance,
+    fit_class_n,
+    n_ratio,
+    solve_stage,
+)
+from .translate import Family as _Family
+
+log = logging.getLogger(__name__)
+
+FAMILIES: tuple[str, ...] = ("flat", "subgrid")
+SUBGRID_CLOSURES: tuple[str, ...] = ("lumped", "strip", "cell")
+
+CLASS_COLUMNS: tuple[str, ...] = (
+    "class", "n_source", "n_target", "ratio", "ratio_p10", "ratio_p50", "ratio_p90", "faces",
+    "weight_share", "flags", "surface", "bias_unadjusted_median", "bias_unadjusted_p90_abs",
+    "bias_unadjusted_max_abs", "bias_adjusted_median", "bias_adjusted_p90_abs",
+    "bias_adjusted_max_abs",
+)
+FACE_COLUMNS: tuple[str, ...] = (
+    "face_id", "cell_a", "cell_b", "stage", "depth", "n_ratio", "conveyance_source",
+    "conveyance_target", "conveyance_target_unadjusted", "stage_bias_unadjusted",
+    "stage_bias_adjusted", "dominant_class",
+)
+CELL_COLUMNS: tuple[str, ...] = (
+    "cell_id", "stage", "depth", "n_ratio", "n_ratio_lumped", "n_ratio_conveyance_form",
+    "n_ratio_lumped_equal_volume", "n_ratio_conveyance_form_equal_volume", "conveyance_source",
+    "conveyance_target", "conveyance_target_unadjusted", "stage_bias_unadjusted",
+    "stage_bias_adjusted", "dominant_class",
+)
+
+
+@dataclass
+class AdjustResult:
+    """What :func:`adjust_roughness` wrote and found.
+
+    ``classes`` is the per-class table (as in ``n_by_class.csv``), ``summary`` the content
+    of ``adjust_summary.json``, ``text`` the one-screen summary ending with the cautions.
+    """
+
+    out: Path
+    files: list[Path]
+    classes: Any
+    summary: dict[str, Any]
+    text: str
+    seconds: float = 0.0
+    units: dict[str, str] = field(default_factory=dict)
+
+
+# --------------------------------------------------------------------------- settings
+
+
+@dataclass(frozen=True)
+class _Plan:
+    source: str
+    target: str
+    source_closure: str   # closure of the source (flat -> "lumped")
+    target_closure: str
+    domain: str           # "faces" or "cells"
+    composite: str
+    elevation_rule: str
+    face_rule: str
+    coverage: str
+    spacing: float
+    z_to_xy: float
+    k: float
+
+
+def _check_choice(name: str, value: Any, allowed: tuple[str, ...]) -> None:
+    if value not in allowed:
+        raise InputError(f"{name} {value!r} is not one of {', '.join(allowed)}; choose one of them")
+
+
+def _families(source: str, target: str, closure: str, source_closure: str | None) -> tuple[str, str, str]:
+    """(source closure, target closure, domain) from the options."""
+    _check_choice("source family", source, FAMILIES)
+    _check_choice("target family", target, FAMILIES)
+    _check_choice("closure", closure, SUBGRID_CLOSURES)
+    if source_closure is not None:
+        _check_choice("source closure", source_closure, SUBGRID_CLOSURES)
+    if source == "flat" and target == "flat":
+        raise InputError("source and target are both flat; one side must be subgrid "
+                         "(use --from subgrid or --to subgrid)")
+    if source_closure is not None and not (source == "subgrid" and target == "subgrid"):
+        raise InputError("a source closure applies only when both sides are subgrid; drop it "
+                         "or use --from subgrid --to subgrid")
+    if source == "subgrid" and target == "subgrid":
+        sc = source_closure or "lumped"
+        tc = closure
+    elif source == "flat":
+        sc, tc = "flat", closure
+    else:
+        sc, tc = closure, "flat"
+    domain = "cells" if "cell" in (sc, tc) else "faces"
+    return sc, tc, domain
+
+
+def _domain_closure(closure: str) -> str:
+    """Closure used by translate: flat geometry and cells' lumped radius -> lumped."""
+    return "strip" if closure == "strip" else "lumped"
+
+
+# --------------------------------------------------------------------------- per tile
+
+
+@dataclass
+class _TileGeometry:
+    cells: np.ndarray            # global indices of own cells
+    faces: np.ndarray            # global indices of the tile's faces
+    face_a: np.ndarray           # global cell_a / cell_b (-1 boundary)
+    face_b: np.ndarray
+    face_geom: FaceGeometry
+    cell_geom: CellGeometry
+    face_flat: np.ndarray        # flat face bed
+    cell_flat: np.ndarray        # flat cell elevation (own cells)
+    face_low: np.ndarray
+    cell_low: np.ndarray
+    face_stages: np.ndarray      # (n_faces, n_window)
+    cell_stages: np.ndarray      # (n_cells, n_window)
+    uncovered: float             # plan area of own cells' pixels with no class
+    covered: float               # plan area of own cells' pixels
+    bed_factor: np.ndarray       # (n_cells, n_window) bed_area / wet_area
+
+
+def _tile_geometry(task: Any, elevation: np.ndarray, transform: Any, plan: _Plan,
+                   model: RoughnessModel, crs: Any, window_stages: Any) -> _TileGeometry:
+    """Geometry of one tile (pure apart from the water-surface callback)."""
+    from .cells import cell_terrain_summary, flat_elevation
+    from .coverage import centre_coverage, exact_coverage
+    from .faces import Profiles, face_flat_bed, face_profile_summary, sample_profiles
+    from .terrain import sample_bilinear, surface_factor
+
+    tile = task.tile
+    n_own = tile.cells.size
+    n_all = n_own + tile.halo.size
+    n_cls = model.n_classes
+    pixel_area = abs(transform.a * transform.e - transform.b * transform.d)
+    if elevation.size == 0:
+        item = np.empty(0, dtype=np.int64)
+        rows = cols = item
+        frac = np.empty(0)
+        s_pix = np.empty(0)
+        cls_win = np.empty((0, 0), dtype=np.int32)
+    else:
+        cover = exact_coverage if plan.coverage == "exact" else centre_coverage
+        w = cover(task.polygons, transform, elevation.shape)
+        item, rows, cols = (np.asarray(a, dtype=np.int64) for a in (w.item, w.row, w.col))
+        frac = np.asarray(w.fraction, dtype=float)
+        sf = surface_factor(elevation, abs(transform.a), abs(transform.e), z_to_xy=plan.z_to_xy)
+        s_pix = sf[rows, cols]
+        cls_win = class_index_on_window(model, transform, elevation.shape, crs=crs)
+    z = elevation[rows, cols] if elevation.size else np.empty(0)
+    plan_area = frac * pixel_area
+    pix_cls = cls_win[rows, cols].astype(np.int64) if elevation.size else np.empty(0, np.int64)
+
+    summary = cell_terrain_summary(item, z, plan_area, n_all)
+    centroid_z = None
+    if plan.elevation_rule == "centroid":
+        cent = shapely.centroid(task.polygons)
+        centroid_z = (sample_bilinear(elevation, transform, shapely.get_x(cent), shapely.get_y(cent))
+                      if elevation.size else np.full(n_all, np.nan))
+    flat_z = np.asarray(flat_elevation(plan.elevation_rule, summary, centroid_z=centroid_z,
+                                       field=task.field_values), dtype=float)
+
+    own = item < n_own
+    valid = own & np.isfinite(z)
+    uncovered = float(plan_area[valid & (pix_cls < 0)].sum())
+    covered = float(plan_area[valid].sum())
+    cell_geom = CellGeometry(item[own], z[own], plan_area[own], (plan_area * s_pix)[own],
+                             pix_cls[own], n_own, n_cls)
+    cell_low = np.asarray(summary["z_min"], dtype=float)[:n_own]
+
+    # faces
+    n_f = tile.faces.size
+    if n_f == 0 or elevation.size == 0:
+        e = np.empty(0)
+        prof = Profiles(np.empty(0, dtype=np.int64), e, e, n_f, x=e, y=e)
+    else:
+        prof = sample_profiles(task.face_lines, elevation, transform, plan.spacing)
+    seg_cls = np.full(prof.n_stations, -1, dtype=np.int64)
+    k_seg = prof.segment_index()
+    if k_seg.size:
+        mx, my = prof.segment_midpoints()
+        seg_cls[k_seg] = class_at_points(cls_win, transform, mx, my)
+    face_geom = FaceGeometry(prof.face, prof.station, prof.z, seg_cls, n_f, n_cls,
+                             z_to_xy=plan.z_to_xy)
+    fsum = face_profile_summary(prof)
+    face_low = np.asarray(fsum["low_point"], dtype=float)
+    la, lb = task.face_a, task.face_b
+    if n_f:
+        za = flat_z[la]
+        zb = np.where(lb >= 0, flat_z[np.where(lb >= 0, lb, 0)], np.nan)
+        face_flat = np.asarray(face_flat_bed(plan.face_rule, za, zb, fsum), dtype=float)  # type: ignore[arg-type]
+    else:
+        face_flat = np.empty(0)
+    local = np.concatenate([tile.cells, tile.halo])
+    ga = local[la] if n_f else np.empty(0, dtype=np.int64)
+    gb = np.where(lb >= 0, local[np.where(lb >= 0, lb, 0)], -1) if n_f else np.empty(0, dtype=np.int64)
+
+    face_stages, cell_stages = window_stages(
+        face_low=face_low, cell_low=cell_low, prof=prof, cell_pixels=(item[own], rows[own],
+                                                                        cols[own], plan_area[own]),
+        n_cells=n_own, window=(transform, elevation.shape), face_a=np.asarray(la, dtype=np.int64))
+    cst = cell_geom.stats(cell_stages)
+    wet = cst.total(cst.wet)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        bed_factor = np.where(wet > 0, cst.total(cst.perimeter) / np.where(wet > 0, wet, 1.0), np.nan)
+    return _TileGeometry(tile.cells, tile.faces, ga, gb, face_geom, cell_geom, face_flat,
+                         flat_z[:n_own], face_low, cell_low, face_stages, cell_stages,
+                         uncovered, covered, bed_factor)
+
+
+class _Window:
+    """Window stages per item: a StageSpec, or water-surface rasters (one column each)."""
+
+    def __init__(self, spec: StageSpec | None, surfaces: list[Any], dem: Any) -> None:
+        self.spec = spec
+        self.surfaces = surfaces
+        self.dem = dem
+
+    @property
+    def n(self) -> int:
+        return self.spec.values.size if self.spec is not None else len(self.surfaces)
+
+    def __call__(self, *, face_low, cell_low, prof, cell_pixels, n_cells, window, face_a):
+        if self.spec is not None:
+            return self.spec.for_items(face_low), self.spec.for_items(cell_low)
+        transform, shape = window
+        n_f = face_low.size
+        fst = np.full((n_f, self.n), np.nan)
+        cst = np.full((n_cells, self.n), np.nan)
+        item, rows, cols, area = cell_pixels
+        # window offsets of this tile in the DEM grid
+        inv = ~self.dem.transform
+        col_off = int(round(inv.a * transform.c + inv.b * transform.f + inv.c))
+        row_off = int(round(inv.d * transform.c + inv.e * transform.f + inv.f))
+        for j, ws in enumerate(self.surfaces):  # loop over events
+            if prof.n_stations:
+                v = ws.sample(prof.x, prof.y, crs=self.dem.crs)
+                ok = np.isfinite(v)
+                num = np.bincount(prof.face[ok], weights=v[ok], minlength=n_f)
+                cnt = np.bincount(prof.face[ok], minlength=n_f)
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    fst[:, j] = np.where(cnt > 0, num / np.where(cnt > 0, cnt, 1), np.nan)
+            if item.size and shape[0] and shape[1]:
+                grid = ws.on_dem_window(self.dem, row_off, col_off, shape[0], shape[1])
+                v = grid[rows, cols]
+                ok = np.isfinite(v)
+                num = np.bincount(item[ok], weights=(v * area)[ok], minlength=n_cells)
+                den = np.bincount(item[ok], weights=area[ok], minlength=n_cells)
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    cst[:, j] = np.where(den > 0, num / np.where(den > 0, den, 1.0), np.nan)
+        # a face whose line has no water-surface value (e.g. on the raster's edge) takes
+        # the value of its first cell
+        if n_f and n_cells:
+            fallback = np.where(face_a < n_cells, face_a, 0)
+            fst = np.where(np.isnan(fst) & (face_a < n_cells)[:, None], cst[fallback], fst)
+        return fst, cst
+
+
+def _families_for(tg: _TileGeometry, plan: _Plan, domain: str) -> tuple[_Family, _Family]:
+    """Source and target families on the faces or the cells of one tile."""
+    if domain == "faces":
+        geom, flat = tg.face_geom, FlatGeometry.from_geometry(tg.face_geom, tg.face_flat)
+    else:
+        geom, flat = tg.cell_geom, FlatGeometry.from_geometry(tg.cell_geom, tg.cell_flat)
+
+    def fam(closure: str) -> _Family:
+        if closure == "flat":
+            return _Family(flat, "lumped")
+        if domain == "faces" and closure == "cell":
+            return _Family(geom, "lumped")
+        return _Family(geom, _domain_closure(closure))  # type: ignore[arg-type]
+
+    return fam(plan.source_closure), fam(plan.target_closure)
+
+
+def _offset_stats(parts: list[ClassStats], n_items: int, n_classes: int) -> ClassStats:
+    """Concatenate per-tile statistics (items already global) into one."""
+    if not parts:
+        e = np.empty(0, dtype=np.int64)
+        z = np.empty((0, 0))
+        return ClassStats(e, e, n_items, n_classes, np.empty(0), z, z, z, z)
+    cat = np.concatenate
+    return ClassStats(cat([p.item for p in parts]), cat([p.cls for p in parts]), n_items,
+                      n_classes, cat([p.extent for p in parts]), cat([p.wet for p in parts]),
+                      cat([p.perimeter for p in parts]), cat([p.area for p in parts]),
+                      cat([p.strip for p in parts]))
+
+
+def _globalise(st: ClassStats, index: np.ndarray, n_items: int) -> ClassStats:
+    return ClassStats(index[st.item], st.cls, n_items, st.n_classes, st.extent, st.wet,
+                      st.perimeter, st.area, st.strip)
+
+
+# --------------------------------------------------------------------------- main job
+
+
+def adjust_roughness(
+    dem: str | os.PathLike[str],
+    cells: str | os.PathLike[str],
+    *,
+    out: str | os.PathLike[str],
+    id_field: str | None = None,
+    n: float | str | None = None,
+    classes: str | os.PathLike[str] | None = None,
+    class_field: str | None = None,
+    n_table: str | os.PathLike[str] | None = None,
+    n_field: str | None = None,
+    class_raster: str | os.PathLike[str] | None = None,
+    default_class: str | None = None,
+    overlap_rule: str = "error",
+    source: str = "flat",
+    target: str = "subgrid",
+    closure: str = "lumped",
+    source_closure: str | None = None,
+    composite: str = "horton_einstein",
+    depths: str | None = None,
+    stages: str | None = None,
+    water_surface: list[str | os.PathLike[str]] | str | None = None,
+    elevation_rule: str = "mean",
+    elevation_field: str | None = None,
+    face_rule: str = "higher",
+    coverage: str = "exact",
+    face_spacing: float | None = None,
+    snap_tolerance: float | None = None,
+    vertical_units: str | None = None,
+    csv: bool = False,
+    overwrite: bool = False,
+    tile_size: int = 1024,
+    workers: int | None = None,
+    scheduler: str | None = None,
+    progress: bool = False,
+) -> AdjustResult:
+    """Fit one Manning's n per roughness class for the target model family.
+
+    Parameters
+    ----------
+    dem, cells : terrain raster (projected CRS) and the mesh cell polygons.
+    out : output folder, written whole or not at all.
+    n, classes + class_field + n_table, classes + n_field, class_raster + n_table :
+        the source model's roughness (exactly one form); ``default_class`` for ground no
+        class covers; ``overlap_rule`` (``error | first | last | max_n``) for overlapping
+        class polygons.  See :func:`ntrans.roughness.load_roughness`.
+    source, target : ``flat`` or ``subgrid`` (at least one subgrid).
+    closure : friction closure of the subgrid side (``lumped | strip | cell``); the
+        target's when both sides are subgrid, with ``source_closure`` the source's.
+    composite : composite n along a face: ``horton_einstein | pavlovskii | lotter``.
+    depths, stages, water_surface : the calibration window (exactly one): depths above
+        each item's low point, absolute stages, or water-surface rasters exported from
+        the calibrated source model (each face / cell at its mean value per raster).
+    elevation_rule, elevation_field, face_rule : flat beds (see ``build_tables``).
+    coverage, face_spacing, snap_tolerance, vertical_units, tile_size : as in
+        ``build_tables``.
+    csv : also write the face and cell tables as CSV.
+    workers, scheduler : accepted for a common option set; tiles run in this process.
+    progress : progress bar on stderr.
+
+    Returns
+    -------
+    AdjustResult
+
+    Writes ``n_by_class.csv``, ``face_adjustment.parquet``, ``cell_adjustment.parquet``,
+    ``cells.gpkg``, ``faces.gpkg`` and ``adjust_summary.json``.  Lengths in the CRS's
+    horizontal unit, stages and stage bias in the DEM's vertical unit; conveyance
+    k A R^(2/3) / n with k = 1.0 (metre) or 1.486 (foot).
+    """
+    from .inputs import open_dem, read_cells, read_water_surfaces
+    from .mesh import build_faces
+    from .outputs import OutputFolder, TableWriter, write_csv, write_geopackage
+    from .progress import track
+    from .tables import _field_values, _id_type, _ids_at, _units
+
+    started = time.perf_counter()
+    _check_choice("coverage", coverage, COVERAGE_MODES)
+    _check_choice("elevation rule", elevation_rule, ELEVATION_RULES)
+    _check_choice("face rule", face_rule, FACE_RULES)
+    _check_choice("composite method", composite, COMPOSITES)
+    _check_choice("overlap rule", overlap_rule, OVERLAP_RULES)
+    sc, tc, domain = _families(source, target, closure, source_closure)
+    if isinstance(water_surface, str | os.PathLike):
+        water_surface = [water_surface]
+    given = sum(v is not None and v != [] for v in (depths, stages, water_surface))
+    if given != 1:
+        raise InputError("give exactly one calibration window: depths, stages or water-surface "
+                         "rasters")
+    spec = None if water_surface else StageSpec.from_options(stages=stages, depths=depths)
+    if int(tile_size) < 1:
+        raise InputError(f"tile size {tile_size} is not a positive number of pixels; use e.g. 1024")
+    if workers is not None or scheduler is not None:
+        log.info("adjust runs its tiles in this process (workers/scheduler are not used)")
+
+    dem_info = open_dem(dem, vertical_units=vertical_units)
+    layer = read_cells(cells, dem=dem_info, id_field=id_field)
+    field_values = _field_values(layer, elevation_rule, elevation_field)
+    geoms = np.asarray(layer.geometry, dtype=object)
+    ids = np.asarray(layer.ids)
+    mesh_area = shapely.union_all(geoms)
+    model = load_roughness(n=n, classes=classes, class_field=class_field, n_table=n_table,
+                           n_field=n_field, class_raster=class_raster,
+                           default_class=default_class, overlap_rule=overlap_rule,  # type: ignore[arg-type]
+                           crs=dem_info.crs, mesh_area=mesh_area)
+    surfaces = read_water_surfaces(water_surface, dem=dem_info) if water_surface else []
+    window = _Window(spec, surfaces, dem_info)
+
+    dx, dy = dem_info.pixel_size
+    pixel = min(dx, dy)
+    spacing = 0.5 * pixel if face_spacing is None else float(face_spacing)
+    snap = 0.01 * pixel if snap_tolerance is None else float(snap_tolerance)
+    if not (np.isfinite(spacing) and spacing > 0):
+        raise InputError(f"face spacing {face_spacing!r} is not a positive length; give e.g. {0.5 * pixel:g}")
+    plan = _Plan(source, target, sc, tc, domain, composite, elevation_rule, face_rule, coverage,
+                 spacing, float(dem_info.z_to_xy), float(dem_info.manning_k))
+    k = plan.k
+    mesh = build_faces(geoms, snap_tolerance=snap)
+    n_cells, n_faces, n_cls, n_win = geoms.size, mesh.n_faces, model.n_classes, window.n
+    tiles = plan_tiles(geoms, dem_info.transform, dem_info.shape, tile_size=int(tile_size),
+                       face_cell_a=mesh.cell_a, face_cell_b=mesh.cell_b, face_lines=mesh.geometry)
+    log.info("adjust: %s/%s -> %s/%s on %s, %d cells, %d faces, %d classes, %d window stages, "
+             "%d tiles", source, sc, target, tc, domain, n_cells, n_faces, n_cls, n_win, len(tiles))
+
+    def tasks():
+        return make_tasks(tiles, geoms, field_values=field_values, face_lines=mesh.geometry,
+                          face_cell_a=mesh.cell_a, face_cell_b=mesh.cell_b,
+                          face_length=mesh.length)
+
+    def geometries(desc: str):
+        for task in track(tasks(), total=len(tiles), desc=desc, enabled=progress):
+            wdw = task.tile.window
+            if wdw.height > 0 and wdw.width > 0:
+                arr = np.asarray(dem_info.read_window(int(wdw.row_off), int(wdw.col_off),
+                                                      int(wdw.height), int(wdw.width)), float)
+                tr = dem_info.window_transform(int(wdw.row_off), int(wdw.col_off))
+            else:
+                arr, tr = np.empty((0, 0)), dem_info.transform
+            yield _tile_geometry(task, arr, tr, plan, model, dem_info.crs, window)
+
+    # ---- pass 1: sufficient statistics of the fit domain
+    src_parts: list[np.ndarray] = []
+    tgt_parts: list[ClassStats] = []
+    uncovered = covered = 0.0
+    n_dom = n_faces if domain == "faces" else n_cells
+    k_src_all = np.full((n_dom, n_win), np.nan)
+    for tg in geometries("fit statistics"):
+        uncovered += tg.uncovered
+        covered += tg.covered
+        fam_s, fam_t = _families_for(tg, plan, domain)
+        idx = tg.faces if domain == "faces" else tg.cells
+        st = tg.face_stages if domain == "faces" else tg.cell_stages
+        k_src_all[idx] = fam_s.conveyance(st, model.n, composite=composite, k=k)  # type: ignore[arg-type]
+        tgt_parts.append(_globalise(fam_t.geometry.stats(st), idx, n_dom))
+        src_parts.append(idx)
+    share = uncovered / covered if covered > 0 else 0.0
+    if model.source == "raster" and model.default < 0 and share > AREA_TOLERANCE:
+        raise RoughnessError(
+            f"{100 * share:.3g}% of the mesh ground has no class in the class raster; give a "
+            "default class (--default-class) or fill the raster"
+        )
+    target_stats = _offset_stats(tgt_parts, n_dom, n_cls)
+    fit = fit_class_n(np.nan_to_num(k_src_all, nan=0.0), target_stats, model.n,
+                      closure=_domain_closure(tc),  # type: ignore[arg-type]
+                      composite=composite, k=k)  # type: ignore[arg-type]
+    out_rng = outside_range(model, fit.n_target)
+    flags = [list(f) + (["outside_published_range"] if out_rng[c] else []) for c, f in enumerate(fit.flags)]
+    n_fit = fit.n_target
+    if not fit.success:
+        log.warning("the class fit did not converge (cost %.3g); check the flags", fit.cost)
+
+    # ---- pass 2: per item tables
+    units = _units(dem_info)
+    z_unit = units["stage"]
+    units.update({"conveyance_target_unadjusted": units["conveyance_source"],
+                  "dominant_class": "", "n_ratio_lumped": "1", "n_ratio_conveyance_form": "1",
+                  "n_ratio_lumped_equal_volume": "1", "n_ratio_conveyance_form_equal_volume": "1",
+                  "n_ratio_median": "1", "stage_bias_unadjusted_median": z_unit,
+                  "bed_factor": "1"})
+    descriptions = _descriptions()
+    id_type = _id_type(ids)
+    f64 = pa.float64()
+    face_schema = pa.schema(
+        [pa.field("face_id", pa.int64()), pa.field("cell_a", id_type), pa.field("cell_b", id_type)]
+        + [pa.field(c, f64) for c in FACE_COLUMNS[3:-1]] + [pa.field("dominant_class", pa.string())])
+    cell_schema = pa.schema([pa.field("cell_id", id_type)]
+                            + [pa.field(c, f64) for c in CELL_COLUMNS[1:-1]]
+                            + [pa.field("dominant_class", pa.string())])
+    meta = {"ntrans:version": __version__, "ntrans:source": f"{source}/{sc}",
+            "ntrans:target": f"{target}/{tc}", "ntrans:composite": composite,
+            "ntrans:manning_k": str(k)}
+    cls_names = np.array(model.classes + ("",), dtype=object)
+    face_bias_un = np.full((n_faces, n_win), np.nan)
+    face_bias_ad = np.full((n_faces, n_win), np.nan)
+    face_ratio_med = np.full(n_faces, np.nan)
+    face_dom = np.full(n_faces, -1, dtype=np.int64)
+    cell_bias_un = np.full((n_cells, n_win), np.nan)
+    cell_bias_ad = np.full((n_cells, n_win), np.nan)
+    cell_ratio_med = np.full(n_cells, np.nan)
+    cell_bed = np.full(n_cells, np.nan)
+    cell_dom = np.full(n_cells, -1, dtype=np.int64)
+    mismatch_faces = mismatch_cells = 0
+
+    files: list[Path] = []
+    with OutputFolder(out, overwrite=overwrite,
+                      inputs=[dem, cells, classes, n_table, class_raster, *(water_surface or [])]) as folder:
+        tmp = folder.path
+        face_path, cell_path = tmp / "face_adjustment.parquet", tmp / "cell_adjustment.parquet"
+        fw = TableWriter(face_path, schema=face_schema, units=units, descriptions=descriptions,
+                         metadata=meta)
+        cw = TableWriter(cell_path, schema=cell_schema, units=units, descriptions=descriptions,
+                         metadata=meta)
+        try:
+            for tg in geometries("tables"):
+                # faces
+                face_plan = replace(plan, domain="faces")
+                fs, ft = _families_for(tg, face_plan, "faces")
+                eta = tg.face_stages
+                ks = fs.conveyance(eta, model.n, composite=composite, k=k)  # type: ignore[arg-type]
+                kt0 = ft.conveyance(eta, model.n, composite=composite, k=k)  # type: ignore[arg-type]
+                kt1 = ft.conveyance(eta, n_fit, composite=composite, k=k)  # type: ignore[arg-type]
+                rr = n_ratio(ks, kt0)
+                mismatch_faces += int(rr.mismatch.sum())
+                bu = solve_stage(ft, ks, model.n, start=eta, composite=composite, k=k) - eta  # type: ignore[arg-type]
+                ba = solve_stage(ft, ks, n_fit, start=eta, composite=composite, k=k) - eta  # type: ignore[arg-type]
+                dom = FlatGeometry.from_geometry(tg.face_geom, tg.face_flat).stats(eta[:, :0]).dominant_class()
+                nf_t = tg.faces.size
+                face_bias_un[tg.faces], face_bias_ad[tg.faces] = bu, ba
+                face_dom[tg.faces] = dom
+                if nf_t:
+                    face_ratio_med[tg.faces] = _nanmedian_rows(rr.ratio)
+                fw.write({
+                    "face_id": np.repeat(tg.faces, n_win).astype(np.int64),
+                    "cell_a": _ids_at(ids, np.repeat(tg.face_a, n_win)),
+                    "cell_b": _ids_at(ids, np.repeat(tg.face_b, n_win)),
+                    "stage": eta.ravel(),
+                    "depth": (eta - tg.face_low[:, None]).ravel(),
+                    "n_ratio": rr.ratio.ravel(),
+                    "conveyance_source": ks.ravel(),
+                    "conveyance_target": kt1.ravel(),
+                    "conveyance_target_unadjusted": kt0.ravel(),
+                    "stage_bias_unadjusted": bu.ravel(),
+                    "stage_bias_adjusted": ba.ravel(),
+                    "dominant_class": pa.array(np.repeat(cls_names[dom], n_win).tolist(),
+                                               type=pa.string()),
+                })
+                # cells
+                cell_plan = replace(plan, domain="cells")
+                cs, ct = _families_for(tg, cell_plan, "cells")
+                ceta = tg.cell_stages
+                sub = tg.cell_geom.stats(ceta)
+                flat = FlatGeometry.from_geometry(tg.cell_geom, tg.cell_flat)
+                flat_st = flat.stats(ceta)
+                kc_s = cs.conveyance(ceta, model.n, composite=composite, k=k)  # type: ignore[arg-type]
+                kc_t0 = ct.conveyance(ceta, model.n, composite=composite, k=k)  # type: ignore[arg-type]
+                kc_t1 = ct.conveyance(ceta, n_fit, composite=composite, k=k)  # type: ignore[arg-type]
+                crr = n_ratio(kc_s, kc_t0)
+                mismatch_cells += int(crr.mismatch.sum())
+                k_flat = conveyance(flat_st, model.n, composite=composite, k=k)  # type: ignore[arg-type]
+                k_lump = conveyance(sub, model.n, closure="lumped", composite=composite, k=k)  # type: ignore[arg-type]
+                k_form = conveyance(sub, model.n, closure="strip", k=k)
+                flip = source == "subgrid" and target == "flat"
+                r_l = n_ratio(k_lump, k_flat).ratio if flip else n_ratio(k_flat, k_lump).ratio
+                r_f = n_ratio(k_form, k_flat).ratio if flip else n_ratio(k_flat, k_form).ratio
+                wet, bed = sub.total(sub.wet), sub.total(sub.perimeter)
+                vol, s53 = sub.total(sub.area), sub.total(sub.strip)
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    ev_l = np.where(bed > 0, (wet / np.where(bed > 0, bed, 1.0)) ** (2 / 3), np.nan)
+                    hbar = np.where(wet > 0, vol / np.where(wet > 0, wet, 1.0), np.nan)
+                    ev_f = np.where(wet > 0, (s53 / np.where(wet > 0, wet, 1.0)) / hbar ** (5 / 3), np.nan)
+                if flip:
+                    ev_l, ev_f = 1.0 / ev_l, 1.0 / ev_f
+                if domain == "cells":
+                    cbu = solve_stage(ct, kc_s, model.n, start=ceta, composite=composite, k=k) - ceta  # type: ignore[arg-type]
+                    cba = solve_stage(ct, kc_s, n_fit, start=ceta, composite=composite, k=k) - ceta  # type: ignore[arg-type]
+                else:
+                    cbu = cba = np.full(ceta.shape, np.nan)
+                cdom = flat_st.dominant_class()
+                cell_bias_un[tg.cells], cell_bias_ad[tg.cells] = cbu, cba
+                cell_dom[tg.cells] = cdom
+                if tg.cells.size:
+                    cell_ratio_med[tg.cells] = _nanmedian_rows(crr.ratio)
+                    cell_bed[tg.cells] = _nanmedian_rows(tg.bed_factor)
+                cw.write({
+                    "cell_id": _ids_at(ids, np.repeat(tg.cells, n_win)),
+                    "stage": ceta.ravel(),
+                    "depth": (ceta - tg.cell_low[:, None]).ravel(),
+                    "n_ratio": crr.ratio.ravel(),
+                    "n_ratio_lumped": r_l.ravel(),
+                    "n_ratio_conveyance_form": r_f.ravel(),
+                    "n_ratio_lumped_equal_volume": ev_l.ravel(),
+                    "n_ratio_conveyance_form_equal_volume": ev_f.ravel(),
+                    "conveyance_source": kc_s.ravel(),
+                    "conveyance_target": kc_t1.ravel(),
+                    "conveyance_target_unadjusted": kc_t0.ravel(),
+                    "stage_bias_unadjusted": cbu.ravel(),
+                    "stage_bias_adjusted": cba.ravel(),
+                    "dominant_class": pa.array(np.repeat(cls_names[cdom], n_win).tolist(),
+                                               type=pa.string()),
+                })
+            files += [fw.close(), cw.close()]
+        except BaseException:
+            fw.abort()
+            cw.abort()
+            raise
+
+        # ---- per class table
+        from .translate import bias_summary
+
+        if domain == "faces":
+            b_un, b_ad, dom_all = face_bias_un, face_bias_ad, face_dom
+        else:
+            b_un, b_ad, dom_all = cell_bias_un, cell_bias_ad, cell_dom
+        bias = {"unadjusted": bias_summary(b_un, dom_all, model.classes),
+                "adjusted": bias_summary(b_ad, dom_all, model.classes)}
+        frame = _class_frame(model, fit, flags, bias)
+        class_path = tmp / "n_by_class.csv"
+        frame.to_csv(class_path, index=False, float_format="%.6g")
+        files.append(class_path)
+
+        # ---- maps
+        import geopandas as gpd
+
+        crs = layer.frame.crs
+        cell_bias_med = _nanmedian_rows(cell_bias_un)
+        face_bias_med = _nanmedian_rows(face_bias_un)
+        cell_frame = gpd.GeoDataFrame(
+            {"cell_id": ids, "n_ratio_median": cell_ratio_med,
+             "stage_bias_unadjusted_median": cell_bias_med, "bed_factor": cell_bed,
+             "dominant_class": cls_names[cell_dom].astype(str)},
+            geometry=gpd.GeoSeries(geoms, crs=crs), crs=crs)
+        files.append(write_geopackage(cell_frame, tmp / "cells.gpkg", "cells"))
+        face_frame = gpd.GeoDataFrame(
+            {"face_id": np.arange(n_faces, dtype=np.int64),
+             "cell_a": _ids_at(ids, mesh.cell_a).to_pandas(),
+             "cell_b": _ids_at(ids, mesh.cell_b).to_pandas(),
+             "length": mesh.length, "n_ratio_median": face_ratio_med,
+             "stage_bias_unadjusted_median": face_bias_med,
+             "dominant_class": cls_names[face_dom].astype(str)},
+            geometry=gpd.GeoSeries(mesh.geometry, crs=crs), crs=crs)
+        if id_type == pa.int64():
+            face_frame["cell_a"] = face_frame["cell_a"].astype("Int64")
+            face_frame["cell_b"] = face_frame["cell_b"].astype("Int64")
+        files.append(write_geopackage(face_frame, tmp / "faces.gpkg", "faces"))
+        if csv:
+            files.append(write_csv(face_path, tmp / "face_adjustment.csv"))
+            files.append(write_csv(cell_path, tmp / "cell_adjustment.csv"))
+
+        seconds = time.perf_counter() - started
+        summary = {
+            "ntrans_version": __version__,
+            "dem": os.fspath(dem),
+            "cells": os.fspath(cells),
+            "source": {"family": source, "closure": sc},
+            "target": {"family": target, "closure": tc},
+            "fit_domain": domain,
+            "composite": composite,
+            "manning_k": k,
+            "roughness": {"input": model.source, "classes": list(model.classes),
+                          "default_class": (model.classes[model.default] if model.default >= 0
+                                            else None),
+                          "overlap_rule": overlap_rule},
+            "window": ({"mode": spec.mode, "values": spec.values.tolist()} if spec is not None
+                       else {"mode": "water_surface", "rasters": [s.name for s in surfaces]}),
+            "elevation_rule": elevation_rule,
+            "face_rule": face_rule,
+            "coverage": coverage,
+            "cells_count": int(n_cells),
+            "faces_count": int(n_faces),
+            "tiles": len(tiles),
+            "horizontal_unit": dem_info.horizontal_unit,
+            "vertical_unit": dem_info.vertical_unit,
+            "classes": json.loads(frame.to_json(orient="records")),
+            "stage_bias": {"unadjusted": bias["unadjusted"]["overall"],
+                           "adjusted": bias["adjusted"]["overall"]},
+            "flagged": {"face_stage_dry_wet_mismatch": mismatch_faces,
+                        "cell_stage_dry_wet_mismatch": mismatch_cells,
+                        "classes_flagged": int(sum(1 for f in flags if f))},
+            "fit": {"success": fit.success, "cost": fit.cost},
+            "weighting": "source conveyance share per window stage; spread = weighted "
+                         "quantiles with weight x class share of the item's extent",
+            "cautions": list(CAUTIONS),
+            "seconds": round(seconds, 3),
+            "units": {c: units.get(c, "") for c in (*FACE_COLUMNS, *CELL_COLUMNS)},
+        }
+        (tmp / "adjust_summary.json").write_text(json.dumps(summary, indent=2, default=_json_default))
+        files.append(tmp / "adjust_summary.json")
+        rel = [p.name for p in files]
+
+    final = Path(os.fspath(out)).expanduser().absolute()
+    mism = mismatch_faces if domain == "faces" else mismatch_cells
+    if mism:
+        warnings.warn(
+            f"{mism} {domain[:-1]}-stages are wet in one family and dry in the other; they were "
+            "left out of the fit (see the flags in n_by_class.csv)",
+            DryWetMismatchWarning, stacklevel=2)
+    text = _text_summary(summary, frame, final, z_unit)
+    log.info("adjustment written to %s in %.1f s", final, seconds)
+    return AdjustResult(out=final, files=[final / r for r in rel], classes=frame, summary=summary,
+                        text=text, seconds=seconds, units=units)
+
+
+def _nanmedian_rows(values: np.ndarray) -> np.ndarray:
+    """Median of each row over finite values; NaN for rows without any (no warning)."""
+    values = np.asarray(values, dtype=float)
+    if values.shape[0] == 0 or values.shape[1] == 0:
+        return np.full(values.shape[0], np.nan)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanmedian(values, axis=1)
+
+
+def _json_default(value: Any) -> Any:
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, np.ndarray):
+        return value.tolist()
+    raise TypeError(f"not JSON serialisable: {type(value)}")
+
+
+def _descriptions() -> dict[str, str]:
+    from .outputs import column_descriptions
+
+    d = column_descriptions()
+    d.update({
+        "conveyance_source": "source conveyance at the source n (k A R^(2/3) / n or the closure's form)",
+        "conveyance_target": "target conveyance with the fitted n",
+        "conveyance_target_unadjusted": "target conveyance with the source n carried over",
+        "dominant_class": "roughness class with the largest length (faces) or area (cells)",
+        "n_ratio_lumped": "flat cell vs subgrid lumped radius V/A_bed, equal stage",
+        "n_ratio_conveyance_form": "flat cell vs subgrid conveyance form, equal stage",
+        "n_ratio_lumped_equal_volume": "(wet_area / bed_area)^(2/3) (equal volume shortcut)",
+        "n_ratio_conveyance_form_equal_volume": "<h^(5/3)> / <h>^(5/3) (equal volume shortcut)",
+        "stage_bias_unadjusted": "target stage minus source stage for the source conveyance, "
+                                 "n carried over unchanged",
+        "stage_bias_adjusted": "target stage minus source stage for the source conveyance, "
+                               "fitted n",
+    })
+    return d
+
+
+def _class_frame(model: RoughnessModel, fit: Any, flags: list[list[str]], bias: dict) -> Any:
+    import pandas as pd
+
+    rows = []
+    for c, name in enumerate(model.classes):
+        bu, ba = bias["unadjusted"][name], bias["adjusted"][name]
+        rows.append({
+            "class": name, "n_source": float(model.n[c]), "n_target": float(fit.n_target[c]),
+            "ratio": float(fit.ratio[c]), "ratio_p10": float(fit.ratio_p10[c]),
+            "ratio_p50": float(fit.ratio_p50[c]), "ratio_p90": float(fit.ratio_p90[c]),
+            "faces": int(fit.items[c]), "weight_share": float(fit.weight_share[c]),
+            "flags": ";".join(flags[c]), "surface": model.surface[c] or "",
+            "bias_unadjusted_median": bu["median"], "bias_unadjusted_p90_abs": bu["p90_abs"],
+            "bias_unadjusted_max_abs": bu["max_abs"], "bias_adjusted_median": ba["median"],
+            "bias_adjusted_p90_abs": ba["p90_abs"], "bias_adjusted_max_abs": ba["max_abs"],
+        })
+    return pd.DataFrame(rows, columns=list(CLASS_COLUMNS))
+
+
+def _text_summary(summary: dict[str, Any], frame: Any, out: Path, z_unit: str) -> str:
+    s, t = summary["source"], summary["target"]
+    lines = [
+        f"ntrans adjust: {s['family']} ({s['closure']}) -> {t['family']} ({t['closure']}), "
+        f"composite {summary['composite']}, fitted on {summary['fit_domain']}",
+        f"window: {summary['window']['mode']} "
+        + (", ".join(f"{v:g}" for v in summary["window"].get("values", []))
+           or ", ".join(summary["window"].get("rasters", []))),
+        f"{summary['cells_count']} cells, {summary['faces_count']} faces",
+        "",
+        f"{'class':<20} {'n_source':>8} {'n_target':>8} {'ratio':>6} {'p10-p90':>11} "
+        f"{'items':>6}  flags",
+    ]
+    for row in frame.itertuples(index=False):
+        spread = f"{row.ratio_p10:.2f}-{row.ratio_p90:.2f}" if np.isfinite(row.ratio_p10) else "-"
+        lines.append(f"{str(row[0])[:20]:<20} {row.n_source:>8.4f} {row.n_target:>8.4f} "
+                     f"{row.ratio:>6.3f} {spread:>11} {row.faces:>6}  {row.flags}")
+    bu, ba = summary["stage_bias"]["unadjusted"], summary["stage_bias"]["adjusted"]
+    lines += [
+        "",
+        f"stage bias with n carried over: median {bu['median']:.3g} {z_unit}, "
+        f"p90 |bias| {bu['p90_abs']:.3g} {z_unit}, max |bias| {bu['max_abs']:.3g} {z_unit}",
+        f"stage bias with the fitted n:   median {ba['median']:.3g} {z_unit}, "
+        f"p90 |bias| {ba['p90_abs']:.3g} {z_unit}, max |bias| {ba['max_abs']:.3g} {z_unit}",
+        f"output: {out}",
+        "",
+        *[f"Caution: {c}" for c in summary["cautions"]],
+    ]
+    return "\n".join(lines)

@@ -1,0 +1,334 @@
+"""Cell stage tables: subgrid terrain and flat bed.
+
+Pure functions on numpy arrays; no loop per cell.  The inputs are per-entry arrays of one
+tile: ``item`` (local cell index), ``z`` (pixel elevation, NaN for nodata), ``plan_area``
+(covered fraction x pixel area, horizontal units squared) and ``bed_area`` (plan area x
+surface factor).  Stage matrices are ``(n_items, n_stages)`` float64, NaN allowed.
+
+Definitions (shared design notes, section 2), at stage eta:
+
+- wet area ``A_w = sum a [z < eta]``; volume ``V = sum a (eta - z)+``;
+  wetted bed ``A_b = sum a s [z < eta]``; ``R = V / A_b``; mean depth ``V / A_w``.
+- flat bed at ``z_c``: ``h = (eta - z_c)+``, ``A_w`` = covered area when ``h > 0``,
+  ``V`` = covered area x h, ``R = h``.
+
+A pixel exactly at the stage (``z == eta``) counts as dry.
+"""
+
+from __future__ import annotations
+
+from typing import Literal, get_args
+
+import numpy as np
+
+from .coverage import _group_cumsum, _sorted_order
+from .errors import InputError
+
+__all__ = [
+    "ElevationRule",
+    "cell_stage_table",
+    "cell_terrain_summary",
+    "flat_cell_table",
+    "flat_elevation",
+]
+
+ElevationRule = Literal["mean", "min", "median", "centroid", "field"]
+ELEVATION_RULES: tuple[str, ...] = get_args(ElevationRule)
+
+
+def _entries(item, z, *others, n_items: int):
+    """Validate per-entry arrays and drop entries with non-finite z."""
+    item = np.asarray(item)
+    z = np.asarray(z, dtype=np.float64)
+    arrays = [np.asarray(o, dtype=np.float64) for o in others]
+    if item.ndim != 1 or any(a.shape != item.shape for a in (z, *arrays)):
+        raise InputError(
+            "item, z and the area arrays must be 1-D and of equal length; "
+            f"got shapes {[np.shape(a) for a in (item, z, *arrays)]}"
+        )
+    if item.size and not np.issubdtype(item.dtype, np.integer):
+        raise InputError(f"item holds {item.dtype} values; give integer cell indices")
+    item = item.astype(np.int64, copy=False)
+    if item.size and (item.min() < 0 or item.max() >= n_items):
+        raise InputError(
+            f"item indices span {item.min()}..{item.max()} but there are {n_items} items; "
+            "give indices 0..n_items-1"
+        )
+    ok = np.isfinite(z)
+    if not ok.all():
+        item, z, arrays = item[ok], z[ok], [a[ok] for a in arrays]
+    return item, z, arrays
+
+
+def _sort_by_item_z(item: np.ndarray, z: np.ndarray, n_items: int) -> np.ndarray:
+    """Order sorting entries by (item, z) exactly.
+
+    Packs (item, z quantised within its item, position) into one uint64 and sorts the
+    values; quantisation keeps order but may tie distinct z, so items where a tie left z
+    out of order are re-sorted exactly with ``lexsort``.
+    """
+    n = item.size
+    if n == 0:
+        return np.zeros(0, dtype=np.int64)
+    if np.any(item[1:] < item[:-1]):
+        order = _sorted_order(item, n_items)
+    else:
+        order = np.arange(n)
+    it, zs = item[order], z[order]
+    idx_bits = max(int(n - 1).bit_length(), 1)
+    item_bits = max(int(n_items - 1).bit_length(), 1)
+    z_bits = min(64 - idx_bits - item_bits, 52)
+    if z_bits < 8:
+        return np.lexsort((z, item))
+    starts = np.flatnonzero(np.r_[True, it[1:] != it[:-1]])
+    zmin = np.minimum.reduceat(zs, starts)
+    zmax = np.maximum.reduceat(zs, starts)
+    sizes = np.diff(np.r_[starts, n])
+    lo = np.repeat(zmin, sizes)
+    span = np.repeat(zmax - zmin, sizes)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        t = np.where(span > 0, (zs - lo) / np.where(span > 0, span, 1.0), 0.0)
+    levels = float((1 << z_bits) - 1)
+    zq = np.minimum(np.floor(t * levels), levels).astype(np.uint64)
+    key = (it.astype(np.uint64) << np.uint64(z_bits)) | zq
+    sub = _sorted_order(key, 1 << (item_bits + z_bits))
+    order = order[sub]
+    # exact repair where quantisation tied distinct elevations in the wrong order
+    it, zs = item[order], z[order]
+    bad = (it[1:] == it[:-1]) & (zs[1:] < zs[:-1])
+    if bad.any():
+        pos = np.flatnonzero(np.isin(it, np.unique(it[1:][bad])))
+        sel = order[pos]
+        order[pos] = sel[np.lexsort((z[sel], item[sel]))]
+    return order
+
+
+def _lower_bound(values: np.ndarray, lo: np.ndarray, hi: np.ndarray, target: np.ndarray) -> np.ndarray:
+    """First index in ``values[lo:hi]`` (sorted) with ``values >= target``, per query.
+
+    Vectorised bisection over all queries at once (about log2(hi - lo) passes).
+    """
+    lo = lo.copy()
+    hi = hi.copy()
+    active = np.flatnonzero(lo < hi)
+    while active.size:
+        a, b = lo[active], hi[active]
+        mid = (a + b) >> 1
+        right = values[mid] < target[active]
+        a = np.where(right, mid + 1, a)
+        b = np.where(right, b, mid)
+        lo[active] = a
+        hi[active] = b
+        active = active[a < b]
+    return lo
+
+
+def cell_stage_table(
+    item: np.ndarray,
+    z: np.ndarray,
+    plan_area: np.ndarray,
+    bed_area: np.ndarray,
+    stages: np.ndarray,
+) -> dict[str, np.ndarray]:
+    """Subgrid stage table of every cell.
+
+    Parameters
+    ----------
+    item : (n,) int, local cell index of each entry (0..n_items-1).
+    z : (n,) float, pixel elevation (vertical units); NaN entries are left out.
+    plan_area : (n,) float, covered plan area of the entry (horizontal units squared).
+    bed_area : (n,) float, 3-D bed area of the entry (plan area x surface factor).
+    stages : (n_items, n_stages) float, water-surface elevations; NaN allowed.
+
+    Returns
+    -------
+    dict of (n_items, n_stages) float64 arrays: ``wet_area``, ``bed_area`` (area units),
+    ``volume`` (area x vertical units), ``hydraulic_radius`` = volume / bed_area (NaN
+    where no bed is wet), ``mean_depth`` = volume / wet_area (NaN where dry).  Cells
+    without any valid entry and NaN stages give NaN in every table.
+
+    Examples
+    --------
+    >>> t = cell_stage_table([0, 0], [1.0, 2.0], [1.0, 1.0], [1.0, 1.0], [[1.5, 3.0]])
+    >>> t["volume"].tolist()
+    [[0.5, 3.0]]
+    """
+    stages = np.asarray(stages, dtype=np.float64)
+    if stages.ndim != 2:
+        raise InputError(
+            f"stages has shape {stages.shape}; give a (n_items, n_stages) matrix, one row per cell"
+        )
+    n_items, n_stages = stages.shape
+    item, z, (a, b) = _entries(item, z, plan_area, bed_area, n_items=n_items)
+    order = _sort_by_item_z(item, z, n_items)
+    item, z, a, b = item[order], z[order], a[order], b[order]
+
+    count = np.bincount(item, minlength=n_items)
+    start = np.zeros(n_items, dtype=np.int64)
+    np.cumsum(count[:-1], out=start[1:])
+    has = count > 0
+    z_min = np.full(n_items, np.nan)
+    z_min[has] = z[start[has]]
+
+    out = {k: np.full((n_items, n_stages), np.nan) for k in ("wet_area", "volume", "bed_area")}
+    if item.size:
+        z_rel = z - z_min[item]  # relative to the cell's low point: no cancellation
+        gstart, gsize = start[has], count[has]
+        cum_a = _group_cumsum(a, gstart, gsize)
+        cum_az = _group_cumsum(a * z_rel, gstart, gsize)
+        cum_b = _group_cumsum(b, gstart, gsize)
+
+        qi, qs = np.nonzero(has[:, None] & ~np.isnan(stages))
+        eta = stages[qi, qs]
+        end = _lower_bound(z, start[qi], start[qi] + count[qi], eta)
+        wet = end > start[qi]
+        last = np.where(wet, end - 1, 0)
+        aw = np.where(wet, cum_a[last], 0.0)
+        saz = np.where(wet, cum_az[last], 0.0)
+        ab = np.where(wet, cum_b[last], 0.0)
+        vol = np.maximum((eta - z_min[qi]) * aw - saz, 0.0)
+        out["wet_area"][qi, qs] = aw
+        out["volume"][qi, qs] = vol
+        out["bed_area"][qi, qs] = ab
+
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out["hydraulic_radius"] = np.where(
+            out["bed_area"] > 0, out["volume"] / out["bed_area"], np.nan
+        )
+        out["mean_depth"] = np.where(out["wet_area"] > 0, out["volume"] / out["wet_area"], np.nan)
+    return out
+
+
+def cell_terrain_summary(
+    item: np.ndarray, z: np.ndarray, plan_area: np.ndarray, n_items: int
+) -> dict[str, np.ndarray]:
+    """Terrain statistics of every cell, weighted by covered plan area.
+
+    Returns
+    -------
+    dict of (n_items,) float64 arrays: ``covered_area`` (area over valid terrain; 0 for a
+    cell without terrain), ``z_min``, ``z_max``, ``z_mean`` (area-weighted), ``z_median``
+    (first elevation where the cumulative area reaches half the covered area).  The
+    elevation statistics are NaN for a cell without terrain.
+
+    Examples
+    --------
+    >>> s = cell_terrain_summary([0, 0, 0], [3.0, 1.0, 2.0], [1.0, 1.0, 2.0], 1)
+    >>> s["z_mean"].tolist(), s["z_median"].tolist()
+    ([2.0], [2.0])
+    """
+    n_items = int(n_items)
+    item, z, (a,) = _entries(item, z, plan_area, n_items=n_items)
+    order = _sort_by_item_z(item, z, n_items)
+    item, z, a = item[order], z[order], a[order]
+    count = np.bincount(item, minlength=n_items)
+    start = np.zeros(n_items, dtype=np.int64)
+    np.cumsum(count[:-1], out=start[1:])
+    has = count > 0
+    out = {k: np.full(n_items, np.nan) for k in ("z_min", "z_max", "z_mean", "z_median")}
+    out["covered_area"] = np.bincount(item, weights=a, minlength=n_items).astype(np.float64)
+    if item.size == 0:
+        return out
+    gstart, gsize = start[has], count[has]
+    out["z_min"][has] = z[gstart]
+    out["z_max"][has] = z[gstart + gsize - 1]
+    z_rel = z - out["z_min"][item]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean_rel = np.bincount(item, weights=a * z_rel, minlength=n_items) / out["covered_area"]
+    out["z_mean"][has] = out["z_min"][has] + mean_rel[has]
+    cum = _group_cumsum(a, gstart, gsize)
+    total = cum[gstart + gsize - 1]
+    below = cum < 0.5 * np.repeat(total, gsize)
+    n_below = np.bincount(item[below], minlength=n_items)[has]
+    out["z_median"][has] = z[gstart + np.minimum(n_below, gsize - 1)]
+    zero = has & ~(out["covered_area"] > 0)
+    out["z_mean"][zero] = np.nan
+    return out
+
+
+def flat_elevation(
+    rule: ElevationRule,
+    summary: dict[str, np.ndarray],
+    *,
+    centroid_z: np.ndarray | None = None,
+    field: np.ndarray | None = None,
+) -> np.ndarray:
+    """Flat-bed elevation of every cell by an elevation rule.
+
+    Parameters
+    ----------
+    rule : ``mean`` | ``min`` | ``median`` (terrain statistics from
+        :func:`cell_terrain_summary`), ``centroid`` (``centroid_z``: terrain at each cell's
+        centroid) or ``field`` (``field``: a value per cell supplied by the user).
+    summary : output of :func:`cell_terrain_summary`.
+
+    Returns
+    -------
+    (n_items,) float64 array, vertical units; NaN where the rule has no value.
+    """
+    n_items = int(np.asarray(summary["covered_area"]).shape[0])
+    if rule == "mean":
+        values = summary["z_mean"]
+    elif rule == "min":
+        values = summary["z_min"]
+    elif rule == "median":
+        values = summary["z_median"]
+    elif rule in ("centroid", "field"):
+        values = centroid_z if rule == "centroid" else field
+        name = "centroid_z" if rule == "centroid" else "field"
+        if values is None:
+            raise InputError(f"elevation rule {rule!r} needs {name}; pass one value per cell")
+        values = np.asarray(values, dtype=np.float64)
+        if values.shape != (n_items,):
+            raise InputError(
+                f"{name} has shape {values.shape} but there are {n_items} cells; "
+                "pass one value per cell"
+            )
+    else:
+        raise InputError(
+            f"elevation rule {rule!r} is unknown; use one of {', '.join(ELEVATION_RULES)}"
+        )
+    return np.array(values, dtype=np.float64, copy=True)
+
+
+def flat_cell_table(
+    flat_elevation: np.ndarray, covered_area: np.ndarray, stages: np.ndarray
+) -> dict[str, np.ndarray]:
+    """Flat-bed stage table of every cell.
+
+    Parameters
+    ----------
+    flat_elevation : (n_items,) bed elevation z_c (vertical units), NaN allowed.
+    covered_area : (n_items,) plan area of the cell (horizontal units squared).
+    stages : (n_items, n_stages) water-surface elevations.
+
+    Returns
+    -------
+    dict of (n_items, n_stages) float64 arrays: ``flat_depth`` = (eta - z_c)+,
+    ``flat_wet_area`` (covered area where the depth is positive, else 0),
+    ``flat_volume`` = covered area x depth, ``flat_hydraulic_radius`` = depth.  NaN where
+    the stage or z_c is NaN.
+
+    Examples
+    --------
+    >>> t = flat_cell_table([1.0], [4.0], [[0.5, 2.0]])
+    >>> t["flat_volume"].tolist()
+    [[0.0, 4.0]]
+    """
+    zc = np.asarray(flat_elevation, dtype=np.float64)
+    area = np.asarray(covered_area, dtype=np.float64)
+    stages = np.asarray(stages, dtype=np.float64)
+    if stages.ndim != 2 or zc.shape != (stages.shape[0],) or area.shape != zc.shape:
+        raise InputError(
+            f"flat_elevation {zc.shape}, covered_area {area.shape} and stages {stages.shape} "
+            "do not match; give (n_items,), (n_items,) and (n_items, n_stages)"
+        )
+    depth = np.maximum(stages - zc[:, None], 0.0)  # NaN propagates
+    wet = np.where(depth > 0, area[:, None], 0.0)
+    wet[np.isnan(depth)] = np.nan
+    return {
+        "flat_depth": depth,
+        "flat_wet_area": wet,
+        "flat_volume": area[:, None] * depth,
+        "flat_hydraulic_radius": depth.copy(),
+    }

@@ -1,0 +1,631 @@
+"""Tiles: which cells and faces go together, which DEM window they need, where they run.
+
+A *tile* is a group of cells binned by the location of their centroid on a grid of
+``tile_size`` x ``tile_size`` DEM pixels, together with the faces whose ``cell_a`` is one
+of those cells and one DEM window that covers all of them plus a margin of
+:data:`MARGIN` pixels (the 3x3 slope stencil and the bilinear profile sampler both
+reach one pixel beyond what they cover).  Every cell belongs to exactly one tile; a cell
+larger than a tile simply makes its tile's window larger.
+
+The flat bed of a face needs the flat elevations of *both* adjacent cells.  Rather than
+a first pass over the whole mesh, a tile also carries the *halo* cells: the ``cell_b`` of
+its faces that belong to another tile.  Their coverage and terrain summary are computed
+again inside this tile (a little duplicated work along tile borders) but no stage rows
+are written for them; the tile is therefore self-contained and can run anywhere.
+
+:func:`run_tile` is pure (arrays in, arrays out) so the same function runs in-process or
+on a Dask worker.  :func:`execute` runs tasks one after another in this process
+(default), on a local cluster of worker processes (``workers=N``), or on an existing Dask
+scheduler (``scheduler=ADDRESS``), and yields results in tile order in every case, so the
+output files are the same whichever way they were computed.
+"""
+
+from __future__ import annotations
+
+import functools
+import logging
+from collections import deque
+from collections.abc import Callable, Iterable, Iterator
+from dataclasses import dataclass, field
+from typing import Any, Literal
+
+import numpy as np
+import shapely
+from affine import Affine
+from rasterio.windows import Window
+
+from .errors import InputError
+from .stages import StageSpec
+
+log = logging.getLogger(__name__)
+
+MARGIN = 2
+"""Pixels added around a tile's window: slope stencil (1) + bilinear support (1)."""
+
+SCHEDULER_TIMEOUT = "10s"
+"""How long to wait for an existing Dask scheduler to answer."""
+
+CoverageMode = Literal["exact", "centre"]
+ElevationRule = Literal["mean", "min", "median", "centroid", "field"]
+FaceRule = Literal["higher", "mean", "min", "profile_mean"]
+
+ELEVATION_RULES: tuple[str, ...] = ("mean", "min", "median", "centroid", "field")
+FACE_RULES: tuple[str, ...] = ("higher", "mean", "min", "profile_mean")
+COVERAGE_MODES: tuple[str, ...] = ("exact", "centre")
+
+
+# --------------------------------------------------------------------------- planning
+
+
+@dataclass(frozen=True)
+class Tile:
+    """One unit of work.
+
+    Attributes
+    ----------
+    index : position in the deterministic tile order (0, 1, ...).
+    key : (tile_row, tile_col) on the tile grid (may be negative for cells whose
+        centroid lies outside the DEM).
+    cells : global indices of the cells owned by this tile, increasing.
+    halo : global indices of other tiles' cells that this tile's faces touch, increasing.
+    faces : global indices of the faces owned by this tile (their ``cell_a`` is here).
+    window : DEM window (pixels) covering cells, halo and faces plus the margin, clipped
+        to the raster; may be empty (height or width 0) when every cell lies outside.
+    """
+
+    index: int
+    key: tuple[int, int]
+    cells: np.ndarray
+    halo: np.ndarray
+    faces: np.ndarray
+    window: Window
+
+
+def _pixel_bounds(bounds: np.ndarray, transform: Affine) -> np.ndarray:
+    """(n, 4) world bounds -> (n, 4) float pixel bounds ``col0, row0, col1, row1``."""
+    inv = ~transform
+    minx, miny, maxx, maxy = bounds.T
+    xs = np.stack([minx, maxx, minx, maxx])
+    ys = np.stack([miny, miny, maxy, maxy])
+    cols = inv.a * xs + inv.b * ys + inv.c
+    rows = inv.d * xs + inv.e * ys + inv.f
+    return np.stack([cols.min(0), rows.min(0), cols.max(0), rows.max(0)], axis=1)
+
+
+def plan_tiles(
+    polygons: np.ndarray,
+    transform: Affine,
+    shape: tuple[int, int],
+    *,
+    tile_size: int = 1024,
+    face_cell_a: np.ndarray | None = None,
+    face_cell_b: np.ndarray | None = None,
+    face_lines: np.ndarray | None = None,
+    margin: int = MARGIN,
+) -> list[Tile]:
+    """Group cells (and their faces) into tiles with one DEM window each.
+
+    Parameters
+    ----------
+    polygons : shapely Polygon array, one per cell (global cell index = position).
+    transform, shape : the DEM's affine transform and (rows, cols).
+    tile_size : tile edge in DEM pixels (>= 1).
+    face_cell_a, face_cell_b, face_lines : the mesh faces (``cell_b`` = -1 on the
+        boundary); a face belongs to the tile of its ``cell_a``.
+    margin : pixels added around the union of the bounds.
+
+    Returns
+    -------
+    Tiles in deterministic order (tile row, then tile column); tiles without cells are
+    not returned.
+    """
+    if int(tile_size) < 1:
+        raise InputError(f"tile size {tile_size} is not a positive number of pixels; use e.g. 1024")
+    tile_size = int(tile_size)
+    polygons = np.asarray(polygons, dtype=object)
+    n_cells = polygons.size
+    if n_cells == 0:
+        return []
+    height, width = int(shape[0]), int(shape[1])
+
+    # centroid -> tile key
+    cent = shapely.centroid(polygons)
+    cx, cy = shapely.get_x(cent), shapely.get_y(cent)
+    inv = ~transform
+    ccol = inv.a * cx + inv.b * cy + inv.c
+    crow = inv.d * cx + inv.e * cy + inv.f
+    trow = np.floor(crow / tile_size).astype(np.int64)
+    tcol = np.floor(ccol / tile_size).astype(np.int64)
+    # a cell whose centroid is not finite (empty geometry) goes to tile (0, 0)
+    bad = ~(np.isfinite(crow) & np.isfinite(ccol))
+    trow[bad] = 0
+    tcol[bad] = 0
+
+    order = np.lexsort((np.arange(n_cells), tcol, trow))
+    keys = np.stack([trow[order], tcol[order]], axis=1)
+    new = np.ones(n_cells, dtype=bool)
+    new[1:] = np.any(keys[1:] != keys[:-1], axis=1)
+    starts = np.flatnonzero(new)
+    tile_of_sorted = np.cumsum(new) - 1
+    tile_of_cell = np.empty(n_cells, dtype=np.int64)
+    tile_of_cell[order] = tile_of_sorted
+    n_tiles = starts.size
+    pb_cells = _pixel_bounds(shapely.bounds(polygons), transform)
+
+    # faces: owner tile = tile of cell_a; halo = cell_b in another tile
+    if face_cell_a is not None and len(face_cell_a) > 0:
+        fa = np.asarray(face_cell_a, dtype=np.int64)
+        fb = np.asarray(face_cell_b, dtype=np.int64)
+        f_tile = tile_of_cell[fa]
+        f_order = np.lexsort((np.arange(fa.size), f_tile))
+        f_starts = np.searchsorted(f_tile[f_order], np.arange(n_tiles + 1))
+        pb_faces = (
+            _pixel_bounds(shapely.bounds(np.asarray(face_lines, dtype=object)), transform)
+            if face_lines is not None
+            else np.full((fa.size, 4), np.nan)
+        )
+        interior = fb >= 0
+        halo_mask = interior.copy()
+        halo_mask[interior] = tile_of_cell[fb[interior]] != f_tile[interior]
+        h_tile = f_tile[halo_mask]
+        h_cell = fb[halo_mask]
+        if h_tile.size:
+            pairs = np.unique(np.stack([h_tile, h_cell], axis=1), axis=0)
+        else:
+            pairs = np.empty((0, 2), dtype=np.int64)
+        h_starts = np.searchsorted(pairs[:, 0], np.arange(n_tiles + 1))
+    else:
+        fa = np.empty(0, dtype=np.int64)
+        f_order = fa
+        f_starts = np.zeros(n_tiles + 1, dtype=np.int64)
+        pb_faces = np.empty((0, 4))
+        pairs = np.empty((0, 2), dtype=np.int64)
+        h_starts = np.zeros(n_tiles + 1, dtype=np.int64)
+
+    tiles: list[Tile] = []
+    for t in range(n_tiles):  # loop over tiles only
+        stop = starts[t + 1] if t + 1 < n_tiles else n_cells
+        cells = np.sort(order[starts[t] : stop])
+        halo = pairs[h_starts[t] : h_starts[t + 1], 1].astype(np.int64)
+        faces = np.sort(f_order[f_starts[t] : f_starts[t + 1]]).astype(np.int64)
+        pb = np.concatenate([pb_cells[cells], pb_cells[halo], pb_faces[faces]])
+        pb = pb[np.all(np.isfinite(pb), axis=1)]
+        if pb.size:
+            col0 = int(np.floor(pb[:, 0].min())) - margin
+            row0 = int(np.floor(pb[:, 1].min())) - margin
+            col1 = int(np.ceil(pb[:, 2].max())) + margin
+            row1 = int(np.ceil(pb[:, 3].max())) + margin
+            col0, col1 = max(col0, 0), min(col1, width)
+            row0, row1 = max(row0, 0), min(row1, height)
+        else:
+            col0 = col1 = row0 = row1 = 0
+        window = Window(col0, row0, max(col1 - col0, 0), max(row1 - row0, 0))
+        key = (int(keys[starts[t], 0]), int(keys[starts[t], 1]))
+        tiles.append(Tile(t, key, cells, halo, faces, window))
+    log.debug("planned %d tiles of %d px for %d cells", n_tiles, tile_size, n_cells)
+    return tiles
+
+
+# --------------------------------------------------------------------------- tasks
+
+
+@dataclass(frozen=True)
+class TileSettings:
+    """Options every tile needs (small, picklable).
+
+    ``reference`` is the reference depth (depth mode: above each item's low point) or the
+    reference stage (stage mode) at which ``bed_factor`` and ``perimeter_ratio`` are
+    reported.  ``face_spacing`` is the profile sampling step (CRS units); ``z_to_xy``
+    converts vertical to horizontal units for the surface factor.
+    """
+
+    stages: StageSpec
+    reference: float
+    coverage: CoverageMode = "exact"
+    elevation_rule: ElevationRule = "mean"
+    face_rule: FaceRule = "higher"
+    face_spacing: float = 0.5
+    z_to_xy: float = 1.0
+    faces: bool = True
+
+
+@dataclass(frozen=True)
+class TileTask:
+    """What a worker needs for one tile besides the DEM window (small, picklable).
+
+    ``polygons`` holds the tile's own cells then its halo cells (local cell index =
+    position); ``field_values`` the user's flat elevations in the same order (or None);
+    ``face_a`` / ``face_b`` are local cell indices of the faces (-1 on the boundary).
+    """
+
+    tile: Tile
+    polygons: np.ndarray
+    field_values: np.ndarray | None = None
+    face_lines: np.ndarray = field(default_factory=lambda: np.empty(0, dtype=object))
+    face_a: np.ndarray = field(default_factory=lambda: np.empty(0, dtype=np.int64))
+    face_b: np.ndarray = field(default_factory=lambda: np.empty(0, dtype=np.int64))
+    face_length: np.ndarray = field(default_factory=lambda: np.empty(0))
+
+
+def make_tasks(
+    tiles: Iterable[Tile],
+    polygons: np.ndarray,
+    *,
+    field_values: np.ndarray | None = None,
+    face_lines: np.ndarray | None = None,
+    face_cell_a: np.ndarray | None = None,
+    face_cell_b: np.ndarray | None = None,
+    face_length: np.ndarray | None = None,
+) -> Iterator[TileTask]:
+    """Yield one :class:`TileTask` per tile (lazily: memory bounded by one tile)."""
+    polygons = np.asarray(polygons, dtype=object)
+    for tile in tiles:
+        local = np.concatenate([tile.cells, tile.halo])
+        fv = None if field_values is None else np.asarray(field_values, dtype=float)[local]
+        if face_cell_a is None or tile.faces.size == 0:
+            yield TileTask(tile, polygons[local], fv)
+            continue
+        # global cell index -> local index (own cells then halo), by binary search
+        sorter = np.argsort(local, kind="stable")
+        ga = np.asarray(face_cell_a, dtype=np.int64)[tile.faces]
+        gb = np.asarray(face_cell_b, dtype=np.int64)[tile.faces]
+        la = sorter[np.searchsorted(local, ga, sorter=sorter)]
+        lb = np.where(gb >= 0, sorter[np.searchsorted(local, np.maximum(gb, 0), sorter=sorter)
+                                      .clip(0, local.size - 1)], -1)
+        yield TileTask(
+            tile,
+            polygons[local],
+            fv,
+            np.asarray(face_lines, dtype=object)[tile.faces],
+            la,
+            lb,
+            np.asarray(face_length, dtype=float)[tile.faces],
+        )
+
+
+# --------------------------------------------------------------------------- computing
+
+
+def reference_stages(spec: StageSpec, reference: float, low_points: np.ndarray) -> np.ndarray:
+    """(n_items,) reference stage: low point + reference depth, or the reference stage."""
+    low = np.asarray(low_points, dtype=float)
+    if spec.mode == "depth":
+        return low + reference
+    return np.full(low.shape, float(reference))
+
+
+def default_reference(spec: StageSpec) -> float:
+    """Middle of the requested depths (depth mode) or of the stage window (stage mode)."""
+    v = np.asarray(spec.values, dtype=float)
+    return float(0.5 * (v.min() + v.max()))
+
+
+def run_tile(
+    task: TileTask,
+    elevation: np.ndarray,
+    transform: Affine,
+    settings: TileSettings,
+) -> dict[str, Any]:
+    """Compute the cell and face tables of one tile.  Pure: no file access.
+
+    Parameters
+    ----------
+    task : the tile's cells (own + halo) and faces.
+    elevation : (rows, cols) float array of the tile's DEM window, NaN for nodata.
+    transform : affine transform of that window.
+    settings : stage specification and rules.
+
+    Returns
+    -------
+    dict with ``tile`` (index) and four column dicts: ``cell_rows`` (one row per own
+    cell and stage, ``cell`` = global cell index), ``cell_summary`` (one row per own
+    cell), ``face_rows`` (one row per face and stage, ``face`` = global face index,
+    ``cell_a`` / ``cell_b`` global, -1 on the boundary) and ``face_summary``.
+    """
+    from .cells import cell_stage_table, cell_terrain_summary, flat_cell_table, flat_elevation
+    from .coverage import PixelWeights, centre_coverage, exact_coverage
+    from .terrain import sample_bilinear, surface_factor
+
+    tile = task.tile
+    elevation = np.asarray(elevation, dtype=float)
+    n_own = tile.cells.size
+    n_all = n_own + tile.halo.size
+    pixel_area = abs(transform.a * transform.e - transform.b * transform.d)
+    dx, dy = abs(transform.a), abs(transform.e)
+    spec = settings.stages
+    n_st = spec.values.size
+
+    # --- pixel weights, surface factor
+    if elevation.size == 0:
+        w = PixelWeights.empty()
+        s_pix = np.empty(0)
+    else:
+        cover = exact_coverage if settings.coverage == "exact" else centre_coverage
+        w = cover(task.polygons, transform, elevation.shape)
+        sf = surface_factor(elevation, dx, dy, z_to_xy=settings.z_to_xy)
+        s_pix = sf[w.row, w.col]
+    item = np.asarray(w.item, dtype=np.int64)
+    z = elevation[w.row, w.col] if elevation.size else np.empty(0)
+    plan = np.asarray(w.fraction, dtype=float) * pixel_area
+    bed = plan * s_pix
+
+    summary = cell_terrain_summary(item, z, plan, n_all)
+    centroid_z = None
+    if settings.elevation_rule == "centroid":
+        cent = shapely.centroid(task.polygons)
+        if elevation.size:
+            centroid_z = sample_bilinear(
+                elevation, transform, shapely.get_x(cent), shapely.get_y(cent)
+            )
+        else:
+            centroid_z = np.full(n_all, np.nan)
+    flat_z = np.asarray(
+        flat_elevation(settings.elevation_rule, summary, centroid_z=centroid_z, field=task.field_values),
+        dtype=float,
+    )
+
+    # --- cell stage rows (own cells only), plus one reference column
+    own = item < n_own
+    z_low = np.asarray(summary["z_min"], dtype=float)[:n_own]
+    stages = spec.for_items(z_low)
+    ref = reference_stages(spec, settings.reference, z_low)
+    stages_ext = np.concatenate([stages, ref[:, None]], axis=1)
+    table = cell_stage_table(item[own], z[own], plan[own], bed[own], stages_ext)
+    covered = np.asarray(summary["covered_area"], dtype=float)[:n_own]
+    flat = flat_cell_table(flat_z[:n_own], covered, stages)
+
+    cell_rows: dict[str, np.ndarray] = {
+        "cell": np.repeat(tile.cells, n_st),
+        "stage": stages.ravel(),
+        "depth": (stages - z_low[:, None]).ravel(),
+    }
+    for name in ("wet_area", "volume", "bed_area", "hydraulic_radius", "mean_depth"):
+        cell_rows[name] = np.asarray(table[name], dtype=float)[:, :n_st].ravel()
+    cell_rows["flat_elevation"] = np.repeat(flat_z[:n_own], n_st)
+    for name in ("flat_depth", "flat_wet_area", "flat_volume", "flat_hydraulic_radius"):
+        cell_rows[name] = np.asarray(flat[name], dtype=float).ravel()
+
+    wet_ref = np.asarray(table["wet_area"], dtype=float)[:, n_st]
+    bed_ref = np.asarray(table["bed_area"], dtype=float)[:, n_st]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        bed_factor = np.where(wet_ref > 0, bed_ref / wet_ref, np.nan)
+    cell_summary = {
+        "cell": tile.cells,
+        "covered_area": covered,
+        "z_min": z_low,
+        "z_mean": np.asarray(summary["z_mean"], dtype=float)[:n_own],
+        "z_max": np.asarray(summary["z_max"], dtype=float)[:n_own],
+        "flat_elevation": flat_z[:n_own],
+        "bed_factor": bed_factor,
+    }
+
+    out: dict[str, Any] = {"tile": tile.index, "cell_rows": cell_rows, "cell_summary": cell_summary}
+    if settings.faces:
+        out["face_rows"], out["face_summary"] = _face_part(task, elevation, transform, settings, flat_z)
+    return out
+
+
+def _face_part(task, elevation, transform, settings, flat_z):
+    from .closures import face_conveyance
+    from .faces import (
+        Profiles,
+        face_flat_bed,
+        face_profile_summary,
+        face_stage_table,
+        flat_face_table,
+        sample_profiles,
+    )
+
+    tile = task.tile
+    spec = settings.stages
+    n_st = spec.values.size
+    n_f = tile.faces.size
+    lengths = np.asarray(task.face_length, dtype=float)
+    if n_f == 0 or elevation.size == 0:
+        empty = np.empty(0)
+        prof = Profiles(np.empty(0, dtype=np.int64), empty, empty, n_f)
+    else:
+        prof = sample_profiles(task.face_lines, elevation, transform, settings.face_spacing)
+    fsum = face_profile_summary(prof)
+    low = np.asarray(fsum["low_point"], dtype=float)
+    stages = spec.for_items(low)
+    ref = reference_stages(spec, settings.reference, low)
+    stages_ext = np.concatenate([stages, ref[:, None]], axis=1)
+    ft = face_stage_table(prof, stages_ext, z_to_xy=settings.z_to_xy)
+
+    la, lb = task.face_a, task.face_b
+    za = flat_z[la] if n_f else np.empty(0)
+    zb = np.where(lb >= 0, flat_z[np.where(lb >= 0, lb, 0)], np.nan) if n_f else np.empty(0)
+    flat_bed = face_flat_bed(settings.face_rule, za, zb, fsum)
+    flat = flat_face_table(flat_bed, lengths, stages)
+    flat_depth = flat["flat_depth"]
+
+    n_seg = _segment_ones(prof)
+    conv = {}
+    for closure in ("flat", "lumped", "strip"):
+        conv[closure] = np.asarray(
+            face_conveyance(
+                prof,
+                stages,
+                closure=closure,
+                n_segment=n_seg,
+                flat_bed=flat_bed if closure == "flat" else None,
+                k=1.0,
+            ),
+            dtype=float,
+        ).reshape(n_f, n_st)
+
+    gb = np.where(lb >= 0, np.concatenate([tile.cells, tile.halo])[np.where(lb >= 0, lb, 0)], -1)
+    ga = np.concatenate([tile.cells, tile.halo])[la] if n_f else np.empty(0, dtype=np.int64)
+    rows: dict[str, np.ndarray] = {
+        "face": np.repeat(tile.faces, n_st),
+        "cell_a": np.repeat(ga, n_st),
+        "cell_b": np.repeat(gb, n_st),
+        "stage": stages.ravel(),
+        "depth": (stages - low[:, None]).ravel(),
+        "length": np.repeat(lengths, n_st),
+    }
+    for name in ("flow_area", "wetted_perimeter", "top_width", "hydraulic_radius"):
+        rows[name] = np.asarray(ft[name], dtype=float)[:, :n_st].ravel()
+    rows["flat_bed"] = np.repeat(flat_bed, n_st)
+    rows["flat_depth"] = flat_depth.ravel()
+    rows["flat_flow_area"] = np.asarray(flat["flat_flow_area"], dtype=float).ravel()
+    for closure in ("flat", "lumped", "strip"):
+        rows[f"conveyance_{closure}"] = conv[closure].ravel()
+
+    p_ref = np.asarray(ft["wetted_perimeter"], dtype=float)[:, n_st]
+    t_ref = np.asarray(ft["top_width"], dtype=float)[:, n_st]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ratio = np.where(t_ref > 0, p_ref / t_ref, np.nan)
+    high = np.asarray(fsum["high_point"], dtype=float)
+    summary = {
+        "face": tile.faces,
+        "cell_a": ga,
+        "cell_b": gb,
+        "length": lengths,
+        "low_point": low,
+        "relief": high - low,
+        "covered_fraction": np.asarray(fsum["covered_fraction"], dtype=float),
+        "perimeter_ratio": ratio,
+    }
+    return rows, summary
+
+
+def _segment_ones(prof) -> np.ndarray:
+    """n = 1 on every segment (geometric conveyance)."""
+    return np.ones(max(np.asarray(prof.station).size - 1, 0))
+
+
+# --------------------------------------------------------------------------- running
+
+
+@functools.lru_cache(maxsize=4)
+def _open_cached(path: str, open_kwargs: tuple):
+    from .inputs import open_dem
+
+    return open_dem(path, **dict(open_kwargs))
+
+
+def read_tile_window(dem: Any, window: Window) -> tuple[np.ndarray, Affine]:
+    """Read a tile's window (NaN for nodata and outside) and its transform."""
+    if window.height <= 0 or window.width <= 0:
+        return np.empty((0, 0)), dem.transform
+    row_off, col_off = int(window.row_off), int(window.col_off)
+    arr = np.asarray(
+        dem.read_window(row_off, col_off, int(window.height), int(window.width)), dtype=float
+    )
+    wt = dem.transform @ Affine.translation(col_off, row_off)
+    return arr, wt
+
+
+def run_task_local(dem: Any, task: TileTask, settings: TileSettings) -> dict[str, Any]:
+    """Read the tile's window from an open DEM and run :func:`run_tile`."""
+    arr, wt = read_tile_window(dem, task.tile.window)
+    return run_tile(task, arr, wt, settings)
+
+
+def run_task_from_path(
+    dem_path: str, open_kwargs: tuple, task: TileTask, settings: TileSettings
+) -> dict[str, Any]:
+    """Dask-side wrapper: open the DEM by path (cached per worker), read, compute."""
+    dem = _open_cached(str(dem_path), open_kwargs)
+    return run_task_local(dem, task, settings)
+
+
+def execute(
+    tasks: Iterable[TileTask],
+    *,
+    dem: Any,
+    dem_path: str,
+    settings: TileSettings,
+    open_kwargs: dict[str, Any] | None = None,
+    workers: int | None = None,
+    scheduler: str | None = None,
+    progress: bool = False,
+    total: int | None = None,
+    max_in_flight: int | None = None,
+    local_runner: Callable[..., dict[str, Any]] | None = None,
+) -> Iterator[dict[str, Any]]:
+    """Run tile tasks and yield their results in tile order.
+
+    Parameters
+    ----------
+    tasks : tile tasks in tile order (may be a lazy iterator).
+    dem : the open DEM (used in-process); ``dem_path`` is what workers open.
+    workers : start a ``dask.distributed.LocalCluster`` with this many single-threaded
+        worker processes.
+    scheduler : address of an existing Dask scheduler (``tcp://host:8786``).
+    progress : show a progress bar (stderr) via :func:`ntrans.progress.track`.
+    max_in_flight : tasks submitted but not yet yielded (default 2 per worker), which
+        bounds memory on the client.
+
+    Without ``workers`` or ``scheduler`` everything runs in this process, one tile at a
+    time, with no extra service.  In every mode results come back in the order of
+    ``tasks``, so outputs are identical.
+    """
+    from .progress import track
+
+    if workers is not None and scheduler is not None:
+        raise InputError("give either workers or a scheduler address, not both")
+    if workers is not None and int(workers) < 1:
+        raise InputError(f"workers must be 1 or more, got {workers}")
+    kw = tuple(sorted((open_kwargs or {}).items()))
+
+    if workers is None and scheduler is None:
+        runner = local_runner or run_task_local
+        results = (runner(dem, t, settings) for t in tasks)
+        yield from track(results, total=total, desc="tiles", enabled=progress)
+        return
+
+    yield from track(
+        _execute_dask(tasks, dem_path, kw, settings, workers, scheduler, max_in_flight),
+        total=total,
+        desc="tiles",
+        enabled=progress,
+    )
+
+
+def _execute_dask(tasks, dem_path, kw, settings, workers, scheduler, max_in_flight):
+    try:
+        from distributed import Client, LocalCluster
+    except ImportError as exc:  # pragma: no cover - dask is a test dependency
+        raise InputError(
+            "running on workers needs dask.distributed; install ntrans[cluster] or drop --workers"
+        ) from exc
+
+    cluster = None
+    try:
+        if scheduler is not None:
+            try:
+                client = Client(scheduler, timeout=SCHEDULER_TIMEOUT)
+            except OSError as exc:
+                raise InputError(
+                    f"no Dask scheduler answered at {scheduler}; check the address or drop --scheduler"
+                ) from exc
+        else:
+            cluster = LocalCluster(
+                n_workers=int(workers),
+                threads_per_worker=1,
+                processes=True,
+                dashboard_address=None,
+                silence_logs=logging.WARNING,
+            )
+            client = Client(cluster)
+        try:
+            n_workers = max(len(client.scheduler_info().get("workers", {})), 1)
+            limit = max_in_flight or 2 * n_workers
+            log.info("running tiles on %d Dask worker(s)", n_workers)
+            pending: deque = deque()
+            for task in tasks:
+                pending.append(
+                    client.submit(run_task_from_path, dem_path, kw, task, settings, pure=False)
+                )
+                if len(pending) >= limit:
+                    yield pending.popleft().result()
+            while pending:
+                yield pending.popleft().result()
+        finally:
+            client.close()
+    finally:
+        if cluster is not None:
+            cluster.close()

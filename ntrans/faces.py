@@ -1,0 +1,536 @@
+"""Face profiles and face stage tables (pure numpy).
+
+A face profile is the terrain sampled along the face line: stations (distance from the
+face's start, CRS units) and elevations ``z`` (DEM vertical units, NaN = nodata),
+treated as piecewise linear.  A *segment* is the piece between two consecutive stations
+of one face; segments with a NaN end are dropped (they lower ``covered_fraction``).
+
+At a water-surface elevation (stage) eta, exactly for the piecewise-linear profile:
+
+- flow area        A(eta) = integral of (eta - z(s))+ ds
+- wetted perimeter P(eta) = submerged length of the profile polyline, sqrt(ds^2 + dz^2)
+- top width        T(eta) = wet length along the face
+- hydraulic radius R = A / P (NaN when dry)
+
+Method: on a segment rising by dz over ds, the wet length is a ramp in eta from the low
+end to the high end (slope ds/dz), so T is a sum of ramps started and stopped at
+breakpoints; A is its integral, a sum of quadratics.  Breakpoints are sorted per face,
+prefix sums of c, c*b, c*b^2 taken (b relative to the face's low point), and each
+(face, stage) is located by a vectorised binary search within its face.  Level segments
+(|dz| <= 1e-6 ds) are steps.  No loop per face or per station.
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Literal
+
+import numpy as np
+import shapely
+
+from .errors import GeometryError, InputError
+
+logger = logging.getLogger(__name__)
+
+__all__ = [
+    "FACE_RULES",
+    "Profiles",
+    "Segments",
+    "face_flat_bed",
+    "face_profile_summary",
+    "face_stage_table",
+    "flat_face_table",
+    "profile_segments",
+    "ramp_sums",
+    "sample_profiles",
+]
+
+FaceRule = Literal["higher", "mean", "min", "profile_mean"]
+FACE_RULES: tuple[str, ...] = ("higher", "mean", "min", "profile_mean")
+
+#: a segment whose rise is at most this fraction of its length is treated as level
+LEVEL_RATIO = 1e-6
+
+
+@dataclass
+class Profiles:
+    """Station-elevation profiles of faces.
+
+    Attributes
+    ----------
+    face : ndarray of int64 (n_stations,)
+        Local face index of each station; stations of one face contiguous.
+    station : ndarray of float64
+        Distance along the face from its start (CRS units), increasing within a face.
+    z : ndarray of float64
+        Terrain elevation at the station (vertical units), NaN = nodata.
+    n_faces : int
+        Number of faces (faces without stations have no segments).
+    x, y : ndarray of float64, optional
+        Station coordinates (CRS units).
+    length : ndarray of float64 (n_faces,), optional
+        Face length; defaults to the last station of each face.
+
+    Notes
+    -----
+    Segment indexing: segment ``k`` runs from station ``k`` to station ``k + 1`` when
+    both belong to the same face.  Per-segment inputs (e.g. ``n_segment`` in
+    :func:`ntrans.closures.face_conveyance`) are arrays indexed by the start station,
+    of length ``n_stations`` or ``n_stations - 1``; the value at a face's last station
+    is ignored.  :meth:`segment_index` lists the start stations of all segments and
+    :meth:`segment_midpoints` their plan midpoints (to look up a roughness class).
+    """
+
+    face: np.ndarray
+    station: np.ndarray
+    z: np.ndarray
+    n_faces: int
+    x: np.ndarray | None = None
+    y: np.ndarray | None = None
+    length: np.ndarray | None = field(default=None)
+
+    def __post_init__(self) -> None:
+        self.face = np.asarray(self.face, dtype=np.int64).ravel()
+        self.station = np.asarray(self.station, dtype=np.float64).ravel()
+        self.z = np.asarray(self.z, dtype=np.float64).ravel()
+        self.n_faces = int(self.n_faces)
+        if not (self.face.size == self.station.size == self.z.size):
+            raise InputError("profile face, station and z arrays differ in length; give one value per station")
+        if self.x is not None:
+            self.x = np.asarray(self.x, dtype=np.float64).ravel()
+        if self.y is not None:
+            self.y = np.asarray(self.y, dtype=np.float64).ravel()
+        if self.length is None:
+            length = np.zeros(self.n_faces)
+            if self.face.size:
+                np.maximum.at(length, self.face, self.station)
+            self.length = length
+        else:
+            self.length = np.asarray(self.length, dtype=np.float64).ravel()
+
+    @property
+    def n_stations(self) -> int:
+        """Number of stations."""
+        return int(self.face.size)
+
+    def segment_index(self) -> np.ndarray:
+        """Start-station index of every segment (both ends on the same face)."""
+        return np.flatnonzero(self.face[1:] == self.face[:-1]).astype(np.int64)
+
+    def segment_midpoints(self) -> tuple[np.ndarray, np.ndarray]:
+        """Plan coordinates (x, y) of the midpoint of every segment of :meth:`segment_index`."""
+        if self.x is None or self.y is None:
+            raise InputError("these profiles carry no station coordinates; build them with sample_profiles")
+        k = self.segment_index()
+        return 0.5 * (self.x[k] + self.x[k + 1]), 0.5 * (self.y[k] + self.y[k + 1])
+
+
+@dataclass
+class Segments:
+    """Valid segments of profiles (both ends finite): the input of the stage algebra.
+
+    ``start`` is the start-station index (see :class:`Profiles`); ``face`` the face;
+    ``ds`` plan length; ``z0``, ``z1`` end elevations; ``dl`` 3-D length
+    ``sqrt(ds^2 + (z_to_xy dz)^2)``; ``low`` (n_faces,) lowest valid point per face.
+    """
+
+    start: np.ndarray
+    face: np.ndarray
+    ds: np.ndarray
+    z0: np.ndarray
+    z1: np.ndarray
+    dl: np.ndarray
+    low: np.ndarray
+    n_faces: int
+
+    @property
+    def zlo(self) -> np.ndarray:
+        return np.minimum(self.z0, self.z1)
+
+    @property
+    def zhi(self) -> np.ndarray:
+        return np.maximum(self.z0, self.z1)
+
+
+def profile_segments(
+    profiles: Profiles, *, z_to_xy: float = 1.0, keep: np.ndarray | None = None
+) -> Segments:
+    """Valid segments of ``profiles``; ``keep`` (per start station) drops more of them."""
+    p = profiles
+    k = p.segment_index()
+    z0, z1 = p.z[k], p.z[k + 1]
+    ok = np.isfinite(z0) & np.isfinite(z1)
+    if keep is not None:
+        ok &= np.asarray(keep, dtype=bool)[k]
+    k, z0, z1 = k[ok], z0[ok], z1[ok]
+    face = p.face[k]
+    ds = p.station[k + 1] - p.station[k]
+    dl = np.hypot(ds, (z1 - z0) * float(z_to_xy))
+    low = np.full(p.n_faces, np.inf)
+    if k.size:
+        np.minimum.at(low, face, np.minimum(z0, z1))
+    low[~np.isfinite(low)] = np.nan
+    return Segments(k, face, ds, z0, z1, dl, low, p.n_faces)
+
+
+def sample_profiles(
+    lines: object,
+    elevation: np.ndarray,
+    transform: object,
+    spacing: float,
+    *,
+    sampler: Callable[..., np.ndarray] | None = None,
+) -> Profiles:
+    """Sample the terrain along face lines.
+
+    Parameters
+    ----------
+    lines : array_like of shapely LineString (n_faces,)
+        Face lines in the window's CRS; None or empty lines give faces without stations.
+    elevation : (rows, cols) ndarray
+        DEM window, NaN = nodata.
+    transform : affine.Affine
+        Transform of the window.
+    spacing : float
+        Largest distance between stations (CRS units, > 0); every vertex of a line is
+        a station too.  Use at most half a pixel.
+    sampler : callable, optional
+        ``sampler(elevation, transform, x, y) -> z``; default
+        :func:`ntrans.terrain.sample_bilinear`.
+
+    Returns
+    -------
+    Profiles
+    """
+    spacing = float(spacing)
+    if not (np.isfinite(spacing) and spacing > 0):
+        raise InputError(f"profile spacing must be a positive distance, got {spacing!r}")
+    lines = np.asarray(lines, dtype=object).ravel()
+    n_faces = lines.size
+    present = shapely.is_geometry(lines)
+    types = shapely.get_type_id(lines[present])
+    if np.any(types != 1):
+        raise GeometryError(
+            "face geometries must be LineStrings; explode multi-part faces into one face per part"
+        )
+    coords, idx = shapely.get_coordinates(lines, return_index=True)
+    idx = idx.astype(np.int64)
+    # drop repeated vertices
+    if coords.shape[0] > 1:
+        step = np.hypot(*(coords[1:] - coords[:-1]).T)
+        dup = np.zeros(coords.shape[0], dtype=bool)
+        dup[1:] = (idx[1:] == idx[:-1]) & (step == 0)
+        coords, idx = coords[~dup], idx[~dup]
+    nv = coords.shape[0]
+    if nv == 0:
+        empty = np.empty(0)
+        return Profiles(
+            np.empty(0, dtype=np.int64), empty, empty.copy(), n_faces, empty.copy(),
+            empty.copy(), np.zeros(n_faces),
+        )
+    same_next = np.zeros(nv, dtype=bool)
+    same_next[:-1] = idx[1:] == idx[:-1]
+    seg_len = np.zeros(nv)
+    seg_len[:-1] = np.hypot(*(coords[1:] - coords[:-1]).T)
+    seg_len[~same_next] = 0.0
+    # distance of each vertex from its face's start
+    cum = np.concatenate([[0.0], np.cumsum(seg_len)[:-1]])
+    first = np.ones(nv, dtype=bool)
+    first[1:] = idx[1:] != idx[:-1]
+    cum -= np.maximum.accumulate(np.where(first, cum, 0.0))
+    m = np.where(same_next, np.maximum(1, np.ceil(seg_len / spacing)), 1).astype(np.int64)
+    total = int(m.sum())
+    owner = np.repeat(np.arange(nv), m)
+    offset = np.cumsum(m) - m
+    t = (np.arange(total) - offset[owner]) / m[owner]
+    nxt = np.minimum(owner + 1, nv - 1)
+    nxt = np.where(same_next[owner], nxt, owner)
+    xy = coords[owner] + t[:, None] * (coords[nxt] - coords[owner])
+    station = cum[owner] + t * seg_len[owner]
+    face = idx[owner]
+    if sampler is None:
+        from .terrain import sample_bilinear as sampler
+    z = np.asarray(sampler(elevation, transform, xy[:, 0], xy[:, 1]), dtype=np.float64)
+    length = np.zeros(n_faces)
+    np.maximum.at(length, face, station)
+    return Profiles(face, station, z, n_faces, xy[:, 0].copy(), xy[:, 1].copy(), length)
+
+
+def _stage_matrix(stages: np.ndarray, n_faces: int) -> np.ndarray:
+    s = np.asarray(stages, dtype=np.float64)
+    if s.ndim == 1:
+        s = np.broadcast_to(s, (n_faces, s.size))
+    if s.ndim != 2 or s.shape[0] != n_faces:
+        raise InputError(
+            f"stages have shape {np.shape(stages)}; give (n_stages,) or (n_faces={n_faces}, n_stages)"
+        )
+    return s
+
+
+def _sort_by_face(face: np.ndarray, value: np.ndarray) -> tuple[np.ndarray, float]:
+    """Order sorting by (face, value) exactly; also the key scale used (> 2 x max value + 3).
+
+    Fast path: one argsort of ``face * scale + value``; if rounding left two values of a
+    face out of order, falls back to an exact value sort followed by stable 16-bit radix
+    passes on the face index.
+    """
+    vmax = float(np.max(value)) if value.size else 0.0
+    scale = 2.0 * max(vmax, 0.0) + 4.0
+    order = np.argsort(face * scale + value)
+    f, v = face[order], value[order]
+    if np.any((f[1:] == f[:-1]) & (v[1:] < v[:-1])) or np.any(f[1:] < f[:-1]):
+        order = np.argsort(value, kind="stable")
+        for shift in (0, 16, 32, 48):
+            digit = ((face[order] >> shift) & 0xFFFF).astype(np.uint16)
+            if shift and not digit.any():
+                break
+            order = order[np.argsort(digit, kind="stable")]
+    return order, scale
+
+
+def _fix_positions(
+    pos: np.ndarray, b: np.ndarray, e: np.ndarray, start: np.ndarray, end: np.ndarray
+) -> np.ndarray:
+    """Make ``pos`` the exact count position: b[start:pos] < e <= b[pos:end]."""
+    pos = np.clip(pos, start, end)
+    n = b.size
+    for _ in range(64):
+        down = (pos > start) & (b[np.clip(pos - 1, 0, max(n - 1, 0))] >= e) if n else pos < 0
+        up = (pos < end) & (b[np.clip(pos, 0, max(n - 1, 0))] < e) if n else pos < 0
+        if not (down.any() or up.any()):
+            break
+        pos = pos - down + up
+    return pos
+
+
+def ramp_sums(
+    seg: Segments,
+    weights: list[np.ndarray],
+    stages: np.ndarray,
+    *,
+    integrate_first: bool = False,
+) -> tuple[list[np.ndarray], np.ndarray | None]:
+    """Sum over segments of ``w * wet fraction(eta)`` per face, for several weights.
+
+    The wet fraction of a segment is 0 below its low end, 1 above its high end and
+    linear between (a step at the mean elevation for level segments).  With
+    ``integrate_first`` also returns the integral over eta (from the face's low point)
+    of the first weight's sum; with ``weights[0] = ds`` that is the flow area.
+
+    Parameters
+    ----------
+    seg : Segments
+    weights : list of (n_segments,) arrays (amount contributed when fully wet)
+    stages : (n_faces, n_stages) or (n_stages,)
+
+    Returns
+    -------
+    (list of (n_faces, n_stages) arrays, integral or None).  NaN where the stage is NaN
+    or the face has no valid segment.
+    """
+    n_faces = seg.n_faces
+    eta = _stage_matrix(stages, n_faces)
+    n_st = eta.shape[1]
+    zlo, zhi = seg.zlo, seg.zhi
+    dz = zhi - zlo
+    level = dz <= LEVEL_RATIO * seg.ds
+    ramp = ~level
+    low = seg.low
+    base = np.where(np.isfinite(low), low, 0.0)
+    # breakpoints: ramps start (+c) at zlo and stop (-c) at zhi; level segments step at mid
+    rf, lf = seg.face[ramp], seg.face[level]
+    bp_face = np.concatenate([rf, rf, lf])
+    bp_val = np.concatenate(
+        [zlo[ramp] - base[rf], zhi[ramp] - base[rf], 0.5 * (zlo + zhi)[level] - base[lf]]
+    )
+    n_r, n_l = int(ramp.sum()), int(level.sum())
+    order, key_scale = _sort_by_face(bp_face, bp_val)
+    b = bp_val[order]
+    bf = bp_face[order]
+    faces_idx = np.arange(n_faces)
+    face_start = np.searchsorted(bf, faces_idx, side="left")
+    face_end = np.searchsorted(bf, faces_idx, side="right")
+
+    # per query: number of its face's breakpoints strictly below the stage
+    e = eta - base[:, None]
+    qf = np.repeat(faces_idx, n_st)
+    ev = e.ravel()
+    relief = np.zeros(n_faces)
+    has = face_end > face_start
+    relief[has] = b[face_end[has] - 1]
+    e_clip = np.clip(np.where(np.isnan(ev), -1.0, ev), -1.0, relief[qf] + 1.0)
+    pos = np.searchsorted(bf * key_scale + b, qf * key_scale + e_clip, side="left")
+    pos = _fix_positions(pos, b, e_clip, face_start[qf], face_end[qf])
+    def prefix(values: np.ndarray) -> np.ndarray:
+        out = np.zeros(values.size + 1)
+        np.cumsum(values, out=out[1:])
+        return out
+
+    def window(pref: np.ndarray) -> np.ndarray:
+        return pref[pos] - pref[face_start[qf]]
+
+    dz_r = dz[ramp]
+    results = []
+    integral = None
+    bo = b  # sorted breakpoint values
+    for i, w in enumerate(weights):
+        w = np.asarray(w, dtype=np.float64)
+        c_r = w[ramp] / dz_r
+        c = np.concatenate([c_r, -c_r, np.zeros(n_l)])[order]
+        d = np.concatenate([np.zeros(2 * n_r), w[level]])[order]
+        sc = window(prefix(c))
+        scb = window(prefix(c * bo))
+        sd = window(prefix(d))
+        val = ev * sc - scb + sd
+        results.append(val)
+        if i == 0 and integrate_first:
+            scb2 = window(prefix(c * bo * bo))
+            sdb = window(prefix(d * bo))
+            integral = 0.5 * (ev * ev * sc - 2.0 * ev * scb + scb2) + ev * sd - sdb
+    bad = np.isnan(ev) | ~np.isfinite(low)[qf]
+    out = []
+    for val in results:
+        val = np.maximum(val, 0.0)
+        val[bad] = np.nan
+        out.append(val.reshape(n_faces, n_st))
+    if integral is not None:
+        integral = np.maximum(integral, 0.0)
+        integral[bad] = np.nan
+        integral = integral.reshape(n_faces, n_st)
+    return out, integral
+
+
+def face_stage_table(
+    profiles: Profiles, stages: np.ndarray, *, z_to_xy: float = 1.0
+) -> dict[str, np.ndarray]:
+    """Flow area, wetted perimeter, top width and hydraulic radius per face and stage.
+
+    Exact for the piecewise-linear profile (segments with a NaN end dropped).
+
+    Parameters
+    ----------
+    profiles : Profiles
+    stages : (n_faces, n_stages) or (n_stages,) array
+        Water-surface elevations (vertical units); NaN gives NaN.
+    z_to_xy : float
+        Converts vertical to horizontal units for the wetted perimeter.
+
+    Returns
+    -------
+    dict of (n_faces, n_stages) arrays: ``flow_area`` (horizontal x vertical units),
+    ``wetted_perimeter``, ``top_width`` (horizontal units), ``hydraulic_radius``
+    (A / P, NaN when dry).  NaN for faces without any valid segment.
+
+    Examples
+    --------
+    >>> p = Profiles([0, 0, 0], [0.0, 1.0, 2.0], [1.0, 0.0, 1.0], 1)
+    >>> t = face_stage_table(p, [0.5])
+    >>> float(t["flow_area"][0, 0]), float(t["top_width"][0, 0])
+    (0.25, 1.0)
+    """
+    seg = profile_segments(profiles, z_to_xy=z_to_xy)
+    (top, perim), area = ramp_sums(seg, [seg.ds, seg.dl], stages, integrate_first=True)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        radius = np.where(perim > 0, area / np.where(perim > 0, perim, 1.0), np.nan)
+    radius[np.isnan(area)] = np.nan
+    return {
+        "flow_area": area,
+        "wetted_perimeter": perim,
+        "top_width": top,
+        "hydraulic_radius": radius,
+    }
+
+
+def face_profile_summary(profiles: Profiles) -> dict[str, np.ndarray]:
+    """Per-face profile summary over the valid segments.
+
+    Returns
+    -------
+    dict of (n_faces,) arrays: ``low_point``, ``high_point``, ``relief`` (high - low),
+    ``mean_elevation`` (length-weighted mean of the piecewise-linear profile),
+    ``covered_fraction`` (valid segment length / face length; 0 for a zero-length face).
+    NaN elevations where a face has no valid segment.
+    """
+    seg = profile_segments(profiles)
+    n = profiles.n_faces
+    high = np.full(n, -np.inf)
+    if seg.face.size:
+        np.maximum.at(high, seg.face, seg.zhi)
+    high[~np.isfinite(high)] = np.nan
+    valid_len = np.bincount(seg.face, weights=seg.ds, minlength=n)
+    mean_num = np.bincount(seg.face, weights=seg.ds * 0.5 * (seg.z0 + seg.z1), minlength=n)
+    length = np.asarray(profiles.length, dtype=np.float64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(valid_len > 0, mean_num / np.where(valid_len > 0, valid_len, 1.0), np.nan)
+        covered = np.where(length > 0, valid_len / np.where(length > 0, length, 1.0), 0.0)
+    return {
+        "low_point": seg.low,
+        "high_point": high,
+        "relief": high - seg.low,
+        "mean_elevation": mean,
+        "covered_fraction": np.clip(covered, 0.0, 1.0),
+    }
+
+
+def flat_face_table(
+    flat_bed: np.ndarray, length: np.ndarray, stages: np.ndarray
+) -> dict[str, np.ndarray]:
+    """Stage table of flat faces (one bed elevation per face).
+
+    Returns
+    -------
+    dict of (n_faces, n_stages) arrays: ``flat_depth`` h = (eta - z_f)+,
+    ``flat_flow_area`` = L h, ``flat_wetted_perimeter`` = ``flat_top_width`` = L where
+    wet (0 dry), ``flat_hydraulic_radius`` = h (0 dry).  NaN where the stage or the
+    bed is NaN.
+    """
+    bed = np.asarray(flat_bed, dtype=np.float64).ravel()
+    length = np.asarray(length, dtype=np.float64).ravel()
+    eta = _stage_matrix(stages, bed.size)
+    h = np.maximum(eta - bed[:, None], 0.0)
+    h[np.isnan(eta) | np.isnan(bed)[:, None]] = np.nan
+    wet_len = np.where(h > 0, length[:, None], 0.0)
+    wet_len[np.isnan(h)] = np.nan
+    return {
+        "flat_depth": h,
+        "flat_flow_area": length[:, None] * h,
+        "flat_wetted_perimeter": wet_len,
+        "flat_top_width": wet_len.copy(),
+        "flat_hydraulic_radius": h.copy(),
+    }
+
+
+def face_flat_bed(
+    rule: FaceRule,
+    cell_flat_a: np.ndarray,
+    cell_flat_b: np.ndarray,
+    summary: dict[str, np.ndarray] | None = None,
+) -> np.ndarray:
+    """Bed elevation of flat faces from the adjacent flat cell elevations.
+
+    Parameters
+    ----------
+    rule : {"higher", "mean", "min", "profile_mean"}
+        ``higher`` (default in the product): the higher of the two cells; ``mean``,
+        ``min`` of the two; ``profile_mean``: the face profile's mean elevation
+        (``summary["mean_elevation"]``).  A boundary face (``cell_flat_b`` NaN) takes
+        its one cell's elevation.
+    cell_flat_a, cell_flat_b : (n_faces,) arrays
+    summary : output of :func:`face_profile_summary` (for ``profile_mean``)
+    """
+    za = np.asarray(cell_flat_a, dtype=np.float64).ravel()
+    zb = np.asarray(cell_flat_b, dtype=np.float64).ravel()
+    zb = np.where(np.isnan(zb), za, zb)
+    if rule == "higher":
+        return np.fmax(za, zb)
+    if rule == "mean":
+        return 0.5 * (za + zb)
+    if rule == "min":
+        return np.fmin(za, zb)
+    if rule == "profile_mean":
+        if summary is None:
+            raise InputError("face rule 'profile_mean' needs the face profile summary; pass summary=")
+        return np.asarray(summary["mean_elevation"], dtype=np.float64).copy()
+    raise InputError(f"face rule {rule!r} is not one of {', '.join(FACE_RULES)}; pick one of them")

@@ -1,0 +1,971 @@
+"""The input edge: read and validate the DEM, the cell polygons and water-surface rasters.
+
+Everything a user hands to ntrans enters through this module.  Each problem found is
+raised as one :mod:`ntrans.errors` exception whose message is one sentence starting with
+the thing that is wrong and ending with what to do.  Nothing here computes hydraulics.
+
+- :func:`open_dem` -> :class:`DemInfo` (grid, CRS, units; windows read on demand, nodata
+  and the outside of the raster as NaN)
+- :func:`read_cells` -> :class:`CellLayer` (ids, valid polygons in the DEM's CRS)
+- :func:`read_water_surfaces` / :func:`open_water_surface` -> :class:`WaterSurface`
+  (sampling onto points or onto a DEM window), :func:`sample_water_surface`
+- :func:`check_output_not_input` (an output folder never replaces an input)
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import os
+import warnings
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Literal
+
+import numpy as np
+import pyproj
+import rasterio
+import shapely
+from affine import Affine
+from rasterio.crs import CRS
+from rasterio.windows import Window
+
+from .errors import (
+    CRSError,
+    GeometryError,
+    GeometryRepairedWarning,
+    InputError,
+    InputFileError,
+    OutputError,
+)
+
+logger = logging.getLogger(__name__)
+
+LengthUnit = Literal["metre", "foot"]
+SampleMethod = Literal["bilinear", "nearest"]
+
+#: Manning unit factor k per length unit (DESIGN.md section 2).
+MANNING_K: dict[str, float] = {"metre": 1.0, "foot": 1.486}
+
+_INTERNATIONAL_FOOT = 0.3048
+_US_SURVEY_FOOT = 1200.0 / 3937.0
+_UNIT_ALIASES: dict[str, LengthUnit] = {
+    "metre": "metre",
+    "meter": "metre",
+    "metres": "metre",
+    "meters": "metre",
+    "m": "metre",
+    "foot": "foot",
+    "feet": "foot",
+    "ft": "foot",
+}
+#: Column names tried, in order and ignoring case, when no id field is given.
+ID_FIELD_CANDIDATES: tuple[str, ...] = ("cell_id", "cellid", "id", "fid", "objectid", "ogc_fid")
+_POLYGON_TYPE_IDS = (3, 6)  # shapely type ids of Polygon and MultiPolygon
+_SAMPLE_BLOCK = 2048  # pixels per side of the raster blocks read when sampling points
+
+
+# --------------------------------------------------------------------------- helpers
+
+
+def _name_list(values: Iterable[Any], *, limit: int = 5) -> str:
+    """``"a, b, c and 4 more"`` for messages."""
+    items = [str(v) for v in values]
+    if len(items) <= limit:
+        return ", ".join(items)
+    return ", ".join(items[:limit]) + f" and {len(items) - limit} more"
+
+
+def _reason(exc: BaseException, path: str) -> str:
+    """The first sentence of a library error, without the path and final full stop."""
+    text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+    text = text.replace(f"'{path}' ", "").replace(f"{path}: ", "").replace(path, "the file")
+    return text.split(". ")[0].split(".;")[0].rstrip(". ")
+
+
+def _is_local_path(path: str) -> bool:
+    """True for ordinary file paths (not GDAL /vsi... paths or URLs)."""
+    return not (path.startswith("/vsi") or "://" in path)
+
+
+def _check_exists(path: str | os.PathLike[str], what: str) -> str:
+    text = os.fspath(path)
+    if _is_local_path(text) and not Path(text).exists():
+        raise InputFileError(f"{what} file '{text}' does not exist; check the path")
+    return text
+
+
+def _to_pyproj(crs: CRS | pyproj.CRS | str) -> pyproj.CRS:
+    if isinstance(crs, pyproj.CRS):
+        return crs
+    if isinstance(crs, CRS):
+        return pyproj.CRS.from_wkt(crs.to_wkt())
+    return pyproj.CRS.from_user_input(crs)
+
+
+def _split_compound(crs: pyproj.CRS) -> tuple[pyproj.CRS, pyproj.CRS | None]:
+    """(horizontal part, vertical part or None) of a CRS."""
+    if crs.is_compound:
+        horizontal, vertical = crs, None
+        for sub in crs.sub_crs_list:
+            if sub.is_vertical:
+                vertical = sub
+            else:
+                horizontal = sub
+        return horizontal, vertical
+    return crs, None
+
+
+def _unit_of_factor(factor: float) -> LengthUnit | None:
+    """metre / foot from the number of metres per unit, or None."""
+    if math.isclose(factor, 1.0, rel_tol=1e-9):
+        return "metre"
+    if math.isclose(factor, _INTERNATIONAL_FOOT, rel_tol=1e-7) or math.isclose(
+        factor, _US_SURVEY_FOOT, rel_tol=1e-7
+    ):
+        return "foot"
+    return None
+
+
+def _parse_unit(value: str, option: str) -> LengthUnit:
+    unit = _UNIT_ALIASES.get(str(value).strip().lower())
+    if unit is None:
+        raise InputError(f"{option} {value!r} is not a known unit; choose 'metre' or 'foot'")
+    return unit
+
+
+def _same_crs(a: pyproj.CRS, b: pyproj.CRS) -> bool:
+    try:
+        return a.equals(b, ignore_axis_order=True)
+    except Exception:  # pragma: no cover - defensive, pyproj comparisons rarely fail
+        return a == b
+
+
+def _read_band1(path: str, row_off: int, col_off: int, height: int, width: int,
+                shape: tuple[int, int]) -> np.ndarray:
+    """Boundless float64 read of band 1: NaN for masked pixels and outside the raster."""
+    if height < 0 or width < 0:
+        raise ValueError("window height and width must be zero or positive")
+    out = np.full((height, width), np.nan, dtype=np.float64)
+    n_rows, n_cols = shape
+    r0, r1 = max(row_off, 0), min(row_off + height, n_rows)
+    c0, c1 = max(col_off, 0), min(col_off + width, n_cols)
+    if r1 <= r0 or c1 <= c0:
+        return out
+    try:
+        with rasterio.open(path) as src:
+            data = src.read(1, window=Window(c0, r0, c1 - c0, r1 - r0), masked=True)
+    except rasterio.errors.RasterioIOError as exc:
+        raise InputFileError(
+            f"raster '{path}' could not be read ({_reason(exc, path)}); check the file"
+        ) from exc
+    values = np.ma.filled(data.astype(np.float64), np.nan)
+    out[r0 - row_off : r1 - row_off, c0 - col_off : c1 - col_off] = values
+    return out
+
+
+# --------------------------------------------------------------------------- DEM
+
+
+@dataclass(frozen=True)
+class DemInfo:
+    """A DEM's grid, CRS and units; pixel values are read on demand by window.
+
+    Attributes
+    ----------
+    path : str
+        The raster as given (any GDAL raster; band 1 is used).
+    crs : rasterio.crs.CRS
+        Its CRS (projected, in metres or feet; may be compound).
+    transform : affine.Affine
+        North-up, unrotated pixel -> map transform.
+    width, height : int
+        Columns and rows.
+    nodata : float or None
+        The declared nodata value (decoded to NaN on read).
+    dtype : str
+        Band 1 data type.
+    horizontal_unit, vertical_unit : {"metre", "foot"}
+        Units of x/y and of elevations.
+    z_to_xy : float
+        Factor turning a vertical length into horizontal units (1.0 when equal).
+    manning_k : float
+        Manning unit factor from the horizontal unit: 1.0 (metre) or 1.486 (foot).
+    pixel_size : (float, float)
+        (dx, dy) in horizontal units, both positive.
+    pixel_area : float
+        dx * dy in horizontal units squared.
+    bounds : rasterio.coords.BoundingBox
+        (left, bottom, right, top) in the CRS.
+    xy_metres_per_unit, z_metres_per_unit : float
+        Metres per horizontal / vertical unit (0.3048 or 0.3048006 for feet).
+    """
+
+    path: str
+    crs: CRS
+    transform: Affine
+    width: int
+    height: int
+    nodata: float | None
+    dtype: str
+    horizontal_unit: LengthUnit
+    vertical_unit: LengthUnit
+    z_to_xy: float
+    manning_k: float
+    pixel_size: tuple[float, float]
+    pixel_area: float
+    bounds: rasterio.coords.BoundingBox
+    xy_metres_per_unit: float = 1.0
+    z_metres_per_unit: float = 1.0
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        """(height, width) in pixels."""
+        return (self.height, self.width)
+
+    @property
+    def horizontal_crs(self) -> pyproj.CRS:
+        """The horizontal part of :attr:`crs` as a pyproj CRS (vector data goes here)."""
+        return _split_compound(_to_pyproj(self.crs))[0]
+
+    def read_window(self, row_off: int, col_off: int, height: int, width: int) -> np.ndarray:
+        """Elevations of a pixel window as float64, NaN for nodata and outside the raster.
+
+        The window may extend past the raster's edges (a boundless read); those pixels are
+        NaN, never 0 or the nodata value.  GDAL masks (nodata value, mask bands, alpha)
+        and NaN in float rasters all become NaN.
+
+        >>> dem.read_window(-1, -1, 3, 3)[0, 0]  # doctest: +SKIP
+        nan
+        """
+        return _read_band1(self.path, int(row_off), int(col_off), int(height), int(width),
+                           self.shape)
+
+    def window_transform(self, row_off: int, col_off: int) -> Affine:
+        """The affine transform of a window whose top-left pixel is (row_off, col_off)."""
+        return self.transform @ Affine.translation(col_off, row_off)
+
+    def window_for_bounds(
+        self, bounds: Sequence[float], *, pad: int = 0
+    ) -> tuple[int, int, int, int]:
+        """Pixel window ``(row_off, col_off, height, width)`` covering map ``bounds``.
+
+        ``bounds`` is ``(minx, miny, maxx, maxy)``; ``pad`` extra pixels on every side.  The
+        window may reach outside the raster (read it with :meth:`read_window`).
+        """
+        minx, miny, maxx, maxy = (float(v) for v in bounds)
+        a, c, e, f = self.transform.a, self.transform.c, self.transform.e, self.transform.f
+        eps = 1e-9
+        col0 = math.floor((minx - c) / a + eps) - pad
+        col1 = math.ceil((maxx - c) / a - eps) + pad
+        row0 = math.floor((maxy - f) / e + eps) - pad
+        row1 = math.ceil((miny - f) / e - eps) + pad
+        return row0, col0, max(row1 - row0, 0), max(col1 - col0, 0)
+
+
+def open_dem(path: str | os.PathLike[str], *, vertical_units: str | None = None) -> DemInfo:
+    """Open a DEM and check its CRS, units and grid.
+
+    Parameters
+    ----------
+    path : str or path-like
+        Any raster GDAL reads; band 1 holds the elevations.
+    vertical_units : {"metre", "foot"} or None
+        Units of the elevations.  None: the unit of a vertical CRS in the DEM's compound
+        CRS if there is one, else the horizontal unit.  Aliases m/meter/ft/feet accepted.
+
+    Returns
+    -------
+    DemInfo
+
+    Raises
+    ------
+    InputFileError
+        Missing or unreadable file.
+    CRSError
+        No CRS, a geographic CRS, or a unit other than metre or foot.
+    InputError
+        Rotated or skewed grid, non-numeric band, or an unknown ``vertical_units``.
+    """
+    text = _check_exists(path, "DEM")
+    requested = None if vertical_units is None else _parse_unit(vertical_units, "vertical unit")
+    try:
+        with rasterio.open(text) as src:
+            crs, transform = src.crs, src.transform
+            width, height, count = src.width, src.height, src.count
+            nodata = src.nodata
+            dtype = src.dtypes[0] if count else ""
+    except rasterio.errors.RasterioIOError as exc:
+        raise InputFileError(
+            f"DEM file '{text}' cannot be read as a raster ({_reason(exc, text)}); give a GeoTIFF or another "
+            "raster GDAL can read"
+        ) from exc
+    if count < 1:
+        raise InputFileError(f"DEM file '{text}' holds no raster band; give a single-band DEM")
+    if count > 1:
+        logger.warning("DEM %s has %d bands; only band 1 is used as elevation", text, count)
+    if not np.issubdtype(np.dtype(dtype), np.integer) and not np.issubdtype(
+        np.dtype(dtype), np.floating
+    ):
+        raise InputError(f"DEM '{text}' has data type {dtype}; give integer or float elevations")
+    if crs is None:
+        raise CRSError(
+            f"DEM '{text}' has no CRS; assign its projected CRS (metres or feet), e.g. with "
+            "gdal_edit.py -a_srs"
+        )
+    horizontal, vertical = _split_compound(_to_pyproj(crs))
+    if horizontal.is_geographic:
+        raise CRSError(
+            f"DEM '{text}' is in the geographic CRS '{horizontal.name}' (degrees); reproject it "
+            "to a projected CRS in metres or feet"
+        )
+    axis = horizontal.axis_info[0] if horizontal.axis_info else None
+    xy_factor = axis.unit_conversion_factor if axis is not None else float("nan")
+    horizontal_unit = _unit_of_factor(xy_factor)
+    if horizontal_unit is None:
+        unit_name = axis.unit_name if axis is not None else "unknown"
+        raise CRSError(
+            f"DEM '{text}' CRS '{horizontal.name}' uses the unit '{unit_name}'; reproject it to "
+            "a projected CRS in metres or feet"
+        )
+    if transform.b != 0 or transform.d != 0:
+        raise InputError(
+            f"DEM '{text}' has a rotated or skewed grid; resample it to a north-up grid "
+            "(e.g. gdalwarp) first"
+        )
+    if not (transform.a > 0 and transform.e < 0):
+        raise InputError(
+            f"DEM '{text}' is not stored north-up (pixel size {transform.a}, {transform.e}); "
+            "rewrite it north-up (e.g. gdalwarp) first"
+        )
+    if width < 1 or height < 1:
+        raise InputFileError(f"DEM file '{text}' has no pixels; give a non-empty DEM")
+    bounds = rasterio.coords.BoundingBox(
+        transform.c, transform.f + transform.e * height, transform.c + transform.a * width,
+        transform.f,
+    )
+
+    vertical_factor = (
+        vertical.axis_info[0].unit_conversion_factor
+        if vertical is not None and vertical.axis_info else float("nan")
+    )
+    if requested is not None:
+        vertical_unit: LengthUnit = requested
+    elif _unit_of_factor(vertical_factor) is not None:
+        vertical_unit = _unit_of_factor(vertical_factor)  # type: ignore[assignment]
+        logger.info("DEM %s: vertical unit %s taken from its vertical CRS", text, vertical_unit)
+    else:
+        vertical_unit = horizontal_unit
+    if requested is None and _unit_of_factor(vertical_factor) == vertical_unit:
+        z_factor = vertical_factor  # the exact foot of the vertical CRS
+    elif vertical_unit == horizontal_unit:
+        z_factor = xy_factor
+    elif vertical_unit == "foot":
+        z_factor = _INTERNATIONAL_FOOT
+    else:
+        z_factor = 1.0
+    dx, dy = abs(transform.a), abs(transform.e)
+    info = DemInfo(
+        path=text,
+        crs=crs,
+        transform=transform,
+        width=int(width),
+        height=int(height),
+        nodata=None if nodata is None else float(nodata),
+        dtype=str(dtype),
+        horizontal_unit=horizontal_unit,
+        vertical_unit=vertical_unit,
+        z_to_xy=1.0 if z_factor == xy_factor else z_factor / xy_factor,
+        manning_k=MANNING_K[horizontal_unit],
+        pixel_size=(float(dx), float(dy)),
+        pixel_area=float(dx * dy),
+        bounds=bounds,
+        xy_metres_per_unit=float(xy_factor),
+        z_metres_per_unit=float(z_factor),
+    )
+    logger.info(
+        "DEM %s: %d x %d pixels of %g x %g %s, elevations in %s",
+        text, width, height, dx, dy, horizontal_unit, vertical_unit,
+    )
+    return info
+
+
+# --------------------------------------------------------------------------- cells
+
+
+@dataclass
+class CellLayer:
+    """Cell polygons ready for the engine.
+
+    Attributes
+    ----------
+    ids : numpy.ndarray
+        The user's id per cell (int64, or object array of str), unique.
+    geometry : numpy.ndarray
+        shapely Polygon / MultiPolygon per cell, valid, 2-D, in the DEM's CRS.
+    id_field : str
+        Name of the id column in :attr:`frame`.
+    frame : geopandas.GeoDataFrame
+        All attributes, geometry in the DEM's CRS, index 0..n-1 (the local cell index).
+    path : str
+        The file read.
+    covered_fraction : numpy.ndarray or None
+        Share of each cell's area over valid DEM pixels; filled by the engine.
+    """
+
+    ids: np.ndarray
+    geometry: np.ndarray
+    id_field: str
+    frame: Any
+    path: str
+    covered_fraction: np.ndarray | None = None
+
+    def __len__(self) -> int:
+        return int(self.ids.shape[0])
+
+
+def _choose_layer(path: str, layer: str | int | None) -> str | int | None:
+    import pyogrio
+
+    try:
+        layers = pyogrio.list_layers(path)
+    except Exception as exc:  # pyogrio raises DataSourceError and friends
+        raise InputFileError(
+            f"cells file '{path}' cannot be read as a vector layer ({_reason(exc, path)}); give a GeoPackage, "
+            "Shapefile, GeoJSON or FlatGeobuf file"
+        ) from exc
+    names = [str(row[0]) for row in layers]
+    if not names:
+        raise InputError(f"cells file '{path}' holds no layer; give a file with a polygon layer")
+    if layer is not None:
+        if isinstance(layer, int):
+            if not 0 <= layer < len(names):
+                raise InputError(
+                    f"cells layer number {layer} does not exist in '{path}'; it has "
+                    f"{len(names)} layers: {_name_list(names, limit=10)}"
+                )
+            return names[layer]
+        if layer not in names:
+            raise InputError(
+                f"cells layer '{layer}' does not exist in '{path}'; choose one of "
+                f"{_name_list(names, limit=10)}"
+            )
+        return layer
+    if len(names) == 1:
+        return None
+    polygonal = [str(row[0]) for row in layers if row[1] and "Polygon" in str(row[1])]
+    chosen = polygonal[0] if polygonal else names[0]
+    logger.info("cells file %s has %d layers; using '%s' (choose with layer=)",
+                path, len(names), chosen)
+    return chosen
+
+
+def _resolve_id_field(frame: Any, id_field: str | None, path: str) -> tuple[str, np.ndarray]:
+    """Pick the id column and return (field name, ids array)."""
+    import pandas as pd
+
+    columns = [c for c in frame.columns if c != frame.geometry.name]
+    if id_field is None:
+        lower = {str(c).lower(): c for c in columns}
+        found = next((lower[c] for c in ID_FIELD_CANDIDATES if c in lower), None)
+        if found is None:
+            logger.info(
+                "cells in %s have no id field (looked for %s); using the row number 0..n-1 "
+                "as cell_id", path, ", ".join(ID_FIELD_CANDIDATES),
+            )
+            name = "cell_id" if "cell_id" not in columns else "_cell_row"
+            return name, np.arange(len(frame), dtype=np.int64)
+        logger.info("cells in %s: using field '%s' as the cell id", path, found)
+        id_field = str(found)
+    elif id_field not in columns:
+        if id_field.lower() == "fid" and frame.index.name == "fid":
+            logger.info("cells in %s: using the layer's feature ids (fid) as cell ids", path)
+            return "fid", frame.index.to_numpy().astype(np.int64)
+        raise InputError(
+            f"id field '{id_field}' is not in the cells layer '{path}'; its fields are "
+            f"{_name_list(columns, limit=20) or 'none'}"
+        )
+    column = frame[id_field]
+    missing = np.flatnonzero(column.isna().to_numpy())
+    if missing.size:
+        raise InputError(
+            f"id field '{id_field}' is empty in {missing.size} cells (rows "
+            f"{_name_list(missing)}); give every cell an id"
+        )
+    if pd.api.types.is_bool_dtype(column):
+        ids = column.astype(str).to_numpy(dtype=object)
+    elif pd.api.types.is_integer_dtype(column):
+        ids = column.to_numpy().astype(np.int64)
+    elif pd.api.types.is_float_dtype(column):
+        values = column.to_numpy(dtype=np.float64)
+        if np.all(values == np.round(values)) and np.all(np.abs(values) < 2**53):
+            ids = values.astype(np.int64)
+        else:
+            raise InputError(
+                f"id field '{id_field}' holds fractional numbers; use whole numbers or text ids"
+            )
+    else:
+        ids = column.astype(str).to_numpy(dtype=object)
+    return str(id_field), ids
+
+
+def _repair(geoms: np.ndarray, ids: np.ndarray) -> np.ndarray:
+    """Make invalid polygons valid, keeping only their polygonal parts (vectorised)."""
+    invalid = ~shapely.is_valid(geoms)
+    if not invalid.any():
+        return geoms
+    bad = np.flatnonzero(invalid)
+    fixed = shapely.make_valid(geoms[bad], method="structure", keep_collapsed=False)
+    # keep polygonal parts only: explode twice (collections, then multipolygons)
+    parts, owner = shapely.get_parts(fixed, return_index=True)
+    keep = np.isin(shapely.get_type_id(parts), _POLYGON_TYPE_IDS)
+    parts, owner = parts[keep], owner[keep]
+    polys, sub = shapely.get_parts(parts, return_index=True)
+    owner = owner[sub]
+    result = np.full(bad.size, None, dtype=object)
+    if polys.size:
+        present, dense = np.unique(owner, return_inverse=True)
+        counts = np.bincount(dense)
+        merged = np.asarray(shapely.multipolygons(polys, indices=dense), dtype=object)
+        single = counts == 1
+        first = np.searchsorted(dense, np.arange(present.size))  # get_parts keeps order
+        merged[single] = polys[first[single]]
+        result[present] = merged
+    lost = bad[shapely.is_missing(result) | shapely.is_empty(result)]
+    if lost.size:
+        raise GeometryError(
+            f"cell polygons {_name_list(ids[lost])} are invalid and have no area left after "
+            "repair; fix or remove them"
+        )
+    warnings.warn(
+        f"cell polygons {_name_list(ids[bad])} were invalid and have been repaired "
+        "(polygonal parts kept); check them in the source mesh",
+        GeometryRepairedWarning,
+        stacklevel=3,
+    )
+    out = geoms.copy()
+    out[bad] = result
+    return out
+
+
+def _check_overlaps(geoms: np.ndarray, ids: np.ndarray, tolerance: float) -> None:
+    """Raise if two cells share more than ``tolerance`` of the smaller one's area.
+
+    Candidate pairs come from an STRtree (``intersects``); a coverage check first flags
+    the polygons whose edges are not shared exactly (only pairs with a flagged polygon can
+    overlap), then the interiors are tested and the shared areas computed, all vectorised.
+    """
+    if geoms.size < 2:
+        return
+    tree = shapely.STRtree(geoms)
+    i, j = tree.query(geoms, predicate="intersects")
+    keep = i < j
+    i, j = i[keep], j[keep]
+    try:
+        flagged = ~shapely.is_empty(shapely.coverage_invalid_edges(geoms))
+    except Exception:  # older GEOS without coverage validation: test every pair
+        flagged = np.ones(geoms.size, dtype=bool)
+    keep = flagged[i] | flagged[j]
+    i, j = i[keep], j[keep]
+    if i.size == 0:
+        return
+    interior = shapely.relate_pattern(geoms[i], geoms[j], "T********")
+    i, j = i[interior], j[interior]
+    if i.size == 0:
+        return
+    shared = shapely.area(shapely.intersection(geoms[i], geoms[j]))
+    areas = shapely.area(geoms)
+    smaller = np.minimum(areas[i], areas[j])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        fraction = np.where(smaller > 0, shared / smaller, 1.0)
+    bad = np.flatnonzero(fraction > tolerance)
+    if bad.size:
+        order = bad[np.argsort(-fraction[bad], kind="stable")]
+        named = [f"{ids[i[k]]}/{ids[j[k]]} ({fraction[k]:.0%})" for k in order[:5]]
+        more = f" and {order.size - 5} more pairs" if order.size > 5 else ""
+        raise GeometryError(
+            f"cell polygons overlap beyond {tolerance:.0%} of the smaller cell's area "
+            f"(pairs {', '.join(named)}{more}); fix the mesh so that cells do not overlap"
+        )
+
+
+def read_cells(
+    path: str | os.PathLike[str],
+    *,
+    dem: DemInfo,
+    id_field: str | None = None,
+    layer: str | int | None = None,
+    overlap_tolerance: float = 0.01,
+) -> CellLayer:
+    """Read the cell polygons, reproject them to the DEM's CRS and check them.
+
+    Parameters
+    ----------
+    path : str or path-like
+        Any OGR polygon layer (GeoPackage, Shapefile, GeoJSON, FlatGeobuf, ...).
+    dem : DemInfo
+        The DEM the cells lie on (target CRS, extent).
+    id_field : str or None
+        Column holding the cell ids.  None: the first of :data:`ID_FIELD_CANDIDATES`
+        present (ignoring case), else the row number 0..n-1.  ``"fid"`` also reaches the
+        layer's feature ids when no such column exists.
+    layer : str, int or None
+        Layer name or number; None: the only layer, or the first polygon layer.
+    overlap_tolerance : float
+        Largest shared area allowed between two cells, as a fraction of the smaller one.
+
+    Returns
+    -------
+    CellLayer
+        Cells partly outside the DEM or over nodata are kept.
+
+    Raises
+    ------
+    InputFileError
+        Missing or unreadable file.
+    CRSError
+        The layer has no CRS.
+    GeometryError
+        Empty layer, null/empty or non-polygon geometry, unrepairable or overlapping cells.
+    InputError
+        Unknown layer or id field, missing or duplicate ids, no cell over the DEM.
+    """
+    import geopandas as gpd
+
+    text = _check_exists(path, "cells")
+    chosen = _choose_layer(text, layer)
+    try:
+        frame = gpd.read_file(text, layer=chosen, engine="pyogrio", fid_as_index=True)
+    except Exception as exc:  # pyogrio / GDAL errors of every kind
+        raise InputFileError(
+            f"cells file '{text}' cannot be read ({_reason(exc, text)}); give a GeoPackage, Shapefile, "
+            "GeoJSON or FlatGeobuf polygon layer"
+        ) from exc
+    if not isinstance(frame, gpd.GeoDataFrame) or frame.geometry is None:
+        raise GeometryError(f"cells layer '{text}' has no geometry; give a polygon layer")
+    if len(frame) == 0:
+        raise GeometryError(f"cells layer '{text}' is empty; give a layer with cell polygons")
+    id_name, ids = _resolve_id_field(frame, id_field, text)
+    frame = frame.reset_index(drop=True)
+    if id_name not in frame.columns:
+        frame[id_name] = ids
+    _check_unique(ids, id_name)
+
+    geoms = np.asarray(frame.geometry.array, dtype=object)
+    missing = shapely.is_missing(geoms) | shapely.is_empty(geoms)
+    if missing.any():
+        raise GeometryError(
+            f"cells {_name_list(ids[missing])} have no geometry (null or empty); give every "
+            "cell a polygon or remove it"
+        )
+    type_ids = shapely.get_type_id(geoms)
+    wrong = ~np.isin(type_ids, _POLYGON_TYPE_IDS)
+    if wrong.any():
+        names = sorted({geoms[k].geom_type for k in np.flatnonzero(wrong)[:50]})
+        raise GeometryError(
+            f"cells {_name_list(ids[wrong])} have {'/'.join(names)} geometry, not polygons; "
+            "give a polygon layer"
+        )
+
+    if frame.crs is None:
+        raise CRSError(
+            f"cells layer '{text}' has no CRS; assign the CRS it was drawn in (e.g. write a "
+            ".prj file or use ogr2ogr -a_srs)"
+        )
+    target = dem.horizontal_crs
+    source = _to_pyproj(frame.crs)
+    if not (_same_crs(source, target) or _same_crs(source, _to_pyproj(dem.crs))):
+        logger.info("cells %s: reprojecting from %s to the DEM's CRS %s",
+                    text, source.name, target.name)
+        try:
+            frame = frame.to_crs(target)
+        except Exception as exc:
+            raise CRSError(
+                f"cells layer '{text}' cannot be reprojected from '{source.name}' to the DEM's "
+                f"CRS '{target.name}' ({_reason(exc, text)}); reproject it yourself first"
+            ) from exc
+        geoms = np.asarray(frame.geometry.array, dtype=object)
+    else:
+        frame = frame.set_crs(target, allow_override=True)
+
+    geoms = shapely.force_2d(geoms)
+    if not np.all(np.isfinite(shapely.bounds(geoms))):
+        bad = ~np.all(np.isfinite(shapely.bounds(geoms)), axis=1)
+        raise GeometryError(
+            f"cells {_name_list(ids[bad])} have coordinates that cannot be placed in the DEM's "
+            "CRS; check the layer's CRS"
+        )
+    geoms = _repair(geoms, ids)
+    zero = shapely.area(geoms) <= 0
+    if zero.any():
+        raise GeometryError(
+            f"cells {_name_list(ids[zero])} have zero area; fix or remove them"
+        )
+    _check_overlaps(geoms, ids, overlap_tolerance)
+
+    extent = shapely.box(*dem.bounds)
+    touching = shapely.intersects(geoms, extent) & ~shapely.touches(geoms, extent)
+    if not touching.any():
+        raise InputError(
+            f"none of the {ids.size} cells in '{text}' lies over the DEM's extent; check that "
+            "both files cover the same area"
+        )
+    outside = ids.size - int(touching.sum())
+    if outside:
+        logger.info("cells %s: %d cells lie wholly outside the DEM and are kept", text, outside)
+
+    frame = gpd.GeoDataFrame(frame.drop(columns=frame.geometry.name),
+                             geometry=gpd.GeoSeries(geoms, crs=target), crs=target)
+    frame.index = np.arange(len(frame))
+    return CellLayer(ids=ids, geometry=geoms, id_field=id_name, frame=frame, path=text)
+
+
+def _check_unique(ids: np.ndarray, id_name: str) -> None:
+    """Raise :class:`InputError` naming the first few duplicate ids."""
+    import pandas as pd
+
+    dup = pd.Series(ids).duplicated(keep="first").to_numpy()
+    if dup.any():
+        values = list(dict.fromkeys(ids[dup].tolist()))
+        raise InputError(
+            f"id field '{id_name}' has duplicate values ({_name_list(values)}); give every cell "
+            "a unique id"
+        )
+
+
+# --------------------------------------------------------------------------- water surfaces
+
+
+@dataclass(frozen=True)
+class WaterSurface:
+    """A water-surface elevation raster (e.g. peak stage of the calibrated source model).
+
+    Values are taken to be in the DEM's vertical unit.  Dry or missing pixels are NaN.
+    """
+
+    name: str
+    path: str
+    crs: CRS
+    transform: Affine
+    width: int
+    height: int
+    nodata: float | None
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return (self.height, self.width)
+
+    def read_window(self, row_off: int, col_off: int, height: int, width: int) -> np.ndarray:
+        """Boundless float64 window of this raster's own grid (NaN for nodata / outside)."""
+        return _read_band1(self.path, int(row_off), int(col_off), int(height), int(width),
+                           self.shape)
+
+    def sample(
+        self,
+        x: np.ndarray,
+        y: np.ndarray,
+        *,
+        crs: CRS | pyproj.CRS | str | None = None,
+        method: SampleMethod = "bilinear",
+    ) -> np.ndarray:
+        """Water-surface elevation at points ``(x, y)`` given in ``crs`` (default: own CRS).
+
+        ``bilinear`` interpolates between pixel centres using only the valid neighbours
+        (weights renormalised); a point whose own pixel is NaN or outside the raster is NaN.
+        ``nearest`` takes the pixel the point falls in.  Returns float64 of ``x``'s shape.
+        """
+        if method not in ("bilinear", "nearest"):
+            raise InputError(f"sampling method {method!r} is unknown; choose 'bilinear' or 'nearest'")
+        xa = np.asarray(x, dtype=np.float64)
+        ya = np.asarray(y, dtype=np.float64)
+        xa, ya = np.broadcast_arrays(xa, ya)
+        shape = xa.shape
+        xs, ys = xa.ravel(), ya.ravel()
+        if crs is not None:
+            source = _to_pyproj(crs)
+            own = _to_pyproj(self.crs)
+            if not _same_crs(source, own):
+                transformer = pyproj.Transformer.from_crs(
+                    _split_compound(source)[0], _split_compound(own)[0], always_xy=True
+                )
+                xs, ys = transformer.transform(xs, ys)
+                xs, ys = np.asarray(xs, dtype=np.float64), np.asarray(ys, dtype=np.float64)
+        inverse = ~self.transform
+        col_f, row_f = inverse @ (xs, ys)  # fractional pixel coordinates (corner origin)
+        col_f = np.asarray(col_f, dtype=np.float64)
+        row_f = np.asarray(row_f, dtype=np.float64)
+        out = np.full(xs.shape, np.nan)
+        finite = np.isfinite(col_f) & np.isfinite(row_f)
+        inside = finite & (col_f >= 0) & (col_f < self.width) & (row_f >= 0) & (row_f < self.height)
+        idx = np.flatnonzero(inside)
+        if idx.size == 0:
+            return out.reshape(shape)
+        own_row = np.floor(row_f[idx]).astype(np.int64)
+        own_col = np.floor(col_f[idx]).astype(np.int64)
+        block = (own_row // _SAMPLE_BLOCK) * (self.width // _SAMPLE_BLOCK + 1) + own_col // _SAMPLE_BLOCK
+        blocks, which = np.unique(block, return_inverse=True)
+        for b in range(blocks.size):  # loop over raster blocks, not points
+            sel = which == b
+            rows, cols = own_row[sel], own_col[sel]
+            r0, c0 = int(rows.min()) - 1, int(cols.min()) - 1
+            win = self.read_window(r0, c0, int(rows.max()) - r0 + 2, int(cols.max()) - c0 + 2)
+            own = win[rows - r0, cols - c0]
+            if method == "nearest":
+                out[idx[sel]] = own
+                continue
+            # bilinear between pixel centres: centre of pixel (r, c) is at (r + 0.5, c + 0.5)
+            rr = row_f[idx[sel]] - 0.5
+            cc = col_f[idx[sel]] - 0.5
+            i0 = np.floor(rr).astype(np.int64)
+            j0 = np.floor(cc).astype(np.int64)
+            fr, fc = rr - i0, cc - j0
+            total = np.zeros(rows.size)
+            weight = np.zeros(rows.size)
+            for di, dj, w in ((0, 0, (1 - fr) * (1 - fc)), (0, 1, (1 - fr) * fc),
+                              (1, 0, fr * (1 - fc)), (1, 1, fr * fc)):
+                v = win[i0 + di - r0, j0 + dj - c0]
+                ok = np.isfinite(v)
+                total += np.where(ok, v * w, 0.0)
+                weight += np.where(ok, w, 0.0)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                value = total / weight
+            value[~np.isfinite(own)] = np.nan
+            out[idx[sel]] = value
+        return out.reshape(shape)
+
+    def on_dem_window(
+        self,
+        dem: DemInfo,
+        row_off: int,
+        col_off: int,
+        height: int,
+        width: int,
+        *,
+        method: SampleMethod = "bilinear",
+    ) -> np.ndarray:
+        """Water surface on a DEM window's pixel grid, ``(height, width)`` float64, NaN = dry.
+
+        When this raster shares the DEM's CRS and is aligned with its grid at the same pixel
+        size, pixels are copied directly; otherwise each DEM pixel centre is sampled.
+        """
+        same_crs = _same_crs(_to_pyproj(self.crs), _to_pyproj(dem.crs))
+        t, d = self.transform, dem.transform
+        if same_crs and np.allclose([t.a, t.b, t.d, t.e], [d.a, d.b, d.d, d.e], rtol=1e-9):
+            dc = (d.c - t.c) / t.a
+            dr = (d.f - t.f) / t.e
+            if abs(dc - round(dc)) < 1e-6 and abs(dr - round(dr)) < 1e-6:
+                return self.read_window(row_off + round(dr), col_off + round(dc), height, width)
+        wt = dem.window_transform(row_off, col_off)
+        cols = np.arange(width) + 0.5
+        rows = np.arange(height) + 0.5
+        xs = wt.c + cols[None, :] * wt.a + rows[:, None] * wt.b
+        ys = wt.f + cols[None, :] * wt.d + rows[:, None] * wt.e
+        return self.sample(xs, ys, crs=None if same_crs else dem.crs, method=method)
+
+
+def open_water_surface(path: str | os.PathLike[str], *, dem: DemInfo,
+                       name: str | None = None) -> WaterSurface:
+    """Open one water-surface raster and check it can be placed over the DEM.
+
+    Raises :class:`InputFileError` (missing / unreadable) or :class:`CRSError` (no CRS).
+    A CRS different from the DEM's is handled by reprojecting sample points (logged).
+    """
+    text = _check_exists(path, "water-surface")
+    try:
+        with rasterio.open(text) as src:
+            crs, transform, width, height = src.crs, src.transform, src.width, src.height
+            nodata, count = src.nodata, src.count
+    except rasterio.errors.RasterioIOError as exc:
+        raise InputFileError(
+            f"water-surface file '{text}' cannot be read as a raster ({_reason(exc, text)}); give a GeoTIFF "
+            "or another raster GDAL can read"
+        ) from exc
+    if count < 1:
+        raise InputFileError(f"water-surface file '{text}' holds no raster band")
+    if count > 1:
+        logger.warning("water surface %s has %d bands; only band 1 is used", text, count)
+    if crs is None:
+        raise CRSError(
+            f"water-surface raster '{text}' has no CRS; assign the CRS of the model it came from"
+        )
+    if not _same_crs(_to_pyproj(crs), _to_pyproj(dem.crs)):
+        logger.info("water surface %s is in another CRS than the DEM; points are reprojected "
+                    "to sample it", text)
+    logger.info("water surface %s: values taken in the DEM's vertical unit (%s)",
+                text, dem.vertical_unit)
+    return WaterSurface(
+        name=name or Path(text).stem,
+        path=text,
+        crs=crs,
+        transform=transform,
+        width=int(width),
+        height=int(height),
+        nodata=None if nodata is None else float(nodata),
+    )
+
+
+def read_water_surfaces(
+    paths: Sequence[str | os.PathLike[str]] | str | os.PathLike[str], *, dem: DemInfo
+) -> list[WaterSurface]:
+    """Open several water-surface rasters; names are the file stems, made unique.
+
+    Returns a list of :class:`WaterSurface` (each has ``.name``).
+    """
+    if isinstance(paths, str | os.PathLike):
+        paths = [paths]
+    surfaces: list[WaterSurface] = []
+    seen: dict[str, int] = {}
+    for p in paths:
+        stem = Path(os.fspath(p)).stem
+        seen[stem] = seen.get(stem, 0) + 1
+        name = stem if seen[stem] == 1 else f"{stem}_{seen[stem]}"
+        surfaces.append(open_water_surface(p, dem=dem, name=name))
+    if not surfaces:
+        raise InputError("no water-surface raster was given; give at least one file")
+    return surfaces
+
+
+def sample_water_surface(
+    surface: WaterSurface | str | os.PathLike[str],
+    dem: DemInfo,
+    x: np.ndarray,
+    y: np.ndarray,
+    *,
+    method: SampleMethod = "bilinear",
+) -> np.ndarray:
+    """Water-surface elevation at points ``(x, y)`` in the DEM's CRS; NaN where dry/outside."""
+    ws = surface if isinstance(surface, WaterSurface) else open_water_surface(surface, dem=dem)
+    return ws.sample(x, y, crs=dem.crs, method=method)
+
+
+# --------------------------------------------------------------------------- output guard
+
+
+def check_output_not_input(
+    out_dir: str | os.PathLike[str], input_paths: Iterable[str | os.PathLike[str] | None]
+) -> None:
+    """Raise :class:`OutputError` if writing ``out_dir`` could replace or delete an input.
+
+    That is when the folder is an input, contains an input (replacing the folder would
+    delete it), or lies inside an input (a folder-style dataset).  ``None`` entries and
+    GDAL virtual paths are ignored.
+    """
+    out = Path(os.fspath(out_dir)).expanduser().resolve()
+    for item in input_paths:
+        if item is None:
+            continue
+        text = os.fspath(item)
+        if not _is_local_path(text):
+            continue
+        src = Path(text).expanduser().resolve()
+        if src == out or out in src.parents:
+            raise OutputError(
+                f"output folder '{out}' would overwrite the input '{text}'; choose another "
+                "output folder"
+            )
+        if src in out.parents:
+            raise OutputError(
+                f"output folder '{out}' lies inside the input '{text}'; choose a folder "
+                "outside it"
+            )

@@ -1,0 +1,420 @@
+"""Maps: per-cell values painted onto the DEM grid (GeoTIFF), a face layer, PNG quick-looks.
+
+Every raster shares the DEM's grid exactly (transform, shape, CRS).  A pixel takes the
+value of the cell whose polygon contains the pixel centre (``rasterio.features.rasterize``
+of the cell index, then one array lookup), so painting costs one rasterisation however
+many maps are written.  Rasters are float32, DEFLATE-compressed, tiled 256 x 256, with
+nodata :data:`NODATA`, and carry no time stamps: the same values give the same bytes.
+
+The quick-looks draw the values over a hillshade of the DEM (Horn 1981 gradient), with a
+colour bar in the map's units, a scale bar and a north arrow, in colour-blind-safe
+palettes: ``cividis`` for magnitudes, ``PuOr`` centred on zero for signed biases.
+
+Per-cell summaries (pure, on pandas DataFrames):
+
+- :func:`cell_friction_factor`: bed area / wet area of each cell at a reference depth
+  (1 on a flat bed; the mean surface factor once the cell is wholly wet);
+- :func:`cell_median_of_faces`: the median over the window of a face quantity across
+  the faces of each cell (n ratio, stage bias with n carried over unchanged).
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+logger = logging.getLogger(__name__)
+
+NODATA = -9999.0
+BLOCK = 256
+PNG_DPI = 110
+PNG_METADATA: dict[str, Any] = {"Software": None}
+"""Fixed PNG metadata: no software version and no time stamp, so reruns are identical."""
+
+
+# ------------------------------------------------------------------ per-cell summaries
+
+
+def cell_friction_factor(
+    cell_stage: pd.DataFrame,
+    *,
+    reference_index: int,
+    id_column: str = "cell_id",
+) -> pd.Series:
+    """Terrain friction factor per cell: wetted bed area / wet plan area at one stage.
+
+    Parameters
+    ----------
+    cell_stage
+        Rows per cell and stage with columns ``id_column, stage, wet_area, bed_area``
+        (areas in horizontal units squared).
+    reference_index
+        Position of the reference stage in each cell's sorted stages (0-based; negative
+        counts from the top, as in Python).  With a depth window the k-th stage of every
+        cell is its low point plus the k-th depth.
+
+    Returns
+    -------
+    pandas.Series
+        Dimensionless factor >= 1 indexed by cell id; NaN where the cell is dry there.
+    """
+    frame = cell_stage[[id_column, "stage", "wet_area", "bed_area"]].sort_values(
+        [id_column, "stage"], kind="mergesort"
+    )
+    rank = frame.groupby(id_column, sort=False).cumcount().to_numpy()
+    count = frame.groupby(id_column, sort=False)[id_column].transform("size").to_numpy()
+    want = np.where(reference_index < 0, count + reference_index, reference_index)
+    picked = frame[rank == want]
+    wet = picked["wet_area"].to_numpy(dtype=float)
+    bed = picked["bed_area"].to_numpy(dtype=float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        factor = np.where(wet > 0, bed / wet, np.nan)
+    ids = frame[id_column].drop_duplicates().to_numpy()
+    return pd.Series(factor, index=picked[id_column].to_numpy(), name="friction_factor").reindex(ids)
+
+
+def cell_median_of_faces(
+    face_values: pd.DataFrame,
+    faces: pd.DataFrame,
+    *,
+    value: str,
+    face_id: str = "face_id",
+) -> pd.Series:
+    """Median of a face quantity over the window, across every face of each cell.
+
+    Parameters
+    ----------
+    face_values
+        Rows per face and stage with columns ``face_id`` and ``value`` (NaN ignored).
+    faces
+        One row per face with ``face_id, cell_a, cell_b`` (``cell_b`` NaN / empty on the
+        boundary); a face counts for both of its cells.
+
+    Returns
+    -------
+    pandas.Series
+        Median per cell id (NaN for cells none of whose faces has a value).
+    """
+    link = faces[[face_id, "cell_a", "cell_b"]]
+    long = pd.concat(
+        [
+            link[[face_id, "cell_a"]].rename(columns={"cell_a": "cell"}),
+            link[[face_id, "cell_b"]].rename(columns={"cell_b": "cell"}),
+        ],
+        ignore_index=True,
+    )
+    long = long[long["cell"].notna()]
+    vals = face_values[[face_id, value]]
+    vals = vals[np.isfinite(vals[value].to_numpy(dtype=float))]
+    merged = long.merge(vals, on=face_id, how="inner")
+    return merged.groupby("cell", sort=True)[value].median().rename(value)
+
+
+def face_median(face_values: pd.DataFrame, *, value: str, face_id: str = "face_id") -> pd.Series:
+    """Median of a face quantity over the window, per face (NaN ignored)."""
+    vals = face_values[[face_id, value]]
+    return vals.groupby(face_id, sort=True)[value].median()
+
+
+# ------------------------------------------------------------------- painting on a grid
+
+
+def cell_index_grid(geometries: Sequence[Any] | np.ndarray, *, transform: Any, shape: tuple[int, int]) -> np.ndarray:
+    """Index (0..n-1) of the cell whose polygon holds each pixel centre; -1 elsewhere."""
+    from rasterio import features
+
+    geoms = list(geometries)
+    if not geoms:
+        return np.full(shape, -1, dtype=np.int32)
+    shapes = ((g, i + 1) for i, g in enumerate(geoms) if g is not None and not g.is_empty)
+    burnt = features.rasterize(
+        shapes, out_shape=shape, transform=transform, fill=0, dtype="int32", all_touched=False
+    )
+    return burnt.astype(np.int32) - 1
+
+
+def paint(index_grid: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """Per-cell ``values`` on the pixels of each cell (float32, NaN outside or unknown)."""
+    vals = np.append(np.asarray(values, dtype=np.float32), np.float32(np.nan))
+    return vals[np.where(index_grid >= 0, index_grid, vals.size - 1)]
+
+
+def write_geotiff(
+    path: str | os.PathLike[str],
+    array: np.ndarray,
+    *,
+    transform: Any,
+    crs: Any,
+    description: str = "",
+    units: str = "",
+) -> Path:
+    """Write one float32 band on the given grid: DEFLATE, tiled 256, nodata :data:`NODATA`.
+
+    NaN becomes the nodata value.  No time stamp is written.
+    """
+    import rasterio
+
+    data = np.asarray(array, dtype=np.float32)
+    data = np.where(np.isfinite(data), data, np.float32(NODATA)).astype(np.float32)
+    profile = {
+        "driver": "GTiff",
+        "width": data.shape[1],
+        "height": data.shape[0],
+        "count": 1,
+        "dtype": "float32",
+        "crs": crs,
+        "transform": transform,
+        "nodata": NODATA,
+        "tiled": True,
+        "blockxsize": BLOCK,
+        "blockysize": BLOCK,
+        "compress": "deflate",
+        "predictor": 3,
+    }
+    p = Path(path)
+    p.parent.mkdir(parents=True, exist_ok=True)
+    with rasterio.open(p, "w", **profile) as dst:
+        dst.write(data, 1)
+        if description:
+            dst.set_band_description(1, description)
+        if units:
+            dst.set_band_unit(1, units)
+    return p
+
+
+def write_face_layer(path: str | os.PathLike[str], faces: Any, values: pd.DataFrame, *, face_id: str = "face_id") -> Path:
+    """Write ``faces`` (a GeoDataFrame of lines with ``face_id``) joined to ``values``.
+
+    ``values`` is indexed by face id; its columns become attributes.
+    """
+    p = Path(path)
+    p.parent.mkdir(parents=True, exist_ok=True)
+    keep = [c for c in (face_id, "cell_a", "cell_b", "length") if c in faces.columns]
+    layer = faces[[*keep, "geometry"]].merge(values, left_on=face_id, right_index=True, how="left")
+    layer = layer.sort_values(face_id, kind="mergesort").reset_index(drop=True)
+    if p.exists():
+        p.unlink()
+    layer.to_file(p, layer="faces", driver="GPKG")
+    return p
+
+
+# --------------------------------------------------------------------------- quick-looks
+
+
+def hillshade(elevation: np.ndarray, *, dx: float, dy: float, azimuth: float = 315.0, altitude: float = 45.0) -> np.ndarray:
+    """Hillshade in [0, 1] (NaN where elevation is NaN), light from ``azimuth`` degrees.
+
+    Gradients from central differences; the sun's elevation is ``altitude`` degrees.
+    """
+    z = np.asarray(elevation, dtype=float)
+    if z.shape[0] < 2 or z.shape[1] < 2:
+        return np.where(np.isfinite(z), 0.5, np.nan)
+    fill = np.nanmean(z) if np.isfinite(z).any() else 0.0
+    zf = np.where(np.isfinite(z), z, fill)
+    gy, gx = np.gradient(zf, dy, dx)
+    slope = np.arctan(np.hypot(gx, gy))
+    aspect = np.arctan2(-gx, gy)  # rows go south, so +gy means rising southwards
+    az = np.radians(360.0 - azimuth + 90.0)
+    alt = np.radians(altitude)
+    shade = np.sin(alt) * np.cos(slope) + np.cos(alt) * np.sin(slope) * np.cos(az - aspect)
+    shade = np.clip(shade, 0.0, 1.0)
+    return np.where(np.isfinite(z), shade, np.nan)
+
+
+def _nice_length(span: float) -> float:
+    """A round length near a fifth of ``span`` (1, 2 or 5 times a power of ten)."""
+    if not span > 0:
+        return 1.0
+    target = span / 5.0
+    power = 10.0 ** np.floor(np.log10(target))
+    for step in (5.0, 2.0, 1.0):
+        if step * power <= target:
+            return float(step * power)
+    return float(power)
+
+
+def quicklook_png(
+    path: str | os.PathLike[str],
+    values: np.ndarray,
+    *,
+    elevation: np.ndarray,
+    transform: Any,
+    title: str,
+    label: str,
+    length_unit: str = "m",
+    diverging: bool = False,
+    vmin: float | None = None,
+    vmax: float | None = None,
+) -> Path:
+    """PNG quick-look: ``values`` over a hillshade, colour bar, scale bar, north arrow.
+
+    Parameters
+    ----------
+    values, elevation
+        Arrays on the same grid (NaN = no value / nodata).
+    transform
+        The grid's affine transform (north-up), for extent and scale bar.
+    title, label
+        Figure title; colour-bar label with units.
+    diverging
+        Centre the palette (``PuOr``) on zero, for signed quantities; otherwise ``cividis``.
+    """
+    import matplotlib
+
+    matplotlib.use("Agg", force=False)
+    import matplotlib.pyplot as plt
+    from matplotlib.colors import Normalize, TwoSlopeNorm
+
+    vals = np.asarray(values, dtype=float)
+    rows, cols = vals.shape
+    a, e = transform.a, transform.e
+    left, top = transform.c, transform.f
+    right, bottom = left + a * cols, top + e * rows
+    extent = (left, right, bottom, top)
+    shade = hillshade(elevation, dx=abs(a), dy=abs(e))
+
+    finite = vals[np.isfinite(vals)]
+    if diverging:
+        bound = float(np.nanmax(np.abs(finite))) if finite.size else 1.0
+        bound = bound if bound > 0 else 1.0
+        norm: Normalize = TwoSlopeNorm(vcenter=0.0, vmin=-bound if vmin is None else vmin,
+                                       vmax=bound if vmax is None else vmax)
+        cmap = "PuOr"
+    else:
+        lo = float(np.nanpercentile(finite, 2)) if finite.size else 0.0
+        hi = float(np.nanpercentile(finite, 98)) if finite.size else 1.0
+        if not hi > lo:
+            lo, hi = lo - 0.5 * abs(lo or 1.0) * 0.01 - 1e-6, hi + 0.5 * abs(hi or 1.0) * 0.01 + 1e-6
+        norm = Normalize(vmin=lo if vmin is None else vmin, vmax=hi if vmax is None else vmax)
+        cmap = "cividis"
+
+    fig, ax = plt.subplots(figsize=(7.0, 5.6), dpi=PNG_DPI, layout="constrained")
+    ax.imshow(shade, cmap="gray", extent=extent, vmin=0, vmax=1, interpolation="nearest")
+    image = ax.imshow(
+        np.ma.masked_invalid(vals), cmap=cmap, norm=norm, extent=extent, alpha=0.75,
+        interpolation="nearest",
+    )
+    bar = fig.colorbar(image, ax=ax, shrink=0.85)
+    bar.set_label(label)
+    ax.set_title(title)
+    ax.set_xlabel(f"easting ({length_unit})")
+    ax.set_ylabel(f"northing ({length_unit})")
+    ax.ticklabel_format(useOffset=False, style="plain")
+    ax.tick_params(labelsize=7)
+
+    # scale bar, lower left
+    width = right - left
+    height = top - bottom
+    length = _nice_length(width)
+    x0 = left + 0.05 * width
+    y0 = bottom + 0.06 * height
+    ax.plot([x0, x0 + length], [y0, y0], color="black", linewidth=4, solid_capstyle="butt")
+    ax.plot([x0, x0 + length], [y0, y0], color="white", linewidth=2, solid_capstyle="butt")
+    ax.text(x0 + length / 2, y0 + 0.02 * height, f"{length:g} {length_unit}", ha="center",
+            va="bottom", fontsize=8, color="black",
+            bbox={"facecolor": "white", "alpha": 0.7, "edgecolor": "none", "pad": 1})
+
+    # north arrow, upper right (the grid is north-up)
+    ax.annotate("N", xy=(0.93, 0.95), xytext=(0.93, 0.82), xycoords="axes fraction",
+                ha="center", va="center", fontsize=10, fontweight="bold",
+                arrowprops={"arrowstyle": "-|>", "color": "black", "linewidth": 1.5},
+                bbox={"facecolor": "white", "alpha": 0.7, "edgecolor": "none", "pad": 1})
+    ax.set_xlim(left, right)
+    ax.set_ylim(bottom, top)
+
+    p = Path(path)
+    p.parent.mkdir(parents=True, exist_ok=True)
+    fig.savefig(p, format="png", metadata=PNG_METADATA)
+    plt.close(fig)
+    return p
+
+
+# ------------------------------------------------------------------------- orchestration
+
+#: name -> (title, colour-bar label template, diverging, description)
+MAP_SPECS: dict[str, tuple[str, str, bool, str]] = {
+    "friction_factor": (
+        "Where the terrain adds wetted bed (bed area / wet area)",
+        "bed area / wet area (-)",
+        False,
+        "Wetted bed area over wet plan area per cell at the reference depth (dimensionless)",
+    ),
+    "n_ratio": (
+        "Change of Manning's n needed per cell (target / source)",
+        "n ratio, median of the cell's faces (-)",
+        False,
+        "n_target / n_source, median over the window of the cell's faces (dimensionless)",
+    ),
+    "stage_bias": (
+        "Stage error if n is carried over unchanged",
+        "stage bias ({unit})",
+        True,
+        "Target minus source stage with n carried over unchanged, median of the cell's faces",
+    ),
+}
+
+
+def write_maps(
+    folder: str | os.PathLike[str],
+    *,
+    cell_values: pd.DataFrame,
+    cell_geometry: Sequence[Any] | np.ndarray,
+    elevation: np.ndarray,
+    transform: Any,
+    crs: Any,
+    length_unit: str = "m",
+    vertical_unit: str = "m",
+    faces: Any = None,
+    face_values: pd.DataFrame | None = None,
+    quicklooks: bool = True,
+) -> dict[str, Path]:
+    """Write the GeoTIFF maps, the PNG quick-looks and the face layer into ``folder``.
+
+    Parameters
+    ----------
+    cell_values
+        One row per cell, in the order of ``cell_geometry``, with any of the columns of
+        :data:`MAP_SPECS` (``friction_factor``, ``n_ratio``, ``stage_bias``).
+    cell_geometry
+        Cell polygons in the DEM's CRS.
+    elevation, transform, crs
+        The DEM (NaN for nodata) and its grid; every raster is written on this grid.
+    faces, face_values
+        Optional face lines (GeoDataFrame with ``face_id``) and per-face values
+        (indexed by face id) for ``faces.gpkg``.
+    quicklooks
+        Also draw the PNG quick-looks.
+
+    Returns
+    -------
+    dict
+        Name -> path of every PNG (for the report), plus ``"faces"`` when written.
+    """
+    out = Path(folder)
+    out.mkdir(parents=True, exist_ok=True)
+    shape = elevation.shape
+    index = cell_index_grid(cell_geometry, transform=transform, shape=shape)
+    written: dict[str, Path] = {}
+    for name, (title, label, diverging, description) in MAP_SPECS.items():
+        if name not in cell_values.columns:
+            continue
+        unit_label = label.format(unit=vertical_unit)
+        units = vertical_unit if name == "stage_bias" else "1"
+        grid = paint(index, cell_values[name].to_numpy(dtype=float))
+        write_geotiff(out / f"{name}.tif", grid, transform=transform, crs=crs,
+                      description=description, units=units)
+        if not quicklooks:
+            continue
+        written[name] = quicklook_png(
+            out / f"{name}.png", grid, elevation=elevation, transform=transform,
+            title=title, label=unit_label, length_unit=length_unit, diverging=diverging,
+        )
+    if faces is not None and face_values is not None:
+        written["faces"] = write_face_layer(out / "faces.gpkg", faces, face_values)
+    return written

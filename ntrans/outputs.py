@@ -1,0 +1,537 @@
+"""The output edge: an atomic output folder and the Parquet / CSV / GeoPackage writers.
+
+- :class:`OutputFolder` -- write into a hidden temporary sibling folder, move it into
+  place only when everything succeeded; nothing half-written ever sits at the target.
+- :class:`TableWriter` -- stream a Parquet table chunk by chunk, with column units and
+  descriptions in the file's key-value metadata.
+- :func:`write_csv`, :func:`write_geopackage` -- the same tables as CSV, geometry as GPKG.
+- :func:`column_units`, :func:`column_descriptions` -- units and meanings of the contract
+  columns (DESIGN.md section 4) for a DEM's units.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import os
+import secrets
+import shutil
+from collections.abc import Iterable, Mapping
+from pathlib import Path
+from types import TracebackType
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+
+from .errors import OutputError, OutputExistsError
+from .inputs import check_output_not_input
+
+logger = logging.getLogger(__name__)
+
+UNITS_KEY = "ntrans:units"
+DESCRIPTION_KEY = "ntrans:description"
+
+
+# --------------------------------------------------------------------------- folder
+
+
+class OutputFolder:
+    """Context manager giving an all-or-nothing output folder.
+
+    On enter the target is checked (exists without ``overwrite`` ->
+    :class:`OutputExistsError`; would replace an input -> :class:`OutputError`) and a
+    hidden sibling ``.<name>.tmp-<random>`` is created: write everything into
+    :attr:`path`.  On a clean exit the temporary folder is renamed to :attr:`final`
+    (an existing target is first moved aside and deleted after the rename).  On any
+    exception, KeyboardInterrupt included, the temporary folder is deleted, an existing
+    target is left untouched and the exception propagates.
+
+    >>> with OutputFolder("out", overwrite=True) as folder:  # doctest: +SKIP
+    ...     (folder.path / "a.txt").write_text("x")
+    """
+
+    def __init__(
+        self,
+        out_dir: str | os.PathLike[str],
+        *,
+        overwrite: bool = False,
+        inputs: Iterable[str | os.PathLike[str] | None] = (),
+    ) -> None:
+        self.final = Path(os.fspath(out_dir)).expanduser().absolute()
+        self.overwrite = bool(overwrite)
+        self.inputs = list(inputs)
+        self._tmp: Path | None = None
+
+    @property
+    def path(self) -> Path:
+        """The temporary folder to write into (valid inside the ``with`` block)."""
+        if self._tmp is None:
+            raise RuntimeError("OutputFolder.path is only available inside the with block")
+        return self._tmp
+
+    def _check_target(self) -> None:
+        final = self.final
+        if final.exists() or final.is_symlink():
+            if not self.overwrite:
+                raise OutputExistsError(
+                    f"output folder '{final}' exists; pass --overwrite to replace it or choose "
+                    "another folder"
+                )
+            if not final.is_dir():
+                raise OutputError(
+                    f"output path '{final}' is a file, not a folder; choose another output folder"
+                )
+            resolved = final.resolve()
+            protected = {Path(resolved.anchor), Path.home().resolve()}
+            cwd = Path.cwd().resolve()
+            if resolved in protected or resolved == cwd or resolved in cwd.parents:
+                raise OutputError(
+                    f"output folder '{final}' is the current, home or root folder (or holds "
+                    "it) and will not be replaced; choose a dedicated output folder"
+                )
+        check_output_not_input(final, self.inputs)
+
+    def __enter__(self) -> OutputFolder:
+        self._check_target()
+        parent = self.final.parent
+        try:
+            parent.mkdir(parents=True, exist_ok=True)
+            tmp = parent / f".{self.final.name}.tmp-{secrets.token_hex(4)}"
+            tmp.mkdir()
+        except OSError as exc:
+            raise OutputError(
+                f"output folder '{self.final}' cannot be created ({exc.strerror or exc}); "
+                "check the path and permissions"
+            ) from exc
+        self._tmp = tmp
+        logger.debug("writing outputs into temporary folder %s", tmp)
+        return self
+
+    def __exit__(
+        self,
+        exc_type: type[BaseException] | None,
+        exc: BaseException | None,
+        tb: TracebackType | None,
+    ) -> bool:
+        tmp = self._tmp
+        self._tmp = None
+        if tmp is None:
+            return False
+        if exc_type is not None:
+            shutil.rmtree(tmp, ignore_errors=True)
+            logger.debug("removed temporary folder %s after an error", tmp)
+            return False
+        try:
+            self._commit(tmp)
+        except BaseException:
+            shutil.rmtree(tmp, ignore_errors=True)
+            raise
+        return False
+
+    def _commit(self, tmp: Path) -> None:
+        final = self.final
+        old: Path | None = None
+        if final.exists() or final.is_symlink():
+            if not self.overwrite:  # appeared while we were working
+                raise OutputExistsError(
+                    f"output folder '{final}' appeared while writing; pass --overwrite to replace "
+                    "it or choose another folder"
+                )
+            old = final.parent / f".{final.name}.old-{secrets.token_hex(4)}"
+            try:
+                os.replace(final, old)
+            except OSError as exc:
+                raise OutputError(
+                    f"output folder '{final}' cannot be replaced ({exc.strerror or exc}); close "
+                    "programs using it or choose another folder"
+                ) from exc
+        try:
+            os.replace(tmp, final)
+        except OSError as exc:
+            if old is not None:
+                os.replace(old, final)  # put the previous results back
+            raise OutputError(
+                f"output folder '{final}' cannot be written ({exc.strerror or exc}); check "
+                "permissions and free space"
+            ) from exc
+        if old is not None:
+            shutil.rmtree(old, ignore_errors=True)
+        logger.info("outputs written to %s", final)
+
+
+# --------------------------------------------------------------------------- Parquet
+
+
+SchemaLike = pa.Schema | Mapping[str, pa.DataType | str]
+
+
+def _as_schema(schema: SchemaLike) -> pa.Schema:
+    if isinstance(schema, pa.Schema):
+        return schema
+    fields = []
+    for name, kind in schema.items():
+        dtype = kind if isinstance(kind, pa.DataType) else pa.type_for_alias(str(kind))
+        fields.append(pa.field(name, dtype))
+    return pa.schema(fields)
+
+
+def _to_table(chunk: Any) -> pa.Table:
+    """A pyarrow Table from a dict of arrays, a pandas DataFrame or a Table."""
+    if isinstance(chunk, pa.Table):
+        return chunk
+    if isinstance(chunk, pa.RecordBatch):
+        return pa.Table.from_batches([chunk])
+    if isinstance(chunk, Mapping):
+        arrays = {}
+        for name, values in chunk.items():
+            arr = values if isinstance(values, pa.Array | pa.ChunkedArray) else np.asarray(values)
+            if isinstance(arr, np.ndarray):
+                if arr.ndim != 1:
+                    raise ValueError(f"column {name!r} must be one-dimensional")
+                if arr.dtype.kind == "O":
+                    arr = pa.array(arr.tolist(), from_pandas=True)
+                else:
+                    arr = pa.array(arr)
+            arrays[str(name)] = arr
+        return pa.table(arrays)
+    import pandas as pd
+
+    if isinstance(chunk, pd.DataFrame):
+        geometry_name = getattr(chunk, "_geometry_column_name", None)
+        if geometry_name is not None and geometry_name in chunk.columns:
+            chunk = pd.DataFrame(chunk.drop(columns=geometry_name))
+        return pa.Table.from_pandas(chunk, preserve_index=False)
+    raise TypeError(f"cannot write a chunk of type {type(chunk).__name__}")
+
+
+def _stable_type(dtype: pa.DataType) -> pa.DataType:
+    """Normalise inferred types so that later chunks cast cleanly."""
+    if pa.types.is_large_string(dtype) or pa.types.is_string_view(dtype):
+        return pa.string()
+    if pa.types.is_dictionary(dtype):
+        return _stable_type(dtype.value_type)
+    if pa.types.is_integer(dtype):
+        return pa.int64()
+    if pa.types.is_floating(dtype):
+        return pa.float64()
+    return dtype
+
+
+class TableWriter:
+    """Stream a Parquet table chunk by chunk, with units and descriptions as metadata.
+
+    Parameters
+    ----------
+    path : path-like
+        The ``.parquet`` file to write (normally inside :attr:`OutputFolder.path`).
+    schema : pyarrow.Schema or dict of column -> type, optional
+        The columns and types.  Without it the first chunk decides (integers -> int64,
+        floats -> float64, text -> string); a column that is all null in the first chunk
+        must then be declared.  Give it always when the table may end up empty.
+    units, descriptions : dict of column -> str, optional
+        Stored as JSON under the metadata keys ``ntrans:units`` and
+        ``ntrans:description`` (only entries for columns of the table are kept).
+    metadata : dict of str -> str, optional
+        Further key-value metadata (non-str values are JSON-encoded).
+    row_group_rows : int
+        Chunks are buffered until this many rows, then written as one row group.
+    compression : str
+        Parquet compression codec.
+
+    Chunks are a dict of column -> 1-D array, a pandas DataFrame or a pyarrow Table; the
+    column set must match the schema (order may differ).  Cell ids may be int64 or string;
+    nullable columns (``cell_b``) take None / pandas NA.
+
+    >>> with TableWriter(p, units={"stage": "m"}) as w:  # doctest: +SKIP
+    ...     w.write({"cell_id": np.arange(3), "stage": np.zeros(3)})
+    """
+
+    def __init__(
+        self,
+        path: str | os.PathLike[str],
+        *,
+        schema: SchemaLike | None = None,
+        units: Mapping[str, str] | None = None,
+        descriptions: Mapping[str, str] | None = None,
+        metadata: Mapping[str, Any] | None = None,
+        row_group_rows: int = 65_536,
+        compression: str = "zstd",
+    ) -> None:
+        self.path = Path(os.fspath(path))
+        self.schema: pa.Schema | None = None
+        self._units = dict(units or {})
+        self._descriptions = dict(descriptions or {})
+        self._extra = dict(metadata or {})
+        self._row_group_rows = int(row_group_rows)
+        self._compression = compression
+        self._writer: pq.ParquetWriter | None = None
+        self._buffer: list[pa.Table] = []
+        self._buffered = 0
+        self.rows_written = 0
+        self.closed = False
+        if schema is not None:
+            self.schema = self._with_metadata(_as_schema(schema))
+
+    def _with_metadata(self, schema: pa.Schema) -> pa.Schema:
+        names = set(schema.names)
+        meta: dict[str, str] = {
+            UNITS_KEY: json.dumps({k: v for k, v in self._units.items() if k in names}),
+            DESCRIPTION_KEY: json.dumps(
+                {k: v for k, v in self._descriptions.items() if k in names}
+            ),
+        }
+        for key, value in self._extra.items():
+            meta[str(key)] = value if isinstance(value, str) else json.dumps(value)
+        return schema.remove_metadata().with_metadata(meta)
+
+    def _infer_schema(self, table: pa.Table) -> pa.Schema:
+        fields = []
+        for field in table.schema:
+            if pa.types.is_null(field.type):
+                raise ValueError(
+                    f"column {field.name!r} is all null in the first chunk; declare its type "
+                    "with TableWriter(schema=...)"
+                )
+            fields.append(pa.field(field.name, _stable_type(field.type)))
+        return self._with_metadata(pa.schema(fields))
+
+    def write(self, chunk: Any) -> None:
+        """Append one chunk (dict of arrays, DataFrame or Table) of rows."""
+        if self.closed:
+            raise ValueError("TableWriter is closed")
+        table = _to_table(chunk)
+        if self.schema is None:
+            self.schema = self._infer_schema(table)
+        names = self.schema.names
+        if set(table.column_names) != set(names):
+            missing = sorted(set(names) - set(table.column_names))
+            extra = sorted(set(table.column_names) - set(names))
+            raise ValueError(f"chunk columns differ from the table's: missing {missing}, extra {extra}")
+        table = table.select(names).cast(self.schema.remove_metadata())
+        if table.num_rows == 0:
+            return
+        self._buffer.append(table)
+        self._buffered += table.num_rows
+        if self._buffered >= self._row_group_rows:
+            self._flush()
+
+    def _open(self) -> pq.ParquetWriter:
+        if self._writer is None:
+            assert self.schema is not None
+            try:
+                self._writer = pq.ParquetWriter(
+                    self.path, self.schema, compression=self._compression
+                )
+            except OSError as exc:
+                raise OutputError(
+                    f"table '{self.path}' cannot be written ({exc}); check the output folder"
+                ) from exc
+        return self._writer
+
+    def _flush(self) -> None:
+        if not self._buffer:
+            return
+        table = pa.concat_tables(self._buffer).combine_chunks()
+        self._buffer, self._buffered = [], 0
+        writer = self._open()
+        writer.write_table(table.replace_schema_metadata(self.schema.metadata),
+                           row_group_size=max(self._row_group_rows, table.num_rows))
+        self.rows_written += table.num_rows
+
+    def close(self) -> Path:
+        """Write what is buffered and finish the file; returns its path."""
+        if self.closed:
+            return self.path
+        if self.schema is None:
+            raise ValueError(
+                "TableWriter got no chunk and no schema; pass schema= to write an empty table"
+            )
+        self._flush()
+        writer = self._open()  # an empty table still gets its schema and metadata
+        writer.close()
+        self.closed = True
+        logger.debug("wrote %d rows to %s", self.rows_written, self.path)
+        return self.path
+
+    def abort(self) -> None:
+        """Close without finishing normally (used on errors); the file may be partial."""
+        if self._writer is not None:
+            self._writer.close()
+        self.closed = True
+
+    def __enter__(self) -> TableWriter:
+        return self
+
+    def __exit__(
+        self,
+        exc_type: type[BaseException] | None,
+        exc: BaseException | None,
+        tb: TracebackType | None,
+    ) -> bool:
+        if exc_type is None:
+            self.close()
+        else:
+            self.abort()
+        return False
+
+
+def read_table_metadata(path: str | os.PathLike[str]) -> dict[str, Any]:
+    """``{"units": {...}, "description": {...}, other keys: str}`` from a Parquet file."""
+    meta = pq.read_schema(os.fspath(path)).metadata or {}
+    out: dict[str, Any] = {}
+    for key, value in meta.items():
+        k, v = key.decode(), value.decode()
+        if k == UNITS_KEY:
+            out["units"] = json.loads(v)
+        elif k == DESCRIPTION_KEY:
+            out["description"] = json.loads(v)
+        else:
+            out[k] = v
+    return out
+
+
+# --------------------------------------------------------------------------- CSV / GPKG
+
+
+def write_csv(parquet_path: str | os.PathLike[str], csv_path: str | os.PathLike[str]) -> Path:
+    """Copy a Parquet table to CSV, one row group at a time (bounded memory).
+
+    Nulls become empty fields; floats are written with enough digits to round-trip.
+    """
+    source = pq.ParquetFile(os.fspath(parquet_path))
+    schema = source.schema_arrow.remove_metadata()
+    target = Path(os.fspath(csv_path))
+    options = pacsv.WriteOptions(include_header=True, quoting_style="needed")
+    with pacsv.CSVWriter(os.fspath(target), schema, write_options=options) as writer:
+        for i in range(source.num_row_groups):
+            writer.write_table(source.read_row_group(i).replace_schema_metadata(None))
+    return target
+
+
+def write_geopackage(frame: Any, path: str | os.PathLike[str], layer: str) -> Path:
+    """Write a GeoDataFrame as one layer of a GeoPackage (created or appended to)."""
+    target = Path(os.fspath(path))
+    try:
+        frame.to_file(target, layer=layer, driver="GPKG", engine="pyogrio")
+    except Exception as exc:  # pyogrio / GDAL errors
+        raise OutputError(f"GeoPackage '{target}' layer '{layer}' cannot be written ({exc})") from exc
+    return target
+
+
+# --------------------------------------------------------------------------- units
+
+
+_SYMBOL = {"metre": "m", "meter": "m", "m": "m", "foot": "ft", "feet": "ft", "ft": "ft"}
+
+
+def unit_symbol(unit: str) -> str:
+    """``"m"`` or ``"ft"`` for a unit name (metre/foot and their aliases)."""
+    try:
+        return _SYMBOL[str(unit).lower()]
+    except KeyError:
+        raise ValueError(f"unit {unit!r} is not metre or foot") from None
+
+
+#: Manning's n is reported as the SI value; k = 1.486 carries US customary units.
+N_UNIT = "s/m^(1/3)"
+
+
+def column_units(horizontal_unit: str, vertical_unit: str | None = None) -> dict[str, str]:
+    """Unit string per contract column for a DEM's units (DESIGN.md section 4).
+
+    ``L`` is the horizontal unit, ``Z`` the vertical one: stage and depths in ``Z``;
+    plan and bed areas in ``L2``; volume ``L2*Z`` (``m3`` when equal); flow area ``L*Z``;
+    lengths, perimeters and widths in ``L`` (perimeters are measured with elevations
+    converted to ``L``); hydraulic radius ``Z``; conveyance at n = 1 in ``L3/s``
+    (depths converted to ``L``); ratios and fractions ``1``; ids and flags ``""``.
+
+    >>> column_units("metre")["volume"]
+    'm3'
+    >>> column_units("foot", "metre")["volume"]
+    'ft2*m'
+    """
+    L = unit_symbol(horizontal_unit)
+    Z = unit_symbol(vertical_unit) if vertical_unit is not None else L
+    area = f"{L}2"
+    volume = f"{L}3" if Z == L else f"{L}2*{Z}"
+    flow_area = f"{L}2" if Z == L else f"{L}*{Z}"
+    conveyance = f"{L}3/s"
+    return {
+        # ids
+        "cell_id": "", "face_id": "", "cell_a": "", "cell_b": "", "class": "",
+        # cell stage table
+        "stage": Z, "depth": Z, "wet_area": area, "volume": volume, "bed_area": area,
+        "hydraulic_radius": Z, "mean_depth": Z, "flat_elevation": Z, "flat_depth": Z,
+        "flat_wet_area": area, "flat_volume": volume, "flat_hydraulic_radius": Z,
+        # cell / face summaries
+        "area": area, "covered_area": area, "covered_fraction": "1",
+        "z_min": Z, "z_max": Z, "z_mean": Z, "z_median": Z,
+        "low_point": Z, "high_point": Z, "mean_elevation": Z, "flat_bed": Z,
+        # face stage table
+        "length": L, "flow_area": flow_area, "wetted_perimeter": L, "top_width": L,
+        # adjust outputs
+        "n_source": N_UNIT, "n_target": N_UNIT, "n": N_UNIT, "ratio": "1",
+        "ratio_p10": "1", "ratio_p50": "1", "ratio_p90": "1", "faces": "count",
+        "weight_share": "1", "flags": "", "n_ratio": "1",
+        "conveyance_source": conveyance, "conveyance_target": conveyance, "conveyance": conveyance,
+        "stage_bias_unadjusted": Z, "stage_bias_adjusted": Z,
+    }
+
+
+_DESCRIPTIONS: dict[str, str] = {
+    "cell_id": "cell id as given in the cells layer",
+    "face_id": "face id (0..n-1, sorted by cell pair then position)",
+    "cell_a": "id of the first cell beside the face",
+    "cell_b": "id of the second cell beside the face; empty for a boundary face",
+    "class": "roughness class",
+    "stage": "water-surface elevation",
+    "depth": "depth above the item's lowest terrain",
+    "wet_area": "plan area of terrain below the stage (subgrid)",
+    "volume": "water volume above the terrain (subgrid)",
+    "bed_area": "3-D area of submerged terrain (subgrid, Horn slope factor)",
+    "hydraulic_radius": "hydraulic radius: volume/bed_area for cells, flow_area/wetted_perimeter for faces",
+    "mean_depth": "volume / wet_area",
+    "flat_elevation": "bed elevation of the flat cell (elevation rule)",
+    "flat_depth": "stage minus flat_elevation, zero when dry",
+    "flat_wet_area": "cell area when the flat cell is wet",
+    "flat_volume": "cell area times flat_depth",
+    "flat_hydraulic_radius": "hydraulic radius of the flat cell (= flat_depth)",
+    "area": "plan area",
+    "covered_area": "plan area over valid DEM pixels",
+    "covered_fraction": "share of the item over valid DEM pixels",
+    "z_min": "lowest terrain elevation", "z_max": "highest terrain elevation",
+    "z_mean": "area-weighted mean terrain elevation",
+    "z_median": "area-weighted median terrain elevation",
+    "low_point": "lowest point of the face profile",
+    "high_point": "highest point of the face profile",
+    "mean_elevation": "length-weighted mean elevation of the face profile",
+    "flat_bed": "bed elevation of the flat face (face rule)",
+    "length": "face length in plan",
+    "flow_area": "area of the face cross-section below the stage",
+    "wetted_perimeter": "length of submerged profile",
+    "top_width": "wet length along the face",
+    "n_source": "Manning's n of the source model",
+    "n_target": "fitted Manning's n for the target model",
+    "n": "Manning's n",
+    "ratio": "n_target / n_source",
+    "ratio_p10": "10th percentile of per-face n ratios",
+    "ratio_p50": "median of per-face n ratios",
+    "ratio_p90": "90th percentile of per-face n ratios",
+    "faces": "number of faces in the fit",
+    "weight_share": "share of the total conveyance weight",
+    "flags": "warnings about the fit, separated by ';'",
+    "n_ratio": "n ratio target/source at equal conveyance; NaN where one family is dry",
+    "conveyance_source": "conveyance of the source family at n = 1",
+    "conveyance_target": "conveyance of the target family at n = 1",
+    "conveyance": "conveyance at n = 1",
+    "stage_bias_unadjusted": "target stage minus source stage with n carried over unchanged",
+    "stage_bias_adjusted": "target stage minus source stage with the fitted n",
+}
+
+
+def column_descriptions() -> dict[str, str]:
+    """Short description per contract column (same keys as :func:`column_units`)."""
+    return dict(_DESCRIPTIONS)

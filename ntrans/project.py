@@ -1,0 +1,929 @@
+"""Project files: the whole job (tables, adjustment, maps, plots, report, bundle) in one run.
+
+A project file is TOML.  Its keys are the keyword names of the Python API
+(:func:`ntrans.build_tables`, :func:`ntrans.adjust_roughness`), grouped in tables::
+
+    [inputs]    dem, cells, id_field, n, classes, class_field, n_table, n_field,
+                class_raster, default_class, water_surface, vertical_units, elevation_field
+    [families]  source, target, closure, source_closure, composite, elevation_rule, face_rule
+    [window]    depths | stages
+    [outputs]   out, csv, zip, overwrite
+    [run]       coverage, tile_size, workers, scheduler, face_spacing, snap_tolerance
+
+Paths are relative to the project file.  :func:`load_project` validates the file: an
+unknown key, a value of the wrong type or a value outside its choices raises
+:class:`~ntrans.errors.ProjectFileError` naming the key and what is allowed.
+
+:func:`run_project` writes one handover bundle folder (atomically: all or nothing)::
+
+    tables/           cell and face stage tables (build_tables)
+    adjust/           n per class, per-face adjustment (adjust_roughness)
+    maps/             GeoTIFF maps on the DEM grid, faces.gpkg, PNG quick-looks
+    plots/            PNG figures
+    report.html       self-contained report
+    n_by_class.csv    the answer, copied to the top
+    manifest.json     inputs, parameters, versions, outputs with SHA-256
+
+and, when ``zip = true``, ``<out>.zip`` beside the folder.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import inspect
+import logging
+import os
+import shutil
+import time
+import tomllib
+import warnings
+from collections.abc import Callable, Iterator, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from .errors import NtransWarning, OutputError, OutputExistsError, ProjectFileError
+
+logger = logging.getLogger(__name__)
+
+# ----------------------------------------------------------------------------- schema
+
+FAMILIES: tuple[str, ...] = ("flat", "subgrid")
+CLOSURES: tuple[str, ...] = ("lumped", "strip", "cell")
+OVERLAP_RULES: tuple[str, ...] = ("error", "first", "last", "max_n")
+COMPOSITES: tuple[str, ...] = ("horton_einstein", "pavlovskii", "lotter")
+ELEVATION_RULES: tuple[str, ...] = ("mean", "min", "median", "centroid", "field")
+FACE_RULES: tuple[str, ...] = ("higher", "mean", "min", "profile_mean")
+COVERAGE_MODES: tuple[str, ...] = ("exact", "centre")
+VERTICAL_UNITS: tuple[str, ...] = ("metre", "foot", "us_survey_foot")
+
+
+@dataclass(frozen=True)
+class Key:
+    """One project-file key: accepted TOML types, choices, whether it is a path."""
+
+    types: tuple[type, ...]
+    expected: str
+    choices: tuple[str, ...] | None = None
+    path: bool = False
+    positive: bool = False
+
+
+_STR = Key((str,), "a string")
+_PATH = Key((str,), "a path (string)", path=True)
+_PATHS = Key((str, list), "a path or a list of paths", path=True)
+_FLOAT_POS = Key((int, float), "a number", positive=True)
+_INT_POS = Key((int,), "an integer", positive=True)
+_BOOL = Key((bool,), "true or false")
+_SPEC = Key((str, int, float, list), "a SPEC string 'start:stop:step', a number or a list of numbers")
+
+
+def _choice(choices: tuple[str, ...]) -> Key:
+    return Key((str,), "a string", choices=choices)
+
+
+SCHEMA: dict[str, dict[str, Key]] = {
+    "inputs": {
+        "dem": _PATH,
+        "cells": _PATH,
+        "id_field": _STR,
+        "n": _FLOAT_POS,
+        "classes": _PATH,
+        "class_field": _STR,
+        "n_table": _PATH,
+        "n_field": _STR,
+        "class_raster": _PATH,
+        "default_class": Key((str, int), "a class name (string or integer)"),
+        "overlap_rule": _choice(OVERLAP_RULES),
+        "water_surface": _PATHS,
+        "vertical_units": _choice(VERTICAL_UNITS),
+        "elevation_field": _STR,
+    },
+    "families": {
+        "source": _choice(FAMILIES),
+        "target": _choice(FAMILIES),
+        "closure": _choice(CLOSURES),
+        "source_closure": _choice(CLOSURES),
+        "composite": _choice(COMPOSITES),
+        "elevation_rule": _choice(ELEVATION_RULES),
+        "face_rule": _choice(FACE_RULES),
+    },
+    "window": {
+        "depths": _SPEC,
+        "stages": _SPEC,
+    },
+    "outputs": {
+        "out": _PATH,
+        "csv": _BOOL,
+        "zip": _BOOL,
+        "overwrite": _BOOL,
+    },
+    "run": {
+        "coverage": _choice(COVERAGE_MODES),
+        "tile_size": _INT_POS,
+        "workers": _INT_POS,
+        "scheduler": _STR,
+        "face_spacing": _FLOAT_POS,
+        "snap_tolerance": Key((int, float), "a number"),
+    },
+}
+
+REQUIRED: dict[str, tuple[str, ...]] = {"inputs": ("dem", "cells")}
+
+_TOML_TYPE_NAMES = {
+    str: "a string",
+    int: "an integer",
+    float: "a number with a fraction",
+    bool: "a boolean",
+    list: "an array",
+    dict: "a table",
+}
+
+
+def _found_type(value: Any) -> str:
+    for kind, name in _TOML_TYPE_NAMES.items():
+        if type(value) is kind:
+            return name
+    return f"a {type(value).__name__}"
+
+
+# ------------------------------------------------------------------------ project file
+
+
+@dataclass(frozen=True)
+class Project:
+    """A validated project file: one dict per table, paths made absolute.
+
+    Attributes
+    ----------
+    path : the project file.
+    inputs, families, window, outputs, run : the keys given in each table (validated,
+        paths resolved against the project file's folder).
+    """
+
+    path: Path
+    inputs: dict[str, Any]
+    families: dict[str, Any]
+    window: dict[str, Any]
+    outputs: dict[str, Any]
+    run: dict[str, Any]
+
+    @property
+    def out(self) -> Path:
+        """The bundle folder (default: ``<project stem>-bundle`` beside the project file)."""
+        out = self.outputs.get("out")
+        return Path(out) if out else self.path.with_name(self.path.stem + "-bundle")
+
+    def parameters(self) -> dict[str, Any]:
+        """Every key of the project, grouped by table (paths as strings), for the manifest."""
+        return {
+            name: {k: _as_plain(v) for k, v in getattr(self, name).items()}
+            for name in SCHEMA
+        }
+
+    def options(self) -> dict[str, Any]:
+        """All keys of all tables in one flat dict (keyword name -> value)."""
+        flat: dict[str, Any] = {}
+        for name in SCHEMA:
+            flat.update(getattr(self, name))
+        return flat
+
+
+def _as_plain(value: Any) -> Any:
+    if isinstance(value, Path):
+        return str(value)
+    if isinstance(value, list):
+        return [_as_plain(v) for v in value]
+    return value
+
+
+def _check_value(table: str, key: str, value: Any, spec: Key, base: Path) -> Any:
+    where = f"{table}.{key}"
+    ok = any(type(value) is t for t in spec.types)
+    if not ok and float in spec.types and type(value) is int:
+        ok = True
+    if not ok:
+        raise ProjectFileError(
+            f"key {where} is {_found_type(value)} ({value!r}) but must be {spec.expected}; "
+            "fix it in the project file"
+        )
+    if spec.choices is not None and value not in spec.choices:
+        raise ProjectFileError(
+            f"key {where} = {value!r} is not a valid choice; use one of: "
+            + ", ".join(spec.choices)
+        )
+    if spec.positive and not value > 0:
+        raise ProjectFileError(f"key {where} = {value!r} must be greater than zero")
+    if isinstance(value, list):
+        if spec.path:
+            if not value or not all(isinstance(v, str) for v in value):
+                raise ProjectFileError(
+                    f"key {where} must be a non-empty list of path strings; fix it in the project file"
+                )
+            return [_resolve(base, v) for v in value]
+        if not value or not all(type(v) in (int, float) for v in value):
+            raise ProjectFileError(
+                f"key {where} must be a non-empty list of numbers; fix it in the project file"
+            )
+        return [float(v) for v in value]
+    if spec.path:
+        return _resolve(base, value)
+    return value
+
+
+def _resolve(base: Path, value: str) -> Path:
+    p = Path(os.path.expanduser(value))
+    return p if p.is_absolute() else (base / p).resolve()
+
+
+def parse_project(data: Mapping[str, Any], *, base: str | os.PathLike[str], path: str | os.PathLike[str] = "project.toml") -> Project:
+    """Validate an already-parsed project mapping; relative paths resolve against ``base``.
+
+    Raises
+    ------
+    ProjectFileError
+        Unknown table or key, wrong type, value outside its choices, missing required
+        key, or not exactly one of ``[window] depths`` / ``stages``.
+    """
+    base_path = Path(base).resolve()
+    tables: dict[str, dict[str, Any]] = {name: {} for name in SCHEMA}
+    for table, content in data.items():
+        if table not in SCHEMA:
+            raise ProjectFileError(
+                f"unknown table or top-level key {table!r}; valid tables: "
+                + ", ".join(f"[{t}]" for t in SCHEMA)
+            )
+        if not isinstance(content, dict):
+            raise ProjectFileError(
+                f"{table!r} is {_found_type(content)} but must be a table [{table}]; "
+                "put its keys under a [" + table + "] header"
+            )
+        valid = SCHEMA[table]
+        for key, value in content.items():
+            if key not in valid:
+                raise ProjectFileError(
+                    f"unknown key {key!r} in [{table}]; valid keys of [{table}]: "
+                    + ", ".join(valid)
+                )
+            tables[table][key] = _check_value(table, key, value, valid[key], base_path)
+    for table, keys in REQUIRED.items():
+        for key in keys:
+            if key not in tables[table]:
+                raise ProjectFileError(f"key {table}.{key} is required; add it to the project file")
+    window = tables["window"]
+    if ("depths" in window) == ("stages" in window):
+        raise ProjectFileError(
+            "the [window] table needs exactly one of depths or stages, e.g. depths = \"0.25:3:0.25\""
+        )
+    for key in ("depths", "stages"):
+        if key in window:
+            from .errors import StageSpecError
+            from .stages import parse_spec
+
+            try:
+                parse_spec(window[key])
+            except StageSpecError as exc:
+                raise ProjectFileError(f"key window.{key}: {exc}") from exc
+    return Project(Path(path).resolve(), **tables)
+
+
+def load_project(path: str | os.PathLike[str]) -> Project:
+    """Read and validate a TOML project file.
+
+    Raises
+    ------
+    InputFileError
+        The file does not exist.
+    ProjectFileError
+        The file is not valid TOML or fails validation (see :func:`parse_project`).
+    """
+    from .errors import InputFileError
+
+    p = Path(path)
+    if not p.is_file():
+        raise InputFileError(f"project file {str(p)!r} does not exist; create one with ntrans init")
+    try:
+        with open(p, "rb") as handle:
+            data = tomllib.load(handle)
+    except tomllib.TOMLDecodeError as exc:
+        raise ProjectFileError(f"project file {str(p)!r} is not valid TOML: {exc}") from exc
+    return parse_project(data, base=p.resolve().parent, path=p)
+
+
+# ---------------------------------------------------------------------------- template
+
+TEMPLATE = """\
+# ntrans project file (TOML).  Run it with:  ntrans run {name}
+# Keys are the keyword names of the Python API (build_tables, adjust_roughness).
+# Paths are relative to this file.  Lengths are in the DEM's horizontal CRS units,
+# elevations and depths in its vertical units.
+
+[inputs]
+dem = "dem.tif"                 # terrain raster (GeoTIFF), projected CRS
+cells = "cells.gpkg"            # mesh cells as polygons, same CRS as the DEM
+# id_field = "cell_id"          # attribute with unique cell ids (default: feature order)
+# Roughness: one of the following
+# n = 0.035                     # one Manning's n everywhere
+classes = "landcover.gpkg"      # roughness class polygons ...
+class_field = "landcover"       # ... their class attribute ...
+n_table = "n_table.csv"         # ... and a CSV with columns class, n (optional surface)
+# n_field = "n"                 # or: polygons that carry their own n
+# class_raster = "classes.tif"  # or: an integer class raster (with n_table)
+# default_class = "pasture"     # class for ground no polygon covers
+# water_surface = "wse.tif"     # calibrated water surface(s) of the source model (or a list)
+# vertical_units = "metre"      # metre | foot | us_survey_foot (default: as horizontal)
+# elevation_field = "bed_z"     # flat bed elevation attribute (with elevation_rule = "field")
+
+[families]
+source = "flat"                 # model family the n values were calibrated in: flat | subgrid
+target = "subgrid"              # model family they are carried to: flat | subgrid
+closure = "lumped"              # friction closure of the target: {closures}
+# source_closure = "flat"       # friction closure of the source (default from the family)
+composite = "horton_einstein"   # composite n along a face: {composites}
+elevation_rule = "mean"         # flat cell bed: {elevation_rules}
+face_rule = "higher"            # flat face bed: {face_rules}
+
+[window]
+# The calibrated range: exactly one of
+depths = "0.25:3:0.25"          # depths above each cell's / face's low point (start:stop:step or list)
+# stages = "101:104:0.5"        # water-surface elevations
+
+[outputs]
+out = "{stem}-bundle"           # bundle folder (written whole or not at all)
+csv = false                     # also write every table as CSV
+zip = false                     # also write <out>.zip beside the folder
+overwrite = false               # replace an existing bundle folder
+
+[run]
+coverage = "exact"              # pixel-to-cell weights: exact | centre
+tile_size = 1024                # tile edge in DEM pixels (bounds memory)
+# workers = 4                   # local worker processes (default: this process)
+"""
+
+
+def write_project_template(path: str | os.PathLike[str], *, overwrite: bool = False) -> Path:
+    """Write a commented project-file template to ``path`` (``ntrans init``).
+
+    Raises
+    ------
+    OutputExistsError
+        ``path`` exists and ``overwrite`` is false.
+    """
+    p = Path(path)
+    if p.exists() and not overwrite:
+        raise OutputExistsError(f"{str(p)!r} already exists; choose another name or pass overwrite")
+    if p.exists() and p.is_dir():
+        raise OutputError(f"{str(p)!r} is a folder; give a file name such as project.toml")
+    text = TEMPLATE.format(
+        name=p.name,
+        stem=p.stem,
+        closures=" | ".join(CLOSURES),
+        composites=" | ".join(COMPOSITES),
+        elevation_rules=" | ".join(ELEVATION_RULES),
+        face_rules=" | ".join(FACE_RULES),
+    )
+    p.parent.mkdir(parents=True, exist_ok=True)
+    p.write_text(text, encoding="utf-8")
+    return p
+
+
+# --------------------------------------------------------------------------------- run
+
+
+@dataclass
+class RunResult:
+    """What :func:`run_project` wrote.
+
+    Attributes
+    ----------
+    folder : the bundle folder.
+    report : ``report.html`` inside it.
+    manifest : ``manifest.json`` inside it.
+    zip : the zip beside the folder, or None.
+    n_by_class : the per-class table (a pandas DataFrame).
+    files : every file of the bundle, relative POSIX paths.
+    summary : key figures (dict) used by the report and the command line.
+    """
+
+    folder: Path
+    report: Path
+    manifest: Path
+    zip: Path | None
+    n_by_class: Any
+    files: list[str] = field(default_factory=list)
+    summary: dict[str, Any] = field(default_factory=dict)
+
+
+def _accepted(func: Callable[..., Any], options: Mapping[str, Any]) -> dict[str, Any]:
+    """The options ``func`` takes as keywords (all of them if it takes ``**kwargs``)."""
+    params = inspect.signature(func).parameters
+    if any(p.kind is inspect.Parameter.VAR_KEYWORD for p in params.values()):
+        return dict(options)
+    return {k: v for k, v in options.items() if k in params}
+
+
+def _call_kwargs(func: Callable[..., Any], options: Mapping[str, Any]) -> dict[str, Any]:
+    kwargs = _accepted(func, options)
+    return {k: (str(v) if isinstance(v, Path) else [str(x) for x in v] if isinstance(v, list) and v and isinstance(v[0], Path) else v) for k, v in kwargs.items()}
+
+
+@contextlib.contextmanager
+def fixed_gdal_dates() -> Iterator[None]:
+    """Freeze the date GDAL writes into GeoPackages, so reruns give identical bytes."""
+    import pyogrio
+
+    key, value = "OGR_CURRENT_DATE", "2000-01-01T00:00:00.000Z"
+    old_env = os.environ.get(key)
+    old_cfg = pyogrio.get_gdal_config_option(key)
+    os.environ[key] = value
+    pyogrio.set_gdal_config_options({key: value})
+    try:
+        yield
+    finally:
+        pyogrio.set_gdal_config_options({key: old_cfg})
+        if old_env is None:
+            os.environ.pop(key, None)
+        else:
+            os.environ[key] = old_env
+
+
+@contextlib.contextmanager
+def _step(name: str, timings: dict[str, float]) -> Iterator[None]:
+    logger.info("%s ...", name)
+    start = time.perf_counter()
+    yield
+    timings[name] = time.perf_counter() - start
+    logger.info("%s done in %.1f s", name, timings[name])
+
+
+def run_project(
+    path: str | os.PathLike[str],
+    *,
+    out: str | os.PathLike[str] | None = None,
+    overwrite: bool | None = None,
+    progress: bool = False,
+) -> RunResult:
+    """Run the whole job of a project file into one handover bundle folder.
+
+    Parameters
+    ----------
+    path
+        The TOML project file.
+    out
+        Bundle folder (default: the project's ``outputs.out``).
+    overwrite
+        Replace an existing bundle folder (default: the project's ``outputs.overwrite``).
+    progress
+        Show a progress bar per step on stderr.
+
+    Returns
+    -------
+    RunResult
+        The bundle folder, report, manifest, optional zip and the per-class table.
+
+    Raises
+    ------
+    ProjectFileError
+        The project file is invalid.
+    OutputExistsError
+        The bundle folder exists and overwrite is false.
+    """
+    import pandas as pd
+
+    from . import bundle
+    from .adjust import adjust_roughness
+    from .outputs import OutputFolder
+    from .tables import build_tables
+
+    project = load_project(path)
+    if overwrite is None:
+        overwrite = bool(project.outputs.get("overwrite", False))
+    target = Path(out) if out is not None else project.out
+    options = project.options()
+    for key in ("out", "zip", "overwrite", "dem", "cells"):
+        options.pop(key, None)
+    dem, cells = str(project.inputs["dem"]), str(project.inputs["cells"])
+    timings: dict[str, float] = {}
+    logger.info("project %s -> %s", project.path, target)
+
+    with fixed_gdal_dates(), OutputFolder(
+        target, overwrite=overwrite, inputs=[*_input_paths(project), project.path]
+    ) as folder:
+        tmp = Path(folder.path)
+        with _step("inputs checksums", timings):
+            inputs = _describe_inputs(project)
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", NtransWarning)
+            with _step("stage tables", timings):
+                kw = _call_kwargs(build_tables, options)
+                kw.update(out=str(tmp / "tables"), overwrite=True, progress=progress)
+                build_tables(dem, cells, **kw)
+            with _step("roughness adjustment", timings):
+                kw = _call_kwargs(adjust_roughness, options)
+                if "water_surface" in kw:  # the rasters are the window of the fit
+                    kw.pop("depths", None)
+                    kw.pop("stages", None)
+                kw.update(out=str(tmp / "adjust"), overwrite=True, progress=progress)
+                adjust_roughness(dem, cells, **kw)
+        notes = _replay(caught)
+        step_seconds = _strip_timings(tmp)
+        with _step("maps, plots and report", timings):
+            summary = _products(project, tmp, inputs=inputs, notes=notes, progress=progress)
+        shutil.copyfile(tmp / "adjust" / "n_by_class.csv", tmp / "n_by_class.csv")
+        with _step("manifest", timings):
+            manifest = bundle.write_manifest(
+                tmp,
+                inputs=inputs,
+                parameters=project.parameters(),
+                units=summary.get("units", {}),
+                extra={
+                    "project_file": {
+                        "path": str(project.path),
+                        "sha256": bundle.sha256_file(project.path),
+                        "size": project.path.stat().st_size,
+                    },
+                    "run_seconds": {**step_seconds, **{k: round(v, 3) for k, v in timings.items()}},
+                },
+            )
+        del manifest
+    final = Path(folder.final)
+    zip_path = None
+    if project.outputs.get("zip", False):
+        with _step("zip", timings):
+            zip_path = bundle.write_zip(final)
+    n_by_class = pd.read_csv(final / "n_by_class.csv")
+    files = bundle.list_files(final)
+    summary["timings"] = timings
+    logger.info("bundle written: %s (%d files)", final, len(files))
+    return RunResult(final, final / "report.html", final / bundle.MANIFEST_NAME, zip_path,
+                     n_by_class, files, summary)
+
+
+def _replay(caught: list[warnings.WarningMessage]) -> list[str]:
+    """Re-emit recorded warnings (once each) and return their texts for the report."""
+    notes: list[str] = []
+    for item in caught:
+        text = str(item.message)
+        if text in notes:
+            continue
+        if issubclass(item.category, NtransWarning):
+            notes.append(text)
+        warnings.warn_explicit(item.message, item.category, item.filename, item.lineno)
+    return notes
+
+
+#: Keys of the step summaries that hold run times (they vary from run to run): moved
+#: from the summary files into the manifest so every other output stays reproducible.
+_TIMING_KEYS = ("seconds", "elapsed", "elapsed_seconds", "runtime", "run_seconds", "created",
+                "created_utc", "time")
+
+
+def _strip_timings(folder: Path) -> dict[str, Any]:
+    import json
+
+    moved: dict[str, Any] = {}
+    for path in sorted(folder.glob("*/*_summary.json")):
+        try:
+            data = json.loads(path.read_text(encoding="utf-8"))
+        except ValueError:
+            continue
+        if not isinstance(data, dict):
+            continue
+        found = {k: data.pop(k) for k in _TIMING_KEYS if k in data}
+        if found:
+            moved[path.parent.name] = found
+            path.write_text(json.dumps(data, indent=2) + "\n", encoding="utf-8")
+    return moved
+
+
+def _input_paths(project: Project) -> list[Path]:
+    paths: list[Path] = []
+    for value in project.inputs.values():
+        if isinstance(value, Path):
+            paths.append(value)
+        elif isinstance(value, list):
+            paths.extend(v for v in value if isinstance(v, Path))
+    return paths
+
+
+def _describe_inputs(project: Project) -> list[dict[str, Any]]:
+    from .bundle import describe_input
+
+    entries = []
+    for key in ("dem", "cells", "classes", "n_table", "class_raster", "water_surface"):
+        value = project.inputs.get(key)
+        if value is None:
+            continue
+        for i, item in enumerate(value if isinstance(value, list) else [value]):
+            role = key if not isinstance(value, list) else f"{key}[{i}]"
+            entries.append(describe_input(item, role=role))
+    return entries
+
+
+def _products(
+    project: Project,
+    folder: Path,
+    *,
+    inputs: list[dict[str, Any]],
+    notes: list[str],
+    progress: bool,
+) -> dict[str, Any]:
+    """Maps, plots and the report from the tables in ``folder``; returns the summary."""
+    from .progress import track
+
+    data = _gather(project, folder)
+    data["notes"] = list(notes)
+    steps = ["maps", "plots", "report"]
+    images: dict[str, Any] = {}
+    for name in track(steps, total=len(steps), desc="maps, plots, report", enabled=progress):
+        logger.info("writing %s", name)
+        if name == "maps":
+            images.update(_write_maps(data, folder / "maps"))
+        elif name == "plots":
+            images.update(_write_plots(data, folder / "plots"))
+        else:
+            from .report import write_report
+
+            context = _report_context(project, data)
+            context["inputs"] = [
+                {"role": e["role"], "path": Path(e["path"]).name, "sha256": e["sha256"]}
+                for e in inputs
+            ]
+            write_report(folder / "report.html", context, images)
+    return data["summary"]
+
+
+# ----------------------------------------------------------------- gathering the results
+
+
+def _read_json(path: Path) -> dict[str, Any]:
+    import json
+
+    if not path.is_file():
+        return {}
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except ValueError:
+        return {}
+
+
+def _gather(project: Project, folder: Path) -> dict[str, Any]:
+    """Read the tables written by the tables and adjust steps into one dict."""
+    import geopandas as gpd
+    import pandas as pd
+
+    from .maps import cell_friction_factor, cell_median_of_faces
+
+    tables, adjust = folder / "tables", folder / "adjust"
+    tsum = _read_json(tables / "tables_summary.json")
+    asum = _read_json(adjust / "adjust_summary.json")
+    cell_stage = pd.read_parquet(tables / "cell_stage.parquet")
+    cells = gpd.read_file(tables / "cells.gpkg")
+    faces = gpd.read_file(tables / "faces.gpkg") if (tables / "faces.gpkg").is_file() else None
+    domain = asum.get("fit_domain", "faces")
+    face_adj = pd.read_parquet(adjust / "face_adjustment.parquet")
+    cell_adj_path = adjust / "cell_adjustment.parquet"
+    cell_adj = pd.read_parquet(cell_adj_path) if cell_adj_path.is_file() else None
+    n_by_class = pd.read_csv(adjust / "n_by_class.csv", keep_default_na=False,
+                             na_values=["", "nan", "NaN"])
+    if "flags" in n_by_class.columns:
+        n_by_class["flags"] = n_by_class["flags"].fillna("").astype(str)
+    ids = cells["cell_id"].to_numpy()
+
+    # per-cell map values, in the order of cells.gpkg
+    if "bed_factor" in cells.columns:
+        factor = pd.Series(cells["bed_factor"].to_numpy(dtype=float), index=ids)
+    else:
+        per_cell = max(len(cell_stage) // max(len(cells), 1), 1)
+        factor = cell_friction_factor(cell_stage, reference_index=per_cell // 2)
+    cell_values = pd.DataFrame({"friction_factor": factor.reindex(ids).to_numpy()})
+    if domain == "cells" and cell_adj is not None:
+        # friction per cell: each cell's own ratio and bias
+        for column, name in (("n_ratio", "n_ratio"), ("stage_bias_unadjusted", "stage_bias")):
+            med = cell_adj.groupby("cell_id", sort=True)[column].median()
+            cell_values[name] = med.reindex(ids).to_numpy()
+    else:
+        link = faces if faces is not None else face_adj.drop_duplicates("face_id")
+        for column, name in (("n_ratio", "n_ratio"), ("stage_bias_unadjusted", "stage_bias")):
+            med = cell_median_of_faces(face_adj, link, value=column)
+            cell_values[name] = med.reindex(ids).to_numpy()
+    cols = [c for c in ("n_ratio", "stage_bias_unadjusted", "stage_bias_adjusted")
+            if c in face_adj.columns]
+    face_values = face_adj.groupby("face_id", sort=True)[cols].median()
+    face_values.columns = [f"{c}_median" for c in cols]
+    if "dominant_class" in face_adj.columns:
+        face_values["dominant_class"] = face_adj.groupby("face_id", sort=True)[
+            "dominant_class"
+        ].first()
+
+    # the rows the class fit used: per face-stage, or per cell-stage with cell friction
+    fit_rows = cell_adj if (domain == "cells" and cell_adj is not None) else face_adj
+    fit_rows = fit_rows.rename(columns={"dominant_class": "class"})
+    if "class" not in fit_rows.columns:
+        fit_rows = fit_rows.assign(**{"class": "all"})
+    fit_rows = fit_rows.assign(depth=fit_rows["depth"].round(6))
+
+    mode = tsum.get("stage_mode", "depth" if "depths" in project.window else "stage")
+    units = {
+        "horizontal": tsum.get("horizontal_unit", "metre"),
+        "vertical": tsum.get("vertical_unit", "metre"),
+    }
+    units["manning_k"] = asum.get("manning_k", 1.486 if units["horizontal"] == "foot" else 1.0)
+    summary = {
+        "units": units,
+        "cells": int(len(cells)),
+        "faces": int(len(faces)) if faces is not None else int(face_adj["face_id"].nunique()),
+        "stages": len(tsum.get("stage_values", [])) or None,
+        "classes": int(len(n_by_class)),
+        "reference": tsum.get("reference"),
+        "stage_mode": mode,
+        "fit_domain": domain,
+    }
+    for key in ("stage_bias_unadjusted", "stage_bias_adjusted"):
+        if key in fit_rows.columns:
+            summary[key] = _stats(fit_rows[key].to_numpy(dtype=float))
+    return {
+        "tables_summary": tsum,
+        "adjust_summary": asum,
+        "cell_stage": cell_stage,
+        "cells": cells,
+        "faces": faces,
+        "fit_rows": fit_rows,
+        "n_by_class": n_by_class,
+        "cell_values": cell_values,
+        "face_values": face_values,
+        "friction_factor": factor,
+        "summary": summary,
+    }
+
+
+def _stats(values: Any) -> dict[str, Any]:
+    import numpy as np
+
+    v = np.asarray(values, dtype=float)
+    v = v[np.isfinite(v)]
+    if not v.size:
+        return {"count": 0, "median": None, "p10": None, "p90": None, "mean_abs": None}
+    return {
+        "count": int(v.size),
+        "median": float(np.median(v)),
+        "p10": float(np.percentile(v, 10)),
+        "p90": float(np.percentile(v, 90)),
+        "mean_abs": float(np.mean(np.abs(v))),
+    }
+
+
+def _unit_symbol(unit: str) -> str:
+    return {"metre": "m", "foot": "ft", "us_survey_foot": "ft"}.get(str(unit), str(unit))
+
+
+def _write_maps(data: dict[str, Any], folder: Path) -> dict[str, Path]:
+    import numpy as np
+    import rasterio
+
+    from .maps import write_maps
+
+    dem_path = data["tables_summary"].get("dem")
+    with rasterio.open(dem_path) as src:
+        elevation = src.read(1, masked=True).astype(float).filled(np.nan)
+        transform, crs = src.transform, src.crs
+    units = data["summary"]["units"]
+    faces = data["faces"]
+    written = write_maps(
+        folder,
+        cell_values=data["cell_values"],
+        cell_geometry=data["cells"].geometry.to_numpy(),
+        elevation=elevation,
+        transform=transform,
+        crs=crs,
+        length_unit=_unit_symbol(units["horizontal"]),
+        vertical_unit=_unit_symbol(units["vertical"]),
+        faces=faces,
+        face_values=data["face_values"] if faces is not None else None,
+    )
+    written.pop("faces", None)
+    return written
+
+
+def _write_plots(data: dict[str, Any], folder: Path) -> dict[str, Path]:
+    import numpy as np
+
+    from .plots import plot_cell_curves, plot_class_ratios, plot_stage_bias, representative_cells
+
+    units = data["summary"]["units"]
+    z = _unit_symbol(units["vertical"])
+    xy = _unit_symbol(units["horizontal"])
+    frame = data["fit_rows"]
+    item = "cell" if data["summary"].get("fit_domain") == "cells" else "face"
+    images: dict[str, Path] = {}
+    if "n_ratio" in frame.columns:
+        if np.isfinite(frame["depth"].to_numpy(dtype=float)).any():
+            images["class_ratios"] = plot_class_ratios(
+                folder / "n_ratio_by_class.png", frame, x="depth",
+                x_label=f"depth above the {item}'s low point ({z})",
+            )
+        else:
+            images["class_ratios"] = plot_class_ratios(
+                folder / "n_ratio_by_class.png", frame, x="stage", x_label=f"stage ({z})",
+            )
+    if {"stage_bias_unadjusted", "stage_bias_adjusted"} <= set(frame.columns):
+        images["stage_bias_hist"] = plot_stage_bias(
+            folder / "stage_bias_histograms.png",
+            frame["stage_bias_unadjusted"].to_numpy(dtype=float),
+            frame["stage_bias_adjusted"].to_numpy(dtype=float),
+            unit=z,
+        )
+    picks = representative_cells(data["friction_factor"])
+    cell_stage = data["cell_stage"]
+    curves = {}
+    for label, cell in picks.items():
+        rows = cell_stage[cell_stage["cell_id"] == cell].copy()
+        if "flat_volume" not in rows.columns:
+            area = float(rows["wet_area"].max()) if len(rows) else 0.0
+            rows["flat_volume"] = area * rows["flat_depth"]
+        curves[f"cell {cell} ({label})"] = rows
+    images["cell_curves"] = plot_cell_curves(folder / "representative_cells.png", curves,
+                                             length_unit=xy, vertical_unit=z)
+    return images
+
+
+def _window_text(project: Project) -> str:
+    for key in ("depths", "stages"):
+        if key in project.window:
+            value = project.window[key]
+            text = ", ".join(f"{v:g}" for v in value) if isinstance(value, list) else str(value)
+            return f"{key} {text}"
+    return ""
+
+
+def _report_context(project: Project, data: dict[str, Any]) -> dict[str, Any]:
+    import math
+
+    fam = project.families
+    asum = data["adjust_summary"]
+    tsum = data["tables_summary"]
+    summary = data["summary"]
+    z = _unit_symbol(summary["units"]["vertical"])
+    reference = summary.get("reference")
+    if reference is not None:
+        reference = (
+            f"depth {reference:g} {z} above each cell's low point"
+            if summary.get("stage_mode") == "depth"
+            else f"stage {reference:g} {z}"
+        )
+    classes = []
+    for row in data["n_by_class"].to_dict(orient="records"):
+        classes.append(
+            {k: (None if isinstance(v, float) and math.isnan(v) else v) for k, v in row.items()}
+        )
+    src = asum.get("source") if isinstance(asum.get("source"), dict) else {}
+    tgt = asum.get("target") if isinstance(asum.get("target"), dict) else {}
+    source = src.get("family", fam.get("source", "flat"))
+    target = tgt.get("family", fam.get("target", "subgrid"))
+    closure = tgt.get("closure", fam.get("closure", "lumped"))
+    if target == "flat":  # the subgrid side is the source: name its closure
+        closure = f"flat (source closure {src.get('closure', fam.get('closure', 'lumped'))})"
+    window = _window_text(project)
+    if isinstance(asum.get("window"), dict) and asum["window"].get("mode") == "water_surface":
+        window = "water surface rasters " + ", ".join(asum["window"].get("rasters", []))
+    notes = list(data.get("notes", []))
+    flagged = asum.get("flagged", {}) if isinstance(asum.get("flagged"), dict) else {}
+    fit = asum.get("fit", {}) if isinstance(asum.get("fit"), dict) else {}
+    if fit and not fit.get("success", True):
+        notes.append("The class fit did not converge; treat the fitted n with extra care.")
+    if summary.get("fit_domain") == "cells":
+        notes.append("Friction is applied per cell in the subgrid family: the class fit used "
+                     "cells, and the face values are shown for reference.")
+    mismatch = flagged.get("face_stage_dry_wet_mismatch" if summary.get("fit_domain") != "cells"
+                           else "cell_stage_dry_wet_mismatch")
+    if mismatch:
+        notes.append(f"{mismatch} item-stages were wet in one family and dry in the other and "
+                     "were left out of the fit.")
+    return {
+        "title": f"Manning's n carried from {source} to {target} cells",
+        "project": project.path.name,
+        "move": {
+            "source": source,
+            "target": target,
+            "closure": closure,
+            "source_closure": src.get("closure") if source == "subgrid" else None,
+            "composite": asum.get("composite", fam.get("composite")),
+            "elevation_rule": tsum.get("elevation_rule", fam.get("elevation_rule")),
+            "face_rule": tsum.get("face_rule", fam.get("face_rule")),
+            "window": window,
+        },
+        "units": summary["units"],
+        "counts": {k: summary.get(k) for k in ("cells", "faces", "stages", "classes")},
+        "classes": classes,
+        "bias": {
+            "before": summary.get("stage_bias_unadjusted"),
+            "after": summary.get("stage_bias_adjusted"),
+        },
+        "inputs": [
+            {"role": k, "path": Path(v).name if isinstance(v, Path) else v}
+            for k, v in project.inputs.items()
+            if isinstance(v, Path)
+        ],
+        "notes": notes,
+        "reference": reference,
+    }

@@ -1,0 +1,605 @@
+"""Roughness classes and Manning's n values.
+
+A :class:`RoughnessModel` holds the class names, one n per class, the optional surface
+kind of each class (a key of :data:`PUBLISHED_N_RANGES`) and the source of the class
+map: class polygons, a class raster, or one class for everything.  The pure function
+:func:`class_index_on_window` turns the map into a class-index array on any DEM window,
+so n is known at every DEM pixel and, through :func:`class_at_points` (nearest pixel),
+at every face segment midpoint.
+
+Inputs, in the order they are tried by :func:`load_roughness`:
+
+- ``n``: one n for the whole mesh (one class ``"all"``);
+- ``classes`` + ``class_field`` + ``n_table``: class polygons and a CSV with columns
+  ``class, n`` and optional ``surface``;
+- ``classes`` + ``n_field``: polygons carrying their own n (one class per distinct n);
+- ``class_raster`` + ``n_table``: an integer class raster and the CSV.
+
+``default_class`` names the class for ground no polygon (or raster pixel) covers.
+Every bad input raises :class:`~ntrans.errors.RoughnessError` with one sentence; an n
+outside the published range for its surface, or above 0.3, emits
+:class:`~ntrans.errors.RoughnessRangeWarning`.
+"""
+
+from __future__ import annotations
+
+import logging
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Literal
+
+import numpy as np
+
+from .errors import InputFileError, RoughnessError, RoughnessRangeWarning
+
+log = logging.getLogger(__name__)
+
+OverlapRule = Literal["error", "first", "last", "max_n"]
+OVERLAP_RULES: tuple[str, ...] = ("error", "first", "last", "max_n")
+
+#: Chow (1959) Table 5-6, Manning's n (min, normal, max) [recalled from memory, METHODS.md].
+PUBLISHED_N_RANGES: dict[str, tuple[float, float, float]] = {
+    "channel_clean": (0.025, 0.030, 0.033),
+    "channel_winding": (0.033, 0.040, 0.045),
+    "channel_sluggish_weedy": (0.050, 0.070, 0.080),
+    "pasture_short_grass": (0.025, 0.030, 0.035),
+    "pasture_high_grass": (0.030, 0.035, 0.050),
+    "cultivated_mature_crops": (0.030, 0.040, 0.050),
+    "light_brush_trees": (0.040, 0.060, 0.080),
+    "medium_dense_brush": (0.070, 0.100, 0.160),
+    "heavy_timber": (0.080, 0.100, 0.120),
+    "concrete_float": (0.013, 0.015, 0.016),
+}
+
+#: Above this n a value is unusual for any natural surface (warning only).
+N_HIGH = 0.3
+
+#: Overlaps and uncovered ground smaller than this share of the area are ignored.
+AREA_TOLERANCE = 1e-6
+
+
+@dataclass(frozen=True)
+class RoughnessModel:
+    """Roughness classes, their n, and the map that places them.
+
+    Attributes
+    ----------
+    classes : tuple of str
+        Class names; class index ``i`` is ``classes[i]``.
+    n : ndarray (n_classes,)
+        Manning's n per class (s m^-1/3 or its US-customary equivalent).
+    surface : tuple of str or None
+        Surface kind per class (key of :data:`PUBLISHED_N_RANGES`) or None.
+    default : int
+        Class index for ground no polygon or raster pixel covers; -1 when none.
+    polygons : ndarray of shapely geometry or None
+        Class polygons in the DEM's CRS, already ordered by the overlap rule
+        (later polygons are burnt over earlier ones).
+    polygon_class : ndarray of int or None
+        Class index of each polygon.
+    raster, raster_transform, raster_crs
+        Class-index raster (-1 where unknown), its affine transform and CRS.
+    """
+
+    classes: tuple[str, ...]
+    n: np.ndarray
+    surface: tuple[str | None, ...]
+    default: int = -1
+    polygons: np.ndarray | None = None
+    polygon_class: np.ndarray | None = None
+    raster: np.ndarray | None = None
+    raster_transform: Any = None
+    raster_crs: Any = None
+    source: str = "uniform"
+    details: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def n_classes(self) -> int:
+        return len(self.classes)
+
+    def published_range(self, index: int) -> tuple[float, float] | None:
+        """(min, max) published n of class ``index``'s surface, or None."""
+        key = self.surface[index]
+        if key is None:
+            return None
+        low, _, high = PUBLISHED_N_RANGES[key]
+        return low, high
+
+
+# ---------------------------------------------------------------------------------------
+# pure: class map on a window
+
+
+def class_index_on_window(model: RoughnessModel, transform: Any, shape: tuple[int, int],
+                          crs: Any = None) -> np.ndarray:
+    """Class index of every pixel of a DEM window.
+
+    Parameters
+    ----------
+    model : RoughnessModel
+    transform : affine.Affine
+        The window's transform (DEM pixel frame).
+    shape : (rows, cols)
+    crs : optional
+        The DEM's CRS; needed only when the class raster has another CRS.
+
+    Returns
+    -------
+    ndarray of int32, shape ``shape``
+        Class index per pixel; ``model.default`` (possibly -1) where nothing covers it.
+        Polygons are burnt at pixel centres (``rasterio.features.rasterize``); a class
+        raster is resampled nearest onto the window.
+    """
+    rows, cols = int(shape[0]), int(shape[1])
+    if model.polygons is not None:
+        from rasterio.features import rasterize
+
+        out = np.full((rows, cols), model.default, dtype=np.int32)
+        if rows == 0 or cols == 0 or len(model.polygons) == 0:
+            return out
+        shapes = ((geom, int(c)) for geom, c in zip(model.polygons, model.polygon_class, strict=True))
+        return rasterize(shapes, out_shape=(rows, cols), transform=transform, fill=model.default,
+                         dtype="int32", out=out)
+    if model.raster is not None:
+        from rasterio.enums import Resampling
+        from rasterio.warp import reproject
+
+        out = np.full((rows, cols), -1, dtype=np.int32)
+        if rows == 0 or cols == 0:
+            return out
+        reproject(
+            source=model.raster.astype(np.int32),
+            destination=out,
+            src_transform=model.raster_transform,
+            src_crs=model.raster_crs if model.raster_crs is not None else crs,
+            dst_transform=transform,
+            dst_crs=crs if crs is not None else model.raster_crs,
+            src_nodata=-1,
+            dst_nodata=-1,
+            resampling=Resampling.nearest,
+        )
+        if model.default >= 0:
+            out[out < 0] = model.default
+        return out
+    return np.zeros((rows, cols), dtype=np.int32)
+
+
+def class_at_points(class_index: np.ndarray, transform: Any, x: np.ndarray,
+                    y: np.ndarray) -> np.ndarray:
+    """Class index at map points (nearest pixel of the window), -1 outside the window.
+
+    Used for face segments: the class of a segment is the class at its midpoint.
+    """
+    x = np.asarray(x, dtype=float)
+    y = np.asarray(y, dtype=float)
+    inv = ~transform
+    col_f = inv.a * x + inv.b * y + inv.c
+    row_f = inv.d * x + inv.e * y + inv.f
+    col = np.floor(col_f).astype(np.int64)
+    row = np.floor(row_f).astype(np.int64)
+    rows, cols = class_index.shape
+    # a point exactly on the far edge belongs to the last pixel
+    col = np.where((col == cols) & np.isclose(col_f, cols), cols - 1, col)
+    row = np.where((row == rows) & np.isclose(row_f, rows), rows - 1, row)
+    inside = (row >= 0) & (row < rows) & (col >= 0) & (col < cols)
+    out = np.full(x.shape, -1, dtype=np.int64)
+    out[inside] = class_index[row[inside], col[inside]]
+    return out
+
+
+# ---------------------------------------------------------------------------------------
+# validation helpers
+
+
+def _check_n_values(names: list[str], values: list[Any], what: str) -> np.ndarray:
+    """Parse n values; raise listing every bad one."""
+    out = np.full(len(values), np.nan)
+    bad: list[str] = []
+    for i, (name, value) in enumerate(zip(names, values, strict=True)):
+        try:
+            number = float(value)
+        except (TypeError, ValueError):
+            bad.append(f"{name}={value!r}")
+            continue
+        if not np.isfinite(number) or number <= 0:
+            bad.append(f"{name}={value!r}")
+            continue
+        out[i] = number
+    if bad:
+        raise RoughnessError(
+            f"{what} holds n values that are not positive numbers ({', '.join(bad)}); "
+            "give every n as a number above zero"
+        )
+    return out
+
+
+def check_ranges(model: RoughnessModel, n: np.ndarray | None = None, *, what: str = "n") -> list[str]:
+    """Warn (RoughnessRangeWarning) about n outside its published range or above 0.3.
+
+    Returns the names of the classes warned about.
+    """
+    values = model.n if n is None else np.asarray(n, dtype=float)
+    warned: list[str] = []
+    for i, name in enumerate(model.classes):
+        value = float(values[i])
+        if not np.isfinite(value):
+            continue
+        rng = model.published_range(i)
+        if rng is not None and not (rng[0] <= value <= rng[1]):
+            warnings.warn(
+                f"{what} {value:g} of class {name!r} lies outside the published range "
+                f"{rng[0]:g}-{rng[1]:g} for {model.surface[i]} (Chow 1959, Table 5-6); "
+                "check the value",
+                RoughnessRangeWarning,
+                stacklevel=2,
+            )
+            warned.append(name)
+        elif value > N_HIGH:
+            warnings.warn(
+                f"{what} {value:g} of class {name!r} is above {N_HIGH:g}, unusual for any "
+                "natural surface; check the value",
+                RoughnessRangeWarning,
+                stacklevel=2,
+            )
+            warned.append(name)
+    return warned
+
+
+def outside_range(model: RoughnessModel, n: np.ndarray) -> np.ndarray:
+    """Boolean per class: n outside the published range of its surface, or above 0.3."""
+    out = np.zeros(model.n_classes, dtype=bool)
+    for i in range(model.n_classes):
+        value = float(n[i])
+        if not np.isfinite(value):
+            continue
+        rng = model.published_range(i)
+        out[i] = (rng is not None and not (rng[0] <= value <= rng[1])) or value > N_HIGH
+    return out
+
+
+def read_n_table(path: str | Path) -> tuple[list[str], list[Any], list[str | None]]:
+    """Read an n table CSV: columns ``class, n`` and optional ``surface``."""
+    import pandas as pd
+
+    path = Path(path)
+    if not path.is_file():
+        raise InputFileError(f"n table {str(path)!r} does not exist; give the path of a CSV file")
+    try:
+        table = pd.read_csv(path, dtype=str, keep_default_na=False)
+    except Exception as exc:  # pandas raises many kinds
+        raise RoughnessError(f"n table {str(path)!r} cannot be read as CSV ({exc}); "
+                             "give a CSV with columns class,n") from exc
+    table.columns = [str(c).strip().lower() for c in table.columns]
+    if "class" not in table.columns or "n" not in table.columns:
+        raise RoughnessError(
+            f"n table {str(path)!r} has columns {list(table.columns)}; it needs columns class,n "
+            "(and optionally surface)"
+        )
+    names = [str(v).strip() for v in table["class"]]
+    dup = sorted({v for v in names if names.count(v) > 1})
+    if dup:
+        raise RoughnessError(f"n table {str(path)!r} lists classes {dup} more than once; "
+                             "give each class one row")
+    values = [str(v).strip() for v in table["n"]]
+    if "surface" in table.columns:
+        surf = [str(v).strip() or None for v in table["surface"]]
+    else:
+        surf = [None] * len(names)
+    return names, values, surf
+
+
+def _check_surfaces(surfaces: list[str | None]) -> None:
+    bad = sorted({s for s in surfaces if s is not None and s not in PUBLISHED_N_RANGES})
+    if bad:
+        raise RoughnessError(
+            f"surface kinds {bad} are unknown; use one of {sorted(PUBLISHED_N_RANGES)} or leave "
+            "the surface column empty"
+        )
+
+
+# ---------------------------------------------------------------------------------------
+# building a model (pure on in-memory layers)
+
+
+def uniform_model(n: float | str) -> RoughnessModel:
+    """One class ``"all"`` with one n for the whole mesh."""
+    values = _check_n_values(["n"], [n], "the --n option")
+    model = RoughnessModel(classes=("all",), n=values, surface=(None,), default=0,
+                           source="uniform")
+    check_ranges(model)
+    return model
+
+
+def _table_lookup(classes_used: list[str], table: tuple[list[str], list[Any], list[str | None]],
+                  *, what: str, default_class: str | None) -> tuple[list[str], np.ndarray,
+                                                                    list[str | None], int]:
+    names, values, surfaces = table
+    lookup = dict(zip(names, range(len(names)), strict=True))
+    needed = list(dict.fromkeys(classes_used))
+    if default_class is not None and default_class not in needed:
+        needed.append(default_class)
+    missing = [c for c in needed if c not in lookup]
+    if missing:
+        raise RoughnessError(
+            f"classes {missing} of {what} are missing from the n table; add a row for each "
+            "(columns class,n)"
+        )
+    idx = [lookup[c] for c in needed]
+    n = _check_n_values([names[i] for i in idx], [values[i] for i in idx], "the n table")
+    surf = [surfaces[i] for i in idx]
+    _check_surfaces(surf)
+    default = needed.index(default_class) if default_class is not None else -1
+    return needed, n, surf, default
+
+
+def _overlap_area(polygons: np.ndarray) -> tuple[float, int]:
+    """Total pairwise overlap area and the number of overlapping pairs."""
+    import shapely
+
+    tree = shapely.STRtree(polygons)
+    left, right = tree.query(polygons, predicate="intersects")
+    keep = left < right
+    left, right = left[keep], right[keep]
+    if left.size == 0:
+        return 0.0, 0
+    areas = shapely.area(shapely.intersection(polygons[left], polygons[right]))
+    return float(areas.sum()), int(np.count_nonzero(areas > 0))
+
+
+def polygon_model(
+    polygons: np.ndarray,
+    labels: np.ndarray,
+    *,
+    table: tuple[list[str], list[Any], list[str | None]] | None = None,
+    n_values: np.ndarray | None = None,
+    default_class: str | float | None = None,
+    overlap_rule: OverlapRule = "error",
+    mesh_area: Any = None,
+) -> RoughnessModel:
+    """Build a model from class polygons (already in the DEM's CRS).
+
+    Parameters
+    ----------
+    polygons : array of shapely Polygon/MultiPolygon
+    labels : array
+        Class name per polygon (``table`` mode) or ignored (``n_values`` mode).
+    table : (names, n, surfaces), optional
+        The n table; every label must be in it.
+    n_values : array, optional
+        n per polygon (the ``n_field`` mode); one class per distinct n.
+    default_class : str or float, optional
+        Class (or, in ``n_values`` mode, n) for ground no polygon covers.
+    overlap_rule : {"error", "first", "last", "max_n"}
+    mesh_area : shapely geometry, optional
+        Union of the mesh cells; used to check that the layer meets the mesh and to
+        measure uncovered ground.
+    """
+    import shapely
+
+    if overlap_rule not in OVERLAP_RULES:
+        raise RoughnessError(f"overlap rule {overlap_rule!r} is unknown; use one of {list(OVERLAP_RULES)}")
+    polygons = np.asarray(polygons, dtype=object)
+    keep = ~(shapely.is_missing(polygons) | shapely.is_empty(polygons))
+    if not np.any(keep):
+        raise RoughnessError("the class polygon layer holds no polygons; give a layer with class polygons")
+    polygons = shapely.make_valid(polygons[keep])
+    labels = np.asarray(labels, dtype=object)[keep]
+
+    if n_values is not None:
+        raw = np.asarray(n_values, dtype=object)[keep]
+        names_raw = [f"polygon {i}" for i in range(raw.size)]
+        n_poly = _check_n_values(names_raw, list(raw), "the n field of the class polygons")
+        distinct = list(np.unique(n_poly))
+        default_index = -1
+        if default_class is not None:
+            d = _check_n_values(["default"], [default_class], "the default n")[0]
+            if d not in distinct:
+                distinct.append(d)
+            default_index = distinct.index(d)
+        classes = [f"n={v:g}" for v in distinct]
+        n = np.asarray(distinct, dtype=float)
+        surf: list[str | None] = [None] * len(classes)
+        lookup = {v: i for i, v in enumerate(distinct)}
+        poly_class = np.array([lookup[v] for v in n_poly], dtype=np.int64)
+        source = "n_field"
+    else:
+        assert table is not None
+        label_str = [str(v).strip() if v is not None else "" for v in labels]
+        empty = sum(1 for v in label_str if v in ("", "nan", "None"))
+        if empty:
+            raise RoughnessError(f"{empty} class polygons have an empty class value; give every polygon a class")
+        classes, n, surf, default_index = _table_lookup(
+            sorted(set(label_str)), table, what="the class polygons",
+            default_class=None if default_class is None else str(default_class))
+        lookup = {c: i for i, c in enumerate(classes)}
+        poly_class = np.array([lookup[v] for v in label_str], dtype=np.int64)
+        source = "polygons"
+
+    # the layer must meet the mesh
+    if mesh_area is not None:
+        layer = shapely.union_all(polygons)
+        if not shapely.intersects(layer, mesh_area) or shapely.intersection(layer, mesh_area).area <= 0:
+            raise RoughnessError(
+                "the class polygons do not overlap the mesh at all; check that the layer covers "
+                "the model area and has the right CRS"
+            )
+
+    # overlaps
+    total_area = float(shapely.area(polygons).sum())
+    overlap, pairs = _overlap_area(polygons)
+    order = np.arange(polygons.size)
+    if overlap > AREA_TOLERANCE * total_area:
+        if overlap_rule == "error":
+            raise RoughnessError(
+                f"class polygons overlap ({pairs} overlapping pairs, {overlap:.6g} square units "
+                "in all); "
+                "remove the overlaps or choose an overlap rule (first, last or max_n)"
+            )
+        log.info("%d overlapping class polygon pairs resolved by rule %r", pairs, overlap_rule)
+    if overlap_rule == "first":
+        order = order[::-1]  # the first polygon is burnt last, so it wins
+    elif overlap_rule == "max_n":
+        order = np.argsort(n[poly_class], kind="stable")
+
+    details: dict[str, Any] = {"overlap_area": overlap, "overlap_pairs": pairs}
+    if mesh_area is not None:
+        uncovered = float(shapely.difference(mesh_area, shapely.union_all(polygons)).area)
+        share = uncovered / mesh_area.area if mesh_area.area > 0 else 0.0
+        details["uncovered_share"] = share
+        if share > AREA_TOLERANCE and default_index < 0:
+            raise RoughnessError(
+                f"{100 * share:.3g}% of the mesh area is covered by no class polygon; "
+                "give a default class (--default-class) or extend the polygons"
+            )
+
+    model = RoughnessModel(
+        classes=tuple(classes), n=np.asarray(n, dtype=float), surface=tuple(surf),
+        default=default_index, polygons=polygons[order], polygon_class=poly_class[order],
+        source=source, details=details,
+    )
+    check_ranges(model)
+    return model
+
+
+def raster_model(
+    raster: np.ndarray,
+    transform: Any,
+    crs: Any,
+    nodata: float | None,
+    table: tuple[list[str], list[Any], list[str | None]],
+    *,
+    default_class: str | None = None,
+    mesh_bounds: tuple[float, float, float, float] | None = None,
+) -> RoughnessModel:
+    """Build a model from an integer class raster and the n table.
+
+    Raster values are matched to the table's ``class`` column as text (``3`` matches
+    ``"3"``).  Pixels equal to ``nodata`` (or NaN) are unknown (the default class).
+    """
+    values = np.asarray(raster)
+    valid = np.isfinite(values) if values.dtype.kind == "f" else np.ones(values.shape, bool)
+    if nodata is not None and np.isfinite(nodata):
+        valid &= values != nodata
+    if values.dtype.kind == "f":
+        if np.any(valid & (values != np.round(values))):
+            raise RoughnessError("the class raster holds non-integer values; give integer class codes")
+    codes = np.unique(values[valid]).astype(np.int64)
+    if mesh_bounds is not None:
+        from rasterio.transform import array_bounds
+
+        b = array_bounds(values.shape[0], values.shape[1], transform)
+        west, south, east, north = b
+        mx0, my0, mx1, my1 = mesh_bounds
+        if east <= mx0 or west >= mx1 or north <= my0 or south >= my1 or codes.size == 0:
+            raise RoughnessError(
+                "the class raster does not overlap the mesh at all; check its extent and CRS"
+            )
+    names = [str(int(c)) for c in codes]
+    classes, n, surf, default_index = _table_lookup(
+        names, table, what="the class raster",
+        default_class=None if default_class is None else str(default_class))
+    lookup = {c: i for i, c in enumerate(classes)}
+    index = np.full(values.shape, -1, dtype=np.int32)
+    if codes.size:
+        pos = np.searchsorted(codes, values[valid].astype(np.int64))
+        index[valid] = np.array([lookup[s] for s in names], dtype=np.int32)[pos]
+    model = RoughnessModel(
+        classes=tuple(classes), n=n, surface=tuple(surf), default=default_index,
+        raster=index, raster_transform=transform, raster_crs=crs, source="raster",
+    )
+    check_ranges(model)
+    return model
+
+
+# ---------------------------------------------------------------------------------------
+# I/O edge
+
+
+def load_roughness(
+    *,
+    n: float | str | None = None,
+    classes: str | Path | None = None,
+    class_field: str | None = None,
+    n_table: str | Path | None = None,
+    n_field: str | None = None,
+    class_raster: str | Path | None = None,
+    default_class: str | None = None,
+    overlap_rule: OverlapRule = "error",
+    crs: Any = None,
+    mesh_area: Any = None,
+) -> RoughnessModel:
+    """Read the roughness inputs and build a :class:`RoughnessModel`.
+
+    Exactly one of ``n``, ``classes`` (with ``class_field`` + ``n_table`` or with
+    ``n_field``) or ``class_raster`` (with ``n_table``) must be given.  Layers in another
+    CRS than ``crs`` (the DEM's) are reprojected, with a log line.  ``mesh_area`` is the
+    union of the mesh cells, used for the coverage checks.
+    """
+    given = [name for name, v in (("n", n), ("classes", classes), ("class_raster", class_raster))
+             if v is not None]
+    if len(given) != 1:
+        raise RoughnessError(
+            "give exactly one roughness input: an n value, class polygons, or a class raster"
+            + (f" (got {', '.join(given)})" if given else "")
+        )
+    if n is not None:
+        return uniform_model(n)
+    if classes is not None:
+        if (class_field is None) == (n_field is None):
+            raise RoughnessError("class polygons need either a class field with an n table, or an n field")
+        if class_field is not None and n_table is None:
+            raise RoughnessError("a class field needs an n table (CSV with columns class,n)")
+        import geopandas as gpd
+
+        path = Path(classes)
+        if not path.exists():
+            raise InputFileError(f"class polygon layer {str(path)!r} does not exist; give an existing file")
+        try:
+            frame = gpd.read_file(path)
+        except Exception as exc:
+            raise RoughnessError(f"class polygon layer {str(path)!r} cannot be read ({exc}); "
+                                 "give a GeoPackage or shapefile") from exc
+        column = class_field if class_field is not None else n_field
+        if column not in frame.columns:
+            raise RoughnessError(
+                f"class polygon layer has no field {column!r}; its fields are "
+                f"{[c for c in frame.columns if c != frame.geometry.name]}"
+            )
+        if crs is not None and frame.crs is not None and not frame.crs.equals(crs):
+            log.info("class polygons reprojected from %s to the DEM's CRS", frame.crs)
+            frame = frame.to_crs(crs)
+        geoms = np.asarray(frame.geometry.values, dtype=object)
+        if class_field is not None:
+            table = read_n_table(n_table)  # type: ignore[arg-type]
+            return polygon_model(geoms, frame[class_field].to_numpy(dtype=object), table=table,
+                                 default_class=default_class, overlap_rule=overlap_rule,
+                                 mesh_area=mesh_area)
+        return polygon_model(geoms, np.zeros(len(geoms)), n_values=frame[n_field].to_numpy(dtype=object),
+                             default_class=default_class, overlap_rule=overlap_rule,
+                             mesh_area=mesh_area)
+    # class raster
+    if n_table is None:
+        raise RoughnessError("a class raster needs an n table (CSV with columns class,n)")
+    import rasterio
+
+    path = Path(class_raster)  # type: ignore[arg-type]
+    if not path.exists():
+        raise InputFileError(f"class raster {str(path)!r} does not exist; give an existing file")
+    try:
+        with rasterio.open(path) as src:
+            data = src.read(1)
+            transform, rcrs, nodata = src.transform, src.crs, src.nodata
+    except rasterio.errors.RasterioIOError as exc:
+        raise RoughnessError(f"class raster {str(path)!r} cannot be read ({exc})") from exc
+    if crs is not None and rcrs is not None and rcrs != crs:
+        log.info("class raster %s will be resampled (nearest) from %s to the DEM's CRS", path.name, rcrs)
+    mesh_bounds = None
+    if mesh_area is not None:
+        mesh_bounds = tuple(mesh_area.bounds)
+        if rcrs is not None and crs is not None and rcrs != crs:
+            from rasterio.warp import transform_bounds
+
+            mesh_bounds = transform_bounds(crs, rcrs, *mesh_bounds)
+    return raster_model(data, transform, rcrs, nodata, read_n_table(n_table),
+                        default_class=default_class, mesh_bounds=mesh_bounds)

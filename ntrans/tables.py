@@ -1,0 +1,472 @@
+"""``build_tables()``: cell and face stage tables from a DEM and mesh cells (``ntrans tables``).
+
+Flow: open and check the DEM and the cells -> faces of the whole mesh (vector only) ->
+tiles (:mod:`ntrans.engine`) -> per tile, pure numpy: pixel weights, surface factor,
+subgrid and flat cell tables, face profiles and face tables, geometric conveyance at
+n = 1 -> rows streamed tile by tile into Parquet inside an atomic output folder ->
+cell and face summaries as GeoPackage, optional CSV copies, a run summary in JSON.
+
+Flat face beds need the flat elevation of both adjacent cells; a tile carries the
+neighbouring cells its faces touch (its *halo*) and recomputes their terrain summary,
+so each tile is independent (see :mod:`ntrans.engine`).
+
+Rows are ordered by tile (tile row, tile column), then by cell (face) index within the
+tile, then by stage; the order is the same in-process and on Dask workers.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import os
+import time
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import shapely
+
+from . import __version__
+from .engine import (
+    COVERAGE_MODES,
+    ELEVATION_RULES,
+    FACE_RULES,
+    TileSettings,
+    default_reference,
+    execute,
+    make_tasks,
+    plan_tiles,
+)
+from .errors import InputError, PartialCoverageWarning
+from .stages import StageSpec
+
+log = logging.getLogger(__name__)
+
+CELL_STAGE_COLUMNS: tuple[str, ...] = (
+    "cell_id", "stage", "depth", "wet_area", "volume", "bed_area", "hydraulic_radius",
+    "mean_depth", "flat_elevation", "flat_depth", "flat_wet_area", "flat_volume",
+    "flat_hydraulic_radius",
+)
+FACE_STAGE_COLUMNS: tuple[str, ...] = (
+    "face_id", "cell_a", "cell_b", "stage", "depth", "length", "flow_area",
+    "wetted_perimeter", "top_width", "hydraulic_radius", "flat_bed", "flat_depth",
+    "flat_flow_area", "conveyance_flat", "conveyance_lumped", "conveyance_strip",
+)
+CELL_SUMMARY_COLUMNS: tuple[str, ...] = (
+    "cell_id", "area", "covered_fraction", "covered_area", "z_min", "z_mean", "z_max",
+    "flat_elevation", "bed_factor",
+)
+FACE_SUMMARY_COLUMNS: tuple[str, ...] = (
+    "face_id", "cell_a", "cell_b", "length", "low_point", "relief", "covered_fraction",
+    "perimeter_ratio",
+)
+
+#: Fractions below 1 - this count as partly outside the DEM / over nodata (round-off).
+PARTIAL_TOLERANCE = 1e-6
+
+
+@dataclass
+class TablesResult:
+    """What :func:`build_tables` wrote, and a few summary numbers.
+
+    ``out`` is the output folder, ``files`` the files inside it.  ``n_partial`` counts
+    cells partly outside the DEM or over nodata (``partial_ids`` the first few of them).
+    """
+
+    out: Path
+    files: list[Path]
+    n_cells: int
+    n_faces: int
+    n_stages: int
+    n_tiles: int
+    n_partial: int = 0
+    partial_ids: list[Any] = field(default_factory=list)
+    seconds: float = 0.0
+    units: dict[str, str] = field(default_factory=dict)
+
+
+def _units(dem: Any) -> dict[str, str]:
+    from .outputs import column_units, unit_symbol
+
+    units = column_units(dem.horizontal_unit, dem.vertical_unit)
+    z = unit_symbol(dem.vertical_unit)
+    units.update(
+        {
+            "flat_flow_area": units["flow_area"],
+            "conveyance_flat": units.get("conveyance", ""),
+            "conveyance_lumped": units.get("conveyance", ""),
+            "conveyance_strip": units.get("conveyance", ""),
+            "relief": z,
+            "bed_factor": "1",
+            "perimeter_ratio": "1",
+        }
+    )
+    return units
+
+
+def _descriptions() -> dict[str, str]:
+    from .outputs import column_descriptions
+
+    d = column_descriptions()
+    d.update(
+        {
+            "depth": "stage minus the item's lowest terrain point",
+            "flat_flow_area": "face length times flat_depth",
+            "conveyance_flat": "geometric conveyance at n = 1, flat face: k L h^(5/3)",
+            "conveyance_lumped": "geometric conveyance at n = 1, lumped radius: k A R^(2/3)",
+            "conveyance_strip": "geometric conveyance at n = 1, strips: k sum h^(5/3) ds",
+            "relief": "highest minus lowest point of the face profile",
+            "bed_factor": "bed_area / wet_area at the reference depth",
+            "perimeter_ratio": "wetted_perimeter / top_width at the reference depth",
+        }
+    )
+    return d
+
+
+def _id_type(ids: np.ndarray) -> pa.DataType:
+    return pa.int64() if ids.dtype.kind in "iub" else pa.string()
+
+
+def _ids_at(ids: np.ndarray, index: np.ndarray) -> pa.Array:
+    """User ids at global indices; null where the index is -1."""
+    index = np.asarray(index, dtype=np.int64)
+    missing = index < 0
+    values = ids[np.where(missing, 0, index)] if ids.size else np.empty(0, dtype=ids.dtype)
+    kind = _id_type(ids)
+    if kind == pa.int64():
+        return pa.array(values.astype(np.int64), type=kind, mask=missing)
+    text = [None if m else str(v) for v, m in zip(values.tolist(), missing.tolist(), strict=True)]
+    return pa.array(text, type=kind)
+
+
+def _check_choice(name: str, value: str, allowed: tuple[str, ...]) -> None:
+    if value not in allowed:
+        raise InputError(f"{name} {value!r} is not one of {', '.join(allowed)}; choose one of them")
+
+
+def _field_values(layer: Any, rule: str, elevation_field: str | None) -> np.ndarray | None:
+    if rule != "field":
+        if elevation_field is not None:
+            raise InputError(
+                f"an elevation field ({elevation_field!r}) was given but the elevation rule is "
+                f"{rule!r}; use elevation_rule='field' or drop the field"
+            )
+        return None
+    if elevation_field is None:
+        raise InputError(
+            "the elevation rule 'field' needs an elevation field; name the cell attribute "
+            "holding the flat bed elevations"
+        )
+    frame = layer.frame
+    if elevation_field not in frame.columns:
+        raise InputError(
+            f"the cells have no attribute {elevation_field!r}; choose one of "
+            f"{', '.join(map(str, [c for c in frame.columns if c != frame.geometry.name]))}"
+        )
+    try:
+        values = np.asarray(frame[elevation_field], dtype=float)
+    except (TypeError, ValueError) as exc:
+        raise InputError(
+            f"cell attribute {elevation_field!r} holds non-numbers; give elevations as numbers"
+        ) from exc
+    return values
+
+
+def build_tables(
+    dem: str | os.PathLike[str],
+    cells: str | os.PathLike[str],
+    *,
+    out: str | os.PathLike[str],
+    id_field: str | None = None,
+    stages: str | None = None,
+    depths: str | None = None,
+    vertical_units: str | None = None,
+    coverage: str = "exact",
+    elevation_rule: str = "mean",
+    elevation_field: str | None = None,
+    face_rule: str = "higher",
+    face_spacing: float | None = None,
+    snap_tolerance: float | None = None,
+    faces: bool = True,
+    csv: bool = False,
+    overwrite: bool = False,
+    tile_size: int = 1024,
+    workers: int | None = None,
+    scheduler: str | None = None,
+    progress: bool = False,
+) -> TablesResult:
+    """Cell and face stage tables, subgrid terrain and flat beds, into ``out``.
+
+    Parameters
+    ----------
+    dem : terrain raster in a projected CRS (metre or foot).
+    cells : polygon layer of the mesh cells.
+    out : output folder; written whole or not at all (exists -> error unless
+        ``overwrite``).
+    id_field : attribute with unique cell ids (default: a ``cell_id``/``id``-like column,
+        else the feature order from 0).
+    stages, depths : exactly one; SPEC ``start:stop:step`` or a comma list, in the DEM's
+        vertical units.  Depths are above each cell's / face's lowest terrain point.
+    vertical_units : ``metre`` or ``foot`` when the elevations are not in the CRS unit.
+    coverage : ``exact`` (area fractions) or ``centre`` (pixel centre inside).
+    elevation_rule : flat cell bed: ``mean | min | median | centroid | field``.
+    elevation_field : attribute with the flat bed elevations (rule ``field``).
+    face_rule : flat face bed: ``higher | mean | min`` of the two flat cell elevations
+        (the one cell's on the boundary) or ``profile_mean`` of the face's terrain.
+    face_spacing : profile sampling step along faces, CRS units (default half a pixel).
+    snap_tolerance : border sharing distance, CRS units (default 1% of the pixel size).
+    faces : also build the face tables.
+    csv : also write the stage tables as CSV.
+    tile_size : tile edge in DEM pixels.
+    workers, scheduler : run tiles on a local Dask cluster / an existing scheduler.
+    progress : show a progress bar on stderr.
+
+    Returns
+    -------
+    TablesResult
+
+    Writes ``cell_stage.parquet``, ``face_stage.parquet``, ``cells.gpkg``, ``faces.gpkg``
+    (face outputs only with ``faces``), ``tables_summary.json`` and with ``csv`` the
+    ``.csv`` copies of the stage tables.  Column units are in each Parquet file's
+    metadata (key ``ntrans:units``) and in the summary JSON.
+    """
+    from .inputs import open_dem, read_cells
+    from .mesh import build_faces
+    from .outputs import OutputFolder, TableWriter, write_csv, write_geopackage
+
+    started = time.perf_counter()
+    _check_choice("coverage", coverage, COVERAGE_MODES)
+    _check_choice("elevation rule", elevation_rule, ELEVATION_RULES)
+    _check_choice("face rule", face_rule, FACE_RULES)
+    spec = StageSpec.from_options(stages=stages, depths=depths)
+    if int(tile_size) < 1:
+        raise InputError(f"tile size {tile_size} is not a positive number of pixels; use e.g. 1024")
+
+    dem_info = open_dem(dem, vertical_units=vertical_units)
+    layer = read_cells(cells, dem=dem_info, id_field=id_field)
+    field_values = _field_values(layer, elevation_rule, elevation_field)
+    dx, dy = dem_info.pixel_size
+    pixel = min(dx, dy)
+    spacing = 0.5 * pixel if face_spacing is None else float(face_spacing)
+    snap = 0.01 * pixel if snap_tolerance is None else float(snap_tolerance)
+    if not (np.isfinite(spacing) and spacing > 0):
+        raise InputError(f"face spacing {face_spacing!r} is not a positive length; give e.g. {0.5 * pixel:g}")
+    if not (np.isfinite(snap) and snap > 0):
+        raise InputError(f"snap tolerance {snap_tolerance!r} is not a positive length; give e.g. {0.01 * pixel:g}")
+
+    ids = np.asarray(layer.ids)
+    geoms = np.asarray(layer.geometry, dtype=object)
+    n_cells = geoms.size
+    mesh = build_faces(geoms, snap_tolerance=snap) if faces else None
+    n_faces = mesh.n_faces if mesh is not None else 0
+    tiles = plan_tiles(
+        geoms,
+        dem_info.transform,
+        dem_info.shape,
+        tile_size=int(tile_size),
+        face_cell_a=None if mesh is None else mesh.cell_a,
+        face_cell_b=None if mesh is None else mesh.cell_b,
+        face_lines=None if mesh is None else mesh.geometry,
+    )
+    log.info(
+        "%d cells, %d faces, %d stages (%s mode) in %d tiles of %d px",
+        n_cells, n_faces, spec.values.size, spec.mode, len(tiles), int(tile_size),
+    )
+    settings = TileSettings(
+        stages=spec,
+        reference=default_reference(spec),
+        coverage=coverage,  # type: ignore[arg-type]
+        elevation_rule=elevation_rule,  # type: ignore[arg-type]
+        face_rule=face_rule,  # type: ignore[arg-type]
+        face_spacing=spacing,
+        z_to_xy=float(dem_info.z_to_xy),
+        faces=bool(faces),
+    )
+    tasks = make_tasks(
+        tiles,
+        geoms,
+        field_values=field_values,
+        face_lines=None if mesh is None else mesh.geometry,
+        face_cell_a=None if mesh is None else mesh.cell_a,
+        face_cell_b=None if mesh is None else mesh.cell_b,
+        face_length=None if mesh is None else mesh.length,
+    )
+
+    units = _units(dem_info)
+    descriptions = _descriptions()
+    meta = {
+        "ntrans:version": __version__,
+        "ntrans:stage_mode": spec.mode,
+        "ntrans:dem": os.fspath(dem),
+        "ntrans:cells": os.fspath(cells),
+    }
+    id_type = _id_type(ids)
+    f64 = pa.float64()
+    cell_schema = pa.schema(
+        [pa.field("cell_id", id_type)] + [pa.field(c, f64) for c in CELL_STAGE_COLUMNS[1:]]
+    )
+    face_schema = pa.schema(
+        [pa.field("face_id", pa.int64()), pa.field("cell_a", id_type), pa.field("cell_b", id_type)]
+        + [pa.field(c, f64) for c in FACE_STAGE_COLUMNS[3:]]
+    )
+
+    cell_sum = {k: np.full(n_cells, np.nan) for k in CELL_SUMMARY_COLUMNS[3:]}
+    face_sum = {k: np.full(n_faces, np.nan) for k in ("low_point", "relief", "covered_fraction", "perimeter_ratio")}
+
+    files: list[Path] = []
+    with OutputFolder(out, overwrite=overwrite, inputs=[dem, cells]) as folder:
+        tmp = folder.path
+        cell_path = tmp / "cell_stage.parquet"
+        face_path = tmp / "face_stage.parquet"
+        cell_writer = TableWriter(cell_path, schema=cell_schema, units=units,
+                                  descriptions=descriptions, metadata=meta)
+        face_writer = (
+            TableWriter(face_path, schema=face_schema, units=units,
+                        descriptions=descriptions, metadata=meta)
+            if faces else None
+        )
+        try:
+            results = execute(
+                tasks,
+                dem=dem_info,
+                dem_path=dem_info.path,
+                settings=settings,
+                open_kwargs={"vertical_units": vertical_units},
+                workers=workers,
+                scheduler=scheduler,
+                progress=progress,
+                total=len(tiles),
+            )
+            step = max(len(tiles) // 10, 1)
+            for k, res in enumerate(results):
+                rows = res["cell_rows"]
+                chunk: dict[str, Any] = {"cell_id": _ids_at(ids, rows["cell"])}
+                chunk.update({c: rows[c] for c in CELL_STAGE_COLUMNS[1:]})
+                cell_writer.write(chunk)
+                cs = res["cell_summary"]
+                for name in cell_sum:
+                    cell_sum[name][cs["cell"]] = cs[name]
+                if face_writer is not None:
+                    fr = res["face_rows"]
+                    fchunk: dict[str, Any] = {
+                        "face_id": fr["face"].astype(np.int64),
+                        "cell_a": _ids_at(ids, fr["cell_a"]),
+                        "cell_b": _ids_at(ids, fr["cell_b"]),
+                    }
+                    fchunk.update({c: fr[c] for c in FACE_STAGE_COLUMNS[3:]})
+                    face_writer.write(fchunk)
+                    fs = res["face_summary"]
+                    for name in face_sum:
+                        face_sum[name][fs["face"]] = fs[name]
+                if (k + 1) % step == 0 or k + 1 == len(tiles):
+                    log.info("tiles done: %d of %d", k + 1, len(tiles))
+            files.append(cell_writer.close())
+            if face_writer is not None:
+                files.append(face_writer.close())
+        except BaseException:
+            cell_writer.abort()
+            if face_writer is not None:
+                face_writer.abort()
+            raise
+
+        # per-cell summary
+        import geopandas as gpd
+
+        area = shapely.area(geoms)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            covered_fraction = np.where(area > 0, cell_sum["covered_area"] / area, np.nan)
+        covered_fraction = np.clip(np.nan_to_num(covered_fraction, nan=0.0), 0.0, 1.0)
+        layer.covered_fraction = covered_fraction
+        crs = layer.frame.crs
+        cell_frame = gpd.GeoDataFrame(
+            {
+                "cell_id": ids,
+                "area": area,
+                "covered_fraction": covered_fraction,
+                **{k: cell_sum[k] for k in CELL_SUMMARY_COLUMNS[3:]},
+            },
+            geometry=gpd.GeoSeries(geoms, crs=crs),
+            crs=crs,
+        )
+        files.append(write_geopackage(cell_frame, tmp / "cells.gpkg", "cells"))
+        if mesh is not None:
+            face_frame = gpd.GeoDataFrame(
+                {
+                    "face_id": np.arange(n_faces, dtype=np.int64),
+                    "cell_a": _ids_at(ids, mesh.cell_a).to_pandas(),
+                    "cell_b": _ids_at(ids, mesh.cell_b).to_pandas(),
+                    "length": mesh.length,
+                    **face_sum,
+                },
+                geometry=gpd.GeoSeries(mesh.geometry, crs=crs),
+                crs=crs,
+            )
+            if id_type == pa.int64():
+                face_frame["cell_a"] = face_frame["cell_a"].astype("Int64")
+                face_frame["cell_b"] = face_frame["cell_b"].astype("Int64")
+            face_frame = face_frame[[*FACE_SUMMARY_COLUMNS, "geometry"]]
+            files.append(write_geopackage(face_frame, tmp / "faces.gpkg", "faces"))
+        if csv:
+            files.append(write_csv(cell_path, tmp / "cell_stage.csv"))
+            if faces:
+                files.append(write_csv(face_path, tmp / "face_stage.csv"))
+
+        partial = covered_fraction < 1.0 - PARTIAL_TOLERANCE
+        partial_ids = ids[partial][:5].tolist()
+        seconds = time.perf_counter() - started
+        summary = {
+            "ntrans_version": __version__,
+            "dem": os.fspath(dem),
+            "cells": os.fspath(cells),
+            "cells_count": int(n_cells),
+            "faces_count": int(n_faces),
+            "tiles": len(tiles),
+            "tile_size": int(tile_size),
+            "stage_mode": spec.mode,
+            "stage_values": spec.values.tolist(),
+            "reference": settings.reference,
+            "coverage": coverage,
+            "elevation_rule": elevation_rule,
+            "elevation_field": elevation_field,
+            "face_rule": face_rule,
+            "face_spacing": spacing,
+            "snap_tolerance": snap,
+            "horizontal_unit": dem_info.horizontal_unit,
+            "vertical_unit": dem_info.vertical_unit,
+            "partial_cells": int(partial.sum()),
+            "partial_cells_first": [str(v) for v in partial_ids],
+            "seconds": round(seconds, 3),
+            "units": {k: v for k, v in units.items() if k in set(CELL_STAGE_COLUMNS)
+                      | set(FACE_STAGE_COLUMNS) | set(CELL_SUMMARY_COLUMNS)
+                      | set(FACE_SUMMARY_COLUMNS)},
+        }
+        summary_path = tmp / "tables_summary.json"
+        summary_path.write_text(json.dumps(summary, indent=2))
+        files.append(summary_path)
+        rel = [p.name for p in files]
+
+    final = Path(os.fspath(out)).expanduser().absolute()
+    n_partial = int(partial.sum())
+    if n_partial:
+        warnings.warn(
+            f"{n_partial} cells lie partly outside the DEM or over nodata (first: "
+            f"{', '.join(map(str, partial_ids))}); their covered_fraction is in cells.gpkg",
+            PartialCoverageWarning,
+            stacklevel=2,
+        )
+    log.info("tables written to %s in %.1f s", final, seconds)
+    return TablesResult(
+        out=final,
+        files=[final / name for name in rel],
+        n_cells=int(n_cells),
+        n_faces=int(n_faces),
+        n_stages=int(spec.values.size),
+        n_tiles=len(tiles),
+        n_partial=n_partial,
+        partial_ids=partial_ids,
+        seconds=seconds,
+        units=units,
+    )

@@ -1,0 +1,769 @@
+"""Roughness translation between model families: n ratios, class fit, stage bias.
+
+Pure numpy / scipy.  Everything rests on per (item, class) *sufficient statistics* at
+each stage (:class:`ClassStats`), where an item is a face (or a cell):
+
+==========  ==============================  ====================================
+stat        face                            cell
+==========  ==============================  ====================================
+extent      plan length of the class        covered plan area of the class
+wet         wet plan length L_c             wet plan area
+perimeter   wetted perimeter P_c            wetted bed area (3-D)
+area        flow area A_c                   volume V_c
+strip       I_c = integral h^(5/3) ds       sum of a h^(5/3) over wet pixels
+==========  ==============================  ====================================
+
+so the conveyance for ANY vector of class n is cheap (:func:`conveyance`):
+
+- ``strip``:  K = k sum_c I_c / n_c  (for cells: the conveyance form,
+  n_eff = <h>^(5/3) / <h^(5/3)/n>, METHODS.md);
+- ``lumped``: K = k A R^(2/3) / n_e with A = sum A_c, R = A / sum P_c and n_e the
+  composite of the class n over the wetted perimeters (Horton-Einstein
+  (sum P_c n_c^1.5 / P)^(2/3), Pavlovskii (sum P_c n_c^2 / P)^(1/2), or Lotter
+  K = k sum_c P_c R_c^(5/3) / n_c) (Chow 1959 6-7; Yen 2002).  For cells R = V / A_bed.
+
+A *flat* family is the same statistics built from one bed elevation per item
+(:class:`FlatGeometry`): wet = perimeter = extent where h > 0, area = extent h,
+strip = extent h^(5/3); with ``lumped`` it gives K = k L h^(5/3) / n_f, n_f composite
+over plan lengths.
+
+Cell conveyance (cell-based friction) is formed as K = k V R^(2/3) / n with R the
+closure's radius: a flat cell gives k a h^(5/3) / n [der, METHODS.md "Translation rule"].
+
+Translation rule [der]: equal conveyance at equal stage.  Every closure is homogeneous of
+degree -1 in the n vector, so the uniform-scaling ratio is
+n_ratio = K_target(n_source) / K_source(n_source).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Literal, Protocol
+
+import numpy as np
+from scipy import sparse
+
+Closure = Literal["lumped", "strip"]
+Composite = Literal["horton_einstein", "pavlovskii", "lotter"]
+CLOSURES: tuple[str, ...] = ("lumped", "strip")
+COMPOSITES: tuple[str, ...] = ("horton_einstein", "pavlovskii", "lotter")
+
+N_MIN, N_MAX = 0.005, 1.0  # absolute bounds of a fitted n
+FEW_FACES = 10
+WIDE_SPREAD = 1.5
+
+_TINY = 1e-12
+
+
+# ---------------------------------------------------------------------------------------
+# sufficient statistics
+
+
+@dataclass(frozen=True)
+class ClassStats:
+    """Per (item, class) pair statistics at each stage column.
+
+    Attributes
+    ----------
+    item, cls : ndarray (n_pairs,) int
+        The item (local face or cell index) and class index of each pair.
+    n_items, n_classes : int
+    extent : ndarray (n_pairs,)
+        Plan length (faces, length unit) or plan area (cells, area unit) of the class.
+    wet, perimeter, area, strip : ndarray (n_pairs, n_stages)
+        See the module docstring; units length / length / length^2 / length^(8/3) for
+        faces, one length power more for cells.
+    """
+
+    item: np.ndarray
+    cls: np.ndarray
+    n_items: int
+    n_classes: int
+    extent: np.ndarray
+    wet: np.ndarray
+    perimeter: np.ndarray
+    area: np.ndarray
+    strip: np.ndarray
+    _sum: sparse.csr_matrix | None = field(default=None, repr=False, compare=False)
+
+    @property
+    def n_stages(self) -> int:
+        return int(self.wet.shape[1])
+
+    def summer(self) -> sparse.csr_matrix:
+        """Sparse (n_items, n_pairs) matrix that sums pairs into items."""
+        if self._sum is None:
+            mat = sparse.csr_matrix(
+                (np.ones(self.item.size), (self.item, np.arange(self.item.size))),
+                shape=(self.n_items, self.item.size),
+            )
+            object.__setattr__(self, "_sum", mat)
+        return self._sum  # type: ignore[return-value]
+
+    def total(self, values: np.ndarray) -> np.ndarray:
+        """Sum a (n_pairs, n_stages) array into (n_items, n_stages)."""
+        return np.asarray(self.summer() @ values)
+
+    def dominant_class(self) -> np.ndarray:
+        """Class with the largest extent per item (-1 for items without pairs)."""
+        out = np.full(self.n_items, -1, dtype=np.int64)
+        if self.item.size == 0:
+            return out
+        order = np.lexsort((-self.extent, self.item))
+        first = np.r_[True, self.item[order][1:] != self.item[order][:-1]]
+        out[self.item[order][first]] = self.cls[order][first]
+        return out
+
+    def class_share(self) -> np.ndarray:
+        """Extent share of each pair within its item, (n_pairs,)."""
+        tot = np.bincount(self.item, weights=self.extent, minlength=self.n_items)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(tot[self.item] > 0, self.extent / tot[self.item], 0.0)
+
+
+def _pairs(item: np.ndarray, cls: np.ndarray, n_classes: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Unique (item, class) pairs sorted by item then class, and the inverse index."""
+    key = item.astype(np.int64) * max(n_classes, 1) + cls.astype(np.int64)
+    uniq, inv = np.unique(key, return_inverse=True)
+    return uniq // max(n_classes, 1), uniq % max(n_classes, 1), inv
+
+
+def _accumulate(inv: np.ndarray, n_pairs: int, columns: list[np.ndarray]) -> list[np.ndarray]:
+    """Sum (n_elem, n_stages) arrays into (n_pairs, n_stages) by ``inv``."""
+    out = []
+    for values in columns:
+        n_st = values.shape[1]
+        idx = (inv[:, None] * n_st + np.arange(n_st)[None, :]).ravel()
+        out.append(np.bincount(idx, weights=values.ravel(), minlength=n_pairs * n_st)
+                   .reshape(n_pairs, n_st))
+    return out
+
+
+def segment_integrals(h0: np.ndarray, h1: np.ndarray, ds: np.ndarray,
+                      dl: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Exact integrals over one linear profile segment with end depths h0, h1 (may be < 0).
+
+    Parameters
+    ----------
+    h0, h1 : ndarray
+        Stage minus bed at both ends (length unit).
+    ds, dl : ndarray
+        Plan length and 3-D length of the segment (broadcast against h0).
+
+    Returns
+    -------
+    wet plan length, wetted perimeter, flow area (integral of h+), strip integral
+    (integral of h+^(5/3) ds).
+    """
+    hmax = np.maximum(h0, h1)
+    hmin = np.minimum(h0, h1)
+    wet_any = hmax > 0
+    lo = np.maximum(hmin, 0.0)
+    span = hmax - hmin
+    with np.errstate(invalid="ignore", divide="ignore"):
+        frac = np.where(hmin >= 0, 1.0, np.where(wet_any, hmax / np.where(span > 0, span, 1.0), 0.0))
+    frac = np.clip(frac, 0.0, 1.0)
+    wet = ds * frac
+    per = dl * frac
+    area = np.where(wet_any, wet * (hmax + lo) * 0.5, 0.0)
+    hp = np.where(wet_any, hmax, 0.0)
+    d = hp - lo
+    close = d <= 1e-7 * np.maximum(hp, _TINY)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        exact = (hp ** (8.0 / 3.0) - lo ** (8.0 / 3.0)) / ((8.0 / 3.0) * np.where(close, 1.0, d))
+    mean = (0.5 * (hp + lo)) ** (5.0 / 3.0)
+    strip = np.where(wet_any, wet * np.where(close, mean, exact), 0.0)
+    return wet, per, area, strip
+
+
+class Geometry(Protocol):
+    """Anything that gives :class:`ClassStats` at a stage matrix (n_items, n_stages)."""
+
+    n_items: int
+    n_classes: int
+    low: np.ndarray
+
+    def stats(self, stages: np.ndarray) -> ClassStats: ...
+
+
+@dataclass
+class FaceGeometry:
+    """Subgrid face geometry: piecewise-linear profiles with a class per segment.
+
+    Parameters
+    ----------
+    face, station, z : ndarray (n_points,)
+        Profiles as in ``ntrans.faces.Profiles`` (stations of one face contiguous and
+        increasing; NaN z allowed: segments touching it are dropped).
+    seg_class : ndarray (n_points,)
+        Class index of the segment starting at each point (value at the last point of a
+        face is ignored); -1 drops the segment.
+    n_items, n_classes : int
+    z_to_xy : float
+        Converts vertical to horizontal units for the wetted perimeter.
+    """
+
+    face: np.ndarray
+    station: np.ndarray
+    z: np.ndarray
+    seg_class: np.ndarray
+    n_items: int
+    n_classes: int
+    z_to_xy: float = 1.0
+
+    def __post_init__(self) -> None:
+        face = np.asarray(self.face, dtype=np.int64)
+        st = np.asarray(self.station, dtype=float)
+        z = np.asarray(self.z, dtype=float)
+        cls = np.asarray(self.seg_class, dtype=np.int64)
+        same = face[1:] == face[:-1]
+        ok = same & np.isfinite(z[1:]) & np.isfinite(z[:-1]) & (cls[:-1] >= 0)
+        self.seg_face = face[:-1][ok]
+        self.z0 = z[:-1][ok]
+        self.z1 = z[1:][ok]
+        self.ds = (st[1:] - st[:-1])[ok]
+        self.dl = np.hypot(self.ds, (self.z1 - self.z0) * self.z_to_xy)
+        seg_cls = cls[:-1][ok]
+        self.pair_item, self.pair_cls, self.inv = _pairs(self.seg_face, seg_cls, self.n_classes)
+        self.extent = np.bincount(self.inv, weights=self.ds, minlength=self.pair_item.size)
+        low = np.full(self.n_items, np.inf)
+        np.minimum.at(low, self.seg_face, np.minimum(self.z0, self.z1))
+        self.low = np.where(np.isfinite(low), low, np.nan)
+        mean_num = np.bincount(self.seg_face, weights=self.ds * (self.z0 + self.z1) / 2,
+                               minlength=self.n_items)
+        length = np.bincount(self.seg_face, weights=self.ds, minlength=self.n_items)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            self.mean_elevation = np.where(length > 0, mean_num / length, np.nan)
+        self.length = length
+
+    def stats(self, stages: np.ndarray, chunk: int = 64) -> ClassStats:
+        """Statistics at a stage matrix (n_items, n_stages)."""
+        stages = np.atleast_2d(np.asarray(stages, dtype=float))
+        n_pairs = self.pair_item.size
+        parts: list[list[np.ndarray]] = []
+        for j0 in range(0, stages.shape[1], chunk):
+            eta = stages[self.seg_face, j0:j0 + chunk]
+            h0 = eta - self.z0[:, None]
+            h1 = eta - self.z1[:, None]
+            bad = ~np.isfinite(eta)
+            h0 = np.where(bad, -1.0, h0)
+            h1 = np.where(bad, -1.0, h1)
+            cols = segment_integrals(h0, h1, self.ds[:, None], self.dl[:, None])
+            parts.append(_accumulate(self.inv, n_pairs, list(cols)))
+        wet, per, area, strip = (np.concatenate([p[i] for p in parts], axis=1) for i in range(4))
+        return ClassStats(self.pair_item, self.pair_cls, self.n_items, self.n_classes,
+                          self.extent, wet, per, area, strip)
+
+
+@dataclass
+class CellGeometry:
+    """Subgrid cell geometry: weighted pixels with a class each.
+
+    Parameters
+    ----------
+    item, z, plan_area, bed_area, pix_class : ndarray (n_pixels,)
+        Cell of each pixel share, elevation, covered plan area (fraction x pixel area),
+        bed area (plan area x surface factor), class index (-1 drops the pixel).
+    """
+
+    item: np.ndarray
+    z: np.ndarray
+    plan_area: np.ndarray
+    bed_area: np.ndarray
+    pix_class: np.ndarray
+    n_items: int
+    n_classes: int
+
+    def __post_init__(self) -> None:
+        ok = np.isfinite(np.asarray(self.z, float)) & (np.asarray(self.pix_class) >= 0)
+        self._item = np.asarray(self.item, dtype=np.int64)[ok]
+        self._z = np.asarray(self.z, dtype=float)[ok]
+        self._a = np.asarray(self.plan_area, dtype=float)[ok]
+        self._b = np.asarray(self.bed_area, dtype=float)[ok]
+        cls = np.asarray(self.pix_class, dtype=np.int64)[ok]
+        self.pair_item, self.pair_cls, self.inv = _pairs(self._item, cls, self.n_classes)
+        self.extent = np.bincount(self.inv, weights=self._a, minlength=self.pair_item.size)
+        low = np.full(self.n_items, np.inf)
+        np.minimum.at(low, self._item, self._z)
+        self.low = np.where(np.isfinite(low), low, np.nan)
+
+    def stats(self, stages: np.ndarray, chunk: int = 16) -> ClassStats:
+        """Statistics at a stage matrix (n_items, n_stages)."""
+        stages = np.atleast_2d(np.asarray(stages, dtype=float))
+        n_pairs = self.pair_item.size
+        parts = []
+        for j0 in range(0, stages.shape[1], chunk):
+            h = stages[self._item, j0:j0 + chunk] - self._z[:, None]
+            h = np.where(np.isfinite(h) & (h > 0), h, 0.0)
+            wet = h > 0
+            cols = [self._a[:, None] * wet, self._b[:, None] * wet, self._a[:, None] * h,
+                    self._a[:, None] * h ** (5.0 / 3.0)]
+            parts.append(_accumulate(self.inv, n_pairs, cols))
+        wet, per, area, strip = (np.concatenate([p[i] for p in parts], axis=1) for i in range(4))
+        return ClassStats(self.pair_item, self.pair_cls, self.n_items, self.n_classes,
+                          self.extent, wet, per, area, strip)
+
+
+@dataclass
+class FlatGeometry:
+    """Flat family: one bed elevation per item, classes by extent along the item.
+
+    Built from the (item, class, extent) pairs of a subgrid geometry so both families
+    share the same pair order: :meth:`from_geometry`.
+    """
+
+    pair_item: np.ndarray
+    pair_cls: np.ndarray
+    extent: np.ndarray
+    z_flat: np.ndarray
+    n_items: int
+    n_classes: int
+
+    @classmethod
+    def from_geometry(cls, geometry: FaceGeometry | CellGeometry, z_flat: np.ndarray) -> FlatGeometry:
+        return cls(geometry.pair_item, geometry.pair_cls, geometry.extent,
+                   np.asarray(z_flat, dtype=float), geometry.n_items, geometry.n_classes)
+
+    @property
+    def low(self) -> np.ndarray:
+        return self.z_flat
+
+    def stats(self, stages: np.ndarray) -> ClassStats:
+        stages = np.atleast_2d(np.asarray(stages, dtype=float))
+        h = stages[self.pair_item] - self.z_flat[self.pair_item][:, None]
+        h = np.where(np.isfinite(h) & (h > 0), h, 0.0)
+        wet = self.extent[:, None] * (h > 0)
+        return ClassStats(self.pair_item, self.pair_cls, self.n_items, self.n_classes,
+                          self.extent, wet, wet.copy(), self.extent[:, None] * h,
+                          self.extent[:, None] * h ** (5.0 / 3.0))
+
+
+# ---------------------------------------------------------------------------------------
+# conveyance
+
+
+def conveyance(stats: ClassStats, n_class: np.ndarray, *, closure: Closure = "lumped",
+               composite: Composite = "horton_einstein", k: float = 1.0,
+               cell: bool = False) -> np.ndarray:
+    """Conveyance per item and stage for a vector of class n.
+
+    Parameters
+    ----------
+    stats : ClassStats
+    n_class : ndarray (n_classes,)
+    closure : {"lumped", "strip"}
+    composite : {"horton_einstein", "pavlovskii", "lotter"}
+        Composite n for the lumped closure (ignored by ``strip``).
+    k : float
+        Manning unit factor (1.0 SI, 1.486 US customary).
+    cell : bool
+        Cell conveyance K = k V R^(2/3) / n (``area`` holds volume, ``perimeter`` bed
+        area); identical formulas, named for clarity.
+
+    Returns
+    -------
+    ndarray (n_items, n_stages), 0 where dry.  Units length^(8/3)/n (faces).
+    """
+    del cell  # same algebra for cells and faces
+    if closure not in CLOSURES:
+        raise ValueError(f"closure {closure!r} is unknown; use one of {list(CLOSURES)}")
+    if composite not in COMPOSITES:
+        raise ValueError(f"composite method {composite!r} is unknown; use one of {list(COMPOSITES)}")
+    n_p = np.asarray(n_class, dtype=float)[stats.cls][:, None]
+    if closure == "strip":
+        return k * stats.total(stats.strip / n_p)
+    if composite == "lotter":
+        with np.errstate(invalid="ignore", divide="ignore"):
+            part = np.where(stats.perimeter > 0,
+                            stats.area ** (5.0 / 3.0) / np.where(stats.perimeter > 0, stats.perimeter, 1.0)
+                            ** (2.0 / 3.0), 0.0)
+        return k * stats.total(part / n_p)
+    area = stats.total(stats.area)
+    per = stats.total(stats.perimeter)
+    if composite == "horton_einstein":
+        num = stats.total(stats.perimeter * n_p ** 1.5)
+        power = 2.0 / 3.0
+    else:
+        num = stats.total(stats.perimeter * n_p ** 2)
+        power = 0.5
+    wet = (per > 0) & (area > 0)
+    safe_per = np.where(wet, per, 1.0)
+    n_e = (np.where(wet, num, 1.0) / safe_per) ** power
+    return np.where(wet, k * area * (area / safe_per) ** (2.0 / 3.0) / n_e, 0.0)
+
+
+def composite_n(perimeter: np.ndarray, n: np.ndarray, method: Composite = "horton_einstein",
+                radius: np.ndarray | None = None) -> np.ndarray:
+    """Composite n of parts along the last axis (Chow 1959 6-7; Yen 2002).
+
+    ``lotter`` needs the part radii; it returns P R^(5/3) / sum(P_i R_i^(5/3) / n_i)
+    with R = sum(P_i R_i) / P.
+    """
+    p = np.asarray(perimeter, dtype=float)
+    n = np.asarray(n, dtype=float)
+    tot = p.sum(axis=-1)
+    if method == "horton_einstein":
+        return ((p * n ** 1.5).sum(axis=-1) / tot) ** (2.0 / 3.0)
+    if method == "pavlovskii":
+        return np.sqrt((p * n ** 2).sum(axis=-1) / tot)
+    if method == "lotter":
+        if radius is None:
+            raise ValueError("the Lotter composite needs the part radii")
+        r = np.asarray(radius, dtype=float)
+        big_r = (p * r).sum(axis=-1) / tot
+        return tot * big_r ** (5.0 / 3.0) / (p * r ** (5.0 / 3.0) / n).sum(axis=-1)
+    raise ValueError(f"composite method {method!r} is unknown; use one of {list(COMPOSITES)}")
+
+
+@dataclass(frozen=True)
+class Family:
+    """One side of a translation: a geometry and its friction closure."""
+
+    geometry: Geometry
+    closure: Closure = "lumped"
+
+    def conveyance(self, stages: np.ndarray, n_class: np.ndarray, *,
+                   composite: Composite = "horton_einstein", k: float = 1.0,
+                   stats: ClassStats | None = None) -> np.ndarray:
+        st = self.geometry.stats(stages) if stats is None else stats
+        return conveyance(st, n_class, closure=self.closure, composite=composite, k=k)
+
+
+# ---------------------------------------------------------------------------------------
+# ratios
+
+
+@dataclass(frozen=True)
+class RatioResult:
+    """n_target / n_source per item and stage, with the conveyances behind it."""
+
+    ratio: np.ndarray        # (n_items, n_stages), NaN where either family is dry
+    k_source: np.ndarray     # source conveyance at the source n
+    k_target: np.ndarray     # target conveyance at the source n (n carried over)
+    mismatch: np.ndarray     # bool: wet in one family and dry in the other
+
+
+def n_ratio(k_source: np.ndarray, k_target_at_source_n: np.ndarray) -> RatioResult:
+    """Equal-conveyance n ratio at equal stage [der, METHODS.md "Translation rule"].
+
+    Parameters
+    ----------
+    k_source : ndarray (n_items, n_stages)
+        Source conveyance at the source n.
+    k_target_at_source_n : ndarray (n_items, n_stages)
+        Target conveyance with the same class n (n carried over).
+
+    Returns
+    -------
+    RatioResult; ``ratio = K_target / K_source`` (every closure is homogeneous of degree
+    -1 in n, so this is the uniform factor on n that restores the source conveyance);
+    NaN where either is dry or not finite; ``mismatch`` flags items wet in exactly one
+    family.  Never divides by zero.
+    """
+    ks = np.asarray(k_source, dtype=float)
+    kt = np.asarray(k_target_at_source_n, dtype=float)
+    wet_s = np.isfinite(ks) & (ks > 0)
+    wet_t = np.isfinite(kt) & (kt > 0)
+    both = wet_s & wet_t
+    ratio = np.full(ks.shape, np.nan)
+    ratio[both] = kt[both] / ks[both]
+    return RatioResult(ratio, ks, kt, wet_s ^ wet_t)
+
+
+# ---------------------------------------------------------------------------------------
+# class fit
+
+
+def weighted_quantile(values: np.ndarray, weights: np.ndarray, q: np.ndarray | list[float]) -> np.ndarray:
+    """Weighted quantiles (inverse of the weighted ECDF at mid-steps, linear between)."""
+    v = np.asarray(values, dtype=float)
+    w = np.asarray(weights, dtype=float)
+    keep = np.isfinite(v) & np.isfinite(w) & (w > 0)
+    v, w = v[keep], w[keep]
+    q = np.asarray(q, dtype=float)
+    if v.size == 0:
+        return np.full(q.shape, np.nan)
+    order = np.argsort(v, kind="stable")
+    v, w = v[order], w[order]
+    cum = np.cumsum(w) - 0.5 * w
+    cum /= w.sum()
+    return np.interp(q, cum, v)
+
+
+@dataclass(frozen=True)
+class ClassFit:
+    """Result of :func:`fit_class_n` (arrays per class)."""
+
+    n_source: np.ndarray
+    n_target: np.ndarray
+    ratio: np.ndarray
+    ratio_p10: np.ndarray
+    ratio_p50: np.ndarray
+    ratio_p90: np.ndarray
+    items: np.ndarray          # items holding the class
+    weight_share: np.ndarray
+    mismatch: np.ndarray       # item-stages with a dry/wet mismatch touching the class
+    flags: list[list[str]]
+    success: bool
+    cost: float
+
+
+def fit_class_n(
+    k_source: np.ndarray,
+    target_stats: ClassStats,
+    n_source: np.ndarray,
+    *,
+    closure: Closure = "lumped",
+    composite: Composite = "horton_einstein",
+    k: float = 1.0,
+    outside_range: np.ndarray | None = None,
+    bound_factor: float = 10.0,
+) -> ClassFit:
+    """Fit one target n per class: equal conveyance over the window, least squares.
+
+    Minimises sum w (ln K_target(n) - ln K_source)^2 over all items and window stages
+    where both families are wet, in ln n (``scipy.optimize.least_squares``, bounds
+    [n_source / bound_factor, n_source * bound_factor] clipped to 0.005..1.0).  Items
+    with several classes enter through the closure's composite.  Weight w = the item's
+    share of the source conveyance at that window stage (column), so the items that
+    carry the flow decide and every window stage counts equally.
+
+    Spread: the per-item ratio ``K_target(n_source) / K_source`` at each stage is given to
+    every class of the item with weight w x (class share of the item's extent); p10 /
+    p50 / p90 are weighted quantiles (:func:`weighted_quantile`).  ``items`` counts items
+    holding the class, ``weight_share`` the class's share of the total weight.  Flags:
+    ``few_faces`` (< 10 items), ``wide_spread`` (p90 / p10 > 1.5),
+    ``outside_published_range`` (from ``outside_range`` evaluated by the caller on the
+    fitted n), ``dry_wet_mismatch:N`` (N item-stages wet in one family only),
+    ``not_fitted`` (no wet item: n_target = n_source), ``at_bound`` (the fit stopped
+    at a bound).
+
+    Parameters
+    ----------
+    k_source : ndarray (n_items, n_stages)
+        Source conveyance at its own n.
+    target_stats : ClassStats
+        Target sufficient statistics at the same stages.
+    n_source : ndarray (n_classes,)
+    """
+    from scipy.optimize import least_squares
+
+    n_source = np.asarray(n_source, dtype=float)
+    n_cls = n_source.size
+    kt0 = conveyance(target_stats, n_source, closure=closure, composite=composite, k=k)
+    res = n_ratio(k_source, kt0)
+    both = np.isfinite(res.ratio)
+    ks = np.where(both, res.k_source, 0.0)
+    col_tot = ks.sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        w = np.where(both & (col_tot[None, :] > 0), ks / np.where(col_tot > 0, col_tot, 1.0)[None, :], 0.0)
+    n_cols_used = max(int(np.count_nonzero(col_tot > 0)), 1)
+    w = w / n_cols_used
+
+    # which classes can move: present in a wet item-stage of the target
+    present = np.zeros(n_cls, dtype=bool)
+    wet_pair = (target_stats.perimeter > 0).any(axis=1) & both[target_stats.item].any(axis=1)
+    present[np.unique(target_stats.cls[wet_pair])] = True
+    free = np.flatnonzero(present)
+
+    rows, cols = np.nonzero(w > 0)
+    sqrt_w = np.sqrt(w[rows, cols])
+    log_ks = np.log(ks[rows, cols])
+    # restrict to the items used, to keep the residual cheap
+    lo = np.log(np.clip(n_source / bound_factor, N_MIN, N_MAX))
+    hi = np.log(np.clip(n_source * bound_factor, N_MIN, N_MAX))
+    x0 = np.log(np.clip(n_source, N_MIN, N_MAX))
+    # start from the weighted mean ratio: uniform scaling is exact for one class
+    if rows.size:
+        start_ratio = float(np.exp(np.sum(w[rows, cols] * np.log(res.ratio[rows, cols]))
+                                   / np.sum(w[rows, cols])))
+        x0 = np.clip(x0 + np.log(start_ratio), lo + 1e-12, hi - 1e-12)
+
+    def full_n(x_free: np.ndarray) -> np.ndarray:
+        x = x0.copy()
+        x[free] = x_free
+        return np.exp(x)
+
+    def residual(x_free: np.ndarray) -> np.ndarray:
+        kt = conveyance(target_stats, full_n(x_free), closure=closure, composite=composite, k=k)
+        val = kt[rows, cols]
+        with np.errstate(divide="ignore"):
+            return sqrt_w * (np.log(np.maximum(val, 1e-300)) - log_ks)
+
+    success, cost = True, 0.0
+    n_target = n_source.copy()
+    if free.size and rows.size:
+        sol = least_squares(residual, x0[free], bounds=(lo[free], hi[free]), method="trf",
+                            x_scale=1.0, xtol=1e-12, ftol=1e-12, gtol=1e-12, max_nfev=200)
+        n_target = full_n(sol.x)
+        n_target[~present] = n_source[~present]
+        success, cost = bool(sol.success), float(sol.cost)
+
+    # spread per class
+    share = target_stats.class_share()
+    ratio_p = res.ratio[target_stats.item]              # (n_pairs, n_stages)
+    weight_p = w[target_stats.item] * share[:, None]
+    mism_p = res.mismatch[target_stats.item]
+    p10 = np.full(n_cls, np.nan)
+    p50 = np.full(n_cls, np.nan)
+    p90 = np.full(n_cls, np.nan)
+    items = np.bincount(target_stats.cls[target_stats.extent > 0], minlength=n_cls)
+    wsum = np.bincount(target_stats.cls, weights=weight_p.sum(axis=1), minlength=n_cls)
+    total_w = weight_p.sum()
+    weight_share = wsum / total_w if total_w > 0 else np.zeros(n_cls)
+    mismatch = np.bincount(target_stats.cls, weights=mism_p.sum(axis=1), minlength=n_cls).astype(int)
+    order = np.argsort(target_stats.cls, kind="stable")
+    bounds = np.searchsorted(target_stats.cls[order], np.arange(n_cls + 1))
+    for c in range(n_cls):  # loop over classes
+        sel = order[bounds[c]:bounds[c + 1]]
+        if sel.size:
+            p10[c], p50[c], p90[c] = weighted_quantile(ratio_p[sel].ravel(), weight_p[sel].ravel(),
+                                                        [0.1, 0.5, 0.9])
+    flags: list[list[str]] = []
+    for c in range(n_cls):
+        f: list[str] = []
+        if not present[c]:
+            f.append("not_fitted")
+        if items[c] < FEW_FACES:
+            f.append("few_faces")
+        if np.isfinite(p10[c]) and p10[c] > 0 and p90[c] / p10[c] > WIDE_SPREAD:
+            f.append("wide_spread")
+        if outside_range is not None and bool(outside_range[c]):
+            f.append("outside_published_range")
+        if mismatch[c] > 0:
+            f.append(f"dry_wet_mismatch:{mismatch[c]}")
+        if present[c] and (np.isclose(np.log(n_target[c]), lo[c], atol=1e-9)
+                           or np.isclose(np.log(n_target[c]), hi[c], atol=1e-9)):
+            f.append("at_bound")
+        flags.append(f)
+    return ClassFit(n_source=n_source, n_target=n_target, ratio=n_target / n_source,
+                    ratio_p10=p10, ratio_p50=p50, ratio_p90=p90, items=items,
+                    weight_share=weight_share, mismatch=mismatch, flags=flags,
+                    success=success, cost=cost)
+
+
+# ---------------------------------------------------------------------------------------
+# stage bias
+
+
+def solve_stage(
+    target: Family,
+    k_wanted: np.ndarray,
+    n_class: np.ndarray,
+    *,
+    start: np.ndarray,
+    composite: Composite = "horton_einstein",
+    k: float = 1.0,
+    rtol: float = 1e-7,
+    max_iter: int = 80,
+) -> np.ndarray:
+    """Stage at which the target conveyance equals ``k_wanted`` (vectorised bisection).
+
+    K is monotone (non-decreasing) in stage, so a bracket [item low point, upper] with
+    the upper end expanded until K >= k_wanted, halved for all items at once, finds the
+    root; the last step interpolates linearly in K^(3/5) (exact for a flat bed).
+    NaN where ``k_wanted`` is not a positive finite number or no bracket is found.
+
+    Parameters
+    ----------
+    target : Family
+    k_wanted : ndarray (n_items, n_stages)
+    n_class : ndarray (n_classes,)
+    start : ndarray (n_items, n_stages)
+        A first guess of the upper end (the source stage).
+    """
+    geom = target.geometry
+    kw = np.asarray(k_wanted, dtype=float)
+    low = np.asarray(geom.low, dtype=float)[:, None] + np.zeros_like(kw)
+    active = np.isfinite(kw) & (kw > 0) & np.isfinite(low)
+    lo = np.where(active, low, np.nan)
+    s0 = np.where(np.isfinite(start), start, low)
+    depth0 = np.maximum(s0 - low, 0.0)
+    scale = np.where(depth0 > 0, depth0, 1.0)
+    hi = np.where(active, low + np.maximum(depth0, 1e-3 * scale), np.nan)
+
+    def kk(stages: np.ndarray) -> np.ndarray:
+        return target.conveyance(np.where(np.isfinite(stages), stages, -np.inf), n_class,
+                                 composite=composite, k=k)
+
+    k_hi = kk(hi)
+    for _ in range(60):
+        short = active & (k_hi < kw)
+        if not short.any():
+            break
+        hi = np.where(short, low + 2.0 * (hi - low), hi)
+        k_hi = np.where(short, kk(hi), k_hi)
+    found = active & (k_hi >= kw)
+    k_lo = np.zeros_like(kw)
+    tol = rtol * np.maximum(scale, 1.0)
+    for _ in range(max_iter):
+        if not np.any(found & (hi - lo > tol)):
+            break
+        mid = 0.5 * (lo + hi)
+        k_mid = kk(mid)
+        up = found & (k_mid >= kw)
+        down = found & ~up
+        hi = np.where(up, mid, hi)
+        k_hi = np.where(up, k_mid, k_hi)
+        lo = np.where(down, mid, lo)
+        k_lo = np.where(down, k_mid, k_lo)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        a, b, t = k_lo ** 0.6, k_hi ** 0.6, kw ** 0.6
+        frac = np.where(b > a, (t - a) / np.where(b > a, b - a, 1.0), 1.0)
+    out = lo + np.clip(frac, 0.0, 1.0) * (hi - lo)
+    return np.where(found, out, np.nan)
+
+
+@dataclass(frozen=True)
+class StageBias:
+    """Target stage minus source stage for the same conveyance (length unit)."""
+
+    unadjusted: np.ndarray   # (n_items, n_stages): n carried over unchanged
+    adjusted: np.ndarray     # with the fitted n
+    summary: dict[str, dict[str, float]]
+
+
+def bias_summary(bias: np.ndarray, item_class: np.ndarray, classes: list[str] | tuple[str, ...]) -> dict[str, dict[str, float]]:
+    """Median (signed), p90 and max of |bias| per dominant class and overall."""
+
+    def figures(values: np.ndarray) -> dict[str, float]:
+        v = values[np.isfinite(values)]
+        if v.size == 0:
+            return {"median": float("nan"), "p90_abs": float("nan"), "max_abs": float("nan"), "count": 0}
+        a = np.abs(v)
+        return {"median": float(np.median(v)), "p90_abs": float(np.quantile(a, 0.9)),
+                "max_abs": float(a.max()), "count": int(v.size)}
+
+    out = {"overall": figures(bias.ravel())}
+    for c, name in enumerate(classes):
+        out[str(name)] = figures(bias[item_class == c].ravel())
+    return out
+
+
+def stage_bias(
+    source_stages: np.ndarray,
+    k_source: np.ndarray,
+    target: Family,
+    n_source: np.ndarray,
+    n_fitted: np.ndarray,
+    *,
+    composite: Composite = "horton_einstein",
+    k: float = 1.0,
+    item_class: np.ndarray | None = None,
+    classes: list[str] | tuple[str, ...] = (),
+) -> StageBias:
+    """Stage bias of the target with n carried over and with the fitted n.
+
+    For each item and window stage eta_s, the target stage eta_t solves
+    K_target(eta_t) = K_source(eta_s) (DESIGN.md "Stage bias"); bias = eta_t - eta_s.
+    Positive = the target overpredicts stage.  NaN where the source is dry.
+
+    ``summary`` holds, overall and per class (the item's dominant class), the signed
+    median and the p90 and max of |bias|.
+    """
+    eta = np.asarray(source_stages, dtype=float)
+    un = solve_stage(target, k_source, n_source, start=eta, composite=composite, k=k) - eta
+    ad = solve_stage(target, k_source, n_fitted, start=eta, composite=composite, k=k) - eta
+    ic = np.full(eta.shape[0], -1) if item_class is None else np.asarray(item_class)
+    summary = {"unadjusted": bias_summary(un, ic, classes), "adjusted": bias_summary(ad, ic, classes)}
+    return StageBias(un, ad, summary)  # type: ignore[arg-type]

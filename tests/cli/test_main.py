@@ -1,0 +1,64 @@
+"""The command group: help, version, error handling."""
+
+import click
+import pytest
+from click.testing import CliRunner
+
+import cli.main as main_module
+from ntrans.cautions import CAUTIONS
+from ntrans.errors import InputError
+
+
+@pytest.fixture
+def runner():
+    return CliRunner()
+
+
+def test_help_states_cautions(runner):
+    result = runner.invoke(main_module.cli, ["--help"])
+    assert result.exit_code == 0
+    assert "starting point for calibration" in result.output
+    assert "qualified" in result.output
+
+
+def test_version(runner):
+    result = runner.invoke(main_module.cli, ["--version"])
+    assert result.exit_code == 0
+    assert "0.1.0" in result.output
+
+
+def test_every_registered_command_loads(runner):
+    for name in main_module.COMMANDS:
+        if main_module._available(name):
+            result = runner.invoke(main_module.cli, [name, "--help"])
+            assert result.exit_code == 0, (name, result.output)
+
+
+@pytest.fixture
+def failing_command(monkeypatch):
+    @click.command("boom")
+    def boom():
+        raise InputError("the cell layer is empty; give a layer with polygons")
+
+    monkeypatch.setitem(main_module.COMMANDS, "boom", "cli.main")
+    monkeypatch.setattr(main_module, "command", boom, raising=False)
+    return boom
+
+
+def test_user_error_is_one_line_exit_2(runner, failing_command):
+    result = runner.invoke(main_module.cli, ["boom"])
+    assert result.exit_code == 2
+    lines = [line for line in result.output.splitlines() if line.strip()]
+    assert lines == ["ntrans: error: the cell layer is empty; give a layer with polygons"]
+    assert "Traceback" not in result.output
+
+
+def test_debug_shows_traceback(runner, failing_command):
+    result = runner.invoke(main_module.cli, ["--debug", "boom"])
+    assert result.exit_code != 0
+    assert isinstance(result.exception, InputError)
+
+
+def test_cautions_are_three_sentences():
+    assert len(CAUTIONS) == 3
+    assert all(sentence.endswith(".") for sentence in CAUTIONS)

@@ -1,0 +1,125 @@
+"""``ntrans init``, ``ntrans run``, ``ntrans verify`` and ``ntrans demo`` on the command line."""
+
+from __future__ import annotations
+
+import pytest
+from click.testing import CliRunner
+
+from cli.main import cli
+from ntrans import bundle
+from ntrans.cautions import CAUTIONS
+
+BASE = """
+[inputs]
+dem = "dem.tif"
+cells = "cells.gpkg"
+n = 0.03
+
+[window]
+depths = "0.25:1:0.25"
+"""
+
+
+@pytest.fixture
+def runner():
+    return CliRunner()
+
+
+def _one_error_line(result) -> str:
+    lines = [line for line in result.stderr.splitlines() if line.strip()]
+    assert len(lines) == 1, result.stderr
+    assert lines[0].startswith("ntrans: error: ")
+    return lines[0]
+
+
+def test_init_writes_a_template_and_refuses_to_overwrite(runner, tmp_path):
+    path = tmp_path / "job.toml"
+    result = runner.invoke(cli, ["init", str(path)])
+    assert result.exit_code == 0, result.output
+    assert path.is_file() and str(path) in result.stdout
+    again = runner.invoke(cli, ["init", str(path)])
+    assert again.exit_code == 2
+    _one_error_line(again)
+    forced = runner.invoke(cli, ["init", str(path), "--overwrite"])
+    assert forced.exit_code == 0
+
+
+@pytest.mark.parametrize(
+    ("extra", "words"),
+    [
+        ("[run]\nthreads = 4\n", ["threads", "tile_size"]),
+        ('[run]\ntile_size = "big"\n', ["run.tile_size", "an integer"]),
+        ('[families]\nclosure = "round"\n', ["families.closure", "lumped", "strip", "cell"]),
+        ('[outputs]\nzip = "yes"\n', ["outputs.zip", "true or false"]),
+    ],
+)
+def test_project_file_errors_exit_2_with_one_line(runner, tmp_path, extra, words):
+    path = tmp_path / "p.toml"
+    path.write_text(BASE + extra, encoding="utf-8")
+    result = runner.invoke(cli, ["-q", "run", str(path)])
+    assert result.exit_code == 2
+    line = _one_error_line(result)
+    for word in words:
+        assert word in line
+    assert not (tmp_path / "p-bundle").exists()
+
+
+def test_missing_project_file_exits_2(runner, tmp_path):
+    result = runner.invoke(cli, ["-q", "run", str(tmp_path / "absent.toml")])
+    assert result.exit_code == 2
+    _one_error_line(result)
+
+
+def _bundle(folder):
+    folder.mkdir()
+    (folder / "report.html").write_text("<html></html>\n", encoding="utf-8")
+    (folder / "n_by_class.csv").write_text("class,n_source\na,0.03\n", encoding="utf-8")
+    bundle.write_manifest(folder, inputs=[], parameters={})
+    return folder
+
+
+def test_verify_ok_exits_0(runner, tmp_path):
+    folder = _bundle(tmp_path / "b")
+    result = runner.invoke(cli, ["verify", str(folder)])
+    assert result.exit_code == 0, result.output
+    assert result.stdout.startswith("ok: ")
+
+
+def test_verify_lists_every_difference_then_exits_2(runner, tmp_path):
+    folder = _bundle(tmp_path / "b")
+    (folder / "report.html").write_text("<html>edited</html>\n", encoding="utf-8")
+    (folder / "n_by_class.csv").unlink()
+    (folder / "extra.txt").write_text("x", encoding="utf-8")
+    result = runner.invoke(cli, ["verify", str(folder)])
+    assert result.exit_code == 2
+    assert result.stdout.splitlines() == [
+        "missing: n_by_class.csv",
+        "changed: report.html",
+        "extra: extra.txt",
+    ]
+    assert "1 missing, 1 changed, 1 extra" in _one_error_line(result)
+
+
+def test_verify_without_manifest_exits_2(runner, tmp_path):
+    (tmp_path / "empty").mkdir()
+    result = runner.invoke(cli, ["verify", str(tmp_path / "empty")])
+    assert result.exit_code == 2
+    _one_error_line(result)
+
+
+def test_run_writes_the_bundle_and_ends_with_the_cautions(runner, tmp_path):
+    from test_project import write_small_project
+
+    project = write_small_project(tmp_path / "job")
+    result = runner.invoke(cli, ["-q", "run", str(project)])
+    assert result.exit_code == 0, result.output
+    out = [line for line in result.stdout.splitlines() if line.strip()]
+    assert out[-len(CAUTIONS):] == [f"Caution: {c}" for c in CAUTIONS]
+    assert f"report: {tmp_path / 'job' / 'bundle' / 'report.html'}" in result.stdout
+    again = runner.invoke(cli, ["-q", "run", str(project)])
+    assert again.exit_code == 2  # the bundle exists and --overwrite was not given
+    _one_error_line(again)
+    forced = runner.invoke(cli, ["-q", "run", str(project), "--overwrite"])
+    assert forced.exit_code == 0, forced.output
+    verified = runner.invoke(cli, ["verify", str(tmp_path / "job" / "bundle")])
+    assert verified.exit_code == 0

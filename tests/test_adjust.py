@@ -1,0 +1,196 @@
+"""Tests of ntrans.adjust.adjust_roughness: the whole job on small DEMs built in the test."""
+
+from __future__ import annotations
+
+import json
+import warnings
+
+import numpy as np
+import pandas as pd
+import pytest
+import shapely
+from conftest import grid_polygons, write_cells, write_dem
+
+from ntrans.adjust import CLASS_COLUMNS, adjust_roughness
+from ntrans.errors import DryWetMismatchWarning, InputError, RoughnessError
+
+FACE_CONTRACT = ["face_id", "stage", "n_ratio", "conveyance_source", "conveyance_target",
+                 "stage_bias_unadjusted", "stage_bias_adjusted"]  # DESIGN.md section 4
+
+
+def channel_dem(size: int = 40) -> np.ndarray:
+    """A north-south trapezoidal channel (bottom 6 m wide at z 10, banks 1:2 up to 12)."""
+    x = np.arange(size) + 0.5
+    z = np.where(np.abs(x - 20) < 3, 0.0, np.minimum(2.0, (np.abs(x - 20) - 3) * 0.5))
+    return np.tile(z, (size, 1)) + 10.0
+
+
+@pytest.fixture
+def flat_case(tmp_path):
+    dem = write_dem(tmp_path / "dem.tif", np.full((20, 20), 10.0))
+    cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(2, 2, 10.0))
+    return dem, cells
+
+
+@pytest.fixture
+def channel_case(tmp_path):
+    dem = write_dem(tmp_path / "dem.tif", channel_dem())
+    cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(4, 4, 10.0))
+    polys = [shapely.box(0, 0, 16, 40), shapely.box(16, 0, 24, 40), shapely.box(24, 0, 40, 40)]
+    classes = write_cells(tmp_path / "classes.gpkg", polys, id_field=None,
+                          attributes={"kind": ["grass", "channel", "grass"]})
+    table = tmp_path / "n.csv"
+    table.write_text("class,n,surface\nchannel,0.03,channel_clean\ngrass,0.035,pasture_short_grass\n")
+    return dem, cells, classes, table
+
+
+def _quiet(**kw):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DryWetMismatchWarning)
+        return adjust_roughness(**kw)
+
+
+PAIRS = [
+    {"source": "flat", "target": "subgrid", "closure": "lumped"},
+    {"source": "flat", "target": "subgrid", "closure": "strip"},
+    {"source": "flat", "target": "subgrid", "closure": "cell"},
+    {"source": "subgrid", "target": "flat", "closure": "lumped"},
+    {"source": "subgrid", "target": "flat", "closure": "strip"},
+    {"source": "subgrid", "target": "subgrid", "closure": "strip", "source_closure": "lumped"},
+]
+
+
+@pytest.mark.parametrize("pair", PAIRS)
+def test_flat_dem_identity(flat_case, tmp_path, pair):
+    dem, cells = flat_case
+    res = adjust_roughness(dem, cells, out=tmp_path / "out", n=0.03, depths="0.5,1,2", **pair)
+    table = pd.read_csv(tmp_path / "out" / "n_by_class.csv")
+    # geometry identity: flat terrain gives every family the same conveyance
+    assert table["n_target"].iloc[0] == pytest.approx(0.03, rel=1e-6)  # solver tolerance
+    faces = pd.read_parquet(tmp_path / "out" / "face_adjustment.parquet")
+    np.testing.assert_allclose(faces["n_ratio"], 1.0, rtol=1e-12)  # geometry identity
+    np.testing.assert_allclose(faces["stage_bias_unadjusted"], 0.0, atol=1e-6)  # bisection tol.
+    cells_t = pd.read_parquet(tmp_path / "out" / "cell_adjustment.parquet")
+    np.testing.assert_allclose(cells_t["n_ratio"], 1.0, rtol=1e-12)  # geometry identity
+    assert res.summary["target"]["closure"] == (pair["closure"] if pair["target"] == "subgrid"
+                                                else "flat")
+
+
+def test_channel_outputs_and_contract(channel_case, tmp_path):
+    dem, cells, classes, table = channel_case
+    out = tmp_path / "out"
+    res = _quiet(dem=dem, cells=cells, out=out, classes=classes, class_field="kind",
+                 n_table=table, depths="0.5:2.5:0.5", csv=True)
+    names = {p.name for p in res.files}
+    assert {"n_by_class.csv", "face_adjustment.parquet", "cell_adjustment.parquet", "cells.gpkg",
+            "faces.gpkg", "adjust_summary.json", "face_adjustment.csv"} <= names
+    frame = pd.read_csv(out / "n_by_class.csv")
+    assert list(frame.columns) == list(CLASS_COLUMNS)
+    assert sorted(frame["class"]) == ["channel", "grass"]
+    faces = pd.read_parquet(out / "face_adjustment.parquet")
+    assert set(FACE_CONTRACT) <= set(faces.columns)
+    # n_ratio is NaN exactly where one family is dry (DESIGN.md 4)
+    dry = (faces["conveyance_source"] <= 0) | (faces["conveyance_target_unadjusted"] <= 0)
+    assert faces["n_ratio"].isna().equals(dry)
+    summary = json.loads((out / "adjust_summary.json").read_text())
+    assert summary["composite"] == "horton_einstein" and len(summary["cautions"]) == 3
+    assert res.text.splitlines()[-1].startswith("Caution:")
+    assert frame["weight_share"].sum() == pytest.approx(1.0)  # shares of one total
+
+
+def test_channel_fit_lowers_conveyance_misfit(channel_case, tmp_path):
+    dem, cells, classes, table = channel_case
+    _quiet(dem=dem, cells=cells, out=tmp_path / "out", classes=classes, class_field="kind",
+           n_table=table, depths="1.5,2,2.5")
+    faces = pd.read_parquet(tmp_path / "out" / "face_adjustment.parquet")
+    both = faces["n_ratio"].notna()
+    f = faces[both]
+    w = f["conveyance_source"] / f.groupby("depth")["conveyance_source"].transform("sum")
+    before = np.sum(w * np.log(f["conveyance_target_unadjusted"] / f["conveyance_source"]) ** 2)
+    after = np.sum(w * np.log(f["conveyance_target"] / f["conveyance_source"]) ** 2)
+    # the fit minimises exactly this weighted log misfit, starting from n carried over
+    assert after <= before
+    assert after < 0.9 * before  # the channel faces pull the fit away from n_source
+
+
+def test_reproducible(channel_case, tmp_path):
+    dem, cells, classes, table = channel_case
+    for name in ("a", "b"):
+        _quiet(dem=dem, cells=cells, out=tmp_path / name, classes=classes, class_field="kind",
+               n_table=table, depths="0.5:2:0.5")
+    assert (tmp_path / "a" / "n_by_class.csv").read_bytes() == \
+        (tmp_path / "b" / "n_by_class.csv").read_bytes()
+
+
+def test_water_surface_window(flat_case, tmp_path):
+    dem, cells = flat_case
+    ws = write_dem(tmp_path / "ws.tif", np.full((20, 20), 11.5))
+    _quiet(dem=dem, cells=cells, out=tmp_path / "out", n=0.03, water_surface=[ws])
+    faces = pd.read_parquet(tmp_path / "out" / "face_adjustment.parquet")
+    np.testing.assert_allclose(faces["stage"], 11.5)  # the raster's value everywhere
+    cells_t = pd.read_parquet(tmp_path / "out" / "cell_adjustment.parquet")
+    np.testing.assert_allclose(cells_t["stage"], 11.5)
+    np.testing.assert_allclose(faces["n_ratio"], 1.0, rtol=1e-12)  # geometry identity
+
+
+def test_class_raster_input(flat_case, tmp_path):
+    dem, cells = flat_case
+    codes = np.ones((20, 20))
+    codes[:, 10:] = 2
+    raster = write_dem(tmp_path / "codes.tif", codes, nodata=0, dtype="int16")
+    table = tmp_path / "n.csv"
+    table.write_text("class,n\n1,0.03\n2,0.06\n")
+    res = _quiet(dem=dem, cells=cells, out=tmp_path / "out", class_raster=raster, n_table=table,
+                 depths="1")
+    assert res.classes["class"].tolist() == ["1", "2"]
+    # geometry identity on flat terrain: each class keeps its n
+    np.testing.assert_allclose(res.classes["n_target"], [0.03, 0.06], rtol=1e-5)
+
+
+def _nothing_written(out):
+    return not out.exists() and not [p for p in out.parent.iterdir()
+                                     if p.name.startswith(f".{out.name}")]
+
+
+@pytest.mark.parametrize(
+    ("rows", "polys", "kinds", "extra"),
+    [
+        # class missing from the table (both listed)
+        ("class,n\na,0.03\n", [(0, 0, 10, 20), (10, 0, 20, 10), (10, 10, 20, 20)], ["a", "b", "c"], {}),
+        ("class,n\na,0.03\nb,0\n", [(0, 0, 10, 20), (10, 0, 20, 20)], ["a", "b"], {}),  # n <= 0
+        ("class,n\na,0.03\nb,x\n", [(0, 0, 10, 20), (10, 0, 20, 20)], ["a", "b"], {}),  # not a number
+        ("class,n\na,0.03\nb,0.04\n", [(0, 0, 12, 20), (8, 0, 20, 20)], ["a", "b"], {}),  # overlap
+        ("class,n\na,0.03\n", [(100, 100, 120, 120)], ["a"], {"default_class": "a"}),  # misses mesh
+        ("class,n\na,0.03\n", [(0, 0, 10, 20)], ["a"], {}),  # half the mesh uncovered
+    ],
+)
+def test_bad_roughness_nothing_written(flat_case, tmp_path, rows, polys, kinds, extra):
+    dem, cells = flat_case
+    table = tmp_path / "n.csv"
+    table.write_text(rows)
+    classes = write_cells(tmp_path / "classes.gpkg", [shapely.box(*p) for p in polys],
+                          id_field=None, attributes={"kind": kinds})
+    out = tmp_path / "out"
+    with pytest.raises(RoughnessError) as err:
+        adjust_roughness(dem, cells, out=out, classes=classes, class_field="kind", n_table=table,
+                         depths="1", **extra)
+    if kinds == ["a", "b", "c"]:
+        assert "'b'" in str(err.value) and "'c'" in str(err.value)  # all missing listed
+    assert _nothing_written(out)
+
+
+@pytest.mark.parametrize(
+    "kw",
+    [
+        {"source": "flat", "target": "flat"},
+        {"depths": "1", "stages": "11"},
+        {"source_closure": "strip"},
+        {"composite": "average"},
+    ],
+)
+def test_bad_options(flat_case, tmp_path, kw):
+    dem, cells = flat_case
+    args = {"depths": "1", **kw}
+    with pytest.raises(InputError):
+        adjust_roughness(dem, cells, out=tmp_path / "out", n=0.03, **args)
+    assert _nothing_written(tmp_path / "out")

@@ -1,0 +1,122 @@
+"""Tests of ntrans.bundle: manifest hashes, verification, zip."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import zipfile
+from pathlib import Path
+
+import numpy as np
+import pytest
+from conftest import write_dem
+
+from ntrans import bundle
+from ntrans.errors import BundleError, InputFileError
+
+
+def _make_bundle(folder: Path) -> Path:
+    (folder / "tables").mkdir(parents=True)
+    (folder / "tables" / "a.csv").write_text("x,y\n1,2\n", encoding="utf-8")
+    (folder / "report.html").write_text("<html></html>\n", encoding="utf-8")
+    (folder / "n_by_class.csv").write_bytes(b"class,n_source\ngrass,0.03\n")
+    bundle.write_manifest(folder, inputs=[], parameters={"window": {"depths": "0:1:0.5"}})
+    return folder
+
+
+def test_manifest_lists_every_output_with_its_sha256(tmp_path):
+    folder = _make_bundle(tmp_path / "b")
+    manifest = json.loads((folder / "manifest.json").read_text())
+    listed = {e["path"]: e for e in manifest["outputs"]}
+    assert sorted(listed) == ["n_by_class.csv", "report.html", "tables/a.csv"]
+    for rel, entry in listed.items():
+        data = (folder / rel).read_bytes()
+        assert entry["sha256"] == hashlib.sha256(data).hexdigest()  # independent hash
+        assert entry["size"] == len(data)
+    assert manifest["parameters"] == {"window": {"depths": "0:1:0.5"}}
+    assert manifest["versions"]["numpy"] == np.__version__
+    assert manifest["created_utc"].endswith("Z")
+    assert "manifest.json" not in listed
+
+
+def test_verify_passes_on_an_untouched_bundle(tmp_path):
+    folder = _make_bundle(tmp_path / "b")
+    result = bundle.verify_bundle(folder)
+    assert result.ok
+    assert result.checked == 3
+    assert result.lines() == []
+    result.raise_for_differences()  # nothing to raise
+
+
+@pytest.mark.parametrize(
+    ("change", "kind", "name"),
+    [
+        ("edit", "changed", "report.html"),
+        ("delete", "missing", "tables/a.csv"),
+        ("add", "extra", "notes.txt"),
+        ("same_size_edit", "changed", "n_by_class.csv"),
+    ],
+)
+def test_verify_detects_edited_missing_and_extra_files(tmp_path, change, kind, name):
+    folder = _make_bundle(tmp_path / "b")
+    target = folder / name
+    if change == "edit":
+        target.write_text("<html>edited</html>\n", encoding="utf-8")
+    elif change == "delete":
+        target.unlink()
+    elif change == "add":
+        target.write_text("added later\n", encoding="utf-8")
+    else:  # flip one byte, size unchanged: only the hash can see it
+        data = bytearray(target.read_bytes())
+        data[-2] = ord("4")
+        target.write_bytes(bytes(data))
+    result = bundle.verify_bundle(folder)
+    assert not result.ok
+    assert getattr(result, kind) == (name,)
+    assert result.lines() == [f"{kind}: {name}"]
+    with pytest.raises(BundleError):
+        result.raise_for_differences()
+
+
+def test_verify_without_manifest_is_a_bundle_error(tmp_path):
+    (tmp_path / "x").mkdir()
+    with pytest.raises(BundleError):
+        bundle.verify_bundle(tmp_path / "x")
+    with pytest.raises(BundleError):
+        bundle.verify_bundle(tmp_path / "nothing-here")
+
+
+def test_damaged_manifest_is_a_bundle_error(tmp_path):
+    folder = _make_bundle(tmp_path / "b")
+    (folder / "manifest.json").write_text("{not json", encoding="utf-8")
+    with pytest.raises(BundleError):
+        bundle.verify_bundle(folder)
+
+
+def test_zip_is_verifiable_and_deterministic(tmp_path):
+    folder = _make_bundle(tmp_path / "b")
+    first = bundle.write_zip(folder, tmp_path / "one.zip")
+    second = bundle.write_zip(folder, tmp_path / "two.zip")
+    assert first.read_bytes() == second.read_bytes()  # fixed dates, sorted entries
+    with zipfile.ZipFile(first) as archive:
+        names = archive.namelist()
+    assert names == sorted(names)
+    assert "b/manifest.json" in names
+    assert bundle.verify_bundle(first).ok
+
+
+def test_describe_input_records_crs_and_hash(tmp_path):
+    dem = write_dem(tmp_path / "dem.tif", np.arange(12.0).reshape(3, 4), pixel_size=2.0)
+    entry = bundle.describe_input(dem, role="dem")
+    assert entry["sha256"] == hashlib.sha256(dem.read_bytes()).hexdigest()
+    assert entry["size"] == dem.stat().st_size
+    assert entry["kind"] == "raster"
+    assert entry["crs"]["epsg"] == 32633
+    assert entry["crs"]["horizontal_units"] == "metre"
+    assert entry["shape"] == [3, 4]
+    assert entry["pixel_size"] == [2.0, 2.0]
+    csv = tmp_path / "n.csv"
+    csv.write_text("class,n\na,0.03\n", encoding="utf-8")
+    assert bundle.describe_input(csv, role="n_table")["kind"] == "table"
+    with pytest.raises(InputFileError):
+        bundle.describe_input(tmp_path / "absent.tif", role="dem")

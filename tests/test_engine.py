@@ -1,0 +1,268 @@
+"""Tiles: planning (which cells, faces, window) and running (in-process, tiled, Dask)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+import shapely
+from affine import Affine
+from conftest import grid_polygons, write_cells, write_dem
+
+from ntrans.engine import MARGIN, execute, plan_tiles, run_tile
+from ntrans.errors import InputError, PartialCoverageWarning
+
+# 40 x 40 one-metre pixels, lower-left corner (0, 0)
+T40 = Affine(1.0, 0.0, 0.0, 0.0, -1.0, 40.0)
+
+
+def _pixel_box(window):
+    """(col0, row0, col1, row1) of a rasterio Window."""
+    return (window.col_off, window.row_off, window.col_off + window.width,
+            window.row_off + window.height)
+
+
+# --------------------------------------------------------------------------- planning
+
+
+@pytest.mark.parametrize("tile_size", [1, 7, 10, 16, 1024])
+def test_every_cell_in_exactly_one_tile(tile_size):
+    polys = np.array(grid_polygons(8, 8, 5.0), dtype=object)
+    tiles = plan_tiles(polys, T40, (40, 40), tile_size=tile_size)
+    owned = np.concatenate([t.cells for t in tiles])
+    assert np.array_equal(np.sort(owned), np.arange(64))
+    assert [t.index for t in tiles] == list(range(len(tiles)))
+    # deterministic order: tile row, then tile column
+    keys = [t.key for t in tiles]
+    assert keys == sorted(keys)
+
+
+def test_tile_membership_by_centroid():
+    polys = np.array(grid_polygons(8, 8, 5.0), dtype=object)
+    tiles = plan_tiles(polys, T40, (40, 40), tile_size=10)
+    # 4 x 4 tiles of 10 px; centroid (2.5 + 5i, 2.5 + 5j) -> column bin (5i + 2.5) // 10
+    assert len(tiles) == 16
+    for t in tiles:
+        cent = shapely.centroid(polys[t.cells])
+        cols = np.floor(shapely.get_x(cent) / 10)
+        rows = np.floor((40 - shapely.get_y(cent)) / 10)
+        assert np.all(cols == t.key[1]) and np.all(rows == t.key[0])
+
+
+def test_window_covers_cells_plus_margin_and_is_clipped():
+    polys = np.array(grid_polygons(8, 8, 5.0), dtype=object)
+    tiles = plan_tiles(polys, T40, (40, 40), tile_size=10)
+    for t in tiles:
+        c0, r0, c1, r1 = _pixel_box(t.window)
+        minx, miny, maxx, maxy = shapely.total_bounds(polys[t.cells])
+        # pixel bounds of the cells, widened by the margin, clipped to the 40 x 40 raster
+        assert c0 == max(int(minx) - MARGIN, 0)
+        assert c1 == min(int(maxx) + MARGIN, 40)
+        assert r0 == max(int(40 - maxy) - MARGIN, 0)
+        assert r1 == min(int(40 - miny) + MARGIN, 40)
+
+
+def test_tiles_without_cells_are_skipped():
+    # two cells far apart: the 4 x 4 tile grid has only two occupied tiles
+    polys = np.array([shapely.box(1, 1, 4, 4), shapely.box(35, 35, 39, 39)], dtype=object)
+    tiles = plan_tiles(polys, T40, (40, 40), tile_size=10)
+    assert [t.key for t in tiles] == [(0, 3), (3, 0)]
+    assert [t.cells.tolist() for t in tiles] == [[1], [0]]
+
+
+def test_cell_larger_than_tile_enlarges_window():
+    big = shapely.box(0, 0, 40, 30)
+    small = shapely.box(0, 30, 5, 40)
+    tiles = plan_tiles(np.array([big, small], dtype=object), T40, (40, 40), tile_size=4)
+    big_tile = next(t for t in tiles if 0 in t.cells)
+    assert _pixel_box(big_tile.window) == (0, 10 - MARGIN, 40, 40)
+
+
+def test_cells_outside_raster_get_clipped_or_empty_window():
+    polys = np.array([shapely.box(5, 5, 10, 10), shapely.box(100, 100, 110, 110)], dtype=object)
+    tiles = plan_tiles(polys, T40, (40, 40), tile_size=10)
+    outside = next(t for t in tiles if 1 in t.cells)
+    assert outside.window.width == 0 or outside.window.height == 0
+
+
+def test_faces_follow_cell_a_and_halo_holds_cell_b():
+    polys = np.array(grid_polygons(4, 1, 10.0), dtype=object)  # 4 cells in a row
+    t = Affine(1.0, 0.0, 0.0, 0.0, -1.0, 10.0)
+    lines = np.array([shapely.LineString([(10, 0), (10, 10)]),
+                      shapely.LineString([(20, 0), (20, 10)]),
+                      shapely.LineString([(30, 0), (30, 10)]),
+                      shapely.LineString([(0, 0), (0, 10)])], dtype=object)
+    fa = np.array([0, 1, 2, 0])
+    fb = np.array([1, 2, 3, -1])
+    tiles = plan_tiles(polys, t, (10, 40), tile_size=20, face_cell_a=fa, face_cell_b=fb,
+                       face_lines=lines)
+    assert [x.cells.tolist() for x in tiles] == [[0, 1], [2, 3]]
+    assert [x.faces.tolist() for x in tiles] == [[0, 1, 3], [2]]
+    # face 1 (cells 1 | 2) crosses the tile border: cell 2 is the first tile's halo
+    assert [x.halo.tolist() for x in tiles] == [[2], []]
+    assert _pixel_box(tiles[0].window) == (0, 0, 30 + MARGIN, 10)
+
+
+def test_tile_size_must_be_positive():
+    with pytest.raises(InputError):
+        plan_tiles(np.array([shapely.box(0, 0, 1, 1)], dtype=object), T40, (40, 40), tile_size=0)
+
+
+def test_workers_and_scheduler_exclusive():
+    with pytest.raises(InputError):
+        list(execute([], dem=None, dem_path="x.tif", settings=None, workers=2,
+                     scheduler="tcp://127.0.0.1:1"))
+
+
+# --------------------------------------------------------------------------- running
+
+
+def _terrain(rows, cols):
+    """Smooth terrain with relief (elevations about 8..13 m) on 1 m pixels."""
+    y, x = np.mgrid[0:rows, 0:cols] + 0.5
+    return 10.0 + 0.05 * x + 1.5 * np.sin(x / 5.0) * np.cos(y / 7.0)
+
+
+@pytest.fixture
+def mesh(tmp_path):
+    """30 x 30 m DEM; 4 x 3 cells of 7 m from (1.3, 2.6): borders cut through pixels."""
+    dem = write_dem(tmp_path / "dem.tif", _terrain(30, 30), dtype="float64")
+    cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(4, 3, 7.0, origin=(1.3, 2.6)))
+    return dem, cells
+
+
+def _tables(out):
+    cell = pd.read_parquet(out / "cell_stage.parquet")
+    face = pd.read_parquet(out / "face_stage.parquet")
+    cell = cell.sort_values(["cell_id", "stage"], kind="stable").reset_index(drop=True)
+    face = face.sort_values(["face_id", "stage"], kind="stable").reset_index(drop=True)
+    return cell, face
+
+
+def _assert_same(a: pd.DataFrame, b: pd.DataFrame):
+    assert list(a.columns) == list(b.columns)
+    assert len(a) == len(b)
+    for name in a.columns:
+        x, y = a[name].to_numpy(), b[name].to_numpy()
+        if x.dtype.kind in "fi":
+            scale = float(np.nanmax(np.abs(y))) if np.any(np.isfinite(y)) else 1.0
+            # Tiles change only the window origin (pixel coordinates are computed from a
+            # different offset) and which other cells share a cumulative sum: both are
+            # round-off, ~1e-16 relative; 1e-12 of the value (or of the column's largest
+            # value, for values that are zero up to round-off) bounds it with room.
+            np.testing.assert_allclose(x, y, rtol=1e-12, atol=1e-12 * scale, err_msg=name)
+        else:
+            assert a[name].equals(b[name]), name
+
+
+@pytest.mark.parametrize("tile_size", [3, 8])
+def test_tiled_equals_untiled(mesh, tmp_path, tile_size):
+    from ntrans.tables import build_tables
+
+    dem, cells = mesh
+    one = build_tables(dem, cells, out=tmp_path / "one", depths="0:2:0.5")
+    many = build_tables(dem, cells, out=tmp_path / "many", depths="0:2:0.5",
+                        tile_size=tile_size)
+    assert one.n_tiles == 1 and many.n_tiles > 4  # tiles cut through cells and faces
+    c1, f1 = _tables(tmp_path / "one")
+    c2, f2 = _tables(tmp_path / "many")
+    _assert_same(c1, c2)
+    _assert_same(f1, f2)
+
+
+def test_dask_two_processes_equals_single_process(mesh, tmp_path):
+    from ntrans.tables import build_tables
+
+    dem, cells = mesh
+    build_tables(dem, cells, out=tmp_path / "local", stages="9:12:1", tile_size=8)
+    build_tables(dem, cells, out=tmp_path / "dask", stages="9:12:1", tile_size=8, workers=2)
+    for name in ("cell_stage.parquet", "face_stage.parquet"):
+        a = pd.read_parquet(tmp_path / "local" / name)
+        b = pd.read_parquet(tmp_path / "dask" / name)
+        # same tiles, same functions, same order: identical to the bit, row order included
+        pd.testing.assert_frame_equal(a, b, check_exact=True)
+
+
+def test_existing_scheduler_equals_single_process(mesh, tmp_path):
+    from distributed import LocalCluster
+
+    from ntrans.tables import build_tables
+
+    dem, cells = mesh
+    build_tables(dem, cells, out=tmp_path / "local", stages="10,11", tile_size=8)
+    # a threads-only cluster starts in about a second; the path is the same as for a
+    # remote scheduler (Client(address))
+    with LocalCluster(n_workers=1, processes=False, dashboard_address=None) as cluster:
+        build_tables(dem, cells, out=tmp_path / "remote", stages="10,11", tile_size=8,
+                     scheduler=cluster.scheduler_address)
+    for name in ("cell_stage.parquet", "face_stage.parquet"):
+        pd.testing.assert_frame_equal(pd.read_parquet(tmp_path / "local" / name),
+                                      pd.read_parquet(tmp_path / "remote" / name),
+                                      check_exact=True)
+
+
+def test_unreachable_scheduler_is_a_user_error(mesh, tmp_path, monkeypatch):
+    import ntrans.engine as engine
+    from ntrans.tables import build_tables
+
+    monkeypatch.setattr(engine, "SCHEDULER_TIMEOUT", "1s")
+    dem, cells = mesh
+    with pytest.raises(InputError):
+        build_tables(dem, cells, out=tmp_path / "out", stages="10", scheduler="tcp://127.0.0.1:9")
+    assert not (tmp_path / "out").exists()
+
+
+def test_tile_all_nodata(tmp_path):
+    from ntrans.tables import build_tables
+
+    z = _terrain(20, 20)
+    z[:, :10] = np.nan  # the left tile column holds no terrain at all
+    dem = write_dem(tmp_path / "dem.tif", z)
+    cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(4, 4, 5.0))
+    with pytest.warns(PartialCoverageWarning, match="8 cells"):
+        res = build_tables(dem, cells, out=tmp_path / "out", stages="10,11", tile_size=10)
+    assert res.n_tiles == 4
+    cell, face = _tables(tmp_path / "out")
+    assert len(cell) == 16 * 2
+    dry = cell[cell.cell_id.isin([1, 2, 5, 6, 9, 10, 13, 14])]
+    # no terrain: nothing is wet and there is no flat bed
+    np.testing.assert_array_equal(np.nan_to_num(dry.wet_area), 0.0)
+    np.testing.assert_array_equal(np.nan_to_num(dry.volume), 0.0)
+    assert dry.flat_elevation.isna().all()
+    wet = cell[~cell.cell_id.isin(dry.cell_id)]
+    assert wet.flat_elevation.notna().all()
+
+
+def test_tile_with_no_cells_and_cell_larger_than_tile(tmp_path):
+    from ntrans.tables import build_tables
+
+    dem = write_dem(tmp_path / "dem.tif", _terrain(40, 40), dtype="float64")
+    big = shapely.box(0.5, 0.5, 25.5, 25.5)  # 625 pixels, larger than a 4-pixel tile
+    far = shapely.box(35, 35, 39, 39)  # leaves empty tiles between the two
+    cells = write_cells(tmp_path / "cells.gpkg", [big, far])
+    one = build_tables(dem, cells, out=tmp_path / "one", depths="0.5,1,3")
+    many = build_tables(dem, cells, out=tmp_path / "many", depths="0.5,1,3", tile_size=4)
+    assert one.n_tiles == 1
+    assert many.n_tiles == 2  # only the two occupied tiles out of 100
+    c1, f1 = _tables(tmp_path / "one")
+    c2, f2 = _tables(tmp_path / "many")
+    _assert_same(c1, c2)
+    _assert_same(f1, f2)
+
+
+def test_run_tile_is_pure_on_arrays():
+    from ntrans.engine import TileSettings, make_tasks
+    from ntrans.stages import StageSpec
+
+    polys = np.array(grid_polygons(2, 1, 2.0), dtype=object)
+    t = Affine(1.0, 0.0, 0.0, 0.0, -1.0, 2.0)
+    tiles = plan_tiles(polys, t, (2, 4), tile_size=1024)
+    (task,) = list(make_tasks(tiles, polys))
+    settings = TileSettings(stages=StageSpec(np.array([1.0, 2.0])), reference=1.5, faces=False)
+    z = np.array([[0.0, 0.0, 1.0, 1.0], [0.0, 0.0, 1.0, 1.0]])
+    res = run_tile(task, z, t, settings)
+    rows = res["cell_rows"]
+    assert rows["cell"].tolist() == [0, 0, 1, 1]
+    # geometry identity: 4 pixels of 1 m2 under 1 m (cell 0 at stage 1) or 2 m of water
+    np.testing.assert_allclose(rows["volume"], [4.0, 8.0, 0.0, 4.0])
+    np.testing.assert_allclose(rows["wet_area"], [4.0, 4.0, 0.0, 4.0])

@@ -1,0 +1,531 @@
+"""Tests of ntrans.inputs: DEM, cells, water surfaces, output-over-input guard."""
+
+from __future__ import annotations
+
+import logging
+import pickle
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pyproj
+import pytest
+import rasterio
+import shapely
+from affine import Affine
+from conftest import (
+    PLANE_SX,
+    PLANE_SY,
+    grid_polygons,
+    tilted_plane,
+    write_cells,
+    write_dem,
+)
+
+from ntrans.errors import (
+    CRSError,
+    GeometryError,
+    GeometryRepairedWarning,
+    InputError,
+    InputFileError,
+    NtransError,
+    OutputError,
+)
+from ntrans.inputs import (
+    CellLayer,
+    DemInfo,
+    check_output_not_input,
+    open_dem,
+    open_water_surface,
+    read_cells,
+    read_water_surfaces,
+    sample_water_surface,
+)
+
+US_FOOT = 1200.0 / 3937.0  # metres per US survey foot (definition)
+INT_FOOT = 0.3048  # metres per international foot (definition)
+
+
+# --------------------------------------------------------------------------- open_dem
+
+
+def test_open_dem_reads_grid_and_units(tmp_dem: Path) -> None:
+    dem = open_dem(tmp_dem)
+    assert isinstance(dem, DemInfo)
+    assert (dem.width, dem.height) == (30, 30)
+    assert dem.shape == (30, 30)
+    assert dem.horizontal_unit == dem.vertical_unit == "metre"
+    assert dem.z_to_xy == 1.0
+    assert dem.manning_k == 1.0  # SI Manning factor, DESIGN.md section 2
+    assert dem.pixel_size == (1.0, 1.0)
+    assert dem.pixel_area == 1.0
+    assert tuple(dem.bounds) == (0.0, 0.0, 30.0, 30.0)
+    assert dem.nodata == -9999.0
+    assert dem.dtype == "float32"
+    assert dem.crs.to_epsg() == 32633
+
+
+def test_dem_info_pickles(tmp_dem: Path) -> None:
+    """DemInfo travels to Dask workers by pickle."""
+    dem = open_dem(tmp_dem)
+    again = pickle.loads(pickle.dumps(dem))
+    np.testing.assert_array_equal(again.read_window(0, 0, 5, 5), dem.read_window(0, 0, 5, 5))
+    assert again.transform == dem.transform
+
+
+@pytest.mark.parametrize(
+    ("crs", "unit", "factor", "k"),
+    [
+        ("EPSG:32633", "metre", 1.0, 1.0),
+        ("+proj=utm +zone=33 +datum=WGS84 +units=us-ft +no_defs", "foot", US_FOOT, 1.486),
+        ("+proj=utm +zone=33 +datum=WGS84 +units=ft +no_defs", "foot", INT_FOOT, 1.486),
+        ("EPSG:2263", "foot", US_FOOT, 1.486),  # NY Long Island, US survey foot
+    ],
+)
+def test_open_dem_units(tmp_path: Path, crs: str, unit: str, factor: float, k: float) -> None:
+    path = write_dem(tmp_path / "d.tif", np.ones((4, 4)), crs=crs, origin=(1000.0, 5000.0))
+    dem = open_dem(path)
+    assert dem.horizontal_unit == dem.vertical_unit == unit
+    assert dem.manning_k == k  # Manning k: 1.0 SI, 1.486 US customary (DESIGN.md section 2)
+    assert dem.xy_metres_per_unit == pytest.approx(factor, rel=1e-12)  # float of a definition
+    assert dem.z_to_xy == 1.0
+
+
+@pytest.mark.parametrize(
+    ("crs", "vertical", "z_to_xy"),
+    [
+        ("EPSG:32633", "foot", INT_FOOT),  # vertical foot in metre plan: 0.3048 m per ft
+        ("EPSG:32633", "ft", INT_FOOT),
+        ("EPSG:32633", "metre", 1.0),
+        ("EPSG:2263", "metre", 1.0 / US_FOOT),  # metres into US survey feet
+        ("EPSG:2263", "feet", 1.0),  # the same foot as the plan unit
+    ],
+)
+def test_open_dem_vertical_units(tmp_path: Path, crs: str, vertical: str, z_to_xy: float) -> None:
+    path = write_dem(tmp_path / "d.tif", np.ones((4, 4)), crs=crs, origin=(1000.0, 5000.0))
+    dem = open_dem(path, vertical_units=vertical)
+    assert dem.z_to_xy == pytest.approx(z_to_xy, rel=1e-12)  # ratio of unit definitions
+
+
+def test_open_dem_vertical_unit_from_compound_crs(tmp_path: Path) -> None:
+    # UTM 18N (metre) + NAVD88 height in US survey feet
+    path = write_dem(tmp_path / "d.tif", np.ones((4, 4)), crs="EPSG:26918+6360",
+                     origin=(500000.0, 4500000.0))
+    with rasterio.open(path) as src:
+        compound = pyproj.CRS.from_wkt(src.crs.to_wkt()).is_compound
+    if not compound:
+        pytest.skip("this GDAL build does not keep a vertical CRS in GeoTIFF")
+    dem = open_dem(path)
+    assert dem.horizontal_unit == "metre"
+    assert dem.vertical_unit == "foot"
+    assert dem.z_to_xy == pytest.approx(US_FOOT, rel=1e-12)  # US survey foot definition
+
+
+def test_open_dem_bad_vertical_unit(tmp_dem: Path) -> None:
+    with pytest.raises(InputError, match="'metre' or 'foot'"):
+        open_dem(tmp_dem, vertical_units="yard")
+
+
+def _rotated(tmp_path: Path) -> Path:
+    return write_dem(tmp_path / "d.tif", np.ones((4, 4)),
+                     transform=Affine.rotation(10) @ Affine(1, 0, 0, 0, -1, 4))
+
+
+def _south_up(tmp_path: Path) -> Path:
+    return write_dem(tmp_path / "d.tif", np.ones((4, 4)),
+                     transform=Affine(1, 0, 100, 0, 1, 200))
+
+
+def _text_file(tmp_path: Path) -> Path:
+    path = tmp_path / "d.tif"
+    path.write_text("not a raster\n")
+    return path
+
+
+@pytest.mark.parametrize(
+    ("make", "error"),
+    [
+        (lambda p: p / "missing.tif", InputFileError),
+        (_text_file, InputFileError),
+        (lambda p: write_dem(p / "d.tif", np.ones((4, 4)), crs=None), CRSError),
+        (lambda p: write_dem(p / "d.tif", np.ones((4, 4)), crs="EPSG:4326", pixel_size=0.001,
+                             origin=(15.0, 45.0)), CRSError),
+        (lambda p: write_dem(p / "d.tif", np.ones((4, 4)),
+                             crs="+proj=utm +zone=33 +datum=WGS84 +units=km +no_defs"), CRSError),
+        (_rotated, InputError),
+        (_south_up, InputError),
+    ],
+    ids=["missing", "not-a-raster", "no-crs", "geographic", "kilometre", "rotated", "south-up"],
+)
+def test_open_dem_errors(tmp_path: Path, make, error: type[NtransError]) -> None:
+    path = make(tmp_path)
+    before = sorted(tmp_path.iterdir())
+    with pytest.raises(error):
+        open_dem(path)
+    assert sorted(tmp_path.iterdir()) == before  # nothing written
+
+
+def test_open_dem_multiband_uses_band_one(tmp_path: Path, caplog) -> None:
+    data = np.stack([np.full((3, 3), 1.0), np.full((3, 3), 2.0)])
+    path = write_dem(tmp_path / "d.tif", data)
+    with caplog.at_level(logging.WARNING, logger="ntrans.inputs"):
+        dem = open_dem(path)
+    assert "only band 1" in caplog.text
+    np.testing.assert_array_equal(dem.read_window(0, 0, 3, 3), 1.0)
+
+
+# --------------------------------------------------------------------------- read_window
+
+
+@pytest.mark.parametrize(
+    ("nodata", "dtype"),
+    [(-9999.0, "float32"), (None, "float32"), (float("nan"), "float64"), (-32768, "int16")],
+)
+def test_read_window_nodata_round_trip(tmp_path: Path, nodata, dtype: str) -> None:
+    array = np.arange(20, dtype=float).reshape(4, 5) + 100.0
+    array[1, 2] = np.nan
+    array[3, 0] = np.nan
+    path = write_dem(tmp_path / "d.tif", array, nodata=nodata, dtype=dtype)
+    if nodata is None:  # float32 NaN written as is: NaN must stay NaN
+        pass
+    dem = open_dem(path)
+    got = dem.read_window(0, 0, 4, 5)
+    np.testing.assert_array_equal(np.isnan(got), np.isnan(array))
+    np.testing.assert_array_equal(got[~np.isnan(got)], array[~np.isnan(array)])
+    assert got.dtype == np.float64
+
+
+def test_read_window_outside_is_nan(tmp_path: Path) -> None:
+    array = np.arange(12, dtype=float).reshape(3, 4)
+    dem = open_dem(write_dem(tmp_path / "d.tif", array))
+    got = dem.read_window(-1, -2, 5, 8)
+    assert got.shape == (5, 8)
+    np.testing.assert_array_equal(got[1:4, 2:6], array)
+    outside = np.ones((5, 8), dtype=bool)
+    outside[1:4, 2:6] = False
+    assert np.isnan(got[outside]).all()
+    assert np.isnan(dem.read_window(10, 10, 2, 2)).all()  # wholly outside
+    assert dem.read_window(0, 0, 0, 3).shape == (0, 3)
+
+
+def test_read_window_gdal_mask(tmp_path: Path) -> None:
+    """A GDAL per-dataset mask (no nodata value) is honoured."""
+    path = write_dem(tmp_path / "d.tif", np.full((3, 3), 5.0), nodata=None)
+    mask = np.full((3, 3), 255, dtype=np.uint8)
+    mask[0, 0] = 0
+    with rasterio.open(path, "r+") as dst:
+        dst.write_mask(mask)
+    got = open_dem(path).read_window(0, 0, 3, 3)
+    assert np.isnan(got[0, 0])
+    assert np.isnan(got).sum() == 1
+
+
+def test_window_transform_and_bounds(tmp_dem: Path) -> None:
+    dem = open_dem(tmp_dem)
+    t = dem.window_transform(3, 4)
+    assert (t.c, t.f) == (4.0, 27.0)  # 30 - 3 rows of 1 m
+    assert dem.window_for_bounds((4.0, 20.0, 10.0, 27.0)) == (3, 4, 7, 6)
+    assert dem.window_for_bounds((4.2, 20.5, 9.5, 26.9), pad=1) == (2, 3, 9, 8)
+    assert dem.window_for_bounds((-5.0, 0.0, 1.0, 35.0)) == (-5, -5, 35, 6)
+
+
+# --------------------------------------------------------------------------- read_cells
+
+
+def test_read_cells_basic(tmp_dem: Path, tmp_cells: Path) -> None:
+    dem = open_dem(tmp_dem)
+    cells = read_cells(tmp_cells, dem=dem)
+    assert isinstance(cells, CellLayer)
+    assert len(cells) == 9
+    assert cells.id_field == "cell_id"
+    assert cells.ids.dtype == np.int64
+    np.testing.assert_array_equal(cells.ids, np.arange(1, 10))
+    assert list(cells.frame.index) == list(range(9))
+    np.testing.assert_array_equal(cells.frame["cell_id"].to_numpy(), cells.ids)
+    assert cells.covered_fraction is None
+    expected = grid_polygons(3, 3, 10.0)
+    assert all(shapely.equals(cells.geometry, expected))
+    assert pyproj.CRS(cells.frame.crs).equals(dem.horizontal_crs)
+
+
+@pytest.mark.parametrize("suffix", [".gpkg", ".shp", ".geojson", ".fgb"])
+def test_read_cells_formats(tmp_path: Path, tmp_dem: Path, suffix: str) -> None:
+    path = write_cells(tmp_path / f"c{suffix}", grid_polygons(3, 3, 10.0), ids=[11, 12, 13, 21,
+                       22, 23, 31, 32, 33], attributes={"landuse": list("abcabcabc")})
+    cells = read_cells(path, dem=open_dem(tmp_dem))
+    np.testing.assert_array_equal(cells.ids, [11, 12, 13, 21, 22, 23, 31, 32, 33])
+    assert list(cells.frame["landuse"]) == list("abcabcabc")
+    # polygons come back identical up to ring orientation / start vertex
+    assert all(shapely.equals(cells.geometry, grid_polygons(3, 3, 10.0)))
+
+
+def test_read_cells_flatgeobuf_spatial_index(tmp_path: Path, tmp_dem: Path) -> None:
+    """An indexed FlatGeobuf returns features in index order: ids stay with their polygon."""
+    import geopandas as gpd
+
+    polys = grid_polygons(3, 3, 10.0)
+    path = tmp_path / "c.fgb"
+    gpd.GeoDataFrame({"cell_id": range(1, 10)}, geometry=polys, crs="EPSG:32633").to_file(
+        path, engine="pyogrio", layer_options={"SPATIAL_INDEX": "YES"})
+    cells = read_cells(path, dem=open_dem(tmp_dem))
+    assert sorted(cells.ids.tolist()) == list(range(1, 10))
+    expected = np.array(polys, dtype=object)[cells.ids - 1]
+    assert all(shapely.equals(cells.geometry, expected))
+
+
+def test_read_cells_reprojects(tmp_path: Path, tmp_dem: Path) -> None:
+    """Cells drawn in another CRS are moved into the DEM's CRS."""
+    dem_crs = "EPSG:32633"
+    polys = grid_polygons(3, 3, 10.0, origin=(500000.0, 5000000.0))
+    dem = open_dem(write_dem(tmp_path / "d.tif", np.ones((30, 30)),
+                             origin=(500000.0, 5000030.0), crs=dem_crs))
+    to_ll = pyproj.Transformer.from_crs(dem_crs, "EPSG:4326", always_xy=True)
+    ll = [shapely.transform(p, lambda xy: np.column_stack(to_ll.transform(xy[:, 0], xy[:, 1])))
+          for p in polys]
+    path = write_cells(tmp_path / "c.gpkg", ll, crs="EPSG:4326")
+    cells = read_cells(path, dem=dem)
+    got = shapely.get_coordinates(cells.geometry)
+    want = shapely.get_coordinates(np.array(polys, dtype=object))
+    # double round trip through geographic coordinates: well below a millimetre
+    np.testing.assert_allclose(got, want, atol=1e-3)
+
+
+@pytest.mark.parametrize(
+    ("columns", "id_field", "expected_field", "expected_ids"),
+    [
+        ({"id": [5, 6, 7]}, None, "id", [5, 6, 7]),
+        ({"ID": [5, 6, 7]}, None, "ID", [5, 6, 7]),
+        ({"cell_id": [1, 2, 3], "id": [5, 6, 7]}, None, "cell_id", [1, 2, 3]),
+        ({"name": ["a", "b", "c"]}, None, "cell_id", [0, 1, 2]),  # row numbers
+        ({"name": ["a", "b", "c"]}, "name", "name", ["a", "b", "c"]),
+        ({"code": [1.0, 2.0, 3.0]}, "code", "code", [1, 2, 3]),  # whole floats -> int64
+    ],
+)
+def test_read_cells_id_field(tmp_path, tmp_dem, columns, id_field, expected_field,
+                             expected_ids) -> None:
+    path = write_cells(tmp_path / "c.gpkg", grid_polygons(3, 1, 10.0), id_field=None,
+                       attributes=columns)
+    cells = read_cells(path, dem=open_dem(tmp_dem), id_field=id_field)
+    assert cells.id_field == expected_field
+    assert cells.ids.tolist() == expected_ids
+    assert cells.frame[expected_field].tolist() == expected_ids
+    if isinstance(expected_ids[0], str):
+        assert cells.ids.dtype == object
+    else:
+        assert cells.ids.dtype == np.int64
+
+
+def test_read_cells_gpkg_fid(tmp_path: Path, tmp_dem: Path) -> None:
+    path = write_cells(tmp_path / "c.gpkg", grid_polygons(3, 1, 10.0), id_field=None,
+                       attributes={"name": ["a", "b", "c"]})
+    cells = read_cells(path, dem=open_dem(tmp_dem), id_field="fid")
+    assert cells.ids.tolist() == [1, 2, 3]  # GeoPackage feature ids start at 1
+
+
+def _bowtie(x0: float, y0: float) -> shapely.Polygon:
+    return shapely.Polygon([(x0, y0), (x0 + 2, y0 + 2), (x0 + 2, y0), (x0, y0 + 2)])
+
+
+BAD_CELLS = {
+    "missing-file": ("missing.gpkg", None, {}, InputFileError),
+    "empty-layer": ("c.gpkg", [], {}, GeometryError),
+    "null-geometry": ("c.gpkg", [shapely.box(0, 0, 5, 5), None], {}, GeometryError),
+    "empty-geometry": ("c.gpkg", [shapely.box(0, 0, 5, 5), shapely.Polygon()], {}, GeometryError),
+    "points": ("c.gpkg", [shapely.Point(1, 1), shapely.Point(2, 2)], {}, GeometryError),
+    "lines": ("c.gpkg", [shapely.LineString([(0, 0), (5, 5)])], {}, GeometryError),
+    "no-crs": ("c.shp", grid_polygons(2, 1, 5.0), {"crs": None}, CRSError),
+    "duplicate-ids": ("c.gpkg", grid_polygons(3, 1, 5.0), {"ids": [1, 2, 1]}, InputError),
+    "null-id": ("c.gpkg", grid_polygons(2, 1, 5.0), {"ids": ["a", None]}, InputError),
+    "fractional-id": ("c.gpkg", grid_polygons(2, 1, 5.0), {"ids": [1.5, 2.0]}, InputError),
+    "overlap": ("c.gpkg", [shapely.box(0, 0, 10, 10), shapely.box(5, 0, 15, 10)], {},
+                GeometryError),
+    "contained": ("c.gpkg", [shapely.box(0, 0, 10, 10), shapely.box(2, 2, 4, 4)], {},
+                  GeometryError),
+    "duplicate-polygon": ("c.gpkg", [shapely.box(0, 0, 10, 10)] * 2, {}, GeometryError),
+    "off-the-dem": ("c.gpkg", grid_polygons(2, 2, 5.0, origin=(100.0, 100.0)), {}, InputError),
+    "zero-area": ("c.gpkg", [shapely.box(0, 0, 5, 5),
+                             shapely.Polygon([(6, 6), (7, 7), (8, 8)])], {}, GeometryError),
+}
+
+
+@pytest.mark.parametrize("case", list(BAD_CELLS))
+def test_read_cells_errors(tmp_path: Path, tmp_dem: Path, case: str) -> None:
+    name, polygons, options, error = BAD_CELLS[case]
+    folder = tmp_path / "cells"
+    folder.mkdir()
+    path = folder / name
+    if polygons is not None:
+        if polygons:
+            write_cells(path, polygons, **options)
+        else:  # an empty layer needs an explicit geometry type
+            import geopandas as gpd
+
+            gpd.GeoDataFrame({"cell_id": []}, geometry=gpd.GeoSeries([], crs="EPSG:32633")).to_file(
+                path, engine="pyogrio", geometry_type="Polygon"
+            )
+    before = sorted(folder.iterdir())
+    dem = open_dem(tmp_dem)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", GeometryRepairedWarning)
+        with pytest.raises(error):
+            read_cells(path, dem=dem)
+    assert sorted(folder.iterdir()) == before  # nothing written
+
+
+def test_read_cells_missing_id_field(tmp_path: Path, tmp_dem: Path) -> None:
+    path = write_cells(tmp_path / "c.gpkg", grid_polygons(2, 1, 5.0))
+    with pytest.raises(InputError, match="cell_id"):  # lists the fields there are
+        read_cells(path, dem=open_dem(tmp_dem), id_field="zone")
+
+
+def test_read_cells_unreadable(tmp_path: Path, tmp_dem: Path) -> None:
+    path = tmp_path / "c.gpkg"
+    path.write_bytes(b"\x00garbage" * 10)
+    with pytest.raises(InputFileError):
+        read_cells(path, dem=open_dem(tmp_dem))
+
+
+def test_read_cells_layers(tmp_path: Path, tmp_dem: Path) -> None:
+    path = tmp_path / "c.gpkg"
+    write_cells(path, [shapely.Point(1, 1)], layer="gauges")
+    write_cells(path, grid_polygons(2, 1, 5.0), layer="mesh")
+    dem = open_dem(tmp_dem)
+    assert len(read_cells(path, dem=dem)) == 2  # first polygon layer chosen
+    assert len(read_cells(path, dem=dem, layer="mesh")) == 2
+    with pytest.raises(GeometryError):
+        read_cells(path, dem=dem, layer="gauges")
+    with pytest.raises(InputError):
+        read_cells(path, dem=dem, layer="nothing")
+
+
+def test_read_cells_repairs_invalid(tmp_path: Path, tmp_dem: Path) -> None:
+    polys = [shapely.box(0, 0, 5, 5), _bowtie(10, 10), shapely.box(20, 20, 25, 25)]
+    path = write_cells(tmp_path / "c.gpkg", polys, ids=["a", "b", "c"])
+    with pytest.warns(GeometryRepairedWarning, match="b"):
+        cells = read_cells(path, dem=open_dem(tmp_dem))
+    assert shapely.is_valid(cells.geometry).all()
+    assert cells.geometry[1].geom_type == "MultiPolygon"
+    # two triangles of base 2 and height 1: 2 * (2 * 1 / 2) = 2 (geometry identity)
+    assert cells.geometry[1].area == pytest.approx(2.0, abs=1e-12)  # float rounding only
+    assert cells.geometry[0].equals(polys[0])
+
+
+def test_read_cells_overlap_within_tolerance(tmp_path: Path, tmp_dem: Path) -> None:
+    """Slivers from digitising below the tolerance are accepted."""
+    polys = [shapely.box(0, 0, 10, 10), shapely.box(9.95, 0, 20, 10)]  # 0.5 % of 100 m2
+    path = write_cells(tmp_path / "c.gpkg", polys)
+    dem = open_dem(tmp_dem)
+    assert len(read_cells(path, dem=dem)) == 2
+    with pytest.raises(GeometryError):
+        read_cells(path, dem=dem, overlap_tolerance=0.001)
+
+
+def test_read_cells_keeps_cells_off_the_dem(tmp_path: Path, tmp_dem: Path) -> None:
+    polys = [shapely.box(0, 0, 10, 10), shapely.box(25, 25, 35, 35), shapely.box(50, 50, 60, 60)]
+    cells = read_cells(write_cells(tmp_path / "c.gpkg", polys), dem=open_dem(tmp_dem))
+    assert cells.ids.tolist() == [1, 2, 3]
+
+
+def test_read_cells_string_ids(tmp_path: Path, tmp_dem: Path) -> None:
+    path = write_cells(tmp_path / "c.fgb", grid_polygons(2, 1, 5.0), ids=["x1", "x2"])
+    cells = read_cells(path, dem=open_dem(tmp_dem))
+    assert cells.ids.dtype == object
+    assert cells.ids.tolist() == ["x1", "x2"]
+
+
+# --------------------------------------------------------------------------- water surfaces
+
+
+def test_water_surface_same_grid(tmp_path: Path, tmp_dem: Path) -> None:
+    dem = open_dem(tmp_dem)
+    ws_values = tilted_plane(30, 30, z0=12.0)
+    ws_values[0, 0] = np.nan
+    ws = open_water_surface(write_dem(tmp_path / "peak.tif", ws_values), dem=dem)
+    assert ws.name == "peak"
+    got = ws.on_dem_window(dem, -1, -1, 4, 4)
+    assert np.isnan(got[0, :]).all() and np.isnan(got[:, 0]).all()  # outside the raster
+    assert np.isnan(got[1, 1])  # nodata pixel
+    np.testing.assert_allclose(got[1:, 1:].ravel()[1:], ws_values[:3, :3].ravel()[1:],
+                               rtol=1e-6)  # float32 storage
+
+
+def test_water_surface_sample_points(tmp_path: Path, tmp_dem: Path) -> None:
+    dem = open_dem(tmp_dem)
+    ws_values = tilted_plane(30, 30, z0=12.0)
+    ws_values[10, 10] = np.nan  # pixel covering x in [10, 11], y in [19, 20]
+    path = write_dem(tmp_path / "ws.tif", ws_values, dtype="float64")
+    x = np.array([5.3, 14.9, 10.5, -1.0, 20.0, 0.2])
+    y = np.array([7.7, 22.1, 19.5, 5.0, 40.0, 29.9])
+    got = sample_water_surface(path, dem, x, y)
+    plane = 12.0 + PLANE_SX * x + PLANE_SY * y
+    # bilinear interpolation reproduces a plane exactly (geometry identity); 1e-9 = rounding
+    np.testing.assert_allclose(got[[0, 1]], plane[[0, 1]], atol=1e-9)
+    assert np.isnan(got[2])  # own pixel is nodata
+    assert np.isnan(got[3]) and np.isnan(got[4])  # outside
+    # corner pixel: its three other neighbours lie outside, so the renormalised weights
+    # leave the own pixel's (centre) value
+    assert got[5] == pytest.approx(ws_values[0, 0], abs=1e-9)  # float64 storage
+    nearest = sample_water_surface(path, dem, x, y, method="nearest")
+    centres = 12.0 + PLANE_SX * (np.floor(x[:2]) + 0.5) + PLANE_SY * (np.floor(y[:2]) + 0.5)
+    np.testing.assert_allclose(nearest[:2], centres, atol=1e-9)  # pixel-centre value
+
+
+def test_water_surface_other_crs(tmp_path: Path) -> None:
+    """Points are reprojected into the water-surface raster's CRS before sampling."""
+    dem = open_dem(write_dem(tmp_path / "d.tif", np.ones((20, 20)), pixel_size=10.0,
+                             origin=(500000.0, 5000200.0), crs="EPSG:32633"))
+    to_b = pyproj.Transformer.from_crs("EPSG:32633", "EPSG:3035", always_xy=True)
+    bx, by = to_b.transform([499900.0, 500300.0], [5000300.0, 4999900.0])
+    x0, y1 = min(bx), max(by)
+    rows = cols = 60
+    size = (max(bx) - x0) / cols + 1.0
+    b_plane = tilted_plane(rows, cols, pixel_size=size, origin=(0.0, rows * size), z0=3.0,
+                           sx=0.01, sy=-0.02)
+    ws_path = write_dem(tmp_path / "ws.tif", b_plane, pixel_size=size, origin=(x0, y1),
+                        crs="EPSG:3035", dtype="float64")
+    x = np.array([500050.0, 500120.0, 500190.0])
+    y = np.array([5000020.0, 5000100.0, 5000170.0])
+    got = sample_water_surface(ws_path, dem, x, y)
+    px, py = to_b.transform(x, y)
+    expected = 3.0 + 0.01 * (np.asarray(px) - x0) - 0.02 * (np.asarray(py) - (y1 - rows * size))
+    # bilinear is exact on a plane (geometry identity); tolerance = float rounding
+    np.testing.assert_allclose(got, expected, atol=1e-7)
+    on_grid = open_water_surface(ws_path, dem=dem).on_dem_window(dem, 0, 0, 20, 20)
+    assert on_grid.shape == (20, 20) and np.isfinite(on_grid).all()
+
+
+def test_read_water_surfaces_names_and_errors(tmp_path: Path, tmp_dem: Path) -> None:
+    dem = open_dem(tmp_dem)
+    (tmp_path / "a").mkdir()
+    (tmp_path / "b").mkdir()
+    p1 = write_dem(tmp_path / "a" / "peak.tif", np.ones((3, 3)))
+    p2 = write_dem(tmp_path / "b" / "peak.tif", np.ones((3, 3)))
+    assert [w.name for w in read_water_surfaces([p1, p2], dem=dem)] == ["peak", "peak_2"]
+    with pytest.raises(InputFileError):
+        read_water_surfaces([tmp_path / "none.tif"], dem=dem)
+    with pytest.raises(CRSError):
+        read_water_surfaces([write_dem(tmp_path / "x.tif", np.ones((3, 3)), crs=None)], dem=dem)
+    with pytest.raises(InputError):
+        read_water_surfaces([], dem=dem)
+
+
+# --------------------------------------------------------------------------- output guard
+
+
+@pytest.mark.parametrize(
+    ("out", "inputs"),
+    [
+        ("dem.tif", ["dem.tif"]),  # the output folder is the input file
+        ("data", ["data/cells.gpkg"]),  # replacing the folder would delete the input
+        (".", ["cells.gpkg"]),
+        ("model.gdb/out", ["model.gdb"]),  # inside a folder-style dataset
+    ],
+)
+def test_check_output_not_input_refuses(tmp_path: Path, out: str, inputs: list[str]) -> None:
+    with pytest.raises(OutputError):
+        check_output_not_input(tmp_path / out, [tmp_path / p for p in inputs])
+
+
+def test_check_output_not_input_allows(tmp_path: Path) -> None:
+    check_output_not_input(tmp_path / "out", [tmp_path / "dem.tif", None, "/vsimem/x.tif",
+                                              tmp_path / "outside" / "c.gpkg"])

@@ -1,0 +1,206 @@
+"""Tests of ntrans.maps and ntrans.plots: per-cell summaries, rasters on the DEM grid, PNGs."""
+
+from __future__ import annotations
+
+import geopandas as gpd
+import numpy as np
+import pandas as pd
+import pytest
+import rasterio
+import shapely
+from conftest import grid_polygons, tilted_plane, write_dem
+
+from ntrans import maps, plots
+
+# --------------------------------------------------------------------- per-cell summaries
+
+
+def test_friction_factor_picks_the_reference_stage_of_each_cell():
+    # Two cells, three stages each, rows deliberately shuffled.
+    frame = pd.DataFrame(
+        {
+            "cell_id": [2, 1, 1, 2, 1, 2],
+            "stage": [11.0, 10.0, 11.0, 10.0, 12.0, 12.0],
+            "wet_area": [50.0, 0.0, 40.0, 10.0, 100.0, 100.0],
+            "bed_area": [60.0, 0.0, 44.0, 10.0, 120.0, 101.0],
+        }
+    )
+    top = maps.cell_friction_factor(frame, reference_index=-1)
+    assert top.to_dict() == pytest.approx({1: 1.2, 2: 1.01})  # 120/100, 101/100 by hand
+    first = maps.cell_friction_factor(frame, reference_index=0)
+    assert np.isnan(first[1])  # dry at its first stage: no factor
+    assert first[2] == pytest.approx(1.0)  # 10 / 10
+    middle = maps.cell_friction_factor(frame, reference_index=1)
+    assert middle.to_dict() == pytest.approx({1: 1.1, 2: 1.2})  # 44/40, 60/50
+
+
+def test_median_of_faces_counts_a_face_for_both_cells():
+    faces = pd.DataFrame({"face_id": [0, 1, 2], "cell_a": [1, 1, 2], "cell_b": [2, None, 3]})
+    values = pd.DataFrame(
+        {
+            "face_id": [0, 0, 1, 1, 2, 2],
+            "n_ratio": [0.8, 0.9, 1.0, np.nan, 0.5, 0.7],
+        }
+    )
+    med = maps.cell_median_of_faces(values, faces, value="n_ratio")
+    # cell 1: faces 0 and 1 -> {0.8, 0.9, 1.0}; cell 2: faces 0, 2 -> {0.8, 0.9, 0.5, 0.7};
+    # cell 3: face 2 -> {0.5, 0.7}  (medians by hand)
+    assert med.to_dict() == pytest.approx({1: 0.9, 2: 0.75, 3: 0.6})
+    per_face = maps.face_median(values, value="n_ratio")
+    assert per_face.to_dict() == pytest.approx({0: 0.85, 1: 1.0, 2: 0.6})
+
+
+# ----------------------------------------------------------------------- painting, rasters
+
+
+def _grid_case(tmp_path):
+    z = tilted_plane(20, 30)
+    z[0, 0] = np.nan
+    dem = write_dem(tmp_path / "dem.tif", z)
+    cells = grid_polygons(3, 2, size=10.0)  # 3 x 2 cells of 10 m over a 30 x 20 m DEM
+    return dem, z, cells
+
+
+def test_paint_puts_each_cell_value_on_its_pixels(tmp_path):
+    dem, z, cells = _grid_case(tmp_path)
+    with rasterio.open(dem) as src:
+        index = maps.cell_index_grid(cells, transform=src.transform, shape=src.shape)
+    values = np.arange(len(cells), dtype=float) * 10.0
+    grid = maps.paint(index, values)
+    assert grid.shape == z.shape
+    # every pixel centre lies in exactly one cell: 6 cells x 100 pixels each (geometry)
+    assert np.bincount(index.ravel()).tolist() == [100] * 6
+    for i, poly in enumerate(cells):
+        x, y = shapely.get_coordinates(shapely.centroid(poly))[0]
+        row, col = int(20 - y), int(x)
+        assert grid[row, col] == values[i]
+    outside = maps.paint(np.full((2, 2), -1), values)
+    assert np.isnan(outside).all()
+
+
+def test_maps_share_the_dem_grid_and_crs(tmp_path):
+    dem, z, cells = _grid_case(tmp_path)
+    values = pd.DataFrame(
+        {
+            "friction_factor": np.linspace(1.0, 1.5, 6),
+            "n_ratio": [0.8, 0.9, np.nan, 1.0, 1.1, 0.7],
+            "stage_bias": [-0.2, 0.1, 0.0, 0.3, -0.05, 0.2],
+        }
+    )
+    with rasterio.open(dem) as src:
+        transform, crs, shape = src.transform, src.crs, src.shape
+    written = maps.write_maps(tmp_path / "maps", cell_values=values, cell_geometry=cells,
+                              elevation=z, transform=transform, crs=crs, quicklooks=False)
+    assert written == {}  # PNGs are checked in the rerun test
+    for name in ("friction_factor", "n_ratio", "stage_bias"):
+        with rasterio.open(tmp_path / "maps" / f"{name}.tif") as out:
+            assert out.transform == transform
+            assert out.shape == shape
+            assert out.crs == crs
+            assert out.nodata == maps.NODATA
+            assert out.profile["tiled"] and out.block_shapes[0] == (256, 256)
+            assert out.compression.name.lower() == "deflate"
+            data = out.read(1, masked=True)
+        expected = maps.paint(
+            maps.cell_index_grid(cells, transform=transform, shape=shape),
+            values[name].to_numpy(),
+        )
+        np.testing.assert_array_equal(data.mask, np.isnan(expected))
+        np.testing.assert_allclose(data.filled(np.nan), expected, rtol=1e-7)  # float32 storage
+
+
+def test_maps_are_byte_identical_on_rerun(tmp_path):
+    dem, z, cells = _grid_case(tmp_path)
+    values = pd.DataFrame({"stage_bias": np.linspace(-0.3, 0.3, 6)})
+    with rasterio.open(dem) as src:
+        grid = {"transform": src.transform, "crs": src.crs}
+    for name in ("a", "b"):
+        maps.write_maps(tmp_path / name, cell_values=values, cell_geometry=cells,
+                        elevation=z, **grid)
+    assert (tmp_path / "a" / "stage_bias.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    for file in ("stage_bias.tif", "stage_bias.png"):
+        assert (tmp_path / "a" / file).read_bytes() == (tmp_path / "b" / file).read_bytes()
+    png = (tmp_path / "a" / "stage_bias.png").read_bytes()
+    assert b"Software" not in png and b"Creation" not in png  # no version, no time stamp
+
+
+def test_face_layer_carries_the_values(tmp_path):
+    lines = gpd.GeoDataFrame(
+        {"face_id": [1, 0], "cell_a": [1, 1], "cell_b": [2, None]},
+        geometry=[shapely.LineString([(10, 0), (10, 10)]), shapely.LineString([(0, 0), (0, 10)])],
+        crs="EPSG:32633",
+    )
+    values = pd.DataFrame({"n_ratio": [0.9, 0.8]}, index=pd.Index([0, 1], name="face_id"))
+    path = maps.write_face_layer(tmp_path / "faces.gpkg", lines, values)
+    back = gpd.read_file(path)
+    assert back["face_id"].tolist() == [0, 1]
+    assert back["n_ratio"].tolist() == pytest.approx([0.9, 0.8])
+    assert back.crs.to_epsg() == 32633
+    assert set(back.geom_type) == {"LineString"}
+
+
+@pytest.mark.parametrize("altitude", [30.0, 45.0, 60.0])
+def test_hillshade_of_flat_ground_is_sine_of_sun_altitude(altitude):
+    z = np.full((5, 6), 3.0)
+    z[2, 2] = np.nan
+    shade = maps.hillshade(z, dx=1.0, dy=1.0, altitude=altitude)
+    # Lambert shading of a horizontal surface: sin(altitude)  (geometry identity)
+    expected = np.sin(np.radians(altitude))
+    assert np.nanmax(np.abs(shade - expected)) < 1e-12  # exact arithmetic, rounding only
+    assert np.isnan(shade[2, 2])
+
+
+@pytest.mark.parametrize(("span", "length"), [(30.0, 5.0), (160.0, 20.0), (1800.0, 200.0), (7.0, 1.0)])
+def test_scale_bar_lengths_are_round(span, length):
+    assert maps._nice_length(span) == length
+
+
+# ---------------------------------------------------------------------------------- plots
+
+
+def test_ratio_bands_quantiles_by_hand():
+    frame = pd.DataFrame(
+        {
+            "class": ["a"] * 5 + ["b"] * 2,
+            "depth": [1.0] * 5 + [1.0, 1.0],
+            "n_ratio": [0.5, 0.6, 0.7, 0.8, 0.9, 1.0, np.nan],
+        }
+    )
+    bands = plots.ratio_bands(frame, x="depth")
+    a = bands[bands["class"] == "a"].iloc[0]
+    # linear-interpolated quantiles of 0.5..0.9: 10 % -> 0.54, 90 % -> 0.86 (by hand)
+    assert (a["p10"], a["p50"], a["p90"], a["count"]) == pytest.approx((0.54, 0.7, 0.86, 5))
+    b = bands[bands["class"] == "b"].iloc[0]
+    assert b["count"] == 1 and b["p50"] == 1.0
+
+
+def test_representative_cells_largest_median_smallest():
+    factor = pd.Series([1.3, 1.0, np.nan, 1.1, 1.05], index=[10, 11, 12, 13, 14])
+    assert plots.representative_cells(factor) == {
+        "largest bed factor": 10,
+        "median bed factor": 14,
+        "smallest bed factor": 11,
+    }
+    assert plots.representative_cells(pd.Series([1.2], index=[5])) == {"largest bed factor": 5}
+
+
+def test_plots_write_deterministic_pngs(tmp_path):
+    rng = np.random.default_rng(1)
+    frame = pd.DataFrame({"class": np.repeat(["a", "b"], 30),
+                          "depth": np.tile(np.repeat([0.5, 1.0, 1.5], 10), 2),
+                          "n_ratio": rng.normal(0.9, 0.05, 60)})
+    curve = pd.DataFrame({"stage": [0.0, 1.0, 2.0], "volume": [0.0, 1.0, 4.0],
+                          "flat_volume": [0.0, 2.0, 4.0], "hydraulic_radius": [0.0, 0.8, 1.7],
+                          "flat_hydraulic_radius": [0.0, 1.0, 2.0]})
+    single = plots.plot_class_ratios(tmp_path / "c.png", frame)
+    assert single.read_bytes()[:4] == b"\x89PNG"
+    outputs = {}
+    for name in ("a", "b"):
+        outputs[name] = [
+            plots.plot_stage_bias(tmp_path / name / "h.png", rng.normal(0.2, 0.1, 50) * 0 + 0.1,
+                                  np.zeros(50)),
+            plots.plot_cell_curves(tmp_path / name / "k.png", {"one": curve}),
+        ]
+    for first, second in zip(outputs["a"], outputs["b"], strict=True):
+        assert first.read_bytes() == second.read_bytes()
+        assert first.read_bytes()[:4] == b"\x89PNG"

@@ -1,0 +1,301 @@
+"""Tests of ntrans.outputs: atomic output folder, Parquet / CSV / GeoPackage writers, units."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+import shapely
+from conftest import grid_polygons
+
+from ntrans.errors import OutputError, OutputExistsError
+from ntrans.outputs import (
+    DESCRIPTION_KEY,
+    UNITS_KEY,
+    OutputFolder,
+    TableWriter,
+    column_descriptions,
+    column_units,
+    read_table_metadata,
+    write_csv,
+    write_geopackage,
+)
+
+
+def _entries(folder: Path) -> list[str]:
+    """Every name in ``folder`` (hidden temp siblings included)."""
+    return sorted(p.name for p in folder.iterdir())
+
+
+# --------------------------------------------------------------------------- OutputFolder
+
+
+def test_output_folder_clean_exit(tmp_path: Path) -> None:
+    target = tmp_path / "out"
+    with OutputFolder(target) as folder:
+        assert folder.final == target
+        assert folder.path.parent == tmp_path and folder.path.name.startswith(".out.tmp-")
+        (folder.path / "a.txt").write_text("x")
+        assert not target.exists()  # nothing at the target before the end
+    assert (target / "a.txt").read_text() == "x"
+    assert _entries(tmp_path) == ["out"]  # no temp folder left
+
+
+@pytest.mark.parametrize("error", [RuntimeError, KeyboardInterrupt])
+def test_output_folder_exception_leaves_nothing(tmp_path: Path, error: type) -> None:
+    target = tmp_path / "out"
+    with pytest.raises(error), OutputFolder(target) as folder:
+        (folder.path / "half.parquet").write_bytes(b"PAR1")
+        raise error("stop")
+    assert _entries(tmp_path) == []
+
+
+def test_output_folder_exists_without_overwrite(tmp_path: Path) -> None:
+    target = tmp_path / "out"
+    target.mkdir()
+    (target / "old.txt").write_text("old")
+    with pytest.raises(OutputExistsError), OutputFolder(target):
+        pytest.fail("the body must not run")  # pragma: no cover
+    assert _entries(tmp_path) == ["out"]
+    assert _entries(target) == ["old.txt"]
+
+
+def test_output_folder_overwrite_replaces(tmp_path: Path) -> None:
+    target = tmp_path / "out"
+    target.mkdir()
+    (target / "old.txt").write_text("old")
+    with OutputFolder(target, overwrite=True) as folder:
+        (folder.path / "new.txt").write_text("new")
+        assert (target / "old.txt").exists()  # old results stay until the end
+    assert _entries(target) == ["new.txt"]
+    assert _entries(tmp_path) == ["out"]
+
+
+def test_output_folder_overwrite_error_keeps_old(tmp_path: Path) -> None:
+    target = tmp_path / "out"
+    target.mkdir()
+    (target / "old.txt").write_text("old")
+    with pytest.raises(ValueError), OutputFolder(target, overwrite=True) as folder:
+        (folder.path / "new.txt").write_text("new")
+        raise ValueError("boom")
+    assert _entries(target) == ["old.txt"]
+    assert _entries(tmp_path) == ["out"]
+
+
+@pytest.mark.parametrize("overwrite", [False, True])
+def test_output_folder_refuses_inputs(tmp_path: Path, overwrite: bool) -> None:
+    target = tmp_path / "data"
+    target.mkdir()
+    dem = target / "dem.tif"
+    dem.write_bytes(b"dem")
+    with pytest.raises((OutputError, OutputExistsError)), OutputFolder(
+        target, overwrite=overwrite, inputs=[dem]
+    ):
+        pytest.fail("the body must not run")  # pragma: no cover
+    assert dem.read_bytes() == b"dem"
+    assert _entries(tmp_path) == ["data"]
+
+
+def test_output_folder_refuses_input_with_overwrite_is_output_error(tmp_path: Path) -> None:
+    dem = tmp_path / "data" / "dem.tif"
+    dem.parent.mkdir()
+    dem.write_bytes(b"dem")
+    with pytest.raises(OutputError):
+        OutputFolder(tmp_path / "data", overwrite=True, inputs=[dem]).__enter__()
+    assert _entries(tmp_path) == ["data"]
+
+
+def test_output_folder_refuses_file_and_cwd(tmp_path: Path, monkeypatch) -> None:
+    afile = tmp_path / "out"
+    afile.write_text("x")
+    with pytest.raises(OutputError):
+        OutputFolder(afile, overwrite=True).__enter__()
+    monkeypatch.chdir(tmp_path)
+    with pytest.raises(OutputError):  # never replace the folder the user works in
+        OutputFolder(".", overwrite=True).__enter__()
+    assert _entries(tmp_path) == ["out"]
+
+
+def test_output_folder_creates_parents_and_path_outside_block(tmp_path: Path) -> None:
+    folder = OutputFolder(tmp_path / "a" / "b" / "out")
+    with pytest.raises(RuntimeError):
+        _ = folder.path
+    with folder:
+        (folder.path / "x").write_text("1")
+    assert (tmp_path / "a" / "b" / "out" / "x").exists()
+
+
+# --------------------------------------------------------------------------- TableWriter
+
+
+def _chunk(start: int, n: int, *, string_ids: bool = False) -> dict[str, np.ndarray]:
+    ids = np.arange(start, start + n)
+    return {
+        "cell_id": ids.astype(str).astype(object) if string_ids else ids,
+        "stage": np.linspace(0.0, 1.0, n) + start,
+        "volume": np.full(n, 1.0 / 3.0),
+    }
+
+
+@pytest.mark.parametrize("string_ids", [False, True])
+def test_table_writer_chunks_and_metadata(tmp_path: Path, string_ids: bool) -> None:
+    path = tmp_path / "t.parquet"
+    units = {"stage": "m", "volume": "m3", "not_a_column": "x"}
+    with TableWriter(path, units=units, descriptions={"stage": "water level"},
+                     metadata={"ntrans:version": "0.1.0", "ntrans:options": {"a": 1}},
+                     row_group_rows=10) as writer:
+        for start in range(0, 50, 7):
+            writer.write(_chunk(start, 7, string_ids=string_ids))
+    table = pq.read_table(path)
+    assert table.num_rows == 56
+    chunks = [_chunk(s, 7, string_ids=string_ids) for s in range(0, 50, 7)]
+    for column in ("cell_id", "stage", "volume"):
+        expected = np.concatenate([c[column] for c in chunks]).tolist()
+        assert table.column(column).to_pylist() == expected, column
+    assert table.schema.field("cell_id").type == (pa.string() if string_ids else pa.int64())
+    assert pq.ParquetFile(path).num_row_groups == 4  # 14 + 14 + 14 + 14 rows, >= 10 each
+    meta = table.schema.metadata
+    assert json.loads(meta[UNITS_KEY.encode()]) == {"stage": "m", "volume": "m3"}
+    assert json.loads(meta[DESCRIPTION_KEY.encode()]) == {"stage": "water level"}
+    read = read_table_metadata(path)
+    assert read["units"]["volume"] == "m3"
+    assert read["ntrans:version"] == "0.1.0"
+    assert json.loads(read["ntrans:options"]) == {"a": 1}
+
+
+def test_table_writer_nullable_cell_b(tmp_path: Path) -> None:
+    path = tmp_path / "f.parquet"
+    schema = {"face_id": "int64", "cell_a": "int64", "cell_b": "int64", "flow_area": "float64"}
+    with TableWriter(path, schema=schema) as writer:
+        writer.write({"face_id": np.array([0]), "cell_a": np.array([1]),
+                      "cell_b": np.array([None], dtype=object), "flow_area": np.array([0.5])})
+        writer.write(pd.DataFrame({"cell_b": pd.array([2, None], dtype="Int64"),
+                                   "face_id": [1, 2], "cell_a": [1, 3],
+                                   "flow_area": [1.5, 2.5]}))
+    table = pq.read_table(path)
+    assert table.column("cell_b").to_pylist() == [None, 2, None]
+    assert table.column("cell_b").type == pa.int64()
+    assert table.column_names == list(schema)
+
+
+def test_table_writer_first_chunk_types_kept(tmp_path: Path) -> None:
+    """Later chunks are cast to the first chunk's types (int32 -> int64, float32 -> float64)."""
+    path = tmp_path / "t.parquet"
+    with TableWriter(path) as writer:
+        writer.write({"cell_id": np.array([1, 2], dtype=np.int32),
+                      "stage": np.array([1.0, 2.0], dtype=np.float32)})
+        writer.write({"cell_id": np.array([3], dtype=np.int64),
+                      "stage": np.array([0.1], dtype=np.float64)})
+    table = pq.read_table(path)
+    assert table.schema.field("cell_id").type == pa.int64()
+    assert table.schema.field("stage").type == pa.float64()
+    assert table.column("stage").to_pylist()[2] == 0.1
+
+
+def test_table_writer_empty_with_schema(tmp_path: Path) -> None:
+    path = tmp_path / "e.parquet"
+    with TableWriter(path, schema={"cell_id": "string", "stage": "float64"},
+                     units={"stage": "ft"}):
+        pass
+    table = pq.read_table(path)
+    assert table.num_rows == 0
+    assert table.schema.field("cell_id").type == pa.string()
+    assert read_table_metadata(path)["units"] == {"stage": "ft"}
+
+
+def test_table_writer_errors(tmp_path: Path) -> None:
+    with pytest.raises(ValueError):  # no chunk and no schema: nothing to declare
+        TableWriter(tmp_path / "a.parquet").close()
+    with pytest.raises(ValueError):  # an all-null first column has no type
+        TableWriter(tmp_path / "b.parquet").write({"cell_b": np.array([None, None], dtype=object)})
+    writer = TableWriter(tmp_path / "c.parquet")
+    writer.write({"a": np.arange(2)})
+    with pytest.raises(ValueError):  # columns must not change between chunks
+        writer.write({"b": np.arange(2)})
+    writer.close()
+    assert pq.read_table(tmp_path / "c.parquet").num_rows == 2
+
+
+# --------------------------------------------------------------------------- CSV / GPKG
+
+
+def test_write_csv_equals_parquet(tmp_path: Path) -> None:
+    parquet = tmp_path / "t.parquet"
+    rng = np.random.default_rng(7)
+    with TableWriter(parquet, row_group_rows=5,
+                     schema={"cell_id": "string", "cell_b": "int64", "stage": "float64"}) as w:
+        for k in range(4):
+            w.write({"cell_id": np.array([f"c,{k}", f'q"{k}', "plain"], dtype=object),
+                     "cell_b": np.array([k, None, 2], dtype=object),
+                     "stage": np.array([0.1, 1.0 / 3.0, rng.normal() * 1e6])})
+    csv = write_csv(parquet, tmp_path / "t.csv")
+    got = pd.read_csv(csv, dtype={"cell_id": str}, keep_default_na=False,
+                      na_values={"cell_b": [""]})
+    want = pq.read_table(parquet).to_pandas()
+    assert list(got.columns) == ["cell_id", "cell_b", "stage"]
+    assert got["cell_id"].tolist() == want["cell_id"].tolist()
+    assert got["cell_b"].isna().tolist() == want["cell_b"].isna().tolist()
+    np.testing.assert_array_equal(got["cell_b"].dropna().to_numpy(),
+                                  want["cell_b"].dropna().to_numpy())
+    # floats are written with round-trip precision: exact equality
+    np.testing.assert_array_equal(got["stage"].to_numpy(), want["stage"].to_numpy())
+
+
+def test_write_geopackage_round_trip(tmp_path: Path) -> None:
+    import geopandas as gpd
+
+    frame = gpd.GeoDataFrame({"cell_id": ["a", "b"], "area": [100.0, 100.0]},
+                             geometry=grid_polygons(2, 1, 10.0), crs="EPSG:32633")
+    path = write_geopackage(frame, tmp_path / "cells.gpkg", "cells")
+    back = gpd.read_file(path, layer="cells")
+    assert back["cell_id"].tolist() == ["a", "b"]
+    assert all(shapely.equals(back.geometry.to_numpy(), frame.geometry.to_numpy()))
+    assert back.crs.to_epsg() == 32633
+
+
+# --------------------------------------------------------------------------- units
+
+CONTRACT_COLUMNS = [  # DESIGN.md section 4
+    "cell_id", "stage", "wet_area", "volume", "bed_area", "hydraulic_radius", "flat_elevation",
+    "flat_depth", "flat_hydraulic_radius",
+    "face_id", "cell_a", "cell_b", "length", "flow_area", "wetted_perimeter", "top_width",
+    "class", "n_source", "n_target", "ratio", "ratio_p10", "ratio_p50", "ratio_p90", "faces",
+    "weight_share", "flags",
+    "n_ratio", "conveyance_source", "conveyance_target", "stage_bias_unadjusted",
+    "stage_bias_adjusted",
+]
+
+
+@pytest.mark.parametrize(
+    ("horizontal", "vertical", "expected"),
+    [
+        ("metre", None, {"stage": "m", "wet_area": "m2", "volume": "m3", "flow_area": "m2",
+                         "hydraulic_radius": "m", "length": "m", "conveyance_source": "m3/s"}),
+        ("foot", "foot", {"stage": "ft", "wet_area": "ft2", "volume": "ft3",
+                          "conveyance_target": "ft3/s", "top_width": "ft"}),
+        ("foot", "metre", {"stage": "m", "wet_area": "ft2", "volume": "ft2*m",
+                           "flow_area": "ft*m", "hydraulic_radius": "m", "length": "ft"}),
+    ],
+)
+def test_column_units(horizontal: str, vertical: str | None, expected: dict[str, str]) -> None:
+    units = column_units(horizontal, vertical)
+    for column, unit in expected.items():
+        assert units[column] == unit, column
+
+
+def test_every_contract_column_has_unit_and_description() -> None:
+    units = column_units("metre")
+    descriptions = column_descriptions()
+    assert set(CONTRACT_COLUMNS) <= set(units)
+    assert set(CONTRACT_COLUMNS) <= set(descriptions)
+    assert set(descriptions) == set(units)
+
+
+def test_column_units_rejects_unknown_unit() -> None:
+    with pytest.raises(ValueError):
+        column_units("yard")

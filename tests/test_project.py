@@ -1,0 +1,288 @@
+"""Tests of ntrans.project: project-file validation, template, and the whole run."""
+
+from __future__ import annotations
+
+import inspect
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import shapely
+from conftest import grid_polygons, write_cells, write_dem
+
+from ntrans import project as proj
+from ntrans.errors import InputFileError, OutputExistsError, ProjectFileError
+
+BASE = """
+[inputs]
+dem = "dem.tif"
+cells = "cells.gpkg"
+n = 0.03
+
+[window]
+depths = "0.25:1:0.25"
+"""
+
+
+def _write(tmp_path: Path, text: str, name: str = "p.toml") -> Path:
+    path = tmp_path / name
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+# ---------------------------------------------------------------------------- validation
+
+
+def test_minimal_project_resolves_paths_against_the_file(tmp_path):
+    (tmp_path / "sub").mkdir()
+    path = _write(tmp_path / "sub", BASE)
+    project = proj.load_project(path)
+    assert project.inputs["dem"] == (tmp_path / "sub" / "dem.tif").resolve()
+    assert project.inputs["n"] == 0.03
+    assert project.window == {"depths": "0.25:1:0.25"}
+    assert project.out == (tmp_path / "sub" / "p-bundle")
+    assert project.parameters()["inputs"]["dem"] == str((tmp_path / "sub" / "dem.tif").resolve())
+
+
+def test_template_is_a_valid_project(tmp_path):
+    path = proj.write_project_template(tmp_path / "job.toml")
+    project = proj.load_project(path)
+    assert project.families["target"] == "subgrid"
+    assert project.window == {"depths": "0.25:3:0.25"}
+    assert project.out == (tmp_path / "job-bundle").resolve()
+    text = path.read_text(encoding="utf-8")
+    for table in proj.SCHEMA:
+        assert f"[{table}]" in text
+    with pytest.raises(OutputExistsError):
+        proj.write_project_template(path)
+    proj.write_project_template(path, overwrite=True)
+
+
+@pytest.mark.parametrize(
+    ("extra", "words"),
+    [
+        ('[inputs]\ndem = "d.tif"\ncells = "c.gpkg"\ncolour = "red"\n', ["colour", "class_field"]),
+        ('[run]\nthreads = 4\n', ["threads", "[run]", "tile_size", "workers"]),
+        ('[extras]\na = 1\n', ["extras", "[inputs]", "[window]"]),
+    ],
+)
+def test_unknown_key_names_it_and_the_valid_keys(tmp_path, extra, words):
+    text = BASE.replace('[inputs]\ndem = "dem.tif"\ncells = "cells.gpkg"\nn = 0.03\n', "") + extra
+    with pytest.raises(ProjectFileError) as info:
+        proj.load_project(_write(tmp_path, text))
+    for word in words:
+        assert word in str(info.value)
+
+
+@pytest.mark.parametrize(
+    ("line", "table", "words"),
+    [
+        ('tile_size = "big"', "run", ["run.tile_size", "a string", "an integer"]),
+        ("tile_size = true", "run", ["run.tile_size", "a boolean", "an integer"]),
+        ("tile_size = 2.5", "run", ["run.tile_size", "fraction", "an integer"]),
+        ("zip = 1", "outputs", ["outputs.zip", "an integer", "true or false"]),
+        ("source = 3", "families", ["families.source", "an integer", "a string"]),
+    ],
+)
+def test_wrong_type_names_key_found_and_expected(tmp_path, line, table, words):
+    with pytest.raises(ProjectFileError) as info:
+        proj.load_project(_write(tmp_path, BASE + f"\n[{table}]\n{line}\n"))
+    for word in words:
+        assert word in str(info.value)
+
+
+@pytest.mark.parametrize(
+    ("line", "table", "choices"),
+    [
+        ('closure = "round"', "families", proj.CLOSURES),
+        ('target = "mesh"', "families", proj.FAMILIES),
+        ('composite = "mean"', "families", proj.COMPOSITES),
+        ('coverage = "some"', "run", proj.COVERAGE_MODES),
+    ],
+)
+def test_bad_choice_lists_the_valid_choices(tmp_path, line, table, choices):
+    with pytest.raises(ProjectFileError) as info:
+        proj.load_project(_write(tmp_path, BASE + f"\n[{table}]\n{line}\n"))
+    for choice in choices:
+        assert choice in str(info.value)
+
+
+@pytest.mark.parametrize(
+    "window",
+    ["", '[window]\ndepths = "0:1:0.5"\nstages = "1,2"\n', '[window]\ndepths = "1:0:0.5"\n',
+     "[window]\nstages = []\n"],
+)
+def test_window_needs_exactly_one_valid_spec(tmp_path, window):
+    text = BASE.split("[window]")[0] + window
+    with pytest.raises(ProjectFileError):
+        proj.load_project(_write(tmp_path, text))
+
+
+def test_window_accepts_a_number_list(tmp_path):
+    text = BASE.split("[window]")[0] + "[window]\nstages = [10, 10.5, 11]\n"
+    assert proj.load_project(_write(tmp_path, text)).window == {"stages": [10.0, 10.5, 11.0]}
+
+
+@pytest.mark.parametrize(
+    "text",
+    ['[inputs]\ndem = "d.tif"\n[window]\ndepths = "0:1:1"\n', "[inputs\ndem = 1\n",
+     '[inputs]\ndem = "d.tif"\ncells = "c"\nn = -0.1\n[window]\ndepths = "1"\n',
+     'inputs = "dem.tif"\n'],
+)
+def test_missing_required_bad_toml_and_bad_values(tmp_path, text):
+    with pytest.raises(ProjectFileError):
+        proj.load_project(_write(tmp_path, text))
+
+
+def test_missing_project_file_is_an_input_file_error(tmp_path):
+    with pytest.raises(InputFileError):
+        proj.load_project(tmp_path / "absent.toml")
+
+
+def test_keys_and_choices_match_the_library():
+    """Project keys are API keyword names; choices equal the library's own lists."""
+    from ntrans import adjust, engine, roughness, tables
+    from ntrans.translate import COMPOSITES
+
+    api = set(inspect.signature(tables.build_tables).parameters) | set(
+        inspect.signature(adjust.adjust_roughness).parameters
+    )
+    for table, keys in proj.SCHEMA.items():
+        for key in keys:
+            if key != "zip":  # the zip is the bundle's own option
+                assert key in api, f"{table}.{key} is not a keyword of the API"
+    assert set(proj.CLOSURES) == set(adjust.SUBGRID_CLOSURES)
+    assert set(proj.FAMILIES) == set(adjust.FAMILIES)
+    assert set(proj.COMPOSITES) == set(COMPOSITES)
+    assert set(proj.ELEVATION_RULES) == set(engine.ELEVATION_RULES)
+    assert set(proj.FACE_RULES) == set(engine.FACE_RULES)
+    assert set(proj.COVERAGE_MODES) == set(engine.COVERAGE_MODES)
+    assert set(proj.OVERLAP_RULES) == set(roughness.OVERLAP_RULES)
+
+
+# ------------------------------------------------------------------------------ the run
+
+
+def write_small_project(folder: Path, *, out: str = "bundle", extra: str = "") -> Path:
+    """A 40 x 30 m valley (1 m pixels), 4 x 3 cells of 10 m, two land-cover classes."""
+    folder.mkdir(parents=True, exist_ok=True)
+    x = np.arange(40) + 0.5
+    y = 30 - (np.arange(30) + 0.5)
+    xx, yy = np.meshgrid(x, y)
+    z = 10.0 + 0.01 * xx + 0.1 * np.abs(yy - 15.0) - 1.0 * np.exp(-(((yy - 15.0) / 3.0) ** 2))
+    write_dem(folder / "dem.tif", z)
+    write_cells(folder / "cells.gpkg", grid_polygons(4, 3, 10.0))
+    write_cells(
+        folder / "landcover.gpkg",
+        [shapely.box(0, 10, 40, 20), shapely.box(0, 0, 40, 10).union(shapely.box(0, 20, 40, 30))],
+        ids=None, id_field=None, attributes={"landcover": ["channel", "grass"]},
+    )
+    (folder / "n_table.csv").write_text("class,n\nchannel,0.035\ngrass,0.030\n", encoding="utf-8")
+    text = f"""
+[inputs]
+dem = "dem.tif"
+cells = "cells.gpkg"
+classes = "landcover.gpkg"
+class_field = "landcover"
+n_table = "n_table.csv"
+
+[families]
+source = "flat"
+target = "subgrid"
+closure = "lumped"
+
+[window]
+depths = "0.25:1.5:0.25"
+
+[outputs]
+out = "{out}"
+{extra}
+"""
+    return _write(folder, text, "project.toml")
+
+
+@pytest.fixture(scope="module")
+def two_runs(tmp_path_factory):
+    """The same small project run twice into two bundles (and a zip for the first)."""
+    root = tmp_path_factory.mktemp("runs")
+    first = proj.run_project(write_small_project(root / "a", extra="zip = true"))
+    second = proj.run_project(write_small_project(root / "b"))
+    return first, second
+
+
+def test_bundle_holds_every_part(two_runs):
+    result, _ = two_runs
+    files = set(result.files)
+    for name in ("report.html", "n_by_class.csv", "manifest.json", "tables/cell_stage.parquet",
+                 "tables/face_stage.parquet", "tables/cells.gpkg", "tables/faces.gpkg",
+                 "adjust/n_by_class.csv", "adjust/face_adjustment.parquet",
+                 "maps/friction_factor.tif", "maps/n_ratio.tif", "maps/stage_bias.tif",
+                 "maps/friction_factor.png", "maps/faces.gpkg",
+                 "plots/n_ratio_by_class.png", "plots/stage_bias_histograms.png",
+                 "plots/representative_cells.png"):
+        assert name in files, name
+    assert result.zip is not None and result.zip.is_file()
+    assert (result.folder / "n_by_class.csv").read_bytes() == (
+        result.folder / "adjust" / "n_by_class.csv"
+    ).read_bytes()
+    assert sorted(result.n_by_class["class"]) == ["channel", "grass"]
+    # nothing left behind by the atomic folder
+    assert not [p for p in result.folder.parent.iterdir() if p.name.startswith(".bundle")]
+
+
+def test_manifest_hashes_every_output_and_input(two_runs):
+    import hashlib
+
+    result, _ = two_runs
+    manifest = json.loads(result.manifest.read_text())
+    listed = {e["path"]: e for e in manifest["outputs"]}
+    assert set(listed) == set(result.files) - {"manifest.json"}
+    for rel, entry in listed.items():
+        assert entry["sha256"] == hashlib.sha256((result.folder / rel).read_bytes()).hexdigest()
+    roles = {e["role"]: e for e in manifest["inputs"]}
+    assert set(roles) == {"dem", "cells", "classes", "n_table"}
+    assert roles["dem"]["crs"]["epsg"] == 32633
+    assert roles["cells"]["features"] == 12
+    assert manifest["parameters"]["families"]["closure"] == "lumped"
+    assert manifest["parameters"]["window"]["depths"] == "0.25:1.5:0.25"
+    assert "ntrans" in manifest["versions"] and "rasterio" in manifest["versions"]
+    assert proj.load_project(manifest["project_file"]["path"]).families["target"] == "subgrid"
+
+
+def test_two_runs_give_identical_outputs_apart_from_the_time(two_runs):
+    first, second = two_runs
+    a = json.loads(first.manifest.read_text())
+    b = json.loads(second.manifest.read_text())
+    hashes_a = {e["path"]: e["sha256"] for e in a["outputs"]}
+    hashes_b = {e["path"]: e["sha256"] for e in b["outputs"]}
+    assert hashes_a == hashes_b
+    for name in ("tables/cell_stage.parquet", "tables/face_stage.parquet",
+                 "adjust/face_adjustment.parquet"):
+        pd.testing.assert_frame_equal(pd.read_parquet(first.folder / name),
+                                      pd.read_parquet(second.folder / name))
+
+
+def test_run_bundle_verifies_and_rasters_share_the_dem_grid(two_runs):
+    import rasterio
+
+    from ntrans.bundle import verify_bundle
+
+    result, _ = two_runs
+    assert verify_bundle(result.folder).ok
+    assert verify_bundle(result.zip).ok
+    with rasterio.open(result.folder.parent / "dem.tif") as dem:
+        grid = (dem.transform, dem.shape, dem.crs)
+    for name in ("friction_factor", "n_ratio", "stage_bias"):
+        with rasterio.open(result.folder / "maps" / f"{name}.tif") as out:
+            assert (out.transform, out.shape, out.crs) == grid
+
+
+def test_run_refuses_to_overwrite_without_permission(two_runs):
+    result, _ = two_runs
+    project = result.folder.parent / "project.toml"
+    before = result.manifest.read_bytes()
+    with pytest.raises(OutputExistsError):
+        proj.run_project(project)
+    assert result.manifest.read_bytes() == before

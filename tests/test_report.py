@@ -1,0 +1,143 @@
+"""Tests of ntrans.report: self-contained HTML, embedded images, escaped values, cautions."""
+
+from __future__ import annotations
+
+import base64
+import html
+from html.parser import HTMLParser
+
+import pytest
+
+from ntrans import report
+from ntrans.cautions import CAUTIONS
+
+# Smallest valid PNG: 1 x 1 pixel (bytes written out by hand, not from a plotting library).
+PNG_1PX = base64.b64decode(
+    "iVBORw0KGgoAAAANSUhEUgAAAAEAAAABCAYAAAAfFcSJAAAADUlEQVR42mNk+M9QDwADhgGAWjR9awAAAABJRU5ErkJggg=="
+)
+
+
+class _Collector(HTMLParser):
+    def __init__(self) -> None:
+        super().__init__(convert_charrefs=True)
+        self.tags: list[str] = []
+        self.attrs: list[tuple[str, str, str | None]] = []
+        self.text: list[str] = []
+        self.open: list[str] = []
+        self.errors: list[str] = []
+
+    VOID = {"meta", "img", "br", "hr", "link", "input"}
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append(tag)
+        self.attrs.extend((tag, k, v) for k, v in attrs)
+        if tag not in self.VOID:
+            self.open.append(tag)
+
+    def handle_endtag(self, tag):
+        if not self.open or self.open[-1] != tag:
+            self.errors.append(f"unbalanced </{tag}> (open: {self.open[-3:]})")
+        else:
+            self.open.pop()
+
+    def handle_data(self, data):
+        self.text.append(data)
+
+
+def _context(**extra):
+    ctx = {
+        "title": "Demo & test",
+        "project": "demo.toml",
+        "move": {"source": "flat", "target": "subgrid", "closure": "lumped",
+                 "composite": "horton_einstein", "window": "depths 0.25:3:0.25"},
+        "units": {"horizontal": "metre", "vertical": "metre", "manning_k": 1.0},
+        "counts": {"cells": 9, "faces": 24, "stages": 12},
+        "classes": [
+            {"class": "grass", "n_source": 0.03, "n_target": 0.026, "ratio": 0.8667,
+             "ratio_p10": 0.8, "ratio_p50": 0.87, "ratio_p90": 0.95, "faces": 20,
+             "weight_share": 0.75, "flags": ""},
+            {"class": "<script>alert(1)</script>", "n_source": 0.06, "n_target": float("nan"),
+             "ratio": float("nan"), "faces": 4, "weight_share": 0.25, "flags": "dry_in_target"},
+        ],
+        "bias": {"before": {"median": 0.21, "p10": 0.1, "p90": 0.3, "mean_abs": 0.2, "count": 288},
+                 "after": {"median": 0.0, "p10": -0.02, "p90": 0.02, "mean_abs": 0.01, "count": 288}},
+        "inputs": [{"role": "dem", "path": "/data/dem.tif", "sha256": "ab" * 32}],
+        "notes": ["3 faces wet in one family only were left out"],
+    }
+    ctx.update(extra)
+    return ctx
+
+
+@pytest.fixture
+def rendered():
+    images = {key: PNG_1PX for key in ("friction_factor", "n_ratio", "stage_bias",
+                                       "stage_bias_hist", "class_ratios", "cell_curves")}
+    text = report.render_report(_context(), images)
+    parser = _Collector()
+    parser.feed(text)
+    parser.close()
+    return text, parser
+
+
+def test_report_parses_as_balanced_html(rendered):
+    text, parser = rendered
+    assert text.startswith("<!DOCTYPE html>")
+    assert parser.errors == []
+    assert parser.open == []
+    assert "html" in parser.tags and "body" in parser.tags and "table" in parser.tags
+
+
+def test_report_embeds_every_image_as_a_data_uri(rendered):
+    _, parser = rendered
+    sources = [v for tag, k, v in parser.attrs if tag == "img" and k == "src"]
+    assert len(sources) == 6
+    for src in sources:
+        assert src.startswith("data:image/png;base64,")
+        assert base64.b64decode(src.split(",", 1)[1]) == PNG_1PX
+
+
+def test_report_links_nothing_outside_the_file(rendered):
+    text, parser = rendered
+    assert "script" not in parser.tags
+    assert "link" not in parser.tags
+    for _tag, key, value in parser.attrs:
+        if key in ("src", "href", "action", "data"):
+            assert value is not None and not value.lower().startswith(("http:", "https:", "//"))
+    assert "http://" not in text and "https://" not in text
+    assert "@import" not in text and "url(" not in text
+
+
+def test_report_escapes_values(rendered):
+    text, parser = rendered
+    assert "<script>" not in text
+    assert html.escape("<script>alert(1)</script>") in text
+    assert "Demo &amp; test" in text
+
+
+def test_report_states_the_cautions_verbatim_twice(rendered):
+    text, _ = rendered
+    for caution in CAUTIONS:
+        assert text.count(html.escape(caution)) == 2
+
+
+def test_report_holds_class_table_and_sources(rendered):
+    text, parser = rendered
+    body = " ".join(parser.text)
+    assert "grass" in body and "0.026" in body and "0.8667" in body
+    assert "75 %" in body  # weight share shown as a percentage
+    for source in ("Chow (1959)", "Horn 1981", "Horton", "Pavlovskii", "Lotter"):
+        assert source in body
+
+
+def test_report_skips_missing_images_and_empty_classes():
+    text = report.render_report(_context(classes=[], bias={}), {})
+    parser = _Collector()
+    parser.feed(text)
+    assert "img" not in parser.tags
+    assert parser.errors == []
+    assert "No roughness classes" in text
+
+
+def test_write_report_writes_utf8(tmp_path):
+    path = report.write_report(tmp_path / "r" / "report.html", _context(), {"n_ratio": PNG_1PX})
+    assert path.read_text(encoding="utf-8").count("data:image/png;base64,") == 1

@@ -1,0 +1,181 @@
+"""Tests of ntrans.roughness: parsing, validation, class maps on a window."""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pytest
+import shapely
+from affine import Affine
+
+from ntrans.errors import InputFileError, RoughnessError, RoughnessRangeWarning
+from ntrans.roughness import (
+    PUBLISHED_N_RANGES,
+    class_at_points,
+    class_index_on_window,
+    load_roughness,
+    polygon_model,
+    raster_model,
+    uniform_model,
+)
+
+MESH = shapely.box(0, 0, 10, 10)
+TRANSFORM = Affine(1.0, 0.0, 0.0, 0.0, -1.0, 10.0)  # 10 x 10 pixels of 1 m, top at y = 10
+
+
+def table(rows):
+    names = [r[0] for r in rows]
+    values = [r[1] for r in rows]
+    surf = [r[2] if len(r) > 2 else None for r in rows]
+    return names, values, surf
+
+
+def two_halves():
+    return np.array([shapely.box(0, 0, 5, 10), shapely.box(5, 0, 10, 10)], dtype=object)
+
+
+def test_uniform_model():
+    m = uniform_model("0.035")
+    assert m.classes == ("all",) and m.n.tolist() == [0.035]
+    idx = class_index_on_window(m, TRANSFORM, (3, 4))
+    assert idx.shape == (3, 4) and np.all(idx == 0)
+
+
+@pytest.mark.parametrize("bad", ["0", "-0.01", "abc", "nan", ""])
+def test_uniform_model_bad_n(bad):
+    with pytest.raises(RoughnessError):
+        uniform_model(bad)
+
+
+def test_polygons_rasterise_on_window():
+    m = polygon_model(two_halves(), np.array(["grass", "channel"], dtype=object),
+                      table=table([("channel", "0.03"), ("grass", "0.05")]), mesh_area=MESH)
+    assert m.classes == ("channel", "grass")
+    idx = class_index_on_window(m, TRANSFORM, (10, 10))
+    assert np.all(idx[:, :5] == m.classes.index("grass"))
+    assert np.all(idx[:, 5:] == m.classes.index("channel"))
+    # segment midpoints: nearest pixel, -1 outside the window
+    got = class_at_points(idx, TRANSFORM, np.array([2.2, 7.9, 11.0]), np.array([5.0, 1.0, 5.0]))
+    assert got.tolist() == [1, 0, -1]
+
+
+def test_missing_classes_listed_all():
+    polys = np.array([shapely.box(0, 0, 5, 10), shapely.box(5, 0, 10, 5),
+                      shapely.box(5, 5, 10, 10)], dtype=object)
+    with pytest.raises(RoughnessError) as err:
+        polygon_model(polys, np.array(["a", "b", "c"], dtype=object), table=table([("a", "0.03")]),
+                      mesh_area=MESH)
+    assert "'b'" in str(err.value) and "'c'" in str(err.value)
+
+
+@pytest.mark.parametrize("bad", ["0", "-1", "x", "inf"])
+def test_table_bad_n(bad):
+    with pytest.raises(RoughnessError):
+        polygon_model(two_halves(), np.array(["a", "b"], dtype=object),
+                      table=table([("a", "0.03"), ("b", bad)]), mesh_area=MESH)
+
+
+def test_overlap_rules():
+    polys = np.array([shapely.box(0, 0, 6, 10), shapely.box(4, 0, 10, 10)], dtype=object)
+    labels = np.array(["a", "b"], dtype=object)
+    tab = table([("a", "0.03"), ("b", "0.06")])
+    with pytest.raises(RoughnessError):
+        polygon_model(polys, labels, table=tab, mesh_area=MESH)
+    col = 4  # pixel column 4 (x 4..5) lies in both polygons
+    first = class_index_on_window(polygon_model(polys, labels, table=tab, overlap_rule="first",
+                                                mesh_area=MESH), TRANSFORM, (10, 10))
+    last = class_index_on_window(polygon_model(polys, labels, table=tab, overlap_rule="last",
+                                               mesh_area=MESH), TRANSFORM, (10, 10))
+    maxn = class_index_on_window(polygon_model(polys[::-1], labels[::-1], table=tab,
+                                               overlap_rule="max_n", mesh_area=MESH),
+                                 TRANSFORM, (10, 10))
+    assert np.all(first[:, col] == 0) and np.all(last[:, col] == 1) and np.all(maxn[:, col] == 1)
+
+
+def test_uncovered_ground_needs_default():
+    polys = np.array([shapely.box(0, 0, 5, 10)], dtype=object)
+    labels = np.array(["a"], dtype=object)
+    with pytest.raises(RoughnessError) as err:
+        polygon_model(polys, labels, table=table([("a", "0.03")]), mesh_area=MESH)
+    assert "50%" in str(err.value)
+    m = polygon_model(polys, labels, table=table([("a", "0.03"), ("b", "0.05")]),
+                      default_class="b", mesh_area=MESH)
+    idx = class_index_on_window(m, TRANSFORM, (10, 10))
+    assert np.all(idx[:, 5:] == m.classes.index("b"))
+
+
+def test_layer_missing_mesh():
+    polys = np.array([shapely.box(100, 100, 110, 110)], dtype=object)
+    with pytest.raises(RoughnessError):
+        polygon_model(polys, np.array(["a"], dtype=object), table=table([("a", "0.03")]),
+                      mesh_area=MESH, default_class="a")
+
+
+def test_range_warnings():
+    # Chow (1959) Table 5-6, clean straight channel 0.025-0.033 [from memory, METHODS.md]
+    assert PUBLISHED_N_RANGES["channel_clean"][0] == 0.025
+    with pytest.warns(RoughnessRangeWarning):
+        polygon_model(two_halves(), np.array(["a", "b"], dtype=object),
+                      table=table([("a", "0.05", "channel_clean"), ("b", "0.03")]), mesh_area=MESH)
+    with pytest.warns(RoughnessRangeWarning):
+        uniform_model(0.4)  # above 0.3
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        polygon_model(two_halves(), np.array(["a", "b"], dtype=object),
+                      table=table([("a", "0.03", "channel_clean"), ("b", "0.03")]), mesh_area=MESH)
+
+
+def test_unknown_surface():
+    with pytest.raises(RoughnessError):
+        polygon_model(two_halves(), np.array(["a", "b"], dtype=object),
+                      table=table([("a", "0.03", "lawn"), ("b", "0.03")]), mesh_area=MESH)
+
+
+def test_n_field_mode():
+    m = polygon_model(two_halves(), np.zeros(2), n_values=np.array([0.05, 0.03], dtype=object),
+                      mesh_area=MESH)
+    assert m.classes == ("n=0.03", "n=0.05") and m.n.tolist() == [0.03, 0.05]
+    with pytest.raises(RoughnessError):
+        polygon_model(two_halves(), np.zeros(2), n_values=np.array([0.05, "x"], dtype=object),
+                      mesh_area=MESH)
+
+
+def test_raster_model_resampled_nearest():
+    # 5 x 5 raster of 2 m pixels, codes 1 (left) / 7 (right), nodata 0 in one corner
+    data = np.ones((5, 5), dtype=np.int32)
+    data[:, 3:] = 7
+    data[0, 0] = 0
+    tr = Affine(2.0, 0.0, 0.0, 0.0, -2.0, 10.0)
+    tab = table([("1", "0.03"), ("7", "0.08"), ("9", "0.05")])
+    with pytest.raises(RoughnessError):
+        raster_model(data, tr, "EPSG:32633", 0, table([("1", "0.03")]), mesh_bounds=(0, 0, 10, 10))
+    m = raster_model(data, tr, "EPSG:32633", 0, tab, default_class="9", mesh_bounds=(0, 0, 10, 10))
+    assert m.classes == ("1", "7", "9")
+    idx = class_index_on_window(m, TRANSFORM, (10, 10), crs="EPSG:32633")
+    assert np.all(idx[:, 6:] == 1) and np.all(idx[2:, :6] == 0)
+    assert np.all(idx[:2, :2] == 2)  # nodata -> default class
+    with pytest.raises(RoughnessError):
+        raster_model(data, tr, "EPSG:32633", 0, tab, mesh_bounds=(100, 100, 110, 110))
+
+
+def test_load_roughness_files(tmp_path):
+    import geopandas as gpd
+
+    gpd.GeoDataFrame({"kind": ["a", "b"]}, geometry=list(two_halves()), crs="EPSG:32633").to_file(
+        tmp_path / "classes.gpkg")
+    (tmp_path / "n.csv").write_text("class,n,surface\na,0.03,channel_clean\nb,0.045,\n")
+    m = load_roughness(classes=tmp_path / "classes.gpkg", class_field="kind",
+                       n_table=tmp_path / "n.csv", crs="EPSG:32633", mesh_area=MESH)
+    assert m.classes == ("a", "b") and m.surface == ("channel_clean", None)
+    with pytest.raises(RoughnessError):
+        load_roughness(classes=tmp_path / "classes.gpkg", class_field="nope",
+                       n_table=tmp_path / "n.csv", crs="EPSG:32633", mesh_area=MESH)
+    with pytest.raises(RoughnessError):
+        load_roughness(n=0.03, classes=tmp_path / "classes.gpkg")
+    with pytest.raises(InputFileError):
+        load_roughness(classes=tmp_path / "none.gpkg", class_field="kind", n_table=tmp_path / "n.csv")
+    (tmp_path / "bad.csv").write_text("klass,n\na,0.03\n")
+    with pytest.raises(RoughnessError):
+        load_roughness(classes=tmp_path / "classes.gpkg", class_field="kind",
+                       n_table=tmp_path / "bad.csv", mesh_area=MESH)

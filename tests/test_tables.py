@@ -1,0 +1,242 @@
+"""``build_tables``: the ``ntrans tables`` job end to end on small DEMs and meshes."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pyogrio
+import pytest
+import shapely
+from conftest import grid_polygons, tilted_plane, write_cells, write_dem
+
+from ntrans.errors import OutputExistsError, PartialCoverageWarning, StageSpecError
+from ntrans.outputs import read_table_metadata
+from ntrans.tables import (
+    CELL_STAGE_COLUMNS,
+    CELL_SUMMARY_COLUMNS,
+    FACE_STAGE_COLUMNS,
+    FACE_SUMMARY_COLUMNS,
+    build_tables,
+)
+
+# DESIGN.md section 4: the columns users rely on
+CONTRACT_CELL = ["cell_id", "stage", "wet_area", "volume", "bed_area", "hydraulic_radius",
+                 "flat_elevation", "flat_depth", "flat_hydraulic_radius"]
+CONTRACT_FACE = ["face_id", "cell_a", "cell_b", "stage", "length", "flow_area",
+                 "wetted_perimeter", "top_width", "hydraulic_radius"]
+
+
+def bumpy(rows: int, cols: int) -> np.ndarray:
+    """A smooth terrain with a valley and bumps (elevations 9..13 m), 1 m pixels."""
+    y, x = np.mgrid[0:rows, 0:cols] + 0.5
+    return 10.0 + 0.05 * x + 1.5 * np.sin(x / 5.0) * np.cos(y / 7.0) + 0.02 * (y - rows / 2) ** 2 / 4
+
+
+@pytest.fixture
+def case(tmp_path):
+    """40 x 40 m bumpy DEM; 3 x 3 cells of 12 m from (2.3, 1.7): not aligned to pixels."""
+    z = bumpy(40, 40)
+    dem = write_dem(tmp_path / "dem.tif", z, dtype="float64")
+    polys = grid_polygons(3, 3, 12.0, origin=(2.3, 1.7))
+    cells = write_cells(tmp_path / "cells.gpkg", polys)
+    return dem, cells, z, polys
+
+
+def _read(out):
+    cell = pd.read_parquet(out / "cell_stage.parquet")
+    face = pd.read_parquet(out / "face_stage.parquet")
+    return cell, face
+
+
+def test_contract_columns_and_units(case, tmp_path):
+    dem, cells, _, _ = case
+    out = tmp_path / "out"
+    res = build_tables(dem, cells, out=out, stages="10:12:0.5", csv=True)
+    assert res.out == out.absolute()
+    cell, face = _read(out)
+    assert list(cell.columns) == list(CELL_STAGE_COLUMNS)
+    assert list(face.columns) == list(FACE_STAGE_COLUMNS)
+    assert set(CONTRACT_CELL) <= set(cell.columns)
+    assert set(CONTRACT_FACE) <= set(face.columns)
+    for name, columns in (("cell_stage.parquet", cell.columns), ("face_stage.parquet", face.columns)):
+        units = read_table_metadata(out / name)["units"]
+        assert set(columns) <= set(units)
+        assert units["stage"] == "m"
+    cell_units = read_table_metadata(out / "cell_stage.parquet")["units"]
+    assert (cell_units["volume"], cell_units["wet_area"]) == ("m3", "m2")
+    face_units = read_table_metadata(out / "face_stage.parquet")["units"]
+    assert (face_units["flow_area"], face_units["conveyance_lumped"]) == ("m2", "m3/s")
+    assert len(cell) == 9 * 5
+    # 3 x 3 grid: 12 shared borders; each of the 8 outer cells has one connected
+    # boundary piece (a corner cell's two outer sides form one line)
+    faces_gpkg = pyogrio.read_dataframe(out / "faces.gpkg")
+    assert list(faces_gpkg.columns[:-1]) == list(FACE_SUMMARY_COLUMNS)
+    assert len(faces_gpkg) == 20
+    assert int(faces_gpkg["cell_b"].isna().sum()) == 8
+    assert len(face) == 20 * 5
+    assert face["cell_b"].isna().sum() == 8 * 5
+    cells_gpkg = pyogrio.read_dataframe(out / "cells.gpkg")
+    assert list(cells_gpkg.columns[:-1]) == list(CELL_SUMMARY_COLUMNS)
+    assert sorted(cells_gpkg["cell_id"]) == list(range(1, 10))
+    np.testing.assert_allclose(cells_gpkg["covered_fraction"], 1.0, rtol=1e-12)  # all inside
+    csv = pd.read_csv(out / "cell_stage.csv")
+    np.testing.assert_allclose(csv["volume"], cell["volume"], rtol=1e-12)  # round-trip digits
+    assert (out / "tables_summary.json").is_file()
+    assert {p.name for p in res.files} >= {"cell_stage.parquet", "face_stage.parquet",
+                                           "cells.gpkg", "faces.gpkg", "cell_stage.csv",
+                                           "face_stage.csv"}
+
+
+def test_volume_against_brute_force(case, tmp_path):
+    dem, cells, z, polys = case
+    out = tmp_path / "out"
+    build_tables(dem, cells, out=out, stages="10.5,11.5,12.5", faces=False)
+    cell = pd.read_parquet(out / "cell_stage.parquet")
+    pixels = np.array([shapely.box(c, 39 - r, c + 1, 40 - r)
+                       for r in range(40) for c in range(40)], dtype=object)
+    zf = z.ravel()
+    for cid, poly in enumerate(polys, start=1):
+        frac = shapely.area(shapely.intersection(pixels, poly))  # plan area per pixel, m2
+        assert np.count_nonzero(frac) >= 100
+        for stage in (10.5, 11.5, 12.5):
+            vol = np.sum(frac * np.clip(stage - zf, 0, None))
+            wet = np.sum(frac * (zf < stage))
+            row = cell[(cell.cell_id == cid) & (cell.stage == stage)].iloc[0]
+            # independent brute force (shapely intersection per pixel x depth).  Both
+            # use the same piecewise-constant terrain, so only round-off separates them
+            # (measured 2e-15); 1e-9 is far inside the 2 % the issue allows.
+            assert row.volume == pytest.approx(vol, rel=1e-9, abs=1e-9)
+            assert row.wet_area == pytest.approx(wet, rel=1e-9, abs=1e-9)
+
+
+def test_flat_dem_subgrid_equals_flat(tmp_path):
+    dem = write_dem(tmp_path / "dem.tif", np.full((30, 30), 5.0))
+    cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(3, 3, 9.0, origin=(1.5, 1.5)))
+    out = tmp_path / "out"
+    build_tables(dem, cells, out=out, stages="5.5:7:0.5")
+    cell, face = _read(out)
+    # geometry identity: on a flat bed the subgrid cell is the flat cell (to round-off)
+    np.testing.assert_allclose(cell.flat_elevation, 5.0, rtol=1e-12)
+    np.testing.assert_allclose(cell.volume, cell.flat_volume, rtol=1e-9)
+    np.testing.assert_allclose(cell.wet_area, cell.flat_wet_area, rtol=1e-9)
+    np.testing.assert_allclose(cell.bed_area, cell.wet_area, rtol=1e-12)
+    np.testing.assert_allclose(cell.hydraulic_radius, cell.flat_hydraulic_radius, rtol=1e-9)
+    np.testing.assert_allclose(cell.wet_area, 81.0, rtol=1e-9)  # 9 m x 9 m cells
+    np.testing.assert_allclose(cell.volume, 81.0 * (cell.stage - 5.0), rtol=1e-9)
+    # geometry identity: a flat face is a rectangle L x h with P = L
+    np.testing.assert_allclose(face.flow_area, face.flat_flow_area, rtol=1e-9)
+    np.testing.assert_allclose(face.flow_area, face.length * (face.stage - 5.0), rtol=1e-9)
+    np.testing.assert_allclose(face.wetted_perimeter, face.length, rtol=1e-9)
+    np.testing.assert_allclose(face.top_width, face.length, rtol=1e-9)
+    np.testing.assert_allclose(face.hydraulic_radius, face.flat_depth, rtol=1e-9)
+    # published formula, Manning: K = A R^(2/3) at n = 1 is the same for all three closures
+    np.testing.assert_allclose(face.conveyance_lumped, face.conveyance_flat, rtol=1e-9)
+    np.testing.assert_allclose(face.conveyance_strip, face.conveyance_flat, rtol=1e-9)
+    np.testing.assert_allclose(
+        face.conveyance_flat, face.length * (face.stage - 5.0) ** (5.0 / 3.0), rtol=1e-9
+    )
+
+
+def test_tilted_plane_bed_factor(tmp_path):
+    z = tilted_plane(30, 30, sx=0.3, sy=0.4)
+    dem = write_dem(tmp_path / "dem.tif", z, dtype="float64")
+    cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(2, 2, 12.0, origin=(3.0, 3.0)))
+    out = tmp_path / "out"
+    build_tables(dem, cells, out=out, depths="0.5:2:0.5", faces=False)
+    cell = pd.read_parquet(out / "cell_stage.parquet")
+    wet = cell[cell.wet_area > 0]
+    # geometry identity: on a plane s = sqrt(1 + 0.3^2 + 0.4^2) = 1/cos(theta) (Horn exact)
+    np.testing.assert_allclose(wet.bed_area / wet.wet_area, np.sqrt(1.25), rtol=1e-9)
+    gpkg = pyogrio.read_dataframe(out / "cells.gpkg")
+    np.testing.assert_allclose(gpkg.bed_factor, np.sqrt(1.25), rtol=1e-9)
+
+
+def test_depth_mode(case, tmp_path):
+    dem, cells, _, _ = case
+    out = tmp_path / "out"
+    build_tables(dem, cells, out=out, depths="0:1:0.25", elevation_rule="min")
+    cell, face = _read(out)
+    gpkg = pyogrio.read_dataframe(out / "cells.gpkg").set_index("cell_id")
+    depths = np.array([0, 0.25, 0.5, 0.75, 1.0])
+    for cid, rows in cell.groupby("cell_id"):
+        # stage = cell's lowest terrain + depth, by definition of --depths
+        np.testing.assert_allclose(rows.stage, gpkg.loc[cid, "z_min"] + depths, rtol=1e-12)
+        np.testing.assert_allclose(rows.depth, depths, atol=1e-12)
+        # flat bed at the cell's minimum (rule min): flat depth = depth
+        np.testing.assert_allclose(rows.flat_depth, depths, atol=1e-12)
+    assert np.all(cell[cell.depth == 0].volume == 0)  # nothing below the lowest point
+    faces_gpkg = pyogrio.read_dataframe(out / "faces.gpkg")
+    low = dict(zip(faces_gpkg.face_id, faces_gpkg.low_point, strict=True))
+    np.testing.assert_allclose(face.stage - face.face_id.map(low), face.depth, atol=1e-12)
+    np.testing.assert_allclose(face.depth.to_numpy().reshape(-1, 5), np.tile(depths, (20, 1)),
+                               atol=1e-12)
+
+
+def test_elevation_field_rule(case, tmp_path):
+    dem, _, _, polys = case
+    cells = write_cells(tmp_path / "f.gpkg", polys, attributes={"bed": np.arange(9) + 10.0})
+    out = tmp_path / "out"
+    build_tables(dem, cells, out=out, stages="12", elevation_rule="field", elevation_field="bed")
+    cell, face = _read(out)
+    np.testing.assert_allclose(cell.sort_values("cell_id").flat_elevation, np.arange(9) + 10.0)
+    np.testing.assert_allclose(cell.sort_values("cell_id").flat_depth,
+                               np.clip(12 - (np.arange(9) + 10.0), 0, None))
+    # default face rule "higher": the higher of the two flat cell beds (boundary: its cell)
+    inner = face[face.cell_b.notna()]
+    np.testing.assert_allclose(inner.flat_bed, np.maximum(inner.cell_a, inner.cell_b) + 9.0)
+
+
+def test_partial_coverage_warns(tmp_path):
+    z = bumpy(30, 30)
+    z[:, 20:] = np.nan  # the right third is nodata
+    dem = write_dem(tmp_path / "dem.tif", z)
+    cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(3, 3, 10.0))
+    out = tmp_path / "out"
+    with pytest.warns(PartialCoverageWarning, match="3 cells"):
+        res = build_tables(dem, cells, out=out, stages="11")
+    assert res.n_partial == 3
+    gpkg = pyogrio.read_dataframe(out / "cells.gpkg").set_index("cell_id")
+    np.testing.assert_allclose(gpkg.loc[[3, 6, 9], "covered_fraction"], 0.0, atol=1e-12)
+    np.testing.assert_allclose(gpkg.loc[[1, 2, 4, 5, 7, 8], "covered_fraction"], 1.0, rtol=1e-12)
+
+
+def test_output_exists_and_overwrite(case, tmp_path):
+    dem, cells, _, _ = case
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "old.txt").write_text("x")
+    with pytest.raises(OutputExistsError):
+        build_tables(dem, cells, out=out, stages="11")
+    assert (out / "old.txt").exists()
+    build_tables(dem, cells, out=out, stages="11", overwrite=True)
+    assert not (out / "old.txt").exists()
+    assert (out / "cell_stage.parquet").exists()
+
+
+def test_atomic_output_on_error(case, tmp_path, monkeypatch):
+    import ntrans.engine as engine
+
+    dem, cells, _, _ = case
+    calls = {"n": 0}
+    real = engine.run_tile
+
+    def failing(*args, **kwargs):
+        calls["n"] += 1
+        if calls["n"] == 3:
+            raise RuntimeError("disk on fire")
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(engine, "run_tile", failing)
+    out = tmp_path / "out"
+    with pytest.raises(RuntimeError):
+        build_tables(dem, cells, out=out, stages="11", tile_size=8)
+    assert calls["n"] == 3
+    assert not out.exists()
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".out")]
+
+
+def test_bad_stage_spec_writes_nothing(case, tmp_path):
+    dem, cells, _, _ = case
+    with pytest.raises(StageSpecError):
+        build_tables(dem, cells, out=tmp_path / "out", stages="11", depths="1")
+    assert not (tmp_path / "out").exists()
