@@ -30,6 +30,7 @@ import argparse
 import json
 import os
 import shutil
+import signal
 import subprocess
 import sys
 import time
@@ -66,6 +67,17 @@ def _run_child(job_path: Path) -> None:
     name = job["pipeline"]
     out = Path(job["out"])
     common = {"out": out, "id_field": "cell_id"}
+    # heavy libraries every pipeline may import lazily: load them before the clock starts
+    import geopandas  # noqa: F401
+    import pandas  # noqa: F401
+    import pyarrow.parquet  # noqa: F401
+    import pyogrio  # noqa: F401
+    import rasterio  # noqa: F401
+    import scipy.sparse  # noqa: F401
+    import shapely  # noqa: F401
+
+    if name == "ntrans_workers":
+        import dask.distributed  # noqa: F401
     if name.startswith("ntrans_"):
         import ntrans.adjust
         import ntrans.tables  # noqa: F401  (import before the clock starts)
@@ -111,8 +123,12 @@ def _run_child(job_path: Path) -> None:
 
 
 # --------------------------------------------------------------------------- parent side
-def _run_pipeline(name: str, job: dict, run_dir: Path) -> dict:
-    """Start one pipeline subprocess, sample its memory, return its result dict."""
+def _run_pipeline(name: str, job: dict, run_dir: Path, timeout: float) -> dict:
+    """Start one pipeline subprocess, sample its memory, return its result dict.
+
+    The subprocess leads its own process group; past ``timeout`` seconds that group (the
+    subprocess and the workers it started) is killed and the run reported as timed out.
+    """
     import psutil
 
     run_dir.mkdir(parents=True, exist_ok=True)
@@ -121,14 +137,15 @@ def _run_pipeline(name: str, job: dict, run_dir: Path) -> dict:
     job_path = run_dir / "job.json"
     job_path.write_text(json.dumps(job))
     Path(job["result"]).unlink(missing_ok=True)
-    log = open(run_dir / "log.txt", "w")  # noqa: SIM115  (closed below)
+    log = open(run_dir / "log.txt", "w")  # closed below, after the child ends
     t0 = time.perf_counter()
     proc = subprocess.Popen(
         [sys.executable, str(Path(__file__).resolve()), "--child", str(job_path)],
-        stdout=log, stderr=subprocess.STDOUT, cwd=str(HERE.parent),
+        stdout=log, stderr=subprocess.STDOUT, cwd=str(HERE.parent), start_new_session=True,
     )
     parent = psutil.Process(proc.pid)
     peak_tree = 0
+    timed_out = False
     while True:
         pid, status, usage = os.wait4(proc.pid, os.WNOHANG)
         if pid != 0:
@@ -143,6 +160,9 @@ def _run_pipeline(name: str, job: dict, run_dir: Path) -> dict:
             peak_tree = max(peak_tree, rss)
         except psutil.Error:
             pass
+        if not timed_out and time.perf_counter() - t0 > timeout:
+            timed_out = True
+            os.killpg(proc.pid, signal.SIGKILL)
         time.sleep(0.05)
     wall = time.perf_counter() - t0
     proc.returncode = os.waitstatus_to_exitcode(status)
@@ -152,7 +172,9 @@ def _run_pipeline(name: str, job: dict, run_dir: Path) -> dict:
                "maxrss_mb": usage.ru_maxrss / 1024.0, "tree_peak_mb": peak_tree / 2**20}
     outcome["peak_mb"] = max(outcome["maxrss_mb"], outcome["tree_peak_mb"])
     result_path = Path(job["result"])
-    if proc.returncode == 0 and result_path.exists():
+    if timed_out:
+        outcome["error"] = f"timed out after {timeout:.0f} s (killed)"
+    elif proc.returncode == 0 and result_path.exists():
         outcome.update(json.loads(result_path.read_text()))
     else:
         tail = (run_dir / "log.txt").read_text().splitlines()[-15:]
@@ -258,19 +280,21 @@ def _fmt(value, spec: str) -> str:
 def print_table(rows: list[dict]) -> str:
     head = (f"{'case':<5} {'pipeline':<15} {'seconds':>8} {'cpu_s':>7} {'Mpx/s':>7} "
             f"{'cell-stg/s':>11} {'face-stg/s':>11} {'peak MB':>8} {'x ntrans':>8} "
-            f"{'x floor':>8}")
+            f"{'x n.cpu':>8} {'x floor':>8}")
     lines = [head, "-" * len(head)]
     for r in rows:
         if "error" in r or r.get("seconds") is None:
-            lines.append(f"{r['case']:<5} {r['pipeline']:<15} FAILED (see runs/{r['pipeline']}"
-                         f"/log.txt): {str(r.get('error', '')).splitlines()[-1:]}")
+            last = (str(r.get("error", "")).strip().splitlines() or [""])[-1]
+            lines.append(f"{r['case']:<5} {r['pipeline']:<15} FAILED ({last}; see "
+                         f"runs/{r['pipeline']}/log.txt)")
             continue
         lines.append(
             f"{r['case']:<5} {r['pipeline']:<15} {_fmt(r['seconds'], '8.2f')} "
-            f"{_fmt(r['cpu_s'], '7.1f')} {_fmt(r.get('mpx_per_s'), '7.2f')} "
+            f"{_fmt(r['cpu_s'], '7.1f')} {_fmt(r.get('mpx_per_s'), '7.3g')} "
             f"{_fmt(r.get('cell_stages_per_s'), '11.3g')} "
             f"{_fmt(r.get('face_stages_per_s'), '11.3g')} {_fmt(r['peak_mb'], '8.0f')} "
-            f"{_fmt(r.get('x_ntrans'), '8.2f')} {_fmt(r.get('x_floor'), '8.1f')}"
+            f"{_fmt(r.get('x_ntrans'), '8.2f')} {_fmt(r.get('x_ntrans_cpu'), '8.2f')} "
+            f"{_fmt(r.get('x_floor'), '8.1f')}"
         )
     text = "\n".join(lines)
     print(text, flush=True)
@@ -283,8 +307,8 @@ def _agreement_lines(case: str, agreement: dict) -> list[str]:
         if "error" in res:
             lines.append(f"{case} {pair}: {res['error']}")
             continue
-        parts = [f"{col} max {res[col]['max']:.1e} (p99 {res[col]['p99']:.1e}, "
-                 f"{res[col]['over_1e-6']} > 1e-6)"
+        parts = [f"{col} max {res[col]['max']:.1e} (p99 {res[col]['p99']:.1e}, median "
+                 f"{res[col]['median']:.1e}, {res[col]['over_1e-6']} > 1e-6)"
                  for col in ("volume", "wet_area", "bed_area") if col in res]
         extra = (f"; total volume per stage max {res['total_volume_max_rel']:.1e}"
                  if "total_volume_max_rel" in res else "")
@@ -293,7 +317,7 @@ def _agreement_lines(case: str, agreement: dict) -> list[str]:
 
 
 def run(sizes: list[float], n_stages: int, workers: int, pipelines: list[str],
-        keep_outputs: bool) -> dict:
+        keep_outputs: bool, timeout: float = 1800.0) -> dict:
     results: dict = {"started": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
                      "python": sys.version.split()[0], "cpus": os.cpu_count(),
                      "stages": n_stages, "workers": workers, "cases": []}
@@ -322,7 +346,7 @@ def run(sizes: list[float], n_stages: int, workers: int, pipelines: list[str],
             if name == "rasterstats" and size != smallest:
                 continue
             print(f"  running {name} ...", end=" ", flush=True)
-            outcome = _run_pipeline(name, job, runs / name)
+            outcome = _run_pipeline(name, job, runs / name, timeout)
             outcome["case"] = label
             print("failed" if "error" in outcome else f"{outcome['seconds']:.1f} s "
                   f"(peak {outcome['peak_mb']:.0f} MB)", flush=True)
@@ -331,6 +355,7 @@ def run(sizes: list[float], n_stages: int, workers: int, pipelines: list[str],
         n_faces = next((by_name[p].get("n_faces") for p in ("ntrans_faces", "ntrans_workers")
                         if p in by_name and by_name[p].get("n_faces")), None)
         base = by_name.get("ntrans_cells", {}).get("seconds")
+        base_cpu = by_name.get("ntrans_cells", {}).get("cpu_s")
         floor = by_name.get("floor", {}).get("seconds")
         for r in rows:
             if "error" in r:
@@ -343,6 +368,7 @@ def run(sizes: list[float], n_stages: int, workers: int, pipelines: list[str],
             if r["pipeline"] in FACE_PIPELINES and n_faces:
                 r["face_stages_per_s"] = n_faces * n_st / s
             r["x_ntrans"] = s / base if base else None
+            r["x_ntrans_cpu"] = r["cpu_s"] / base_cpu if base_cpu else None
             r["x_floor"] = s / floor if floor else None
         # agreement
         agreement = {}
@@ -361,7 +387,7 @@ def run(sizes: list[float], n_stages: int, workers: int, pipelines: list[str],
                 if a.exists() and b.exists() and a.parent.parent.name in by_name \
                         and b.parent.parent.name in by_name:
                     agreement[pair] = _compare(a, b, ids)
-        except Exception:  # noqa: BLE001  (a benchmark reports, it does not stop)
+        except Exception:  # a benchmark reports, it does not stop
             agreement["error"] = {"error": traceback.format_exc(limit=3)}
         lines = _agreement_lines(label, agreement)
         all_agree.extend(lines)
@@ -383,8 +409,8 @@ def run(sizes: list[float], n_stages: int, workers: int, pipelines: list[str],
     print("\n".join(all_agree))
     print("rasterstats uses the pixel-centre rule (no coverage fractions): it is not exact, "
           "so only loose agreement is expected.")
-    print("x ntrans = seconds / seconds of ntrans_cells of the same case; "
-          "x floor = seconds / seconds of floor (read DEM + sort all pixels).")
+    print("x ntrans = seconds / seconds of ntrans_cells of the same case; x n.cpu = the same "
+          "with cpu_s; x floor = seconds / seconds of floor (read DEM + sort all pixels).")
     results["table"] = table
     results["agreement_text"] = all_agree
     results["finished"] = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
@@ -407,6 +433,8 @@ def main() -> None:
                         help=f"comma list out of {','.join(ALL_PIPELINES)}")
     parser.add_argument("--keep-outputs", action="store_true",
                         help="keep each pipeline's output folder under the case's runs/")
+    parser.add_argument("--timeout", type=float, default=1800.0,
+                        help="seconds before a pipeline run is killed (default 1800)")
     parser.add_argument("--child", type=Path, help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.child is not None:
@@ -417,7 +445,7 @@ def main() -> None:
     unknown = sorted(set(pipelines) - set(ALL_PIPELINES))
     if unknown:
         parser.error(f"unknown pipelines {unknown}; choose from {ALL_PIPELINES}")
-    run(sizes, args.stages, args.workers, pipelines, args.keep_outputs)
+    run(sizes, args.stages, args.workers, pipelines, args.keep_outputs, args.timeout)
 
 
 if __name__ == "__main__":

@@ -24,5 +24,4 @@ def command(ctx: click.Context, out: str) -> None:
 
     quiet = bool(ctx.meta.get("ntrans.quiet", False))
     result = run_demo_result(out, overwrite=True, progress=not quiet)
-    echo_summary(result)
-    click.echo(f"\nopen the report: {result.report}")
+    echo_summary(result, extra=("", f"open the report: {result.report}"))

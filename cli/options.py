@@ -32,7 +32,8 @@ id_field = click.option(
     "--id-field",
     default=None,
     metavar="NAME",
-    help="Attribute holding unique cell ids (default: feature order, from 0).",
+    help="Attribute holding unique cell ids (default: a cell_id, id or fid column if "
+    "there is one, else the feature order from 0).",
 )
 
 
@@ -56,7 +57,7 @@ depths = click.option(
 
 vertical_units = click.option(
     "--vertical-units",
-    type=click.Choice(["metre", "foot", "us_survey_foot"]),
+    type=click.Choice(["metre", "foot"]),
     default=None,
     help="Units of the DEM's elevations when they differ from the CRS's horizontal "
     "units (default: the same as horizontal).",
@@ -108,7 +109,7 @@ face_spacing = click.option(
 
 snap_tolerance = click.option(
     "--snap-tolerance",
-    type=click.FloatRange(min=0),
+    type=click.FloatRange(min=0, min_open=True),
     default=None,
     metavar="LENGTH",
     help="Distance in horizontal CRS units within which cell borders count as shared "
@@ -133,7 +134,7 @@ csv = click.option(
     "--csv",
     is_flag=True,
     default=False,
-    help="Also write every table as CSV.",
+    help="Also write the stage tables as CSV (cell_stage.csv, face_stage.csv).",
 )
 
 tile_size = click.option(

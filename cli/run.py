@@ -9,8 +9,8 @@ import click
 from ntrans.cautions import CAUTIONS
 
 
-def echo_summary(result: Any) -> None:
-    """Print the bundle's location, the n per class, and the cautions."""
+def echo_summary(result: Any, *, extra: tuple[str, ...] = ()) -> None:
+    """Print the bundle's location, the n per class, ``extra`` lines, and the cautions."""
     click.echo(f"bundle: {result.folder}")
     click.echo(f"report: {result.report}")
     if result.zip is not None:
@@ -28,6 +28,8 @@ def echo_summary(result: Any) -> None:
             f"\nmedian stage error: {bias['median']:+.3f} {unit} with n carried over, "
             f"{after['median']:+.3f} {unit} with the adjusted n"
         )
+    for line in extra:
+        click.echo(line)
     click.echo("")
     for caution in CAUTIONS:
         click.echo(f"Caution: {caution}")

@@ -24,8 +24,8 @@ import numpy as np
 import pyogrio
 import rasterio
 import shapely
+from affine import Affine
 from rasterio.features import rasterize
-from rasterio.transform import from_origin
 from scipy import ndimage
 from scipy.spatial import cKDTree
 
@@ -49,13 +49,14 @@ ROAD_X = 1150.0  # road embankment crosses the valley near here
 TERRACE_RISE = 1.6  # height of the terrace scarp above the floodplain, m
 TOWN = (640.0, 880.0, 1060.0, 1055.0)  # Pellbrook town block: xmin, ymin, xmax, ymax
 
-# Chow (1959) Table 5-6 "normal" values (METHODS.md), one per land-cover class.
+# n per land-cover class, inside the Chow (1959) Table 5-6 ranges of METHODS.md; surface keys
+# as in ntrans.roughness.PUBLISHED_N_RANGES.
 N_TABLE = (
-    ("channel", 0.035, "main_channel_winding"),
+    ("channel", 0.035, "channel_winding"),
     ("grass", 0.030, "pasture_short_grass"),
     ("crops", 0.040, "cultivated_mature_crops"),
-    ("woods", 0.060, "light_brush_and_trees_summer"),
-    ("urban", 0.015, "concrete_float_finish"),
+    ("woods", 0.060, "light_brush_trees"),
+    ("urban", 0.015, "concrete_float"),
 )
 
 GTIFF = {
@@ -64,7 +65,6 @@ GTIFF = {
     "count": 1,
     "crs": CRS,
     "compress": "deflate",
-    "zlevel": 9,
     "predictor": 3,
     "tiled": True,
     "blockxsize": 256,
@@ -112,12 +112,16 @@ class LineDistance:
         self.tree = cKDTree(self.xy)
         self.coarse = cKDTree(self.xy[:: self.THIN])
 
-    def query(self, x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, ...]:
-        """Distance, foot point (fx, fy) and unit tangent (tx, ty) there; shapes of ``x``."""
+    def query(self, x: np.ndarray, y: np.ndarray, *,
+              near_only: bool = False) -> tuple[np.ndarray, ...]:
+        """Distance, foot point (fx, fy) and unit tangent (tx, ty) there; shapes of ``x``.
+
+        With ``near_only`` the distance beyond ``NEAR`` is returned as infinity.
+        """
         p = np.column_stack([np.ravel(x), np.ravel(y)])
         d0, i = self.tree.query(p, distance_upper_bound=self.NEAR)
         far = np.isinf(d0)
-        i[far] = self.coarse.query(p[far])[1] * self.THIN
+        i[far] = 0 if near_only else self.coarse.query(p[far])[1] * self.THIN
         best = None
         for a in (np.maximum(i - 1, 0), np.minimum(i, len(self.xy) - 2)):  # the two segments
             p0, seg = self.xy[a], self.xy[a + 1] - self.xy[a]
@@ -129,6 +133,8 @@ class LineDistance:
                 np.where((d < best[0]).reshape((-1,) + (1,) * (c.ndim - 1)), c, b)
                 for c, b in zip(cand, best, strict=True))
         d, foot, seg = best
+        if near_only:
+            d[far] = np.inf
         tan = seg / np.hypot(*seg.T)[:, None]
         shape = np.shape(x)
         return (d.reshape(shape), foot[:, 0].reshape(shape), foot[:, 1].reshape(shape),
@@ -206,17 +212,17 @@ def make_terrain(rng: np.random.Generator, chan: LineDistance) -> np.ndarray:
     z = np.maximum(z, emb)
 
     # Tributary ditch: 6 m top width, 1.2 m deep.
-    dd = LineDistance(ditch_line(), 2.0).query(X, Y)[0]
+    dd = LineDistance(ditch_line(), 2.0).query(X, Y, near_only=True)[0]
     z -= 1.2 * (1.0 - smoothstep((dd - 0.8) / 2.2))
 
     # Main channel: trapezoid-ish section, deeper in bends, pool at the outer bank.
     kappa = centreline_curvature(fx)
     kn = np.clip(np.abs(kappa) / 0.015, 0.0, 1.0)
-    depth = 2.7 + 1.1 * kn
+    depth = 2.6 + 0.8 * kn
     side = np.sign(tx * (Y - fy) - ty * (X - fx))  # +1 on the left (north) bank
     outer = np.clip(-side * np.sign(kappa) * kn * dc / CHANNEL_HALF_TOP, -1.0, 1.0)
     shape = 1.0 - smoothstep((dc - CHANNEL_HALF_BOTTOM) / (CHANNEL_HALF_TOP - CHANNEL_HALF_BOTTOM))
-    z -= depth * shape * (1.0 + 0.25 * outer)
+    z -= depth * shape * (1.0 + 0.15 * outer)
 
     # Buildings: flat roofs 3 m above the town platform.
     z += 3.0 * buildings_mask(rng)
@@ -244,7 +250,7 @@ def building_boxes(rng: np.random.Generator) -> list[shapely.Polygon]:
 
 
 def buildings_mask(rng: np.random.Generator) -> np.ndarray:
-    local = from_origin(0.0, LY, PIXEL, PIXEL)
+    local = Affine(PIXEL, 0.0, 0.0, 0.0, -PIXEL, LY)
     return rasterize(building_boxes(rng), out_shape=(HEIGHT, WIDTH), transform=local,
                      fill=0, default_value=1, dtype="uint8").astype(np.float64)
 
@@ -319,36 +325,38 @@ def voronoi_cells(points: np.ndarray, domain: shapely.Polygon) -> np.ndarray:
 def make_landcover(rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
     """Land-cover polygons (UTM m) and their class names; together they tile the DEM.
 
-    Every overlay runs on a 1 mm grid so neighbouring polygons share their borders exactly.
+    All outlines are noded together on a 1 mm grid and polygonised, so the pieces tile the
+    extent exactly; each piece then takes the class of the first outline (channel, town,
+    riparian wood, field parcel) that holds it, and pieces of one outline are merged.
     """
-    grid = {"grid_size": 0.001}
-    extent = to_world(shapely.box(0.0, 0.0, LX, LY))
+    extent = shapely.box(0.0, 0.0, LX, LY)
     line = shapely.LineString(dense_line(channel_line(), 2.0))
-    channel = shapely.intersection(to_world(shapely.union(
+    channel = shapely.union(
         shapely.buffer(line, CHANNEL_HALF_TOP, cap_style="flat"),
         shapely.buffer(shapely.LineString(ditch_line()), 3.0, cap_style="flat"),
-    )), extent, **grid)
-    urban = shapely.difference(to_world(shapely.box(*TOWN)), channel, **grid)
+    )
     coords = shapely.get_coordinates(line)
     reach = shapely.LineString(coords[(coords[:, 0] > 1250.0) & (coords[:, 0] < 1700.0)])
-    riparian = shapely.difference(to_world(shapely.buffer(reach, 50.0)),
-                                  shapely.union(channel, urban, **grid), **grid)
-    taken = shapely.union_all([channel, urban, riparian], **grid)
-
+    riparian = shapely.buffer(reach, 50.0)
     seeds = rng.uniform([0.0, 0.0], [LX, LY], (40, 2))
-    cells = shapely.get_parts(shapely.voronoi_polygons(
-        shapely.multipoints(seeds), extend_to=shapely.box(0.0, 0.0, LX, LY), ordered=True))
-    cy = shapely.get_coordinates(shapely.centroid(cells))[:, 1]
+    parcels = shapely.get_parts(shapely.voronoi_polygons(
+        shapely.multipoints(seeds), extend_to=extent, ordered=True))
+    cy = shapely.get_coordinates(shapely.centroid(parcels))[:, 1]
     kind = np.where(np.abs(cy - AXIS_Y) > 420.0, "woods",
-                    np.where(rng.random(len(cells)) < 0.55, "crops", "grass"))
-    parcels = shapely.difference(shapely.intersection(to_world(cells), extent, **grid), taken,
-                                 **grid)
+                    np.where(rng.random(len(parcels)) < 0.55, "crops", "grass"))
 
-    geoms = np.concatenate([[channel, urban, riparian], parcels])
+    outlines = to_world(np.concatenate([[channel, shapely.box(*TOWN), riparian], parcels]))
     names = np.concatenate([["channel", "urban", "woods"], kind])
-    parts, idx = shapely.get_parts(geoms, return_index=True)
-    keep = (shapely.get_type_id(parts) == 3) & (shapely.area(parts) > 0.0)
-    return parts[keep], names[idx][keep]
+    world = to_world(extent)
+    noded = shapely.union_all(shapely.boundary(np.append(outlines, world)), grid_size=0.001)
+    pieces = shapely.get_parts(shapely.polygonize(shapely.get_parts(noded)))
+    pieces = pieces[shapely.within(shapely.point_on_surface(pieces), world)]
+    inside = shapely.contains(outlines[None, :], shapely.point_on_surface(pieces)[:, None])
+    owner = np.argmax(inside, axis=1)  # first outline holding the piece
+
+    merged = np.array([shapely.coverage_union_all(pieces[owner == k]) for k in np.unique(owner)])
+    parts, idx = shapely.get_parts(merged, return_index=True)
+    return parts, names[np.unique(owner)][idx]
 
 
 # ----------------------------------------------------------------------------- writing
@@ -373,7 +381,7 @@ def fixed_gpkg_date() -> Iterator[None]:
 
 def write_raster(path: Path, data: np.ndarray, pixel: float, nodata: float) -> None:
     profile = dict(GTIFF, width=data.shape[1], height=data.shape[0], nodata=nodata,
-                   transform=from_origin(X0, Y0 + LY, pixel, pixel))
+                   transform=Affine(pixel, 0.0, X0, 0.0, -pixel, Y0 + LY))
     path.unlink(missing_ok=True)
     with rasterio.open(path, "w", **profile) as dst:
         dst.write(data.astype(np.float32), 1)

@@ -276,6 +276,10 @@ class _Window:
         self.spec = spec
         self.surfaces = surfaces
         self.dem = dem
+        for ws in surfaces:
+            if tuple(ws.transform)[:6] != tuple(dem.transform)[:6] or ws.crs != dem.crs:
+                log.info("water surface %s is on another grid than the DEM; it is sampled at "
+                         "the face stations and DEM pixel centres (bilinear)", ws.name)
 
     @property
     def n(self) -> int:
@@ -352,6 +356,178 @@ def _globalise(st: ClassStats, index: np.ndarray, n_items: int) -> ClassStats:
                       st.perimeter, st.area, st.strip)
 
 
+# --------------------------------------------------------------------------- tile passes
+
+
+@dataclass(frozen=True)
+class _Job:
+    """Everything a tile pass needs besides the task (small enough to ship to a worker)."""
+
+    dem: Any
+    plan: _Plan
+    model: RoughnessModel
+    window: _Window
+
+
+def _load_tile(job: _Job, task: Any) -> _TileGeometry:
+    """Read the tile's DEM window and build its geometry."""
+    wdw = task.tile.window
+    if wdw.height > 0 and wdw.width > 0:
+        arr = np.asarray(job.dem.read_window(int(wdw.row_off), int(wdw.col_off), int(wdw.height),
+                                             int(wdw.width)), dtype=float)
+        tr = job.dem.window_transform(int(wdw.row_off), int(wdw.col_off))
+    else:
+        arr, tr = np.empty((0, 0)), job.dem.transform
+    return _tile_geometry(task, arr, tr, job.plan, job.model, job.dem.crs, job.window)
+
+
+def _pass_statistics(job: _Job, task: Any) -> dict[str, Any]:
+    """Pass 1 of one tile: source conveyance and target statistics of the fit domain."""
+    plan, model = job.plan, job.model
+    tg = _load_tile(job, task)
+    fam_s, fam_t = _families_for(tg, plan, plan.domain)
+    faces = plan.domain == "faces"
+    idx = tg.faces if faces else tg.cells
+    st = tg.face_stages if faces else tg.cell_stages
+    return {
+        "index": idx,
+        "k_source": fam_s.conveyance(st, model.n, composite=plan.composite, k=plan.k),  # type: ignore[arg-type]
+        "stats": fam_t.geometry.stats(st),
+        "uncovered": tg.uncovered,
+        "covered": tg.covered,
+    }
+
+
+def _pass_tables(job: _Job, task: Any, n_fit: np.ndarray) -> dict[str, Any]:
+    """Pass 2 of one tile: per face and per cell ratios, conveyances and stage bias."""
+    plan, model = job.plan, job.model
+    comp, k = plan.composite, plan.k
+    tg = _load_tile(job, task)
+    out: dict[str, Any] = {"faces": tg.faces, "cells": tg.cells, "face_a": tg.face_a,
+                           "face_b": tg.face_b}
+    # faces (with the cell closure, evaluated with the lumped radius for reference)
+    fs, ft = _families_for(tg, replace(plan, domain="faces"), "faces")
+    eta = tg.face_stages
+    ks = fs.conveyance(eta, model.n, composite=comp, k=k)  # type: ignore[arg-type]
+    kt0 = ft.conveyance(eta, model.n, composite=comp, k=k)  # type: ignore[arg-type]
+    rr = n_ratio(ks, kt0)
+    out["face"] = {
+        "stage": eta,
+        "depth": eta - tg.face_low[:, None],
+        "n_ratio": rr.ratio,
+        "conveyance_source": ks,
+        "conveyance_target": ft.conveyance(eta, n_fit, composite=comp, k=k),  # type: ignore[arg-type]
+        "conveyance_target_unadjusted": kt0,
+        "stage_bias_unadjusted": solve_stage(ft, ks, model.n, start=eta, composite=comp, k=k) - eta,  # type: ignore[arg-type]
+        "stage_bias_adjusted": solve_stage(ft, ks, n_fit, start=eta, composite=comp, k=k) - eta,  # type: ignore[arg-type]
+    }
+    out["face_dominant"] = FlatGeometry.from_geometry(tg.face_geom, tg.face_flat).stats(
+        eta[:, :0]).dominant_class()
+    out["face_mismatch"] = int(rr.mismatch.sum())
+
+    # cells
+    cs, ct = _families_for(tg, replace(plan, domain="cells"), "cells")
+    ceta = tg.cell_stages
+    sub = tg.cell_geom.stats(ceta)
+    flat_st = FlatGeometry.from_geometry(tg.cell_geom, tg.cell_flat).stats(ceta)
+    kc_s = cs.conveyance(ceta, model.n, composite=comp, k=k)  # type: ignore[arg-type]
+    kc_t0 = ct.conveyance(ceta, model.n, composite=comp, k=k)  # type: ignore[arg-type]
+    crr = n_ratio(kc_s, kc_t0)
+    k_flat = conveyance(flat_st, model.n, composite=comp, k=k)  # type: ignore[arg-type]
+    k_lump = conveyance(sub, model.n, closure="lumped", composite=comp, k=k)  # type: ignore[arg-type]
+    k_form = conveyance(sub, model.n, closure="strip", k=k)
+    flip = plan.source == "subgrid" and plan.target == "flat"
+    r_l = n_ratio(k_lump, k_flat).ratio if flip else n_ratio(k_flat, k_lump).ratio
+    r_f = n_ratio(k_form, k_flat).ratio if flip else n_ratio(k_flat, k_form).ratio
+    wet, bed = sub.total(sub.wet), sub.total(sub.perimeter)
+    vol, s53 = sub.total(sub.area), sub.total(sub.strip)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ev_l = np.where(bed > 0, (wet / np.where(bed > 0, bed, 1.0)) ** (2 / 3), np.nan)
+        hbar = np.where(wet > 0, vol / np.where(wet > 0, wet, 1.0), np.nan)
+        ev_f = np.where(wet > 0, (s53 / np.where(wet > 0, wet, 1.0)) / hbar ** (5 / 3), np.nan)
+        if flip:
+            ev_l, ev_f = 1.0 / ev_l, 1.0 / ev_f
+    if plan.domain == "cells":
+        cbu = solve_stage(ct, kc_s, model.n, start=ceta, composite=comp, k=k) - ceta  # type: ignore[arg-type]
+        cba = solve_stage(ct, kc_s, n_fit, start=ceta, composite=comp, k=k) - ceta  # type: ignore[arg-type]
+    else:
+        cbu = cba = np.full(ceta.shape, np.nan)
+    out["cell"] = {
+        "stage": ceta,
+        "depth": ceta - tg.cell_low[:, None],
+        "n_ratio": crr.ratio,
+        "n_ratio_lumped": r_l,
+        "n_ratio_conveyance_form": r_f,
+        "n_ratio_lumped_equal_volume": ev_l,
+        "n_ratio_conveyance_form_equal_volume": ev_f,
+        "conveyance_source": kc_s,
+        "conveyance_target": ct.conveyance(ceta, n_fit, composite=comp, k=k),  # type: ignore[arg-type]
+        "conveyance_target_unadjusted": kc_t0,
+        "stage_bias_unadjusted": cbu,
+        "stage_bias_adjusted": cba,
+    }
+    out["cell_dominant"] = flat_st.dominant_class()
+    out["cell_mismatch"] = int(crr.mismatch.sum())
+    out["bed_factor"] = _nanmedian_rows(tg.bed_factor)
+    return out
+
+
+def _run_tiles(fn: Any, job: _Job, tasks: Any, *args: Any, workers: int | None,
+               scheduler: str | None, progress: bool, total: int, desc: str) -> Any:
+    """Yield ``fn(job, task, *args)`` for every task, in task order.
+
+    In this process by default; on a local Dask cluster (``workers``) or an existing
+    scheduler (``scheduler``) otherwise, with at most two tasks per worker in flight.
+    """
+    from .progress import track
+
+    if workers is None and scheduler is None:
+        yield from track((fn(job, t, *args) for t in tasks), total=total, desc=desc,
+                         enabled=progress)
+        return
+    yield from track(_run_dask(fn, job, tasks, args, workers, scheduler), total=total,
+                     desc=desc, enabled=progress)
+
+
+def _run_dask(fn: Any, job: _Job, tasks: Any, args: tuple, workers: int | None,
+              scheduler: str | None) -> Any:
+    from collections import deque
+
+    try:
+        from distributed import Client, LocalCluster
+    except ImportError as exc:  # pragma: no cover - dask is a test dependency
+        raise InputError("running on workers needs dask.distributed; install ntrans[cluster] "
+                         "or drop --workers") from exc
+    cluster = None
+    try:
+        if scheduler is not None:
+            try:
+                client = Client(scheduler, timeout="10s")
+            except OSError as exc:
+                raise InputError(f"no Dask scheduler answered at {scheduler}; check the address "
+                                 "or drop --scheduler") from exc
+        else:
+            cluster = LocalCluster(n_workers=int(workers), threads_per_worker=1,  # type: ignore[arg-type]
+                                   processes=True, dashboard_address=":0",
+                                   silence_logs=logging.WARNING)
+            client = Client(cluster)
+        try:
+            n_workers = max(len(client.scheduler_info().get("workers", {})), 1)
+            job_future = client.scatter(job, broadcast=True)
+            pending: deque = deque()
+            for task in tasks:
+                pending.append(client.submit(fn, job_future, task, *args, pure=False))
+                if len(pending) >= 2 * n_workers:
+                    yield pending.popleft().result()
+            while pending:
+                yield pending.popleft().result()
+        finally:
+            client.close()
+    finally:
+        if cluster is not None:
+            cluster.close()
+
+
 # --------------------------------------------------------------------------- main job
 
 
@@ -412,7 +588,8 @@ def adjust_roughness(
     coverage, face_spacing, snap_tolerance, vertical_units, tile_size : as in
         ``build_tables``.
     csv : also write the face and cell tables as CSV.
-    workers, scheduler : accepted for a common option set; tiles run in this process.
+    workers, scheduler : run the tiles on a local Dask cluster of ``workers`` processes or
+        on an existing scheduler (both passes); results are the same as in-process.
     progress : progress bar on stderr.
 
     Returns
@@ -427,7 +604,6 @@ def adjust_roughness(
     from .inputs import open_dem, read_cells, read_water_surfaces
     from .mesh import build_faces
     from .outputs import OutputFolder, TableWriter, write_csv, write_geopackage
-    from .progress import track
     from .tables import _field_values, _id_type, _ids_at, _units
 
     started = time.perf_counter()
@@ -446,8 +622,8 @@ def adjust_roughness(
     spec = None if water_surface else StageSpec.from_options(stages=stages, depths=depths)
     if int(tile_size) < 1:
         raise InputError(f"tile size {tile_size} is not a positive number of pixels; use e.g. 1024")
-    if workers is not None or scheduler is not None:
-        log.info("adjust runs its tiles in this process (workers/scheduler are not used)")
+    if workers is not None and scheduler is not None:
+        raise InputError("give either workers or a scheduler address, not both")
 
     dem_info = open_dem(dem, vertical_units=vertical_units)
     layer = read_cells(cells, dem=dem_info, id_field=id_field)
@@ -483,32 +659,19 @@ def adjust_roughness(
                           face_cell_a=mesh.cell_a, face_cell_b=mesh.cell_b,
                           face_length=mesh.length)
 
-    def geometries(desc: str):
-        for task in track(tasks(), total=len(tiles), desc=desc, enabled=progress):
-            wdw = task.tile.window
-            if wdw.height > 0 and wdw.width > 0:
-                arr = np.asarray(dem_info.read_window(int(wdw.row_off), int(wdw.col_off),
-                                                      int(wdw.height), int(wdw.width)), float)
-                tr = dem_info.window_transform(int(wdw.row_off), int(wdw.col_off))
-            else:
-                arr, tr = np.empty((0, 0)), dem_info.transform
-            yield _tile_geometry(task, arr, tr, plan, model, dem_info.crs, window)
+    job = _Job(dem_info, plan, model, window)
+    run = {"workers": workers, "scheduler": scheduler, "progress": progress, "total": len(tiles)}
 
     # ---- pass 1: sufficient statistics of the fit domain
-    src_parts: list[np.ndarray] = []
     tgt_parts: list[ClassStats] = []
     uncovered = covered = 0.0
     n_dom = n_faces if domain == "faces" else n_cells
     k_src_all = np.full((n_dom, n_win), np.nan)
-    for tg in geometries("fit statistics"):
-        uncovered += tg.uncovered
-        covered += tg.covered
-        fam_s, fam_t = _families_for(tg, plan, domain)
-        idx = tg.faces if domain == "faces" else tg.cells
-        st = tg.face_stages if domain == "faces" else tg.cell_stages
-        k_src_all[idx] = fam_s.conveyance(st, model.n, composite=composite, k=k)  # type: ignore[arg-type]
-        tgt_parts.append(_globalise(fam_t.geometry.stats(st), idx, n_dom))
-        src_parts.append(idx)
+    for res in _run_tiles(_pass_statistics, job, tasks(), desc="fit statistics", **run):
+        uncovered += res["uncovered"]
+        covered += res["covered"]
+        k_src_all[res["index"]] = res["k_source"]
+        tgt_parts.append(_globalise(res["stats"], res["index"], n_dom))
     share = uncovered / covered if covered > 0 else 0.0
     if model.source == "raster" and model.default < 0 and share > AREA_TOLERANCE:
         raise RoughnessError(
@@ -567,93 +730,35 @@ def adjust_roughness(
         cw = TableWriter(cell_path, schema=cell_schema, units=units, descriptions=descriptions,
                          metadata=meta)
         try:
-            for tg in geometries("tables"):
-                # faces
-                face_plan = replace(plan, domain="faces")
-                fs, ft = _families_for(tg, face_plan, "faces")
-                eta = tg.face_stages
-                ks = fs.conveyance(eta, model.n, composite=composite, k=k)  # type: ignore[arg-type]
-                kt0 = ft.conveyance(eta, model.n, composite=composite, k=k)  # type: ignore[arg-type]
-                kt1 = ft.conveyance(eta, n_fit, composite=composite, k=k)  # type: ignore[arg-type]
-                rr = n_ratio(ks, kt0)
-                mismatch_faces += int(rr.mismatch.sum())
-                bu = solve_stage(ft, ks, model.n, start=eta, composite=composite, k=k) - eta  # type: ignore[arg-type]
-                ba = solve_stage(ft, ks, n_fit, start=eta, composite=composite, k=k) - eta  # type: ignore[arg-type]
-                dom = FlatGeometry.from_geometry(tg.face_geom, tg.face_flat).stats(eta[:, :0]).dominant_class()
-                nf_t = tg.faces.size
-                face_bias_un[tg.faces], face_bias_ad[tg.faces] = bu, ba
-                face_dom[tg.faces] = dom
-                if nf_t:
-                    face_ratio_med[tg.faces] = _nanmedian_rows(rr.ratio)
-                fw.write({
-                    "face_id": np.repeat(tg.faces, n_win).astype(np.int64),
-                    "cell_a": _ids_at(ids, np.repeat(tg.face_a, n_win)),
-                    "cell_b": _ids_at(ids, np.repeat(tg.face_b, n_win)),
-                    "stage": eta.ravel(),
-                    "depth": (eta - tg.face_low[:, None]).ravel(),
-                    "n_ratio": rr.ratio.ravel(),
-                    "conveyance_source": ks.ravel(),
-                    "conveyance_target": kt1.ravel(),
-                    "conveyance_target_unadjusted": kt0.ravel(),
-                    "stage_bias_unadjusted": bu.ravel(),
-                    "stage_bias_adjusted": ba.ravel(),
-                    "dominant_class": pa.array(np.repeat(cls_names[dom], n_win).tolist(),
-                                               type=pa.string()),
-                })
-                # cells
-                cell_plan = replace(plan, domain="cells")
-                cs, ct = _families_for(tg, cell_plan, "cells")
-                ceta = tg.cell_stages
-                sub = tg.cell_geom.stats(ceta)
-                flat = FlatGeometry.from_geometry(tg.cell_geom, tg.cell_flat)
-                flat_st = flat.stats(ceta)
-                kc_s = cs.conveyance(ceta, model.n, composite=composite, k=k)  # type: ignore[arg-type]
-                kc_t0 = ct.conveyance(ceta, model.n, composite=composite, k=k)  # type: ignore[arg-type]
-                kc_t1 = ct.conveyance(ceta, n_fit, composite=composite, k=k)  # type: ignore[arg-type]
-                crr = n_ratio(kc_s, kc_t0)
-                mismatch_cells += int(crr.mismatch.sum())
-                k_flat = conveyance(flat_st, model.n, composite=composite, k=k)  # type: ignore[arg-type]
-                k_lump = conveyance(sub, model.n, closure="lumped", composite=composite, k=k)  # type: ignore[arg-type]
-                k_form = conveyance(sub, model.n, closure="strip", k=k)
-                flip = source == "subgrid" and target == "flat"
-                r_l = n_ratio(k_lump, k_flat).ratio if flip else n_ratio(k_flat, k_lump).ratio
-                r_f = n_ratio(k_form, k_flat).ratio if flip else n_ratio(k_flat, k_form).ratio
-                wet, bed = sub.total(sub.wet), sub.total(sub.perimeter)
-                vol, s53 = sub.total(sub.area), sub.total(sub.strip)
-                with np.errstate(invalid="ignore", divide="ignore"):
-                    ev_l = np.where(bed > 0, (wet / np.where(bed > 0, bed, 1.0)) ** (2 / 3), np.nan)
-                    hbar = np.where(wet > 0, vol / np.where(wet > 0, wet, 1.0), np.nan)
-                    ev_f = np.where(wet > 0, (s53 / np.where(wet > 0, wet, 1.0)) / hbar ** (5 / 3), np.nan)
-                if flip:
-                    ev_l, ev_f = 1.0 / ev_l, 1.0 / ev_f
-                if domain == "cells":
-                    cbu = solve_stage(ct, kc_s, model.n, start=ceta, composite=composite, k=k) - ceta  # type: ignore[arg-type]
-                    cba = solve_stage(ct, kc_s, n_fit, start=ceta, composite=composite, k=k) - ceta  # type: ignore[arg-type]
-                else:
-                    cbu = cba = np.full(ceta.shape, np.nan)
-                cdom = flat_st.dominant_class()
-                cell_bias_un[tg.cells], cell_bias_ad[tg.cells] = cbu, cba
-                cell_dom[tg.cells] = cdom
-                if tg.cells.size:
-                    cell_ratio_med[tg.cells] = _nanmedian_rows(crr.ratio)
-                    cell_bed[tg.cells] = _nanmedian_rows(tg.bed_factor)
-                cw.write({
-                    "cell_id": _ids_at(ids, np.repeat(tg.cells, n_win)),
-                    "stage": ceta.ravel(),
-                    "depth": (ceta - tg.cell_low[:, None]).ravel(),
-                    "n_ratio": crr.ratio.ravel(),
-                    "n_ratio_lumped": r_l.ravel(),
-                    "n_ratio_conveyance_form": r_f.ravel(),
-                    "n_ratio_lumped_equal_volume": ev_l.ravel(),
-                    "n_ratio_conveyance_form_equal_volume": ev_f.ravel(),
-                    "conveyance_source": kc_s.ravel(),
-                    "conveyance_target": kc_t1.ravel(),
-                    "conveyance_target_unadjusted": kc_t0.ravel(),
-                    "stage_bias_unadjusted": cbu.ravel(),
-                    "stage_bias_adjusted": cba.ravel(),
-                    "dominant_class": pa.array(np.repeat(cls_names[cdom], n_win).tolist(),
-                                               type=pa.string()),
-                })
+            for res in _run_tiles(_pass_tables, job, tasks(), n_fit, desc="tables", **run):
+                fc, cc = res["faces"], res["cells"]
+                fr, cr = res["face"], res["cell"]
+                face_bias_un[fc] = fr["stage_bias_unadjusted"]
+                face_bias_ad[fc] = fr["stage_bias_adjusted"]
+                face_dom[fc] = res["face_dominant"]
+                face_ratio_med[fc] = _nanmedian_rows(fr["n_ratio"])
+                mismatch_faces += res["face_mismatch"]
+                chunk: dict[str, Any] = {
+                    "face_id": np.repeat(fc, n_win).astype(np.int64),
+                    "cell_a": _ids_at(ids, np.repeat(res["face_a"], n_win)),
+                    "cell_b": _ids_at(ids, np.repeat(res["face_b"], n_win)),
+                }
+                chunk.update({c: np.asarray(fr[c], dtype=float).ravel() for c in FACE_COLUMNS[3:-1]})
+                chunk["dominant_class"] = pa.array(
+                    np.repeat(cls_names[res["face_dominant"]], n_win).tolist(), type=pa.string())
+                fw.write(chunk)
+
+                cell_bias_un[cc] = cr["stage_bias_unadjusted"]
+                cell_bias_ad[cc] = cr["stage_bias_adjusted"]
+                cell_dom[cc] = res["cell_dominant"]
+                cell_ratio_med[cc] = _nanmedian_rows(cr["n_ratio"])
+                cell_bed[cc] = res["bed_factor"]
+                mismatch_cells += res["cell_mismatch"]
+                chunk = {"cell_id": _ids_at(ids, np.repeat(cc, n_win))}
+                chunk.update({c: np.asarray(cr[c], dtype=float).ravel() for c in CELL_COLUMNS[1:-1]})
+                chunk["dominant_class"] = pa.array(
+                    np.repeat(cls_names[res["cell_dominant"]], n_win).tolist(), type=pa.string())
+                cw.write(chunk)
             files += [fw.close(), cw.close()]
         except BaseException:
             fw.abort()

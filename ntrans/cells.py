@@ -57,50 +57,72 @@ def _entries(item, z, *others, n_items: int):
     ok = np.isfinite(z)
     if not ok.all():
         item, z, arrays = item[ok], z[ok], [a[ok] for a in arrays]
+    for a in arrays:
+        if not np.isfinite(a).all():
+            raise InputError(
+                "an area array holds NaN or infinite values at pixels with valid elevation; "
+                "give finite areas (set z to NaN to leave a pixel out)"
+            )
     return item, z, arrays
 
 
-def _sort_by_item_z(item: np.ndarray, z: np.ndarray, n_items: int) -> np.ndarray:
-    """Order sorting entries by (item, z) exactly.
+def _sort_by_item_z(
+    item: np.ndarray, z: np.ndarray, n_items: int
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Sort entries by (item, z) exactly; returns ``(order, item[order], z[order])``.
 
     Packs (item, z quantised within its item, position) into one uint64 and sorts the
-    values; quantisation keeps order but may tie distinct z, so items where a tie left z
-    out of order are re-sorted exactly with ``lexsort``.
+    values (much faster than ``argsort``); quantisation keeps the order of z but may tie
+    distinct values, so items where a tie left z out of order are re-sorted exactly with
+    ``lexsort``.
     """
     n = item.size
     if n == 0:
-        return np.zeros(0, dtype=np.int64)
-    if np.any(item[1:] < item[:-1]):
-        order = _sorted_order(item, n_items)
-    else:
-        order = np.arange(n)
-    it, zs = item[order], z[order]
+        return np.zeros(0, dtype=np.int64), item, z
     idx_bits = max(int(n - 1).bit_length(), 1)
     item_bits = max(int(n_items - 1).bit_length(), 1)
     z_bits = min(64 - idx_bits - item_bits, 52)
     if z_bits < 8:
-        return np.lexsort((z, item))
+        order = np.lexsort((z, item))
+        return order, item[order], z[order]
+    if np.any(item[1:] < item[:-1]):
+        order = _sorted_order(item, n_items)
+        it, zs = item[order], z[order]
+    else:
+        order, it, zs = None, item, z
     starts = np.flatnonzero(np.r_[True, it[1:] != it[:-1]])
     zmin = np.minimum.reduceat(zs, starts)
-    zmax = np.maximum.reduceat(zs, starts)
-    sizes = np.diff(np.r_[starts, n])
-    lo = np.repeat(zmin, sizes)
-    span = np.repeat(zmax - zmin, sizes)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        t = np.where(span > 0, (zs - lo) / np.where(span > 0, span, 1.0), 0.0)
+    span = np.maximum.reduceat(zs, starts) - zmin
     levels = float((1 << z_bits) - 1)
-    zq = np.minimum(np.floor(t * levels), levels).astype(np.uint64)
-    key = (it.astype(np.uint64) << np.uint64(z_bits)) | zq
-    sub = _sorted_order(key, 1 << (item_bits + z_bits))
-    order = order[sub]
-    # exact repair where quantisation tied distinct elevations in the wrong order
-    it, zs = item[order], z[order]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        scale = np.where(span > 0, levels / np.where(span > 0, span, 1.0), 0.0)
+    if n_items <= n:  # look up per item (cheaper than repeating per group)
+        zmin_i, scale_i = np.zeros(n_items), np.zeros(n_items)
+        zmin_i[it[starts]], scale_i[it[starts]] = zmin, scale
+        q = zs - zmin_i[it]
+        q *= scale_i[it]
+    else:
+        sizes = np.diff(np.r_[starts, n])
+        q = zs - np.repeat(zmin, sizes)
+        q *= np.repeat(scale, sizes)
+    np.floor(q, out=q)
+    np.clip(q, 0.0, levels, out=q)
+    packed = it.astype(np.uint64) << np.uint64(z_bits + idx_bits)
+    packed |= q.astype(np.uint64) << np.uint64(idx_bits)
+    packed |= np.arange(n, dtype=np.uint64)
+    packed.sort()
+    packed &= np.uint64((1 << idx_bits) - 1)
+    sub = packed.view(np.int64)
+    order = sub if order is None else order[sub]
+    zs = z[order]  # items keep their positions: only z moves
     bad = (it[1:] == it[:-1]) & (zs[1:] < zs[:-1])
     if bad.any():
+        # exact repair where quantisation tied distinct elevations in the wrong order
         pos = np.flatnonzero(np.isin(it, np.unique(it[1:][bad])))
         sel = order[pos]
         order[pos] = sel[np.lexsort((z[sel], item[sel]))]
-    return order
+        zs = z[order]
+    return order, it, zs
 
 
 def _lower_bound(values: np.ndarray, lo: np.ndarray, hi: np.ndarray, target: np.ndarray) -> np.ndarray:
@@ -160,8 +182,8 @@ def cell_stage_table(
         )
     n_items, n_stages = stages.shape
     item, z, (a, b) = _entries(item, z, plan_area, bed_area, n_items=n_items)
-    order = _sort_by_item_z(item, z, n_items)
-    item, z, a, b = item[order], z[order], a[order], b[order]
+    order, item, z = _sort_by_item_z(item, z, n_items)
+    a, b = a[order], b[order]
 
     count = np.bincount(item, minlength=n_items)
     start = np.zeros(n_items, dtype=np.int64)
@@ -219,8 +241,8 @@ def cell_terrain_summary(
     """
     n_items = int(n_items)
     item, z, (a,) = _entries(item, z, plan_area, n_items=n_items)
-    order = _sort_by_item_z(item, z, n_items)
-    item, z, a = item[order], z[order], a[order]
+    order, item, z = _sort_by_item_z(item, z, n_items)
+    a = a[order]
     count = np.bincount(item, minlength=n_items)
     start = np.zeros(n_items, dtype=np.int64)
     np.cumsum(count[:-1], out=start[1:])

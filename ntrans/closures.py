@@ -219,23 +219,80 @@ def _segment_n(profiles: Profiles, n_segment: np.ndarray | float | None) -> np.n
     return n
 
 
-def _per_segment(
-    seg: Segments, eta: np.ndarray, fn, n_out: int
-) -> list[np.ndarray]:
-    """Sum ``fn(hydraulics, rows) -> list of n_out (rows, n_st) arrays`` per face, chunked."""
+def _pow53(x: np.ndarray) -> np.ndarray:
+    """x^(5/3) for x >= 0 (cube roots are cheaper than a general power)."""
+    return x * np.cbrt(x * x)
+
+
+def _pow83(x: np.ndarray) -> np.ndarray:
+    """x^(8/3) for x >= 0."""
+    x2 = x * x
+    return x2 * np.cbrt(x2)
+
+
+def _strip_kernel(seg: Segments, sl: slice, eta: np.ndarray, inv_n: np.ndarray) -> np.ndarray:
+    """(1/n) * integral of h^(5/3) ds per segment of ``sl`` and stage (exact)."""
+    zlo, zhi, ds = seg.zlo[sl][:, None], seg.zhi[sl][:, None], seg.ds[sl][:, None]
+    dz = zhi - zlo
+    level = (dz <= LEVEL_RATIO * ds)[:, 0]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        coef = np.where(dz > 0, 0.375 * ds / np.where(dz > 0, dz, 1.0), 0.0)
+    a = np.maximum(eta - zlo, 0.0)  # depth at the low end
+    b = np.maximum(eta - zhi, 0.0)  # depth at the high end
+    val = coef * (_pow83(a) - _pow83(b))
+    # fully wet with nearly equal end depths: the closed form cancels; Simpson is exact
+    # to O((dz/h)^4) there
+    thin = (b > 0) & (a - b < _SIMPSON_BELOW * a)
+    thin[level] = False
+    if thin.any():
+        r, c = np.nonzero(thin)
+        aa, bb = a[r, c], b[r, c]
+        val[r, c] = ds[r, 0] / 6.0 * (_pow53(aa) + 4.0 * _pow53(0.5 * (aa + bb)) + _pow53(bb))
+    if level.any():
+        h = np.maximum(eta[level] - 0.5 * (zlo + zhi)[level], 0.0)
+        val[level] = ds[level] * _pow53(h)
+    return val * inv_n[sl][:, None]
+
+
+def _lotter_kernel(seg: Segments, sl: slice, eta: np.ndarray, inv_n: np.ndarray) -> np.ndarray:
+    """(1/n) A_i R_i^(2/3) per segment of ``sl`` and stage, with the segment's own A_i, P_i."""
+    hyd = segment_hydraulics(seg.z0[sl], seg.z1[sl], seg.ds[sl], seg.dl[sl], eta)
+    a, p = hyd["area"], hyd["perimeter"]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        r = np.where(p > 0, a / np.where(p > 0, p, 1.0), 0.0)
+    return a * np.cbrt(r * r) * inv_n[sl][:, None]
+
+
+def _sum_per_face(seg: Segments, eta: np.ndarray, kernel, inv_n: np.ndarray) -> np.ndarray:
+    """Sum ``kernel`` over each face's segments, chunked over segments to bound memory."""
     n_faces, n_st = eta.shape
-    sums = [np.zeros(n_faces * n_st) for _ in range(n_out)]
+    acc = np.zeros(n_faces * n_st)
     rows_per = max(1, _CHUNK // max(n_st, 1))
     cols = np.arange(n_st)
     for lo in range(0, seg.face.size, rows_per):
         sl = slice(lo, lo + rows_per)
         f = seg.face[sl]
-        hyd = segment_hydraulics(seg.z0[sl], seg.z1[sl], seg.ds[sl], seg.dl[sl], eta[f])
-        values = fn(hyd, sl)
+        values = kernel(seg, sl, eta[f], inv_n)
         flat_idx = (f[:, None] * n_st + cols[None, :]).ravel()
-        for acc, v in zip(sums, values, strict=True):
-            acc += np.bincount(flat_idx, weights=np.nan_to_num(v).ravel(), minlength=n_faces * n_st)
-    return [s.reshape(n_faces, n_st) for s in sums]
+        acc += np.bincount(flat_idx, weights=np.nan_to_num(values).ravel(), minlength=acc.size)
+    return acc.reshape(n_faces, n_st)
+
+
+def _kc_kernel_sums(seg: Segments, eta: np.ndarray, nseg: np.ndarray) -> list[np.ndarray]:
+    """Per face: sum P_i y_i^1.5, sum P_i y_i^1.5 ln n_i (y_i = A_i / T_i)."""
+    log_n = np.log(nseg)
+
+    def w(seg_: Segments, sl: slice, e: np.ndarray, _inv: np.ndarray) -> np.ndarray:
+        hyd = segment_hydraulics(seg_.z0[sl], seg_.z1[sl], seg_.ds[sl], seg_.dl[sl], e)
+        a, p, t = hyd["area"], hyd["perimeter"], hyd["top_width"]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            y = np.where(t > 0, a / np.where(t > 0, t, 1.0), 0.0)
+        return p * y**1.5
+
+    def wl(seg_: Segments, sl: slice, e: np.ndarray, _inv: np.ndarray) -> np.ndarray:
+        return w(seg_, sl, e, _inv) * log_n[sl][:, None]
+
+    return [_sum_per_face(seg, eta, w, nseg), _sum_per_face(seg, eta, wl, nseg)]
 
 
 def face_conveyance(
@@ -298,7 +355,10 @@ def face_conveyance(
         face = profiles.face[idx][ok]
         ds = (profiles.station[idx + 1] - profiles.station[idx])[ok]
         nseg = nseg[ok]
-        n_f = _plan_composite(face, ds, nseg, composite, profiles.n_faces)
+        if n_segment is None or np.ndim(n_segment) == 0:  # uniform n: no terrain needed
+            n_f = np.full(profiles.n_faces, 1.0 if n_segment is None else float(n_segment))
+        else:
+            n_f = _plan_composite(face, ds, nseg, composite, profiles.n_faces)
         h = np.maximum(eta - bed[:, None], 0.0)
         h[np.isnan(eta) | np.isnan(bed)[:, None]] = np.nan
         length = np.asarray(profiles.length, dtype=np.float64)
@@ -309,41 +369,24 @@ def face_conveyance(
     no_terrain = ~np.isfinite(seg.low)[:, None] | np.isnan(eta)
 
     if closure == "strip":
-        (num,) = _per_segment(seg, eta, lambda hyd, sl: [hyd["h53"] / nseg[sl][:, None]], 1)
-        out = k * num
-    elif composite in ("horton_einstein", "pavlovskii"):
-        power = 1.5 if composite == "horton_einstein" else 2.0
-        (top, perim, weighted), area = ramp_sums(
+        out = k * _sum_per_face(seg, eta, _strip_kernel, 1.0 / nseg)
+    elif composite == "lotter":
+        out = k * _sum_per_face(seg, eta, _lotter_kernel, 1.0 / nseg)
+    else:
+        power = 2.0 if composite == "pavlovskii" else 1.5
+        (_, perim, weighted), area = ramp_sums(
             seg, [seg.ds, seg.dl, seg.dl * nseg**power], eta, integrate_first=True
         )
-        del top
-        with np.errstate(invalid="ignore", divide="ignore"):
-            n_e = (weighted / perim) ** (1.0 / power)
-            out = np.where(perim > 0, k * area ** (5.0 / 3.0) * perim ** (-2.0 / 3.0) / n_e, 0.0)
-    elif composite == "lotter":
-
-        def lotter(hyd, sl):
-            a, p = hyd["area"], hyd["perimeter"]
-            with np.errstate(invalid="ignore", divide="ignore"):
-                v = np.where(p > 0, a ** (5.0 / 3.0) * p ** (-2.0 / 3.0), 0.0)
-            return [v / nseg[sl][:, None]]
-
-        (num,) = _per_segment(seg, eta, lotter, 1)
-        out = k * num
-    else:  # krishnamurthy_christensen: weights P_i y_i^1.5, y_i = A_i / T_i
-
-        def kc(hyd, sl):
-            a, p, t = hyd["area"], hyd["perimeter"], hyd["top_width"]
-            with np.errstate(invalid="ignore", divide="ignore"):
-                y = np.where(t > 0, a / t, 0.0)
-            w = p * y**1.5
-            return [w, w * np.log(nseg[sl])[:, None], a, p]
-
-        wsum, wlog, area, perim = _per_segment(seg, eta, kc, 4)
         with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-            n_e = np.exp(wlog / wsum)
+            if composite == "horton_einstein":
+                n_e = (weighted / perim) ** (2.0 / 3.0)
+            elif composite == "pavlovskii":
+                n_e = np.sqrt(weighted / perim)
+            else:  # krishnamurthy_christensen
+                wsum, wlog = _kc_kernel_sums(seg, eta, nseg)
+                n_e = np.exp(wlog / wsum)
             out = np.where(
-                (perim > 0) & (wsum > 0), k * area ** (5.0 / 3.0) * perim ** (-2.0 / 3.0) / n_e, 0.0
+                perim > 0, k * area * np.cbrt((area / np.where(perim > 0, perim, 1.0)) ** 2) / n_e, 0.0
             )
     out = np.asarray(out, dtype=np.float64)
     out[no_terrain] = np.nan

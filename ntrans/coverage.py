@@ -72,8 +72,8 @@ def _as_geometry_array(polygons) -> np.ndarray:
     if bad.any():
         first = int(np.flatnonzero(bad)[0])
         raise GeometryError(
-            f"item {first} is a {shapely.get_type_id(geoms[first])!r}-type geometry, not a "
-            "polygon; give Polygon or MultiPolygon cells"
+            f"item {first} is a {geoms[first].geom_type}, not a polygon; give Polygon or "
+            "MultiPolygon cells"
         )
     return geoms
 
@@ -143,16 +143,17 @@ def _split(a0: np.ndarray, b0: np.ndarray, a1: np.ndarray, b1: np.ndarray):
     n_total = int(n_cross.sum())
     if n_total:
         seg = np.repeat(np.arange(a0.size), n_cross)
-        # j counts the crossings within each segment
-        run_start = np.zeros(a0.size, dtype=np.int64)
-        np.cumsum(n_cross[:-1], out=run_start[1:])
-        j = np.arange(n_total) - np.repeat(run_start, n_cross)
-        up = a1[seg] > a0[seg]
-        k = np.where(up, np.floor(a0[seg]) + 1 + j, np.ceil(a0[seg]) - 1 - j)
-        t = (k - a0[seg]) / (a1[seg] - a0[seg])
-        pos = offset[seg] + 1 + j
+        i = np.arange(n_total)
+        run_start = offset[:-1] - 2 * np.arange(a0.size)  # first crossing of each segment
+        up = a1 > a0
+        base = np.where(up, np.floor(a0) + 1, np.ceil(a0) - 1)
+        step = np.where(up, 1.0, -1.0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            slope = (b1 - b0) / (a1 - a0)
+        k = base[seg] + step[seg] * (i - run_start[seg])
+        pos = i + 2 * seg + 1  # slot after the segment's start point and earlier crossings
         pa[pos] = k
-        pb[pos] = b0[seg] + t * (b1[seg] - b0[seg])
+        pb[pos] = b0[seg] + (k - a0[seg]) * slope[seg]
     is_start = np.ones(total, dtype=bool)
     is_start[offset[1:] - 1] = False
     starts = np.flatnonzero(is_start)
@@ -172,6 +173,7 @@ def _row_runs(item, row, col, local, carry, rows, cols, *, threshold):
         return PixelWeights.empty()
     key = (item * rows + row) * cols + col
     order = _sorted_order(key, (int(item.max()) + 1) * rows * cols)
+    del item, row, col
     key = key[order]
     first = np.flatnonzero(np.r_[True, key[1:] != key[:-1]])
     local = np.add.reduceat(local[order], first)
@@ -192,8 +194,13 @@ def _row_runs(item, row, col, local, carry, rows, cols, *, threshold):
     n = int(length.sum())
     off = np.zeros(length.size, dtype=np.int64)
     np.cumsum(length[:-1], out=off[1:])
-    start = col + ~keep_at
-    out_col = np.arange(n, dtype=np.int64) + np.repeat(start - off, length)
+    # columns: +1 steps inside a run, a jump to the next run's first column between runs
+    start = (col + ~keep_at)[length > 0]
+    out_col = np.ones(n, dtype=np.int64)
+    if n:
+        out_col[0] = start[0]
+        out_col[off[length > 0][1:]] = np.diff(start) - length[length > 0][:-1] + 1
+        np.cumsum(out_col, out=out_col)
     frac = np.repeat(np.minimum(after, 1.0), length)
     frac[off[keep_at]] = np.minimum(at[keep_at], 1.0)
     out_item = group // rows
@@ -211,12 +218,12 @@ def _sorted_order(key: np.ndarray, key_max: int) -> np.ndarray:
     """
     n = key.size
     idx_bits = max(int(n - 1).bit_length(), 1)
-    if idx_bits + max(int(key_max).bit_length(), 1) <= 64:
+    if idx_bits + max(int(key_max - 1).bit_length(), 1) <= 64:
         packed = key.astype(np.uint64) << np.uint64(idx_bits)
         packed |= np.arange(n, dtype=np.uint64)
         packed.sort()
         packed &= np.uint64((1 << idx_bits) - 1)
-        return packed.astype(np.int64)
+        return packed.view(np.int64)
     return np.argsort(key, kind="stable")
 
 
@@ -263,6 +270,18 @@ def exact_coverage(polygons, transform: Affine, shape: tuple[int, int]) -> Pixel
     item, u0, v0, u1, v1, sign = _edges(geoms, transform, rows, cols)
     if item.size == 0:
         return PixelWeights.empty()
+    deposits = _exact_deposits(item, u0, v0, u1, v1, sign, rows, cols)
+    del item, u0, v0, u1, v1, sign
+    return _row_runs(*deposits, rows, cols, threshold=_MIN_FRACTION)
+
+
+def _exact_deposits(item, u0, v0, u1, v1, sign, rows, cols):
+    """Split ring edges into per-pixel pieces; return their row deposits.
+
+    Returns ``(item, row, col, local, carry)`` for :func:`_row_runs`: a piece with
+    signed rise ``dv`` and mean column ``um`` in pixel ``(r, c)`` covers
+    ``dv * (c + 1 - um)`` of that pixel and ``dv`` of every pixel right of it.
+    """
     # split at vertical grid lines (integer u), then at horizontal ones (integer v)
     p1, u0, v0, u1, v1 = _split(u0, v0, u1, v1)
     p2, v0, u0, v1, u1 = _split(v0, u0, v1, u1)
@@ -277,9 +296,7 @@ def exact_coverage(polygons, transform: Affine, shape: tuple[int, int]) -> Pixel
     local[left] = dv[left]
     c[left] = 0
     ok = (dv != 0) & (r >= 0) & (r < rows) & (c < cols)
-    return _row_runs(
-        item[parent[ok]], r[ok], c[ok], local[ok], dv[ok], rows, cols, threshold=_MIN_FRACTION
-    )
+    return item[parent[ok]], r[ok], c[ok], local[ok], dv[ok]
 
 
 def centre_coverage(polygons, transform: Affine, shape: tuple[int, int]) -> PixelWeights:

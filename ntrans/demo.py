@@ -3,7 +3,7 @@
 ``data_demo/`` (beside the ``ntrans`` package in a source checkout) holds a made-up
 river reach: a DEM, mesh cells, land-cover polygons with an n table, a water-surface
 raster, and ``project.toml`` (flat cells -> subgrid terrain with a lumped hydraulic
-radius, land-cover classes, depths 0.25 to 3 m).  When the data files are absent but
+radius, land-cover classes, eight depths from 0.25 to 3 m).  When the data files are absent but
 ``data_demo/make_demo.py`` is there, they are generated into a temporary folder first.
 """
 

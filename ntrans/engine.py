@@ -440,7 +440,6 @@ def _face_part(task, elevation, transform, settings, flat_z):
     flat = flat_face_table(flat_bed, lengths, stages)
     flat_depth = flat["flat_depth"]
 
-    n_seg = _segment_ones(prof)
     conv = {}
     for closure in ("flat", "lumped", "strip"):
         conv[closure] = np.asarray(
@@ -448,9 +447,10 @@ def _face_part(task, elevation, transform, settings, flat_z):
                 prof,
                 stages,
                 closure=closure,
-                n_segment=n_seg,
+                n_segment=None,  # n = 1 everywhere: geometric conveyance
                 flat_bed=flat_bed if closure == "flat" else None,
                 k=1.0,
+                z_to_xy=settings.z_to_xy,
             ),
             dtype=float,
         ).reshape(n_f, n_st)
@@ -489,11 +489,6 @@ def _face_part(task, elevation, transform, settings, flat_z):
         "perimeter_ratio": ratio,
     }
     return rows, summary
-
-
-def _segment_ones(prof) -> np.ndarray:
-    """n = 1 on every segment (geometric conveyance)."""
-    return np.ones(max(np.asarray(prof.station).size - 1, 0))
 
 
 # --------------------------------------------------------------------------- running

@@ -336,19 +336,27 @@ def ramp_sums(
     zlo, zhi = seg.zlo, seg.zhi
     dz = zhi - zlo
     level = dz <= LEVEL_RATIO * seg.ds
-    ramp = ~level
     low = seg.low
     base = np.where(np.isfinite(low), low, 0.0)
-    # breakpoints: ramps start (+c) at zlo and stop (-c) at zhi; level segments step at mid
-    rf, lf = seg.face[ramp], seg.face[level]
-    bp_face = np.concatenate([rf, rf, lf])
-    bp_val = np.concatenate(
-        [zlo[ramp] - base[rf], zhi[ramp] - base[rf], 0.5 * (zlo + zhi)[level] - base[lf]]
-    )
-    n_r, n_l = int(ramp.sum()), int(level.sum())
+    # breakpoints at the stations: a ramp starts (+c) at its segment's low end and stops
+    # (-c) at its high end; a level segment steps (+w) at its start station.  The
+    # contributions of a station's two segments are added, one breakpoint per station.
+    s0 = seg.start
+    s1 = s0 + 1
+    ns = int(s1.max()) + 1 if s0.size else 0
+    z_st = np.zeros(ns)
+    z_st[s0] = seg.z0
+    z_st[s1] = seg.z1
+    f_st = np.full(ns, -1, dtype=np.int64)
+    f_st[s0] = seg.face
+    f_st[s1] = seg.face
+    used = np.flatnonzero(f_st >= 0)
+    bp_face = f_st[used]
+    bp_val = z_st[used] - base[bp_face]
     order, key_scale = _sort_by_face(bp_face, bp_val)
     b = bp_val[order]
     bf = bp_face[order]
+    st_sorted = used[order]  # station index of each sorted breakpoint
     faces_idx = np.arange(n_faces)
     face_start = np.searchsorted(bf, faces_idx, side="left")
     face_end = np.searchsorted(bf, faces_idx, side="right")
@@ -362,33 +370,39 @@ def ramp_sums(
     relief[has] = b[face_end[has] - 1]
     e_clip = np.clip(np.where(np.isnan(ev), -1.0, ev), -1.0, relief[qf] + 1.0)
     pos = np.searchsorted(bf * key_scale + b, qf * key_scale + e_clip, side="left")
-    pos = _fix_positions(pos, b, e_clip, face_start[qf], face_end[qf])
-    def prefix(values: np.ndarray) -> np.ndarray:
-        out = np.zeros(values.size + 1)
-        np.cumsum(values, out=out[1:])
-        return out
+    q_start = face_start[qf]
+    pos = _fix_positions(pos, b, e_clip, q_start, face_end[qf])
 
-    def window(pref: np.ndarray) -> np.ndarray:
-        return pref[pos] - pref[face_start[qf]]
+    def window(values: np.ndarray) -> np.ndarray:
+        pref = np.zeros(values.size + 1)
+        np.cumsum(values, out=pref[1:])
+        return pref[pos] - pref[q_start]
 
-    dz_r = dz[ramp]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        inv_dz = np.where(level, 0.0, 1.0 / np.where(level, 1.0, dz))
+    up = np.where(seg.z1 > seg.z0, 1.0, -1.0)  # +1 where the start is the low end
     results = []
     integral = None
-    bo = b  # sorted breakpoint values
     for i, w in enumerate(weights):
         w = np.asarray(w, dtype=np.float64)
-        c_r = w[ramp] / dz_r
-        c = np.concatenate([c_r, -c_r, np.zeros(n_l)])[order]
-        d = np.concatenate([np.zeros(2 * n_r), w[level]])[order]
-        sc = window(prefix(c))
-        scb = window(prefix(c * bo))
-        sd = window(prefix(d))
-        val = ev * sc - scb + sd
+        c_seg = w * inv_dz * up
+        c = (
+            np.bincount(s0, weights=c_seg, minlength=ns) - np.bincount(s1, weights=c_seg, minlength=ns)
+        )[st_sorted]
+        sc = window(c)
+        scb = window(c * b)
+        val = ev * sc - scb
+        d = None
+        if level.any():
+            d = np.bincount(s0[level], weights=w[level], minlength=ns)[st_sorted]
+            sd = window(d)
+            val += sd
         results.append(val)
         if i == 0 and integrate_first:
-            scb2 = window(prefix(c * bo * bo))
-            sdb = window(prefix(d * bo))
-            integral = 0.5 * (ev * ev * sc - 2.0 * ev * scb + scb2) + ev * sd - sdb
+            scb2 = window(c * b * b)
+            integral = 0.5 * (ev * ev * sc - 2.0 * ev * scb + scb2)
+            if d is not None:
+                integral += ev * sd - window(d * b)
     bad = np.isnan(ev) | ~np.isfinite(low)[qf]
     out = []
     for val in results:

@@ -14,6 +14,7 @@ the thing that is wrong and ending with what to do.  Nothing here computes hydra
 
 from __future__ import annotations
 
+import functools
 import logging
 import math
 import os
@@ -96,12 +97,25 @@ def _check_exists(path: str | os.PathLike[str], what: str) -> str:
     return text
 
 
+@functools.lru_cache(maxsize=32)
+def _pyproj_from_wkt(wkt: str) -> pyproj.CRS:
+    return pyproj.CRS.from_wkt(wkt)
+
+
 def _to_pyproj(crs: CRS | pyproj.CRS | str) -> pyproj.CRS:
     if isinstance(crs, pyproj.CRS):
         return crs
     if isinstance(crs, CRS):
-        return pyproj.CRS.from_wkt(crs.to_wkt())
+        return _pyproj_from_wkt(crs.to_wkt())
     return pyproj.CRS.from_user_input(crs)
+
+
+@functools.lru_cache(maxsize=32)
+def _transformer(source_wkt: str, target_wkt: str) -> pyproj.Transformer:
+    """A cached x/y transformer between the horizontal parts of two CRSs."""
+    source = _split_compound(_pyproj_from_wkt(source_wkt))[0]
+    target = _split_compound(_pyproj_from_wkt(target_wkt))[0]
+    return pyproj.Transformer.from_crs(source, target, always_xy=True)
 
 
 def _split_compound(crs: pyproj.CRS) -> tuple[pyproj.CRS, pyproj.CRS | None]:
@@ -298,8 +312,8 @@ def open_dem(path: str | os.PathLike[str], *, vertical_units: str | None = None)
             dtype = src.dtypes[0] if count else ""
     except rasterio.errors.RasterioIOError as exc:
         raise InputFileError(
-            f"DEM file '{text}' cannot be read as a raster ({_reason(exc, text)}); give a GeoTIFF or another "
-            "raster GDAL can read"
+            f"DEM file '{text}' cannot be read as a raster ({_reason(exc, text)}); give a "
+            "GeoTIFF or another raster GDAL can read"
         ) from exc
     if count < 1:
         raise InputFileError(f"DEM file '{text}' holds no raster band; give a single-band DEM")
@@ -432,8 +446,8 @@ def _choose_layer(path: str, layer: str | int | None) -> str | int | None:
         layers = pyogrio.list_layers(path)
     except Exception as exc:  # pyogrio raises DataSourceError and friends
         raise InputFileError(
-            f"cells file '{path}' cannot be read as a vector layer ({_reason(exc, path)}); give a GeoPackage, "
-            "Shapefile, GeoJSON or FlatGeobuf file"
+            f"cells file '{path}' cannot be read as a vector layer ({_reason(exc, path)}); "
+            "give a GeoPackage, Shapefile, GeoJSON or FlatGeobuf file"
         ) from exc
     names = [str(row[0]) for row in layers]
     if not names:
@@ -552,18 +566,32 @@ def _repair(geoms: np.ndarray, ids: np.ndarray) -> np.ndarray:
 def _check_overlaps(geoms: np.ndarray, ids: np.ndarray, tolerance: float) -> None:
     """Raise if two cells share more than ``tolerance`` of the smaller one's area.
 
-    Candidate pairs come from an STRtree (``intersects``); a coverage check first flags
-    the polygons whose edges are not shared exactly (only pairs with a flagged polygon can
-    overlap), then the interiors are tested and the shared areas computed, all vectorised.
+    Vectorised screens, cheapest first: STRtree pairs with touching bounding boxes; pairs
+    whose bounding-box overlap is already within the tolerance cannot overlap beyond it
+    (this clears structured and quadtree meshes); a coverage check flags polygons whose
+    edges are not shared exactly (a valid subset of a coverage stays valid, and only a pair
+    holding a flagged polygon can overlap); then interiors are tested and areas computed.
     """
     if geoms.size < 2:
         return
     tree = shapely.STRtree(geoms)
-    i, j = tree.query(geoms, predicate="intersects")
+    i, j = tree.query(geoms)
     keep = i < j
     i, j = i[keep], j[keep]
+    areas = shapely.area(geoms)
+    box = shapely.bounds(geoms)
+    overlap_w = np.minimum(box[i, 2], box[j, 2]) - np.maximum(box[i, 0], box[j, 0])
+    overlap_h = np.minimum(box[i, 3], box[j, 3]) - np.maximum(box[i, 1], box[j, 1])
+    box_overlap = np.clip(overlap_w, 0, None) * np.clip(overlap_h, 0, None)
+    keep = box_overlap > tolerance * np.minimum(areas[i], areas[j])
+    i, j = i[keep], j[keep]
+    if i.size == 0:
+        return
+    involved = np.unique(np.concatenate([i, j]))
     try:
-        flagged = ~shapely.is_empty(shapely.coverage_invalid_edges(geoms))
+        edges = shapely.coverage_invalid_edges(geoms[involved])
+        flagged = np.zeros(geoms.size, dtype=bool)
+        flagged[involved] = ~shapely.is_empty(edges)
     except Exception:  # older GEOS without coverage validation: test every pair
         flagged = np.ones(geoms.size, dtype=bool)
     keep = flagged[i] | flagged[j]
@@ -575,7 +603,6 @@ def _check_overlaps(geoms: np.ndarray, ids: np.ndarray, tolerance: float) -> Non
     if i.size == 0:
         return
     shared = shapely.area(shapely.intersection(geoms[i], geoms[j]))
-    areas = shapely.area(geoms)
     smaller = np.minimum(areas[i], areas[j])
     with np.errstate(divide="ignore", invalid="ignore"):
         fraction = np.where(smaller > 0, shared / smaller, 1.0)
@@ -639,8 +666,8 @@ def read_cells(
         frame = gpd.read_file(text, layer=chosen, engine="pyogrio", fid_as_index=True)
     except Exception as exc:  # pyogrio / GDAL errors of every kind
         raise InputFileError(
-            f"cells file '{text}' cannot be read ({_reason(exc, text)}); give a GeoPackage, Shapefile, "
-            "GeoJSON or FlatGeobuf polygon layer"
+            f"cells file '{text}' cannot be read ({_reason(exc, text)}); give a GeoPackage, "
+            "Shapefile, GeoJSON or FlatGeobuf polygon layer"
         ) from exc
     if not isinstance(frame, gpd.GeoDataFrame) or frame.geometry is None:
         raise GeometryError(f"cells layer '{text}' has no geometry; give a polygon layer")
@@ -776,7 +803,9 @@ class WaterSurface:
         ``nearest`` takes the pixel the point falls in.  Returns float64 of ``x``'s shape.
         """
         if method not in ("bilinear", "nearest"):
-            raise InputError(f"sampling method {method!r} is unknown; choose 'bilinear' or 'nearest'")
+            raise InputError(
+                f"sampling method {method!r} is unknown; choose 'bilinear' or 'nearest'"
+            )
         xa = np.asarray(x, dtype=np.float64)
         ya = np.asarray(y, dtype=np.float64)
         xa, ya = np.broadcast_arrays(xa, ya)
@@ -786,9 +815,7 @@ class WaterSurface:
             source = _to_pyproj(crs)
             own = _to_pyproj(self.crs)
             if not _same_crs(source, own):
-                transformer = pyproj.Transformer.from_crs(
-                    _split_compound(source)[0], _split_compound(own)[0], always_xy=True
-                )
+                transformer = _transformer(source.to_wkt(), own.to_wkt())
                 xs, ys = transformer.transform(xs, ys)
                 xs, ys = np.asarray(xs, dtype=np.float64), np.asarray(ys, dtype=np.float64)
         inverse = ~self.transform
@@ -803,7 +830,8 @@ class WaterSurface:
             return out.reshape(shape)
         own_row = np.floor(row_f[idx]).astype(np.int64)
         own_col = np.floor(col_f[idx]).astype(np.int64)
-        block = (own_row // _SAMPLE_BLOCK) * (self.width // _SAMPLE_BLOCK + 1) + own_col // _SAMPLE_BLOCK
+        blocks_per_row = self.width // _SAMPLE_BLOCK + 1
+        block = (own_row // _SAMPLE_BLOCK) * blocks_per_row + own_col // _SAMPLE_BLOCK
         blocks, which = np.unique(block, return_inverse=True)
         for b in range(blocks.size):  # loop over raster blocks, not points
             sel = which == b
@@ -878,8 +906,8 @@ def open_water_surface(path: str | os.PathLike[str], *, dem: DemInfo,
             nodata, count = src.nodata, src.count
     except rasterio.errors.RasterioIOError as exc:
         raise InputFileError(
-            f"water-surface file '{text}' cannot be read as a raster ({_reason(exc, text)}); give a GeoTIFF "
-            "or another raster GDAL can read"
+            f"water-surface file '{text}' cannot be read as a raster ({_reason(exc, text)}); "
+            "give a GeoTIFF or another raster GDAL can read"
         ) from exc
     if count < 1:
         raise InputFileError(f"water-surface file '{text}' holds no raster band")

@@ -251,6 +251,7 @@ def quicklook_png(
     diverging: bool = False,
     vmin: float | None = None,
     vmax: float | None = None,
+    shade: np.ndarray | None = None,
 ) -> Path:
     """PNG quick-look: ``values`` over a hillshade, colour bar, scale bar, north arrow.
 
@@ -264,6 +265,8 @@ def quicklook_png(
         Figure title; colour-bar label with units.
     diverging
         Centre the palette (``PuOr``) on zero, for signed quantities; otherwise ``cividis``.
+    shade
+        A precomputed :func:`hillshade` of ``elevation`` (computed here when None).
     """
     import matplotlib
 
@@ -277,11 +280,13 @@ def quicklook_png(
     left, top = transform.c, transform.f
     right, bottom = left + a * cols, top + e * rows
     extent = (left, right, bottom, top)
-    shade = hillshade(elevation, dx=abs(a), dy=abs(e))
+    if shade is None:
+        shade = hillshade(elevation, dx=abs(a), dy=abs(e))
 
     finite = vals[np.isfinite(vals)]
     if diverging:
-        bound = float(np.nanmax(np.abs(finite))) if finite.size else 1.0
+        # 98th percentile of |value|: a few extreme cells do not wash out the rest
+        bound = float(np.percentile(np.abs(finite), 98)) if finite.size else 1.0
         bound = bound if bound > 0 else 1.0
         norm: Normalize = TwoSlopeNorm(vcenter=0.0, vmin=-bound if vmin is None else vmin,
                                        vmax=bound if vmax is None else vmax)
@@ -294,13 +299,16 @@ def quicklook_png(
         norm = Normalize(vmin=lo if vmin is None else vmin, vmax=hi if vmax is None else vmax)
         cmap = "cividis"
 
-    fig, ax = plt.subplots(figsize=(7.0, 5.6), dpi=PNG_DPI, layout="constrained")
+    # fixed axes boxes (no automatic layout pass: faster, and identical on every run)
+    fig = plt.figure(figsize=(7.0, 5.6), dpi=PNG_DPI)
+    ax = fig.add_axes((0.11, 0.1, 0.68, 0.8))
+    cax = fig.add_axes((0.84, 0.15, 0.03, 0.7))
     ax.imshow(shade, cmap="gray", extent=extent, vmin=0, vmax=1, interpolation="nearest")
     image = ax.imshow(
         np.ma.masked_invalid(vals), cmap=cmap, norm=norm, extent=extent, alpha=0.75,
         interpolation="nearest",
     )
-    bar = fig.colorbar(image, ax=ax, shrink=0.85)
+    bar = fig.colorbar(image, cax=cax, extend="both")
     bar.set_label(label)
     ax.set_title(title)
     ax.set_xlabel(f"easting ({length_unit})")
@@ -400,6 +408,7 @@ def write_maps(
     out.mkdir(parents=True, exist_ok=True)
     shape = elevation.shape
     index = cell_index_grid(cell_geometry, transform=transform, shape=shape)
+    shade = hillshade(elevation, dx=abs(transform.a), dy=abs(transform.e)) if quicklooks else None
     written: dict[str, Path] = {}
     for name, (title, label, diverging, description) in MAP_SPECS.items():
         if name not in cell_values.columns:
@@ -414,6 +423,7 @@ def write_maps(
         written[name] = quicklook_png(
             out / f"{name}.png", grid, elevation=elevation, transform=transform,
             title=title, label=unit_label, length_unit=length_unit, diverging=diverging,
+            shade=shade,
         )
     if faces is not None and face_values is not None:
         written["faces"] = write_face_layer(out / "faces.gpkg", faces, face_values)

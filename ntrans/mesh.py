@@ -251,7 +251,70 @@ def _shared_parts(
     return parts, p[row], q[row]
 
 
-def build_faces(polygons: object, *, snap_tolerance: float) -> Faces:
+def _split_at_corners(lines: np.ndarray, max_turn: float) -> tuple[np.ndarray, np.ndarray]:
+    """Split lines at vertices where the direction turns by more than ``max_turn`` degrees.
+
+    Closed lines with a corner are first rotated to start at one.  Returns
+    (pieces, index of the source line).
+    """
+    if lines.size == 0:
+        return lines, np.zeros(0, dtype=np.int64)
+    coords, idx = shapely.get_coordinates(lines, return_index=True)
+    idx = idx.astype(np.int64)
+    n = np.bincount(idx, minlength=lines.size)
+    first = np.cumsum(n) - n
+    last = first + n - 1
+    closed = shapely.is_closed(lines)
+    ar = np.arange(coords.shape[0])
+    pos = ar - first[idx]
+    c_idx = closed[idx]
+    has_prev = (pos > 0) | (c_idx & (n[idx] > 3))
+    has_next = (pos < n[idx] - 1) | (c_idx & (n[idx] > 3))
+    prev = np.where(pos > 0, ar - 1, last[idx] - 1)
+    nxt = np.where(pos < n[idx] - 1, ar + 1, first[idx] + 1)
+    prev = np.clip(prev, 0, coords.shape[0] - 1)
+    nxt = np.clip(nxt, 0, coords.shape[0] - 1)
+    u1 = coords - coords[prev]
+    u2 = coords[nxt] - coords
+    with np.errstate(invalid="ignore", divide="ignore"):
+        cos_turn = np.einsum("ij,ij->i", u1, u2) / (np.hypot(*u1.T) * np.hypot(*u2.T))
+    corner = has_prev & has_next & (cos_turn < np.cos(np.radians(max_turn)))
+    corner &= ~(c_idx & (pos == n[idx] - 1))  # the closing copy of a ring
+    # rotate rings with a corner so they start (and end) at their first corner
+    ring_corner = np.zeros(lines.size, dtype=bool)
+    shift = np.zeros(lines.size, dtype=np.int64)
+    cpos = np.flatnonzero(corner & c_idx)
+    if cpos.size:
+        owner = idx[cpos]
+        firsts = np.unique(owner, return_index=True)
+        ring_corner[firsts[0]] = True
+        shift[firsts[0]] = pos[cpos[firsts[1]]]
+    rot = ring_corner[idx]
+    if rot.any():
+        m = n[idx] - 1  # ring vertices without the closing copy
+        src_pos = np.where(pos == n[idx] - 1, shift[idx], (pos + shift[idx]) % np.maximum(m, 1))
+        src = np.where(rot, first[idx] + src_pos, ar)
+        coords = coords[src]
+        corner = corner[src]
+        corner[rot & ((pos == 0) | (pos == n[idx] - 1))] = False
+    corner &= (pos > 0) & (pos < n[idx] - 1)
+    rep = 1 + corner.astype(np.int64)
+    out = np.repeat(coords, rep, axis=0)
+    src_line = np.repeat(idx, rep)
+    inc = np.zeros(out.shape[0], dtype=np.int64)
+    start_out = np.cumsum(rep) - rep
+    inc[start_out[pos == 0]] = 1
+    inc[start_out[corner] + 1] = 1
+    piece = np.cumsum(inc) - 1
+    pieces = shapely.linestrings(out, indices=piece)
+    piece_src = np.zeros(pieces.size, dtype=np.int64)
+    piece_src[piece] = src_line
+    return pieces, piece_src
+
+
+def build_faces(
+    polygons: object, *, snap_tolerance: float, boundary_corner_angle: float | None = None
+) -> Faces:
     """Find the faces of a mesh of cell polygons.
 
     Parameters
@@ -262,6 +325,11 @@ def build_faces(polygons: object, *, snap_tolerance: float) -> Faces:
         Distance (CRS units, > 0) within which two cell boundaries count as shared:
         covers unmatched vertices, small gaps and overlaps.  Pieces shorter than
         ``3 * snap_tolerance`` (corner contacts) are not faces.
+    boundary_corner_angle : float, optional
+        Degrees.  By default a boundary face is one connected piece of a cell's
+        boundary (around a mesh corner it bends).  With an angle, boundary pieces are
+        also split where the boundary turns by more than it (e.g. 45: one face per side
+        of a rectangular cell).
 
     Returns
     -------
@@ -338,6 +406,9 @@ def build_faces(polygons: object, *, snap_tolerance: float) -> Faces:
                 rest[pos], shapely.buffer(removed, eps, quad_segs=2)
             )
         pieces, src = _explode_lines(rest)
+        if boundary_corner_angle is not None:
+            pieces, sub = _split_at_corners(pieces, float(boundary_corner_angle))
+            src = src[sub]
         good = shapely.length(pieces) >= min_length
         bd_geom = pieces[good]
         bd_a = cand[src[good]]

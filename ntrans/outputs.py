@@ -74,6 +74,7 @@ class OutputFolder:
 
     def _check_target(self) -> None:
         final = self.final
+        check_output_not_input(final, self.inputs)  # first: --overwrite would not help
         if final.exists() or final.is_symlink():
             if not self.overwrite:
                 raise OutputExistsError(
@@ -92,7 +93,6 @@ class OutputFolder:
                     f"output folder '{final}' is the current, home or root folder (or holds "
                     "it) and will not be replaced; choose a dedicated output folder"
                 )
-        check_output_not_input(final, self.inputs)
 
     def __enter__(self) -> OutputFolder:
         self._check_target()
@@ -150,13 +150,15 @@ class OutputFolder:
                 ) from exc
         try:
             os.replace(tmp, final)
-        except OSError as exc:
-            if old is not None:
-                os.replace(old, final)  # put the previous results back
-            raise OutputError(
-                f"output folder '{final}' cannot be written ({exc.strerror or exc}); check "
-                "permissions and free space"
-            ) from exc
+        except BaseException as exc:  # KeyboardInterrupt included: put old results back
+            if old is not None and not final.exists():
+                os.replace(old, final)
+            if isinstance(exc, OSError):
+                raise OutputError(
+                    f"output folder '{final}' cannot be written ({exc.strerror or exc}); "
+                    "check permissions and free space"
+                ) from exc
+            raise
         if old is not None:
             shutil.rmtree(old, ignore_errors=True)
         logger.info("outputs written to %s", final)
@@ -309,7 +311,9 @@ class TableWriter:
         if set(table.column_names) != set(names):
             missing = sorted(set(names) - set(table.column_names))
             extra = sorted(set(table.column_names) - set(names))
-            raise ValueError(f"chunk columns differ from the table's: missing {missing}, extra {extra}")
+            raise ValueError(
+                f"chunk columns differ from the table's: missing {missing}, extra {extra}"
+            )
         table = table.select(names).cast(self.schema.remove_metadata())
         if table.num_rows == 0:
             return
@@ -417,7 +421,10 @@ def write_geopackage(frame: Any, path: str | os.PathLike[str], layer: str) -> Pa
     try:
         frame.to_file(target, layer=layer, driver="GPKG", engine="pyogrio")
     except Exception as exc:  # pyogrio / GDAL errors
-        raise OutputError(f"GeoPackage '{target}' layer '{layer}' cannot be written ({exc})") from exc
+        raise OutputError(
+            f"GeoPackage '{target}' layer '{layer}' cannot be written ({exc}); check the output "
+            "folder"
+        ) from exc
     return target
 
 
@@ -492,7 +499,9 @@ _DESCRIPTIONS: dict[str, str] = {
     "wet_area": "plan area of terrain below the stage (subgrid)",
     "volume": "water volume above the terrain (subgrid)",
     "bed_area": "3-D area of submerged terrain (subgrid, Horn slope factor)",
-    "hydraulic_radius": "hydraulic radius: volume/bed_area for cells, flow_area/wetted_perimeter for faces",
+    "hydraulic_radius": (
+        "hydraulic radius: volume/bed_area for cells, flow_area/wetted_perimeter for faces"
+    ),
     "mean_depth": "volume / wet_area",
     "flat_elevation": "bed elevation of the flat cell (elevation rule)",
     "flat_depth": "stage minus flat_elevation, zero when dry",

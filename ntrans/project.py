@@ -517,6 +517,7 @@ def run_project(
             with _step("stage tables", timings):
                 kw = _call_kwargs(build_tables, options)
                 kw.update(out=str(tmp / "tables"), overwrite=True, progress=progress)
+                effective = {"build_tables": _effective(build_tables, kw)}
                 build_tables(dem, cells, **kw)
             with _step("roughness adjustment", timings):
                 kw = _call_kwargs(adjust_roughness, options)
@@ -524,17 +525,22 @@ def run_project(
                     kw.pop("depths", None)
                     kw.pop("stages", None)
                 kw.update(out=str(tmp / "adjust"), overwrite=True, progress=progress)
+                effective["adjust_roughness"] = _effective(adjust_roughness, kw)
                 adjust_roughness(dem, cells, **kw)
         notes = _replay(caught)
         step_seconds = _strip_timings(tmp)
         with _step("maps, plots and report", timings):
             summary = _products(project, tmp, inputs=inputs, notes=notes, progress=progress)
         shutil.copyfile(tmp / "adjust" / "n_by_class.csv", tmp / "n_by_class.csv")
+        for entry in inputs:
+            if entry.get("role") == "dem":
+                entry["units"] = {k: summary.get("units", {}).get(k)
+                                  for k in ("horizontal", "vertical")}
         with _step("manifest", timings):
-            manifest = bundle.write_manifest(
+            bundle.write_manifest(
                 tmp,
                 inputs=inputs,
-                parameters=project.parameters(),
+                parameters={**project.parameters(), "effective": effective},
                 units=summary.get("units", {}),
                 extra={
                     "project_file": {
@@ -545,7 +551,6 @@ def run_project(
                     "run_seconds": {**step_seconds, **{k: round(v, 3) for k, v in timings.items()}},
                 },
             )
-        del manifest
     final = Path(folder.final)
     zip_path = None
     if project.outputs.get("zip", False):
@@ -559,6 +564,18 @@ def run_project(
                      n_by_class, files, summary)
 
 
+def _effective(func: Callable[..., Any], kwargs: Mapping[str, Any]) -> dict[str, Any]:
+    """Every keyword of ``func`` with the value it runs with (given or default)."""
+    skip = {"dem", "cells", "out", "progress", "overwrite"}
+    values: dict[str, Any] = {}
+    for name, param in inspect.signature(func).parameters.items():
+        if name in skip or param.kind is not inspect.Parameter.KEYWORD_ONLY:
+            continue
+        default = None if param.default is inspect.Parameter.empty else param.default
+        values[name] = kwargs.get(name, default)
+    return values
+
+
 def _replay(caught: list[warnings.WarningMessage]) -> list[str]:
     """Re-emit recorded warnings (once each) and return their texts for the report."""
     notes: list[str] = []
@@ -568,7 +585,7 @@ def _replay(caught: list[warnings.WarningMessage]) -> list[str]:
             continue
         if issubclass(item.category, NtransWarning):
             notes.append(text)
-        warnings.warn_explicit(item.message, item.category, item.filename, item.lineno)
+        warnings.warn(item.message, item.category, stacklevel=3)
     return notes
 
 
@@ -629,13 +646,11 @@ def _products(
     progress: bool,
 ) -> dict[str, Any]:
     """Maps, plots and the report from the tables in ``folder``; returns the summary."""
-    from .progress import track
-
     data = _gather(project, folder)
     data["notes"] = list(notes)
     steps = ["maps", "plots", "report"]
     images: dict[str, Any] = {}
-    for name in track(steps, total=len(steps), desc="maps, plots, report", enabled=progress):
+    for name in _steps_bar(steps, enabled=progress):
         logger.info("writing %s", name)
         if name == "maps":
             images.update(_write_maps(data, folder / "maps"))
@@ -651,6 +666,19 @@ def _products(
             ]
             write_report(folder / "report.html", context, images)
     return data["summary"]
+
+
+def _steps_bar(steps: list[str], *, enabled: bool) -> Iterator[str]:
+    """Yield ``steps``, with a progress bar on stderr when ``enabled``."""
+    if not enabled:
+        yield from steps
+        return
+    from tqdm.auto import tqdm
+
+    bar = tqdm(steps, desc="maps, plots, report", unit="step", leave=False, dynamic_ncols=True)
+    for name in bar:
+        bar.set_postfix_str(name)
+        yield name
 
 
 # ----------------------------------------------------------------- gathering the results
@@ -887,18 +915,22 @@ def _report_context(project: Project, data: dict[str, Any]) -> dict[str, Any]:
     if isinstance(asum.get("window"), dict) and asum["window"].get("mode") == "water_surface":
         window = "water surface rasters " + ", ".join(asum["window"].get("rasters", []))
     notes = list(data.get("notes", []))
-    flagged = asum.get("flagged", {}) if isinstance(asum.get("flagged"), dict) else {}
     fit = asum.get("fit", {}) if isinstance(asum.get("fit"), dict) else {}
     if fit and not fit.get("success", True):
         notes.append("The class fit did not converge; treat the fitted n with extra care.")
     if summary.get("fit_domain") == "cells":
         notes.append("Friction is applied per cell in the subgrid family: the class fit used "
                      "cells, and the face values are shown for reference.")
-    mismatch = flagged.get("face_stage_dry_wet_mismatch" if summary.get("fit_domain") != "cells"
-                           else "cell_stage_dry_wet_mismatch")
-    if mismatch:
-        notes.append(f"{mismatch} item-stages were wet in one family and dry in the other and "
-                     "were left out of the fit.")
+    before = summary.get("stage_bias_unadjusted") or {}
+    after = summary.get("stage_bias_adjusted") or {}
+    if (before.get("mean_abs") is not None and after.get("mean_abs") is not None
+            and after["mean_abs"] > before["mean_abs"]):
+        notes.append(
+            f"With the adjusted n the mean absolute stage error is larger "
+            f"({after['mean_abs']:.3g} {z}) than with n carried over ({before['mean_abs']:.3g} "
+            f"{z}): one n per class does not fit these faces well; review the classes with "
+            "a wide spread before using their n."
+        )
     return {
         "title": f"Manning's n carried from {source} to {target} cells",
         "project": project.path.name,

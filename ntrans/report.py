@@ -24,6 +24,7 @@ from __future__ import annotations
 import base64
 import html
 import math
+import numbers
 import os
 from collections.abc import Mapping, Sequence
 from pathlib import Path
@@ -36,7 +37,7 @@ FIGURES: dict[str, tuple[tuple[str, str, str], ...]] = {
     "bias": (
         (
             "stage_bias_hist",
-            "Stage error before and after",
+            "Spread over faces and stages",
             "Stage in the target family minus stage in the source family at equal "
             "conveyance, per face and stage of the window: above with the source n carried "
             "over unchanged, below with the adjusted n per class.",
@@ -88,6 +89,8 @@ CLASS_COLUMNS: tuple[tuple[str, str], ...] = (
     ("ratio_p90", "ratio 90 %"),
     ("faces", "faces"),
     ("weight_share", "weight share"),
+    ("bias_unadjusted_median", "stage error, n unchanged ({unit})"),
+    ("bias_adjusted_median", "stage error, adjusted n ({unit})"),
     ("flags", "flags"),
 )
 
@@ -125,8 +128,8 @@ def fmt(value: Any, digits: int = 4) -> str:
         return "&mdash;"
     if isinstance(value, bool):
         return esc(value)
-    if isinstance(value, int):
-        return esc(value)
+    if isinstance(value, numbers.Integral):
+        return esc(int(value))
     try:
         number = float(value)
     except (TypeError, ValueError):
@@ -152,12 +155,13 @@ def _cautions_block(heading: str) -> str:
     return f'<section class="caution"><h2>{esc(heading)}</h2><ul>{items}</ul></section>'
 
 
-def _class_table(classes: Sequence[Mapping[str, Any]]) -> str:
+def _class_table(classes: Sequence[Mapping[str, Any]], unit: str = "m") -> str:
     if not classes:
         return '<p class="muted">No roughness classes were fitted.</p>'
     present = [(key, head) for key, head in CLASS_COLUMNS if any(key in row for row in classes)]
     head = "".join(
-        f'<th class="{"l" if key in ("class", "flags") else ""}">{esc(h)}</th>' for key, h in present
+        f'<th class="{"l" if key in ("class", "flags") else ""}">{esc(h.format(unit=unit))}</th>'
+        for key, h in present
     )
     body = []
     for row in classes:
@@ -170,7 +174,11 @@ def _class_table(classes: Sequence[Mapping[str, Any]]) -> str:
                 text = "" if value is None or (isinstance(value, float) and math.isnan(value)) else value
                 cells.append(f'<td class="l flag">{esc(text)}</td>')
             elif key == "weight_share":
-                cells.append(f"<td>{fmt(100 * float(value), 3) if value is not None else ''} %</td>")
+                try:
+                    share = f"{fmt(100 * float(value), 3)} %"
+                except (TypeError, ValueError):
+                    share = esc(value)
+                cells.append(f"<td>{share}</td>")
             elif key == "faces":
                 cells.append(f"<td>{fmt(value)}</td>")
             else:
@@ -281,7 +289,9 @@ def render_report(context: Mapping[str, Any], images: Mapping[str, Any]) -> str:
     move = context.get("move", {})
     units = context.get("units", {})
     counts = context.get("counts", {})
-    vertical = units.get("vertical", "m")
+    vertical = {"metre": "m", "foot": "ft", "us_survey_foot": "ft"}.get(
+        str(units.get("vertical", "m")), str(units.get("vertical", "m"))
+    )
     title = context.get("title") or "Manning's n carried between model families"
     source = move.get("source", "?")
     target = move.get("target", "?")
@@ -345,8 +355,9 @@ def render_report(context: Mapping[str, Any], images: Mapping[str, Any]) -> str:
         "<p>n source is the calibrated value; n target the value that reproduces the source "
         "conveyance in the target family over the window; ratio = n target / n source, with its "
         "10, 50 and 90 % across faces and stages. Weight share is the class's share of the "
-        "conveyance weights of the fit.</p>",
-        _class_table(context.get("classes") or []),
+        "conveyance weights of the fit. Stage errors are medians over the class's faces and "
+        "stages.</p>",
+        _class_table(context.get("classes") or [], vertical),
         "<h2>Stage error before and after</h2>",
         _bias_table(context.get("bias") or {}, vertical),
         _figures("bias", images),

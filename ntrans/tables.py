@@ -245,80 +245,80 @@ def build_tables(
     if int(tile_size) < 1:
         raise InputError(f"tile size {tile_size} is not a positive number of pixels; use e.g. 1024")
 
-    dem_info = open_dem(dem, vertical_units=vertical_units)
-    layer = read_cells(cells, dem=dem_info, id_field=id_field)
-    field_values = _field_values(layer, elevation_rule, elevation_field)
-    dx, dy = dem_info.pixel_size
-    pixel = min(dx, dy)
-    spacing = 0.5 * pixel if face_spacing is None else float(face_spacing)
-    snap = 0.01 * pixel if snap_tolerance is None else float(snap_tolerance)
-    if not (np.isfinite(spacing) and spacing > 0):
-        raise InputError(f"face spacing {face_spacing!r} is not a positive length; give e.g. {0.5 * pixel:g}")
-    if not (np.isfinite(snap) and snap > 0):
-        raise InputError(f"snap tolerance {snap_tolerance!r} is not a positive length; give e.g. {0.01 * pixel:g}")
-
-    ids = np.asarray(layer.ids)
-    geoms = np.asarray(layer.geometry, dtype=object)
-    n_cells = geoms.size
-    mesh = build_faces(geoms, snap_tolerance=snap) if faces else None
-    n_faces = mesh.n_faces if mesh is not None else 0
-    tiles = plan_tiles(
-        geoms,
-        dem_info.transform,
-        dem_info.shape,
-        tile_size=int(tile_size),
-        face_cell_a=None if mesh is None else mesh.cell_a,
-        face_cell_b=None if mesh is None else mesh.cell_b,
-        face_lines=None if mesh is None else mesh.geometry,
-    )
-    log.info(
-        "%d cells, %d faces, %d stages (%s mode) in %d tiles of %d px",
-        n_cells, n_faces, spec.values.size, spec.mode, len(tiles), int(tile_size),
-    )
-    settings = TileSettings(
-        stages=spec,
-        reference=default_reference(spec),
-        coverage=coverage,  # type: ignore[arg-type]
-        elevation_rule=elevation_rule,  # type: ignore[arg-type]
-        face_rule=face_rule,  # type: ignore[arg-type]
-        face_spacing=spacing,
-        z_to_xy=float(dem_info.z_to_xy),
-        faces=bool(faces),
-    )
-    tasks = make_tasks(
-        tiles,
-        geoms,
-        field_values=field_values,
-        face_lines=None if mesh is None else mesh.geometry,
-        face_cell_a=None if mesh is None else mesh.cell_a,
-        face_cell_b=None if mesh is None else mesh.cell_b,
-        face_length=None if mesh is None else mesh.length,
-    )
-
-    units = _units(dem_info)
-    descriptions = _descriptions()
-    meta = {
-        "ntrans:version": __version__,
-        "ntrans:stage_mode": spec.mode,
-        "ntrans:dem": os.fspath(dem),
-        "ntrans:cells": os.fspath(cells),
-    }
-    id_type = _id_type(ids)
-    f64 = pa.float64()
-    cell_schema = pa.schema(
-        [pa.field("cell_id", id_type)] + [pa.field(c, f64) for c in CELL_STAGE_COLUMNS[1:]]
-    )
-    face_schema = pa.schema(
-        [pa.field("face_id", pa.int64()), pa.field("cell_a", id_type), pa.field("cell_b", id_type)]
-        + [pa.field(c, f64) for c in FACE_STAGE_COLUMNS[3:]]
-    )
-
-    cell_sum = {k: np.full(n_cells, np.nan) for k in CELL_SUMMARY_COLUMNS[3:]}
-    face_sum = {k: np.full(n_faces, np.nan) for k in ("low_point", "relief", "covered_fraction", "perimeter_ratio")}
-
     files: list[Path] = []
     with OutputFolder(out, overwrite=overwrite, inputs=[dem, cells]) as folder:
         tmp = folder.path
+        dem_info = open_dem(dem, vertical_units=vertical_units)
+        layer = read_cells(cells, dem=dem_info, id_field=id_field)
+        field_values = _field_values(layer, elevation_rule, elevation_field)
+        dx, dy = dem_info.pixel_size
+        pixel = min(dx, dy)
+        spacing = 0.5 * pixel if face_spacing is None else float(face_spacing)
+        snap = 0.01 * pixel if snap_tolerance is None else float(snap_tolerance)
+        if not (np.isfinite(spacing) and spacing > 0):
+            raise InputError(f"face spacing {face_spacing!r} is not a positive length; give e.g. {0.5 * pixel:g}")
+        if not (np.isfinite(snap) and snap > 0):
+            raise InputError(f"snap tolerance {snap_tolerance!r} is not a positive length; give e.g. {0.01 * pixel:g}")
+
+        ids = np.asarray(layer.ids)
+        geoms = np.asarray(layer.geometry, dtype=object)
+        n_cells = geoms.size
+        mesh = build_faces(geoms, snap_tolerance=snap) if faces else None
+        n_faces = mesh.n_faces if mesh is not None else 0
+        tiles = plan_tiles(
+            geoms,
+            dem_info.transform,
+            dem_info.shape,
+            tile_size=int(tile_size),
+            face_cell_a=None if mesh is None else mesh.cell_a,
+            face_cell_b=None if mesh is None else mesh.cell_b,
+            face_lines=None if mesh is None else mesh.geometry,
+        )
+        log.info(
+            "%d cells, %d faces, %d stages (%s mode) in %d tiles of %d px",
+            n_cells, n_faces, spec.values.size, spec.mode, len(tiles), int(tile_size),
+        )
+        settings = TileSettings(
+            stages=spec,
+            reference=default_reference(spec),
+            coverage=coverage,  # type: ignore[arg-type]
+            elevation_rule=elevation_rule,  # type: ignore[arg-type]
+            face_rule=face_rule,  # type: ignore[arg-type]
+            face_spacing=spacing,
+            z_to_xy=float(dem_info.z_to_xy),
+            faces=bool(faces),
+        )
+        tasks = make_tasks(
+            tiles,
+            geoms,
+            field_values=field_values,
+            face_lines=None if mesh is None else mesh.geometry,
+            face_cell_a=None if mesh is None else mesh.cell_a,
+            face_cell_b=None if mesh is None else mesh.cell_b,
+            face_length=None if mesh is None else mesh.length,
+        )
+
+        units = _units(dem_info)
+        descriptions = _descriptions()
+        meta = {
+            "ntrans:version": __version__,
+            "ntrans:stage_mode": spec.mode,
+            "ntrans:dem": os.fspath(dem),
+            "ntrans:cells": os.fspath(cells),
+        }
+        id_type = _id_type(ids)
+        f64 = pa.float64()
+        cell_schema = pa.schema(
+            [pa.field("cell_id", id_type)] + [pa.field(c, f64) for c in CELL_STAGE_COLUMNS[1:]]
+        )
+        face_schema = pa.schema(
+            [pa.field("face_id", pa.int64()), pa.field("cell_a", id_type), pa.field("cell_b", id_type)]
+            + [pa.field(c, f64) for c in FACE_STAGE_COLUMNS[3:]]
+        )
+
+        cell_sum = {k: np.full(n_cells, np.nan) for k in CELL_SUMMARY_COLUMNS[3:]}
+        face_sum = {k: np.full(n_faces, np.nan) for k in ("low_point", "relief", "covered_fraction", "perimeter_ratio")}
+
         cell_path = tmp / "cell_stage.parquet"
         face_path = tmp / "face_stage.parquet"
         cell_writer = TableWriter(cell_path, schema=cell_schema, units=units,
@@ -362,7 +362,9 @@ def build_tables(
                     for name in face_sum:
                         face_sum[name][fs["face"]] = fs[name]
                 if (k + 1) % step == 0 or k + 1 == len(tiles):
-                    log.info("tiles done: %d of %d", k + 1, len(tiles))
+                    # the progress bar already shows this; keep it in the log otherwise
+                    log.log(logging.DEBUG if progress else logging.INFO,
+                            "tiles done: %d of %d", k + 1, len(tiles))
             files.append(cell_writer.close())
             if face_writer is not None:
                 files.append(face_writer.close())

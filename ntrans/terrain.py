@@ -46,26 +46,23 @@ def _row_difference(left: np.ndarray, mid: np.ndarray, right: np.ndarray) -> tup
     return diff, central | fwd | bwd
 
 
-def _horn_gradient(zp: np.ndarray, axis: int) -> np.ndarray:
-    """Horn gradient along ``axis`` (1 = columns, 0 = rows) of a NaN-padded array, per pixel.
+def _fallback_gradient(nb: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Horn gradient (pixel units) of 3x3 neighbourhoods ``nb`` (k, 3, 3) with gaps.
 
-    The three rows (or columns) of the 3x3 window get weights 1, 2, 1; rows whose
-    difference cannot be formed drop out and the weights are renormalised, so the result
-    stays exact on a plane.  No usable row gives zero slope.
+    The three rows (for x) or columns (for y) of the window get weights 1, 2, 1; a row
+    whose difference cannot be formed drops out and the weights are renormalised, so the
+    result stays exact on a plane.  No usable row gives zero slope.
     """
-    if axis == 0:
-        zp = zp.T
-    n0, n1 = zp.shape[0] - 2, zp.shape[1] - 2
-    num = np.zeros((n0, n1))
-    den = np.zeros((n0, n1))
-    for offset, weight in ((0, 1.0), (1, 2.0), (2, 1.0)):
-        line = zp[offset : offset + n0]
-        diff, valid = _row_difference(line[:, 0:n1], line[:, 1 : n1 + 1], line[:, 2 : n1 + 2])
-        num += np.where(valid, weight * diff, 0.0)
-        den += np.where(valid, weight, 0.0)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        grad = np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
-    return grad.T if axis == 0 else grad
+    grads = []
+    for lines in (nb, nb.transpose(0, 2, 1)):
+        num = np.zeros(nb.shape[0])
+        den = np.zeros(nb.shape[0])
+        for k, weight in ((0, 1.0), (1, 2.0), (2, 1.0)):
+            diff, valid = _row_difference(lines[:, k, 0], lines[:, k, 1], lines[:, k, 2])
+            num += np.where(valid, weight * diff, 0.0)
+            den += np.where(valid, weight, 0.0)
+        grads.append(np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0))
+    return grads[0], grads[1]
 
 
 def surface_factor(
@@ -101,9 +98,24 @@ def surface_factor(
     if not np.isfinite(z_to_xy) or z_to_xy <= 0:
         raise InputError(f"z_to_xy={z_to_xy!r} is not a positive number; give the vertical-to-horizontal unit factor")
     zp = np.pad(z * float(z_to_xy), 1, mode="constant", constant_values=np.nan)
-    zx = _horn_gradient(zp, axis=1) / dx
-    zy = _horn_gradient(zp, axis=0) / dy
-    s = np.sqrt(1.0 + zx * zx + zy * zy)
+    a, b, c = zp[:-2, :-2], zp[:-2, 1:-1], zp[:-2, 2:]
+    d, f = zp[1:-1, :-2], zp[1:-1, 2:]
+    g, h, i = zp[2:, :-2], zp[2:, 1:-1], zp[2:, 2:]
+    # Horn (1981): full 3x3 stencil wherever all neighbours exist (NaN elsewhere)
+    zx = ((c + 2.0 * f + i) - (a + 2.0 * d + g)) * (0.125 / dx)
+    zy = ((g + 2.0 * h + i) - (a + 2.0 * b + c)) * (0.125 / dy)
+    # window edges and pixels next to nodata: use the neighbours that exist
+    rr, cc = np.nonzero((np.isnan(zx) | np.isnan(zy)) & ~np.isnan(z))
+    if rr.size:
+        k = np.arange(3)
+        nb = zp[rr[:, None, None] + k[None, :, None], cc[:, None, None] + k[None, None, :]]
+        gx, gy = _fallback_gradient(nb)
+        zx[rr, cc] = gx / dx
+        zy[rr, cc] = gy / dy
+    s = zx * zx
+    s += zy * zy
+    s += 1.0
+    np.sqrt(s, out=s)
     s[np.isnan(z)] = np.nan
     return s
 

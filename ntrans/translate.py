@@ -128,15 +128,21 @@ def _pairs(item: np.ndarray, cls: np.ndarray, n_classes: int) -> tuple[np.ndarra
     return uniq // max(n_classes, 1), uniq % max(n_classes, 1), inv
 
 
-def _accumulate(inv: np.ndarray, n_pairs: int, columns: list[np.ndarray]) -> list[np.ndarray]:
-    """Sum (n_elem, n_stages) arrays into (n_pairs, n_stages) by ``inv``."""
-    out = []
-    for values in columns:
-        n_st = values.shape[1]
-        idx = (inv[:, None] * n_st + np.arange(n_st)[None, :]).ravel()
-        out.append(np.bincount(idx, weights=values.ravel(), minlength=n_pairs * n_st)
-                   .reshape(n_pairs, n_st))
-    return out
+def _aggregator(inv: np.ndarray, n_pairs: int) -> sparse.csr_matrix:
+    """Sparse (n_pairs, n_elem) matrix summing elements into their pair."""
+    return sparse.csr_matrix((np.ones(inv.size), (inv, np.arange(inv.size))),
+                             shape=(n_pairs, inv.size))
+
+
+def _accumulate(agg: sparse.csr_matrix, columns: list[np.ndarray]) -> list[np.ndarray]:
+    """Sum (n_elem, n_stages) arrays into (n_pairs, n_stages)."""
+    return [np.asarray(agg @ values) for values in columns]
+
+
+def _pow53(h: np.ndarray) -> np.ndarray:
+    """h^(5/3) for h >= 0 (cube root: faster than a general power)."""
+    c = np.cbrt(h)
+    return h * c * c
 
 
 def segment_integrals(h0: np.ndarray, h1: np.ndarray, ds: np.ndarray,
@@ -153,27 +159,33 @@ def segment_integrals(h0: np.ndarray, h1: np.ndarray, ds: np.ndarray,
     Returns
     -------
     wet plan length, wetted perimeter, flow area (integral of h+), strip integral
-    (integral of h+^(5/3) ds).
+    (integral of h+^(5/3) ds), each of the broadcast shape.  Only wet segments are
+    computed; h = (h0 + (h1 - h0) s)+ is integrated in closed form.
     """
-    hmax = np.maximum(h0, h1)
-    hmin = np.minimum(h0, h1)
-    wet_any = hmax > 0
-    lo = np.maximum(hmin, 0.0)
-    span = hmax - hmin
-    with np.errstate(invalid="ignore", divide="ignore"):
-        frac = np.where(hmin >= 0, 1.0, np.where(wet_any, hmax / np.where(span > 0, span, 1.0), 0.0))
-    frac = np.clip(frac, 0.0, 1.0)
-    wet = ds * frac
-    per = dl * frac
-    area = np.where(wet_any, wet * (hmax + lo) * 0.5, 0.0)
-    hp = np.where(wet_any, hmax, 0.0)
-    d = hp - lo
-    close = d <= 1e-7 * np.maximum(hp, _TINY)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        exact = (hp ** (8.0 / 3.0) - lo ** (8.0 / 3.0)) / ((8.0 / 3.0) * np.where(close, 1.0, d))
-    mean = (0.5 * (hp + lo)) ** (5.0 / 3.0)
-    strip = np.where(wet_any, wet * np.where(close, mean, exact), 0.0)
-    return wet, per, area, strip
+    shape = np.broadcast_shapes(np.shape(h0), np.shape(h1), np.shape(ds), np.shape(dl))
+    hmax = np.broadcast_to(np.maximum(h0, h1), shape).ravel()
+    hmin = np.broadcast_to(np.minimum(h0, h1), shape).ravel()
+    out = [np.zeros(hmax.size) for _ in range(4)]
+    idx = np.flatnonzero(hmax > 0)
+    if idx.size:
+        hx, hn = hmax[idx], hmin[idx]
+        dsw = np.broadcast_to(ds, shape).ravel()[idx]
+        dlw = np.broadcast_to(dl, shape).ravel()[idx]
+        full = hn >= 0
+        lo = np.where(full, hn, 0.0)
+        frac = np.where(full, 1.0, hx / np.where(full, 1.0, hx - hn))
+        wet = dsw * frac
+        d = hx - lo
+        close = d <= 1e-6 * hx
+        # integral of h^(5/3) over the wet part: (hx^(8/3) - lo^(8/3)) / ((8/3) (hx - lo)),
+        # or the midpoint value when the ends are (nearly) equal (error ~ (d/h)^2)
+        exact = (hx * _pow53(hx) - lo * _pow53(lo)) / ((8.0 / 3.0) * np.where(close, 1.0, d))
+        mean = _pow53(0.5 * (hx + lo))
+        out[0][idx] = wet
+        out[1][idx] = dlw * frac
+        out[2][idx] = wet * (hx + lo) * 0.5
+        out[3][idx] = wet * np.where(close, mean, exact)
+    return tuple(o.reshape(shape) for o in out)  # type: ignore[return-value]
 
 
 class Geometry(Protocol):
@@ -226,6 +238,7 @@ class FaceGeometry:
         seg_cls = cls[:-1][ok]
         self.pair_item, self.pair_cls, self.inv = _pairs(self.seg_face, seg_cls, self.n_classes)
         self.extent = np.bincount(self.inv, weights=self.ds, minlength=self.pair_item.size)
+        self._agg = _aggregator(self.inv, self.pair_item.size)
         low = np.full(self.n_items, np.inf)
         np.minimum.at(low, self.seg_face, np.minimum(self.z0, self.z1))
         self.low = np.where(np.isfinite(low), low, np.nan)
@@ -239,7 +252,6 @@ class FaceGeometry:
     def stats(self, stages: np.ndarray, chunk: int = 64) -> ClassStats:
         """Statistics at a stage matrix (n_items, n_stages)."""
         stages = np.atleast_2d(np.asarray(stages, dtype=float))
-        n_pairs = self.pair_item.size
         parts: list[list[np.ndarray]] = []
         for j0 in range(0, stages.shape[1], chunk):
             eta = stages[self.seg_face, j0:j0 + chunk]
@@ -249,7 +261,7 @@ class FaceGeometry:
             h0 = np.where(bad, -1.0, h0)
             h1 = np.where(bad, -1.0, h1)
             cols = segment_integrals(h0, h1, self.ds[:, None], self.dl[:, None])
-            parts.append(_accumulate(self.inv, n_pairs, list(cols)))
+            parts.append(_accumulate(self._agg, list(cols)))
         wet, per, area, strip = (np.concatenate([p[i] for p in parts], axis=1) for i in range(4))
         return ClassStats(self.pair_item, self.pair_cls, self.n_items, self.n_classes,
                           self.extent, wet, per, area, strip)
@@ -283,6 +295,7 @@ class CellGeometry:
         cls = np.asarray(self.pix_class, dtype=np.int64)[ok]
         self.pair_item, self.pair_cls, self.inv = _pairs(self._item, cls, self.n_classes)
         self.extent = np.bincount(self.inv, weights=self._a, minlength=self.pair_item.size)
+        self._agg = _aggregator(self.inv, self.pair_item.size)
         low = np.full(self.n_items, np.inf)
         np.minimum.at(low, self._item, self._z)
         self.low = np.where(np.isfinite(low), low, np.nan)
@@ -290,15 +303,14 @@ class CellGeometry:
     def stats(self, stages: np.ndarray, chunk: int = 16) -> ClassStats:
         """Statistics at a stage matrix (n_items, n_stages)."""
         stages = np.atleast_2d(np.asarray(stages, dtype=float))
-        n_pairs = self.pair_item.size
         parts = []
         for j0 in range(0, stages.shape[1], chunk):
             h = stages[self._item, j0:j0 + chunk] - self._z[:, None]
             h = np.where(np.isfinite(h) & (h > 0), h, 0.0)
             wet = h > 0
             cols = [self._a[:, None] * wet, self._b[:, None] * wet, self._a[:, None] * h,
-                    self._a[:, None] * h ** (5.0 / 3.0)]
-            parts.append(_accumulate(self.inv, n_pairs, cols))
+                    self._a[:, None] * _pow53(h)]
+            parts.append(_accumulate(self._agg, cols))
         wet, per, area, strip = (np.concatenate([p[i] for p in parts], axis=1) for i in range(4))
         return ClassStats(self.pair_item, self.pair_cls, self.n_items, self.n_classes,
                           self.extent, wet, per, area, strip)
@@ -654,14 +666,17 @@ def solve_stage(
     start: np.ndarray,
     composite: Composite = "horton_einstein",
     k: float = 1.0,
-    rtol: float = 1e-7,
-    max_iter: int = 80,
+    rtol: float = 1e-9,
+    max_iter: int = 100,
 ) -> np.ndarray:
-    """Stage at which the target conveyance equals ``k_wanted`` (vectorised bisection).
+    """Stage at which the target conveyance equals ``k_wanted`` (vectorised, bracketed).
 
-    K is monotone (non-decreasing) in stage, so a bracket [item low point, upper] with
-    the upper end expanded until K >= k_wanted, halved for all items at once, finds the
-    root; the last step interpolates linearly in K^(3/5) (exact for a flat bed).
+    K is monotone (non-decreasing) in stage and zero at the item's low point, so a
+    bracket [low point, upper] with the upper end expanded until K >= k_wanted holds the
+    root.  The bracket is closed for all items at once by false position on
+    f = K^(3/5) - k_wanted^(3/5) (nearly linear in depth; exact for a flat bed) with the
+    Illinois modification, which keeps a bracket and converges superlinearly.  Stops
+    when |f| <= rtol x k_wanted^(3/5) or the bracket is narrower than rtol x depth.
     NaN where ``k_wanted`` is not a positive finite number or no bracket is found.
 
     Parameters
@@ -676,41 +691,62 @@ def solve_stage(
     kw = np.asarray(k_wanted, dtype=float)
     low = np.asarray(geom.low, dtype=float)[:, None] + np.zeros_like(kw)
     active = np.isfinite(kw) & (kw > 0) & np.isfinite(low)
-    lo = np.where(active, low, np.nan)
+    t = np.where(active, kw, 0.0) ** 0.6
     s0 = np.where(np.isfinite(start), start, low)
     depth0 = np.maximum(s0 - low, 0.0)
     scale = np.where(depth0 > 0, depth0, 1.0)
+    lo = np.where(active, low, np.nan)
     hi = np.where(active, low + np.maximum(depth0, 1e-3 * scale), np.nan)
 
-    def kk(stages: np.ndarray) -> np.ndarray:
-        return target.conveyance(np.where(np.isfinite(stages), stages, -np.inf), n_class,
-                                 composite=composite, k=k)
+    def f(stages: np.ndarray) -> np.ndarray:
+        kk = target.conveyance(np.where(np.isfinite(stages), stages, -np.inf), n_class,
+                               composite=composite, k=k)
+        return kk ** 0.6 - t
 
-    k_hi = kk(hi)
+    f_hi = f(hi)
     for _ in range(60):
-        short = active & (k_hi < kw)
+        short = active & (f_hi < 0)
         if not short.any():
             break
         hi = np.where(short, low + 2.0 * (hi - low), hi)
-        k_hi = np.where(short, kk(hi), k_hi)
-    found = active & (k_hi >= kw)
-    k_lo = np.zeros_like(kw)
-    tol = rtol * np.maximum(scale, 1.0)
+        f_hi = np.where(short, f(hi), f_hi)
+    found = active & (f_hi >= 0)
+    f_lo = -t
+    g_lo, g_hi = f_lo.copy(), f_hi.copy()  # Illinois-scaled copies
+    side = np.zeros(kw.shape, dtype=np.int8)
+    root = np.full(kw.shape, np.nan)
+    done = ~found | (f_hi <= rtol * t)
+    root = np.where(found & (f_hi <= rtol * t), hi, root)
+    width_tol = rtol * np.maximum(scale, 1.0)
     for _ in range(max_iter):
-        if not np.any(found & (hi - lo > tol)):
+        todo = ~done & (hi - lo > width_tol)
+        if not todo.any():
             break
-        mid = 0.5 * (lo + hi)
-        k_mid = kk(mid)
-        up = found & (k_mid >= kw)
-        down = found & ~up
-        hi = np.where(up, mid, hi)
-        k_hi = np.where(up, k_mid, k_hi)
-        lo = np.where(down, mid, lo)
-        k_lo = np.where(down, k_mid, k_lo)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            x = hi - g_hi * (hi - lo) / (g_hi - g_lo)
+        bad = ~np.isfinite(x) | (x <= lo) | (x >= hi)
+        x = np.where(bad, 0.5 * (lo + hi), x)
+        x = np.where(todo, x, np.nan)
+        fx = f(x)
+        hit = todo & (np.abs(fx) <= rtol * t)
+        root = np.where(hit, x, root)
+        done |= hit
+        up = todo & ~hit & (fx > 0)
+        down = todo & ~hit & (fx < 0)
+        # Illinois: the end kept twice in a row has its value halved
+        g_lo = np.where(up & (side == 1), 0.5 * g_lo, g_lo)
+        g_hi = np.where(down & (side == -1), 0.5 * g_hi, g_hi)
+        hi = np.where(up, x, hi)
+        f_hi = np.where(up, fx, f_hi)
+        g_hi = np.where(up, fx, g_hi)
+        lo = np.where(down, x, lo)
+        f_lo = np.where(down, fx, f_lo)
+        g_lo = np.where(down, fx, g_lo)
+        side = np.where(up, 1, np.where(down, -1, side)).astype(np.int8)
     with np.errstate(invalid="ignore", divide="ignore"):
-        a, b, t = k_lo ** 0.6, k_hi ** 0.6, kw ** 0.6
-        frac = np.where(b > a, (t - a) / np.where(b > a, b - a, 1.0), 1.0)
-    out = lo + np.clip(frac, 0.0, 1.0) * (hi - lo)
+        frac = np.where(f_hi > f_lo, -f_lo / np.where(f_hi > f_lo, f_hi - f_lo, 1.0), 1.0)
+    interp = lo + np.clip(frac, 0.0, 1.0) * (hi - lo)
+    out = np.where(np.isfinite(root), root, interp)
     return np.where(found, out, np.nan)
 
 

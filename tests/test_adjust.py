@@ -194,3 +194,38 @@ def test_bad_options(flat_case, tmp_path, kw):
     with pytest.raises(InputError):
         adjust_roughness(dem, cells, out=tmp_path / "out", n=0.03, **args)
     assert _nothing_written(tmp_path / "out")
+
+
+def test_class_raster_gap_needs_default(flat_case, tmp_path):
+    dem, cells = flat_case
+    codes = np.ones((20, 20))
+    codes[:, 15:] = 0  # a quarter of the mesh without a class (nodata)
+    raster = write_dem(tmp_path / "codes.tif", codes, nodata=0, dtype="int16")
+    table = tmp_path / "n.csv"
+    table.write_text("class,n\n1,0.03\n")
+    with pytest.raises(RoughnessError):
+        adjust_roughness(dem, cells, out=tmp_path / "out", class_raster=raster, n_table=table,
+                         depths="1")
+    assert _nothing_written(tmp_path / "out")
+    res = _quiet(dem=dem, cells=cells, out=tmp_path / "out", class_raster=raster, n_table=table,
+                 depths="1", default_class="1")
+    assert res.classes["class"].tolist() == ["1"]
+
+
+def test_scheduler_same_result(channel_case, tmp_path):
+    from distributed import LocalCluster
+
+    dem, cells, classes, table = channel_case
+    kw = {"dem": dem, "cells": cells, "classes": classes, "class_field": "kind", "n_table": table,
+          "depths": "1,2", "tile_size": 16}
+    _quiet(out=tmp_path / "local", **kw)
+    # an in-process cluster (threads) keeps the test fast; the code path is the same
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=False,
+                      dashboard_address=":0") as cluster:
+        _quiet(out=tmp_path / "dask", scheduler=cluster.scheduler_address, **kw)
+    # same tiles, same order, same arithmetic
+    assert (tmp_path / "local" / "n_by_class.csv").read_bytes() == \
+        (tmp_path / "dask" / "n_by_class.csv").read_bytes()
+    a = pd.read_parquet(tmp_path / "local" / "face_adjustment.parquet")
+    b = pd.read_parquet(tmp_path / "dask" / "face_adjustment.parquet")
+    pd.testing.assert_frame_equal(a, b)

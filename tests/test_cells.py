@@ -273,6 +273,10 @@ def test_cell_stage_table_rejects_bad_input():
         cell_stage_table([0, 3], [1.0, 1.0], [1.0, 1.0], [1.0, 1.0], np.ones((2, 1)))
     with pytest.raises(InputError):
         cell_stage_table([0, 1], [1.0], [1.0, 1.0], [1.0, 1.0], np.ones((2, 1)))
+    with pytest.raises(InputError):  # NaN area at a valid pixel would poison the sums
+        cell_stage_table([0, 1], [1.0, 2.0], [1.0, np.nan], [1.0, 1.0], np.ones((2, 1)))
+    with pytest.raises(InputError):
+        cell_stage_table([0.0, 1.0], [1.0, 2.0], [1.0, 1.0], [1.0, 1.0], np.ones((2, 1)))
 
 
 def test_terrain_summary_by_hand():
@@ -313,3 +317,17 @@ def test_flat_cell_table_by_hand():
     assert all(np.isnan(v[1]).all() for v in t.values())  # no bed elevation -> NaN
     with pytest.raises(InputError):
         flat_cell_table(np.ones(2), np.ones(3), np.ones((2, 1)))
+
+
+@pytest.mark.parametrize("n_items", [3, 2**40, 2**60])  # packed sort, few z bits, lexsort
+def test_sort_by_item_z_is_exact_for_any_key_width(n_items):
+    from ntrans.cells import _sort_by_item_z
+
+    rng = np.random.default_rng(4)
+    item = rng.integers(0, 3, 200) * (n_items // 3)
+    z = rng.integers(0, 20, 200) * 0.1 + rng.integers(0, 2, 200) * 1e-14
+    order, it, zs = _sort_by_item_z(item, z, n_items)
+    ref = np.lexsort((z, item))
+    np.testing.assert_array_equal(it, item[ref])
+    np.testing.assert_array_equal(zs, z[ref])
+    np.testing.assert_array_equal(item[order], it)

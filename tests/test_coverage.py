@@ -65,9 +65,16 @@ WINDOWS = [
 ]
 
 
-@pytest.mark.parametrize("transform, shape", WINDOWS)
+# projected coordinates far from the origin: ulp at 4.2e6 m is ~1e-9 m, so both methods
+# place crossings only to ~1e-9 m (fractions to ~1e-9 of a 2 m pixel)
+UTM_LIKE = (Affine(2.0, 0.0, 500000.0, 0.0, -2.0, 4200000.0), (20, 25))
+
+
+@pytest.mark.parametrize(
+    "transform, shape, tol", [(*w, ROUND_OFF) for w in WINDOWS] + [(*UTM_LIKE, 1e-8)]
+)
 @pytest.mark.parametrize("seed", [0, 1])
-def test_exact_matches_brute_force(transform, shape, seed):
+def test_exact_matches_brute_force(transform, shape, tol, seed):
     rng = np.random.default_rng(seed)
     x0, x1 = sorted([transform.c, transform.c + transform.a * shape[1]])
     y0, y1 = sorted([transform.f, transform.f + transform.e * shape[0]])
@@ -75,7 +82,7 @@ def test_exact_matches_brute_force(transform, shape, seed):
     polys = random_polygons(rng, 8, (x0 - 2, x1 + 2), (y0 - 2, y1 + 2))
     w = exact_coverage(polys, transform, shape)
     # geometry identity: fraction = area(polygon & pixel) / pixel area (shapely overlay)
-    np.testing.assert_allclose(dense(w, len(polys), shape), brute_force(polys, transform, shape), atol=ROUND_OFF)
+    np.testing.assert_allclose(dense(w, len(polys), shape), brute_force(polys, transform, shape), atol=tol)
 
 
 def test_area_identity_with_holes_and_multipolygons():
@@ -117,6 +124,19 @@ def test_subpixel_polygon_gets_true_fraction():
     assert (w.row.tolist(), w.col.tolist()) == ([1], [0])
     # geometry identity: triangle area 0.9 * 1.2 / 2 over pixel area 4
     assert w.fraction[0] == pytest.approx(0.9 * 1.2 / 2 / 4.0, rel=1e-12)
+
+
+def test_grid_aligned_polygon_with_hole_and_diagonal():
+    transform, shape = Affine(1.0, 0.0, 0.0, 0.0, -1.0, 6.0), (6, 6)
+    ell = shapely.Polygon(
+        [(0, 0), (5, 0), (5, 2), (2, 2), (2, 6), (0, 6)], holes=[[(1, 1), (1, 4), (0.5, 4), (0.5, 1)]]
+    )
+    diamond = shapely.Polygon([(3, 3), (4, 4), (3, 5), (2, 4)])  # vertices on grid nodes
+    polys = [ell, diamond]
+    w = exact_coverage(polys, transform, shape)
+    # geometry identity: shapely overlay per pixel (edges on grid lines, vertices on nodes)
+    np.testing.assert_allclose(dense(w, 2, shape), brute_force(polys, transform, shape), atol=ROUND_OFF)
+    assert np.isin(w.fraction, [0.5, 1.0]).all()  # hand check: halves and whole pixels
 
 
 def test_polygon_partly_outside_window():

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import dask
+import distributed  # noqa: F401  (loads its config defaults before dask.config.set)
 import numpy as np
 import pandas as pd
 import pytest
@@ -175,7 +177,12 @@ def test_dask_two_processes_equals_single_process(mesh, tmp_path):
 
     dem, cells = mesh
     build_tables(dem, cells, out=tmp_path / "local", stages="9:12:1", tile_size=8)
-    build_tables(dem, cells, out=tmp_path / "dask", stages="9:12:1", tile_size=8, workers=2)
+    # Two worker processes.  They are forked rather than spawned here only to keep the
+    # test fast (spawning re-imports the stack, ~10 s on a small machine); tasks and
+    # results still travel pickled between processes, as in production.
+    with dask.config.set({"distributed.worker.multiprocessing-method": "fork"}):
+        build_tables(dem, cells, out=tmp_path / "dask", stages="9:12:1", tile_size=8,
+                     workers=2)
     for name in ("cell_stage.parquet", "face_stage.parquet"):
         a = pd.read_parquet(tmp_path / "local" / name)
         b = pd.read_parquet(tmp_path / "dask" / name)

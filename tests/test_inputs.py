@@ -46,6 +46,16 @@ US_FOOT = 1200.0 / 3937.0  # metres per US survey foot (definition)
 INT_FOOT = 0.3048  # metres per international foot (definition)
 
 
+def assert_one_sentence(message: str, first_word: str | None = None) -> None:
+    """Messages are one sentence: one line, no inner full stop, no final full stop."""
+    assert "\n" not in message
+    text = message.replace("e.g. ", "")
+    assert ". " not in text and not text.endswith(".")
+    assert "; " in message  # what was found; what to do
+    if first_word is not None:
+        assert message.split()[0] == first_word
+
+
 # --------------------------------------------------------------------------- open_dem
 
 
@@ -160,9 +170,10 @@ def _text_file(tmp_path: Path) -> Path:
 def test_open_dem_errors(tmp_path: Path, make, error: type[NtransError]) -> None:
     path = make(tmp_path)
     before = sorted(tmp_path.iterdir())
-    with pytest.raises(error):
+    with pytest.raises(error) as info:
         open_dem(path)
     assert sorted(tmp_path.iterdir()) == before  # nothing written
+    assert_one_sentence(str(info.value), "DEM")
 
 
 def test_open_dem_multiband_uses_band_one(tmp_path: Path, caplog) -> None:
@@ -367,9 +378,10 @@ def test_read_cells_errors(tmp_path: Path, tmp_dem: Path, case: str) -> None:
     dem = open_dem(tmp_dem)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", GeometryRepairedWarning)
-        with pytest.raises(error):
+        with pytest.raises(error) as info:
             read_cells(path, dem=dem)
     assert sorted(folder.iterdir()) == before  # nothing written
+    assert_one_sentence(str(info.value))
 
 
 def test_read_cells_missing_id_field(tmp_path: Path, tmp_dem: Path) -> None:
@@ -418,6 +430,17 @@ def test_read_cells_overlap_within_tolerance(tmp_path: Path, tmp_dem: Path) -> N
     assert len(read_cells(path, dem=dem)) == 2
     with pytest.raises(GeometryError):
         read_cells(path, dem=dem, overlap_tolerance=0.001)
+
+
+def test_read_cells_non_conforming_mesh(tmp_path: Path, tmp_dem: Path) -> None:
+    """A refined (quadtree-like) mesh with hanging nodes is no overlap; a sliver is."""
+    polys = [shapely.box(0, 0, 10, 10), shapely.box(10, 0, 15, 5), shapely.box(15, 0, 20, 5),
+             shapely.box(10, 5, 15, 10), shapely.box(15, 5, 20, 10)]
+    dem = open_dem(tmp_dem)
+    assert len(read_cells(write_cells(tmp_path / "a.gpkg", polys), dem=dem)) == 5
+    polys[3] = shapely.box(9.0, 5, 15, 10)  # reaches 1 m into the big cell: 5 m2 of 30 m2
+    with pytest.raises(GeometryError, match="1/4"):  # names the offending id pair
+        read_cells(write_cells(tmp_path / "b.gpkg", polys), dem=dem)
 
 
 def test_read_cells_keeps_cells_off_the_dem(tmp_path: Path, tmp_dem: Path) -> None:

@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+import html
 import inspect
 import json
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -13,7 +15,7 @@ import shapely
 from conftest import grid_polygons, write_cells, write_dem
 
 from ntrans import project as proj
-from ntrans.errors import InputFileError, OutputExistsError, ProjectFileError
+from ntrans.errors import InputFileError, NtransWarning, OutputExistsError, ProjectFileError
 
 BASE = """
 [inputs]
@@ -207,8 +209,14 @@ out = "{out}"
 def two_runs(tmp_path_factory):
     """The same small project run twice into two bundles (and a zip for the first)."""
     root = tmp_path_factory.mktemp("runs")
-    first = proj.run_project(write_small_project(root / "a", extra="zip = true"))
-    second = proj.run_project(write_small_project(root / "b"))
+    project = write_small_project(root / "a", extra="zip = true")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", NtransWarning)
+        first = proj.run_project(project)
+    first.summary["caught"] = [str(w.message) for w in caught if issubclass(w.category, NtransWarning)]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", NtransWarning)
+        second = proj.run_project(project, out=root / "a" / "second")
     return first, second
 
 
@@ -247,6 +255,11 @@ def test_manifest_hashes_every_output_and_input(two_runs):
     assert roles["cells"]["features"] == 12
     assert manifest["parameters"]["families"]["closure"] == "lumped"
     assert manifest["parameters"]["window"]["depths"] == "0.25:1.5:0.25"
+    effective = manifest["parameters"]["effective"]
+    assert effective["build_tables"]["coverage"] == "exact"  # a default, recorded too
+    assert effective["adjust_roughness"]["composite"] == "horton_einstein"
+    assert effective["adjust_roughness"]["class_field"] == "landcover"
+    assert roles["dem"]["units"] == {"horizontal": "metre", "vertical": "metre"}
     assert "ntrans" in manifest["versions"] and "rasterio" in manifest["versions"]
     assert proj.load_project(manifest["project_file"]["path"]).families["target"] == "subgrid"
 
@@ -286,3 +299,21 @@ def test_run_refuses_to_overwrite_without_permission(two_runs):
     with pytest.raises(OutputExistsError):
         proj.run_project(project)
     assert result.manifest.read_bytes() == before
+
+
+def test_warnings_of_the_run_reach_the_caller_and_the_report(two_runs):
+    result, _ = two_runs
+    text = result.report.read_text(encoding="utf-8")
+    for message in result.summary["caught"]:
+        assert html.escape(message) in text
+    assert "data:image/png;base64," in text and "https://" not in text
+
+
+def test_demo_project_is_valid_and_names_the_demo_files():
+    from ntrans.demo import DEMO_FILES, demo_folder
+
+    project = proj.load_project(demo_folder() / "project.toml")
+    names = {p.name for p in project.inputs.values() if isinstance(p, Path)}
+    assert names == set(DEMO_FILES)
+    assert (project.families["source"], project.families["target"]) == ("flat", "subgrid")
+    assert project.inputs["class_field"] == "landcover"

