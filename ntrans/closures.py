@@ -230,37 +230,74 @@ def _pow83(x: np.ndarray) -> np.ndarray:
     return x2 * np.cbrt(x2)
 
 
-def _strip_kernel(seg: Segments, sl: slice, eta: np.ndarray, inv_n: np.ndarray) -> np.ndarray:
-    """(1/n) * integral of h^(5/3) ds per segment of ``sl`` and stage (exact)."""
-    zlo, zhi, ds = seg.zlo[sl][:, None], seg.zhi[sl][:, None], seg.ds[sl][:, None]
-    dz = zhi - zlo
-    level = (dz <= LEVEL_RATIO * ds)[:, 0]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        coef = np.where(dz > 0, 0.375 * ds / np.where(dz > 0, dz, 1.0), 0.0)
-    a = np.maximum(eta - zlo, 0.0)  # depth at the low end
-    b = np.maximum(eta - zhi, 0.0)  # depth at the high end
-    val = coef * (_pow83(a) - _pow83(b))
-    # fully wet with nearly equal end depths: the closed form cancels; Simpson is exact
-    # to O((dz/h)^4) there
-    thin = (b > 0) & (a - b < _SIMPSON_BELOW * a)
-    thin[level] = False
-    if thin.any():
-        r, c = np.nonzero(thin)
-        aa, bb = a[r, c], b[r, c]
-        val[r, c] = ds[r, 0] / 6.0 * (_pow53(aa) + 4.0 * _pow53(0.5 * (aa + bb)) + _pow53(bb))
-    if level.any():
-        h = np.maximum(eta[level] - 0.5 * (zlo + zhi)[level], 0.0)
-        val[level] = ds[level] * _pow53(h)
-    return val * inv_n[sl][:, None]
-
-
 def _lotter_kernel(seg: Segments, sl: slice, eta: np.ndarray, inv_n: np.ndarray) -> np.ndarray:
-    """(1/n) A_i R_i^(2/3) per segment of ``sl`` and stage, with the segment's own A_i, P_i."""
-    hyd = segment_hydraulics(seg.z0[sl], seg.z1[sl], seg.ds[sl], seg.dl[sl], eta)
-    a, p = hyd["area"], hyd["perimeter"]
+    """(1/n) A_i^(5/3) / P_i^(2/3) per segment of ``sl`` and stage (the segment's own A, P)."""
+    zlo, zhi = seg.zlo[sl][:, None], seg.zhi[sl][:, None]
+    ds, dl = seg.ds[sl][:, None], seg.dl[sl][:, None]
+    dz = zhi - zlo
+    level = dz <= LEVEL_RATIO * ds
+    span = np.where(level, 1.0, dz)
+    h_low_end = np.maximum(eta - zlo, 0.0)
+    full = eta >= zhi
+    frac = np.where(full, 1.0, np.where(level, 0.0, h_low_end / span))
+    area = np.where(full, ds * (eta - 0.5 * (zlo + zhi)), ds * h_low_end * h_low_end / (2.0 * span))
+    area = np.where(level & ~full, 0.0, area)
+    # A^(5/3) P^(-2/3) = A (A/P)^(2/3); ds/dl scales the plan fraction to the 3-D one
     with np.errstate(invalid="ignore", divide="ignore"):
-        r = np.where(p > 0, a / np.where(p > 0, p, 1.0), 0.0)
-    return a * np.cbrt(r * r) * inv_n[sl][:, None]
+        r = np.where(frac > 0, area / (dl * np.where(frac > 0, frac, 1.0)), 0.0)
+    return area * np.cbrt(r * r) * inv_n[sl][:, None]
+
+
+def _strip_by_stations(seg: Segments, eta: np.ndarray, inv_n: np.ndarray) -> np.ndarray:
+    """Strip conveyance sum over a face's segments of (1/n) integral of h^(5/3) ds.
+
+    A rising segment contributes (3/8) ds/dz [(eta - zlo)+^(8/3) - (eta - zhi)+^(8/3)] / n,
+    so the face total is a sum over stations i of C_i (eta - z_i)+^(8/3), with C_i the
+    signed coefficients of the segments meeting there; level segments add
+    ds/n (eta - z)+^(5/3).  One power per station and stage instead of two per segment.
+    """
+    n_faces, n_st = eta.shape
+    dz = seg.zhi - seg.zlo
+    level = dz <= LEVEL_RATIO * seg.ds
+    s0 = seg.start
+    s1 = s0 + 1
+    ns = int(s1.max()) + 1 if s0.size else 0
+    with np.errstate(invalid="ignore", divide="ignore"):
+        coef = np.where(level, 0.0, 0.375 * seg.ds * inv_n / np.where(level, 1.0, dz))
+    up = np.where(seg.z1 > seg.z0, 1.0, -1.0)
+    c_st = np.bincount(s0, weights=coef * up, minlength=ns) - np.bincount(
+        s1, weights=coef * up, minlength=ns
+    )
+    z_st = np.zeros(ns)
+    z_st[s0] = seg.z0
+    z_st[s1] = seg.z1
+    f_st = np.full(ns, -1, dtype=np.int64)
+    f_st[s0] = seg.face
+    f_st[s1] = seg.face
+    used = np.flatnonzero((f_st >= 0) & (c_st != 0))
+    acc = np.zeros(n_faces * n_st)
+    cols = np.arange(n_st)
+    rows_per = max(1, _CHUNK // max(n_st, 1))
+    for lo in range(0, used.size, rows_per):
+        st = used[lo : lo + rows_per]
+        f = f_st[st]
+        x = np.maximum(eta[f] - z_st[st][:, None], 0.0)
+        x *= x
+        v = x * np.cbrt(x) * c_st[st][:, None]
+        acc += np.bincount(
+            (f[:, None] * n_st + cols).ravel(), weights=np.nan_to_num(v).ravel(), minlength=acc.size
+        )
+    if level.any():
+        lv = np.flatnonzero(level)
+        for lo in range(0, lv.size, rows_per):
+            k = lv[lo : lo + rows_per]
+            f = seg.face[k]
+            h = np.maximum(eta[f] - seg.z0[k][:, None], 0.0)
+            v = _pow53(h) * (seg.ds[k] * inv_n[k])[:, None]
+            acc += np.bincount(
+                (f[:, None] * n_st + cols).ravel(), weights=np.nan_to_num(v).ravel(), minlength=acc.size
+            )
+    return np.maximum(acc.reshape(n_faces, n_st), 0.0)
 
 
 def _sum_per_face(seg: Segments, eta: np.ndarray, kernel, inv_n: np.ndarray) -> np.ndarray:
@@ -369,7 +406,7 @@ def face_conveyance(
     no_terrain = ~np.isfinite(seg.low)[:, None] | np.isnan(eta)
 
     if closure == "strip":
-        out = k * _sum_per_face(seg, eta, _strip_kernel, 1.0 / nseg)
+        out = k * _strip_by_stations(seg, eta, 1.0 / nseg)
     elif composite == "lotter":
         out = k * _sum_per_face(seg, eta, _lotter_kernel, 1.0 / nseg)
     else:

@@ -299,10 +299,16 @@ def quicklook_png(
         norm = Normalize(vmin=lo if vmin is None else vmin, vmax=hi if vmax is None else vmax)
         cmap = "cividis"
 
-    # fixed axes boxes (no automatic layout pass: faster, and identical on every run)
-    fig = plt.figure(figsize=(7.0, 5.6), dpi=PNG_DPI)
-    ax = fig.add_axes((0.11, 0.1, 0.68, 0.8))
-    cax = fig.add_axes((0.84, 0.15, 0.03, 0.7))
+    # fixed axes boxes fitted to the map's shape (no automatic layout pass: faster, and
+    # identical on every run); the colour bar spans the map's height
+    fig_w, fig_h = 7.0, 5.6
+    box_w, box_h = 0.68 * fig_w, 0.78 * fig_h
+    aspect = abs(e * rows) / abs(a * cols) if a and cols else 1.0
+    map_w, map_h = (box_w, box_w * aspect) if box_w * aspect <= box_h else (box_h / aspect, box_h)
+    bottom_frac = 0.1 + (box_h - map_h) / 2.0 / fig_h
+    fig = plt.figure(figsize=(fig_w, fig_h), dpi=PNG_DPI)
+    ax = fig.add_axes((0.11, bottom_frac, map_w / fig_w, map_h / fig_h))
+    cax = fig.add_axes((0.11 + map_w / fig_w + 0.04, bottom_frac, 0.03, map_h / fig_h))
     ax.imshow(shade, cmap="gray", extent=extent, vmin=0, vmax=1, interpolation="nearest")
     image = ax.imshow(
         np.ma.masked_invalid(vals), cmap=cmap, norm=norm, extent=extent, alpha=0.75,
@@ -315,6 +321,7 @@ def quicklook_png(
     ax.set_ylabel(f"northing ({length_unit})")
     ax.ticklabel_format(useOffset=False, style="plain")
     ax.tick_params(labelsize=7)
+    ax.locator_params(axis="x", nbins=max(2, int(map_w)))
 
     # scale bar, lower left
     width = right - left

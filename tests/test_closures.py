@@ -65,9 +65,11 @@ def test_strip_v_profile_by_hand():
     assert k[0, 0] == pytest.approx(0.75, rel=1e-12)
 
 
-def test_lumped_v_profile_by_hand():
-    k = face_conveyance(V, np.array([1.0]), closure="lumped", n_segment=0.05)
-    # Manning K = A R^(2/3) / n with A = 1, P = 2 sqrt(2) (Chow 1959 Table 2-1 triangle z = 1)
+@pytest.mark.parametrize("composite", COMPOSITE_METHODS)
+def test_lumped_v_profile_by_hand(composite):
+    k = face_conveyance(V, np.array([1.0]), closure="lumped", n_segment=0.05, composite=composite)
+    # Manning K = A R^(2/3) / n with A = 1, P = 2 sqrt(2) (Chow 1959 Table 2-1 triangle z = 1);
+    # the two sides are equal parts (same n, same R), so every composite gives the same K
     assert k[0, 0] == pytest.approx(1.0 * (1 / (2 * math.sqrt(2))) ** (2 / 3) / 0.05, rel=1e-12)
 
 
