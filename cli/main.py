@@ -11,6 +11,7 @@ from __future__ import annotations
 import importlib
 import logging
 import sys
+import warnings
 
 import click
 
@@ -71,6 +72,17 @@ def cli(ctx: click.Context, verbose: int, quiet: bool, debug: bool) -> None:
     level = logging.WARNING if quiet else (logging.INFO if verbose == 0 else logging.DEBUG)
     logging.basicConfig(level=level, format="%(levelname)s %(name)s: %(message)s", force=True)
     logging.captureWarnings(True)
+    warnings.formatwarning = _one_line_warning if not debug else _located_warning
+
+
+def _one_line_warning(message, category, filename, lineno, line=None) -> str:
+    """Format a warning as one line (the log record adds the level)."""
+    return f"{category.__name__}: {message}"
+
+
+def _located_warning(message, category, filename, lineno, line=None) -> str:
+    """Format a warning as one line with its origin (``--debug``)."""
+    return f"{category.__name__}: {message} ({filename}:{lineno})"
 
 
 def main(argv: list[str] | None = None) -> None:

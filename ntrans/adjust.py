@@ -474,58 +474,16 @@ def _pass_tables(job: _Job, task: Any, n_fit: np.ndarray) -> dict[str, Any]:
 
 def _run_tiles(fn: Any, job: _Job, tasks: Any, *args: Any, workers: int | None,
                scheduler: str | None, progress: bool, total: int, desc: str) -> Any:
-    """Yield ``fn(job, task, *args)`` for every task, in task order.
+    """Yield ``fn(job, task, *args)`` for every task, in task order (see ntrans.cluster)."""
+    from .cluster import run_ordered
 
-    In this process by default; on a local Dask cluster (``workers``) or an existing
-    scheduler (``scheduler``) otherwise, with at most two tasks per worker in flight.
-    """
-    from .progress import track
-
-    if workers is None and scheduler is None:
-        yield from track((fn(job, t, *args) for t in tasks), total=total, desc=desc,
-                         enabled=progress)
-        return
-    yield from track(_run_dask(fn, job, tasks, args, workers, scheduler), total=total,
-                     desc=desc, enabled=progress)
+    yield from run_ordered(_call_pass, (fn, job, args), tasks, workers=workers,
+                           scheduler=scheduler, progress=progress, total=total, desc=desc)
 
 
-def _run_dask(fn: Any, job: _Job, tasks: Any, args: tuple, workers: int | None,
-              scheduler: str | None) -> Any:
-    from collections import deque
-
-    try:
-        from distributed import Client, LocalCluster
-    except ImportError as exc:  # pragma: no cover - dask is a test dependency
-        raise InputError("running on workers needs dask.distributed; install ntrans[cluster] "
-                         "or drop --workers") from exc
-    cluster = None
-    try:
-        if scheduler is not None:
-            try:
-                client = Client(scheduler, timeout="10s")
-            except OSError as exc:
-                raise InputError(f"no Dask scheduler answered at {scheduler}; check the address "
-                                 "or drop --scheduler") from exc
-        else:
-            cluster = LocalCluster(n_workers=int(workers), threads_per_worker=1,  # type: ignore[arg-type]
-                                   processes=True, dashboard_address=":0",
-                                   silence_logs=logging.WARNING)
-            client = Client(cluster)
-        try:
-            n_workers = max(len(client.scheduler_info().get("workers", {})), 1)
-            job_future = client.scatter(job, broadcast=True)
-            pending: deque = deque()
-            for task in tasks:
-                pending.append(client.submit(fn, job_future, task, *args, pure=False))
-                if len(pending) >= 2 * n_workers:
-                    yield pending.popleft().result()
-            while pending:
-                yield pending.popleft().result()
-        finally:
-            client.close()
-    finally:
-        if cluster is not None:
-            cluster.close()
+def _call_pass(shared: tuple, task: Any) -> Any:
+    fn, job, args = shared
+    return fn(job, task, *args)
 
 
 # --------------------------------------------------------------------------- main job

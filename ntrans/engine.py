@@ -24,7 +24,6 @@ from __future__ import annotations
 
 import functools
 import logging
-from collections import deque
 from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, field
 from typing import Any, Literal
@@ -42,7 +41,6 @@ log = logging.getLogger(__name__)
 MARGIN = 2
 """Pixels added around a tile's window: slope stencil (1) + bilinear support (1)."""
 
-SCHEDULER_TIMEOUT = "10s"
 """How long to wait for an existing Dask scheduler to answer."""
 
 CoverageMode = Literal["exact", "centre"]
@@ -558,69 +556,25 @@ def execute(
     time, with no extra service.  In every mode results come back in the order of
     ``tasks``, so outputs are identical.
     """
-    from .progress import track
-
-    if workers is not None and scheduler is not None:
-        raise InputError("give either workers or a scheduler address, not both")
-    if workers is not None and int(workers) < 1:
-        raise InputError(f"workers must be 1 or more, got {workers}")
-    kw = tuple(sorted((open_kwargs or {}).items()))
+    from .cluster import run_ordered
 
     if workers is None and scheduler is None:
-        runner = local_runner or run_task_local
-        results = (runner(dem, t, settings) for t in tasks)
-        yield from track(results, total=total, desc="tiles", enabled=progress)
-        return
-
-    yield from track(
-        _execute_dask(tasks, dem_path, kw, settings, workers, scheduler, max_in_flight),
-        total=total,
-        desc="tiles",
-        enabled=progress,
+        shared = (local_runner or run_task_local, dem, settings)
+        fn = _run_with_open_dem
+    else:
+        shared = (str(dem_path), tuple(sorted((open_kwargs or {}).items())), settings)
+        fn = _run_with_dem_path
+    yield from run_ordered(
+        fn, shared, tasks, workers=workers, scheduler=scheduler, progress=progress,
+        total=total, desc="tiles", max_in_flight=max_in_flight,
     )
 
 
-def _execute_dask(tasks, dem_path, kw, settings, workers, scheduler, max_in_flight):
-    try:
-        from distributed import Client, LocalCluster
-    except ImportError as exc:  # pragma: no cover - dask is a test dependency
-        raise InputError(
-            "running on workers needs dask.distributed; install ntrans[cluster] or drop --workers"
-        ) from exc
+def _run_with_open_dem(shared: tuple, task: TileTask) -> dict[str, Any]:
+    runner, dem, settings = shared
+    return runner(dem, task, settings)
 
-    cluster = None
-    try:
-        if scheduler is not None:
-            try:
-                client = Client(scheduler, timeout=SCHEDULER_TIMEOUT)
-            except OSError as exc:
-                raise InputError(
-                    f"no Dask scheduler answered at {scheduler}; check the address or drop --scheduler"
-                ) from exc
-        else:
-            cluster = LocalCluster(
-                n_workers=int(workers),
-                threads_per_worker=1,
-                processes=True,
-                dashboard_address=None,
-                silence_logs=logging.WARNING,
-            )
-            client = Client(cluster)
-        try:
-            n_workers = max(len(client.scheduler_info().get("workers", {})), 1)
-            limit = max_in_flight or 2 * n_workers
-            log.info("running tiles on %d Dask worker(s)", n_workers)
-            pending: deque = deque()
-            for task in tasks:
-                pending.append(
-                    client.submit(run_task_from_path, dem_path, kw, task, settings, pure=False)
-                )
-                if len(pending) >= limit:
-                    yield pending.popleft().result()
-            while pending:
-                yield pending.popleft().result()
-        finally:
-            client.close()
-    finally:
-        if cluster is not None:
-            cluster.close()
+
+def _run_with_dem_path(shared: tuple, task: TileTask) -> dict[str, Any]:
+    dem_path, open_kwargs, settings = shared
+    return run_task_from_path(dem_path, open_kwargs, task, settings)

@@ -244,18 +244,26 @@ def sample_profiles(
     total = int(m.sum())
     owner = np.repeat(np.arange(nv), m)
     offset = np.cumsum(m) - m
-    t = (np.arange(total) - offset[owner]) / m[owner]
-    nxt = np.minimum(owner + 1, nv - 1)
-    nxt = np.where(same_next[owner], nxt, owner)
-    xy = coords[owner] + t[:, None] * (coords[nxt] - coords[owner])
+    # fraction along the vertex's segment: j / m for the j-th station of the segment
+    t = np.arange(total, dtype=np.float64)
+    t -= np.repeat(offset.astype(np.float64), m)
+    t *= np.repeat(1.0 / m, m)
+    vx, vy = coords[:, 0], coords[:, 1]
+    dx = np.zeros(nv)
+    dy = np.zeros(nv)
+    dx[:-1] = np.where(same_next[:-1], vx[1:] - vx[:-1], 0.0)
+    dy[:-1] = np.where(same_next[:-1], vy[1:] - vy[:-1], 0.0)
+    x = vx[owner] + t * dx[owner]
+    y = vy[owner] + t * dy[owner]
     station = cum[owner] + t * seg_len[owner]
     face = idx[owner]
     if sampler is None:
         from .terrain import sample_bilinear as sampler
-    z = np.asarray(sampler(elevation, transform, xy[:, 0], xy[:, 1]), dtype=np.float64)
+    z = np.asarray(sampler(elevation, transform, x, y), dtype=np.float64)
     length = np.zeros(n_faces)
-    np.maximum.at(length, face, station)
-    return Profiles(face, station, z, n_faces, xy[:, 0].copy(), xy[:, 1].copy(), length)
+    last = np.flatnonzero(~same_next)  # each face's last vertex
+    length[idx[last]] = cum[last]
+    return Profiles(face, station, z, n_faces, x, y, length)
 
 
 def _stage_matrix(stages: np.ndarray, n_faces: int) -> np.ndarray:

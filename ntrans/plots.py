@@ -59,13 +59,25 @@ def _layout(fig: Any, nrows: int) -> None:
     )
 
 
-def ratio_bands(frame: pd.DataFrame, *, x: str, value: str = "n_ratio", by: str = "class") -> pd.DataFrame:
+def ratio_bands(
+    frame: pd.DataFrame, *, x: str, value: str = "n_ratio", by: str = "class", max_levels: int = 20
+) -> pd.DataFrame:
     """Median and 10 / 90 % quantiles of ``value`` per (``by``, ``x``), NaN ignored.
+
+    When ``x`` takes more than ``max_levels`` distinct values it is binned into
+    ``max_levels`` equal bins (labelled by their centres).
 
     Returns columns ``by, x, p10, p50, p90, count`` sorted by (``by``, ``x``).
     """
     vals = frame[[by, x, value]]
     vals = vals[np.isfinite(vals[value].to_numpy(dtype=float))]
+    depth = vals[x].to_numpy(dtype=float)
+    if np.unique(depth).size > max_levels:
+        # each item at its own stage (e.g. a water-surface window): bin the x axis so
+        # every point of the band summarises many items, labelled by the bin centre
+        edges = np.linspace(np.nanmin(depth), np.nanmax(depth), max_levels + 1)
+        which = np.clip(np.searchsorted(edges, depth, side="right") - 1, 0, max_levels - 1)
+        vals = vals.assign(**{x: 0.5 * (edges[which] + edges[which + 1])})
     grouped = vals.groupby([by, x], sort=True)[value]
     out = pd.DataFrame(
         {

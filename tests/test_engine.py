@@ -209,10 +209,10 @@ def test_existing_scheduler_equals_single_process(mesh, tmp_path):
 
 
 def test_unreachable_scheduler_is_a_user_error(mesh, tmp_path, monkeypatch):
-    import ntrans.engine as engine
+    import ntrans.cluster as cluster
     from ntrans.tables import build_tables
 
-    monkeypatch.setattr(engine, "SCHEDULER_TIMEOUT", "1s")
+    monkeypatch.setattr(cluster, "SCHEDULER_TIMEOUT", "1s")
     dem, cells = mesh
     with pytest.raises(InputError):
         build_tables(dem, cells, out=tmp_path / "out", stages="10", scheduler="tcp://127.0.0.1:9")
