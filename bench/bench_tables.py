@@ -317,7 +317,8 @@ def _agreement_lines(case: str, agreement: dict) -> list[str]:
 
 
 def run(sizes: list[float], n_stages: int, workers: int, pipelines: list[str],
-        keep_outputs: bool, timeout: float = 1800.0) -> dict:
+        keep_outputs: bool, timeout: float = 1800.0,
+        results_path: Path = CASES_DIR / "results.json") -> dict:
     results: dict = {"started": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
                      "python": sys.version.split()[0], "cpus": os.cpu_count(),
                      "stages": n_stages, "workers": workers, "cases": []}
@@ -399,8 +400,8 @@ def run(sizes: list[float], n_stages: int, workers: int, pipelines: list[str],
         if not keep_outputs:
             for name in pipelines:
                 shutil.rmtree(runs / name / "out", ignore_errors=True)
-        CASES_DIR.mkdir(parents=True, exist_ok=True)
-        (CASES_DIR / "results.json").write_text(json.dumps(results, indent=2, default=str))
+        results_path.parent.mkdir(parents=True, exist_ok=True)
+        results_path.write_text(json.dumps(results, indent=2, default=str))
     print("\n" + "=" * 100)
     print(f"stages per item: {n_stages}; workers for ntrans_workers: {workers}; "
           f"cpus: {os.cpu_count()}")
@@ -414,8 +415,8 @@ def run(sizes: list[float], n_stages: int, workers: int, pipelines: list[str],
     results["table"] = table
     results["agreement_text"] = all_agree
     results["finished"] = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
-    (CASES_DIR / "results.json").write_text(json.dumps(results, indent=2, default=str))
-    print(f"results: {CASES_DIR / 'results.json'}")
+    results_path.write_text(json.dumps(results, indent=2, default=str))
+    print(f"results: {results_path}")
     return results
 
 
@@ -435,6 +436,8 @@ def main() -> None:
                         help="keep each pipeline's output folder under the case's runs/")
     parser.add_argument("--timeout", type=float, default=1800.0,
                         help="seconds before a pipeline run is killed (default 1800)")
+    parser.add_argument("--results", type=Path, default=CASES_DIR / "results.json",
+                        help="where to write the results JSON (default bench/_cases/results.json)")
     parser.add_argument("--child", type=Path, help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.child is not None:
@@ -445,7 +448,8 @@ def main() -> None:
     unknown = sorted(set(pipelines) - set(ALL_PIPELINES))
     if unknown:
         parser.error(f"unknown pipelines {unknown}; choose from {ALL_PIPELINES}")
-    run(sizes, args.stages, args.workers, pipelines, args.keep_outputs, args.timeout)
+    run(sizes, args.stages, args.workers, pipelines, args.keep_outputs, args.timeout,
+        args.results)
 
 
 if __name__ == "__main__":

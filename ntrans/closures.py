@@ -254,7 +254,7 @@ def _strip_by_stations(seg: Segments, eta: np.ndarray, inv_n: np.ndarray) -> np.
     A rising segment contributes (3/8) ds/dz [(eta - zlo)+^(8/3) - (eta - zhi)+^(8/3)] / n,
     so the face total is a sum over stations i of C_i (eta - z_i)+^(8/3), with C_i the
     signed coefficients of the segments meeting there; level segments add
-    ds/n (eta - z)+^(5/3).  One power per station and stage instead of two per segment.
+    ds/n (eta - z_mean)+^(5/3).  One power per station and stage instead of two per segment.
     """
     n_faces, n_st = eta.shape
     dz = seg.zhi - seg.zlo
@@ -292,7 +292,7 @@ def _strip_by_stations(seg: Segments, eta: np.ndarray, inv_n: np.ndarray) -> np.
         for lo in range(0, lv.size, rows_per):
             k = lv[lo : lo + rows_per]
             f = seg.face[k]
-            h = np.maximum(eta[f] - seg.z0[k][:, None], 0.0)
+            h = np.maximum(eta[f] - 0.5 * (seg.z0 + seg.z1)[k][:, None], 0.0)
             v = _pow53(h) * (seg.ds[k] * inv_n[k])[:, None]
             acc += np.bincount(
                 (f[:, None] * n_st + cols).ravel(), weights=np.nan_to_num(v).ravel(), minlength=acc.size

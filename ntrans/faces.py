@@ -14,10 +14,13 @@ At a water-surface elevation (stage) eta, exactly for the piecewise-linear profi
 
 Method: on a segment rising by dz over ds, the wet length is a ramp in eta from the low
 end to the high end (slope ds/dz), so T is a sum of ramps started and stopped at
-breakpoints; A is its integral, a sum of quadratics.  Breakpoints are sorted per face,
-prefix sums of c, c*b, c*b^2 taken (b relative to the face's low point), and each
-(face, stage) is located by a vectorised binary search within its face.  Level segments
-(|dz| <= 1e-6 ds) are steps.  No loop per face or per station.
+breakpoints (one per station, the two adjacent segments' slopes added); A is its
+integral, a sum of quadratics.  Breakpoints are sorted per face (one argsort of a
+face-offset key, checked exactly), prefix sums of c, c*b, c*b^2 taken (b relative to the
+face's low point, against cancellation), and each (face, stage) located with one
+searchsorted plus an exact fix-up (stages equal to a breakpoint count it as dry).  Level
+segments (dz <= 1e-6 ds) are steps at their mean elevation.  Chunked over faces for
+memory; no loop per face or per station.
 """
 
 from __future__ import annotations
@@ -52,6 +55,8 @@ FACE_RULES: tuple[str, ...] = ("higher", "mean", "min", "profile_mean")
 
 #: a segment whose rise is at most this fraction of its length is treated as level
 LEVEL_RATIO = 1e-6
+#: segments per chunk of the breakpoint sums (bounds memory to a few hundred MB)
+_SEGMENTS_PER_CHUNK = 1_000_000
 
 
 @dataclass
@@ -338,8 +343,36 @@ def ramp_sums(
     (list of (n_faces, n_stages) arrays, integral or None).  NaN where the stage is NaN
     or the face has no valid segment.
     """
+    eta = _stage_matrix(stages, seg.n_faces)
+    n_seg = seg.face.size
+    if n_seg <= _SEGMENTS_PER_CHUNK:
+        return _ramp_sums_chunk(seg, weights, eta, integrate_first)
+    # chunks of whole faces (segments are grouped by face) to bound memory
+    cuts = np.searchsorted(seg.face, seg.face[np.arange(0, n_seg, _SEGMENTS_PER_CHUNK)[1:]])
+    bounds = np.unique(np.concatenate([[0], cuts, [n_seg]]))
+    out = [np.full(eta.shape, np.nan) for _ in weights]
+    integral = np.full(eta.shape, np.nan) if integrate_first else None
+    for lo, hi in zip(bounds[:-1], bounds[1:], strict=True):
+        f0, f1 = int(seg.face[lo]), int(seg.face[hi - 1]) + 1
+        s_lo = int(seg.start[lo])
+        sub = Segments(
+            seg.start[lo:hi] - s_lo, seg.face[lo:hi] - f0, seg.ds[lo:hi], seg.z0[lo:hi],
+            seg.z1[lo:hi], seg.dl[lo:hi], seg.low[f0:f1], f1 - f0,
+        )
+        vals, integ = _ramp_sums_chunk(
+            sub, [np.asarray(w)[lo:hi] for w in weights], eta[f0:f1], integrate_first
+        )
+        for acc, v in zip(out, vals, strict=True):
+            acc[f0:f1] = v
+        if integral is not None:
+            integral[f0:f1] = integ
+    return out, integral
+
+
+def _ramp_sums_chunk(
+    seg: Segments, weights: list[np.ndarray], eta: np.ndarray, integrate_first: bool
+) -> tuple[list[np.ndarray], np.ndarray | None]:
     n_faces = seg.n_faces
-    eta = _stage_matrix(stages, n_faces)
     n_st = eta.shape[1]
     zlo, zhi = seg.zlo, seg.zhi
     dz = zhi - zlo
@@ -347,8 +380,9 @@ def ramp_sums(
     low = seg.low
     base = np.where(np.isfinite(low), low, 0.0)
     # breakpoints at the stations: a ramp starts (+c) at its segment's low end and stops
-    # (-c) at its high end; a level segment steps (+w) at its start station.  The
-    # contributions of a station's two segments are added, one breakpoint per station.
+    # (-c) at its high end; the contributions of a station's two segments are added, one
+    # breakpoint per station.  A level segment steps (+w) at its mean elevation (one more
+    # breakpoint each).
     s0 = seg.start
     s1 = s0 + 1
     ns = int(s1.max()) + 1 if s0.size else 0
@@ -359,12 +393,15 @@ def ramp_sums(
     f_st[s0] = seg.face
     f_st[s1] = seg.face
     used = np.flatnonzero(f_st >= 0)
-    bp_face = f_st[used]
-    bp_val = z_st[used] - base[bp_face]
+    lev = np.flatnonzero(level)
+    n_used = used.size
+    bp_face = np.concatenate([f_st[used], seg.face[lev]])
+    bp_val = np.concatenate(
+        [z_st[used] - base[f_st[used]], 0.5 * (seg.z0 + seg.z1)[lev] - base[seg.face[lev]]]
+    )
     order, key_scale = _sort_by_face(bp_face, bp_val)
     b = bp_val[order]
     bf = bp_face[order]
-    st_sorted = used[order]  # station index of each sorted breakpoint
     faces_idx = np.arange(n_faces)
     face_start = np.searchsorted(bf, faces_idx, side="left")
     face_end = np.searchsorted(bf, faces_idx, side="right")
@@ -381,36 +418,49 @@ def ramp_sums(
     q_start = face_start[qf]
     pos = _fix_positions(pos, b, e_clip, q_start, face_end[qf])
 
-    def window(values: np.ndarray) -> np.ndarray:
-        pref = np.zeros(values.size + 1)
-        np.cumsum(values, out=pref[1:])
-        return pref[pos] - pref[q_start]
-
     with np.errstate(invalid="ignore", divide="ignore"):
         inv_dz = np.where(level, 0.0, 1.0 / np.where(level, 1.0, dz))
     up = np.where(seg.z1 > seg.z0, 1.0, -1.0)  # +1 where the start is the low end
-    results = []
-    integral = None
+    any_level = bool(level.any())
+    # columns per weight: c, c b, [d] (+ c b^2, [d b] for the integral of the first)
+    columns: list[np.ndarray] = []
+    layout: list[dict[str, int]] = []
     for i, w in enumerate(weights):
         w = np.asarray(w, dtype=np.float64)
         c_seg = w * inv_dz * up
-        c = (
-            np.bincount(s0, weights=c_seg, minlength=ns) - np.bincount(s1, weights=c_seg, minlength=ns)
-        )[st_sorted]
-        sc = window(c)
-        scb = window(c * b)
-        val = ev * sc - scb
-        d = None
-        if level.any():
-            d = np.bincount(s0[level], weights=w[level], minlength=ns)[st_sorted]
-            sd = window(d)
-            val += sd
-        results.append(val)
+        c_st = np.bincount(s0, weights=c_seg, minlength=ns)
+        c_st -= np.bincount(s1, weights=c_seg, minlength=ns)
+        c = np.concatenate([c_st[used], np.zeros(lev.size)])[order]
+        slot = {"c": len(columns)}
+        columns += [c, c * b]
+        if any_level:
+            d = np.concatenate([np.zeros(n_used), w[lev]])[order]
+            slot["d"] = len(columns)
+            columns.append(d)
         if i == 0 and integrate_first:
-            scb2 = window(c * b * b)
-            integral = 0.5 * (ev * ev * sc - 2.0 * ev * scb + scb2)
-            if d is not None:
-                integral += ev * sd - window(d * b)
+            slot["cb2"] = len(columns)
+            columns.append(c * b * b)
+            if any_level:
+                slot["db"] = len(columns)
+                columns.append(d * b)
+        layout.append(slot)
+    pref = np.zeros((b.size + 1, len(columns)))
+    np.cumsum(np.stack(columns, axis=1), axis=0, out=pref[1:])
+    del columns
+    sums = pref[pos] - pref[q_start]  # (n_queries, n_columns)
+    del pref
+    results = []
+    integral = None
+    for slot in layout:
+        sc, scb = sums[:, slot["c"]], sums[:, slot["c"] + 1]
+        val = ev * sc - scb
+        if "d" in slot:
+            val += sums[:, slot["d"]]
+        results.append(val)
+        if "cb2" in slot:
+            integral = 0.5 * (ev * ev * sc - 2.0 * ev * scb + sums[:, slot["cb2"]])
+            if "db" in slot:
+                integral += ev * sums[:, slot["d"]] - sums[:, slot["db"]]
     bad = np.isnan(ev) | ~np.isfinite(low)[qf]
     out = []
     for val in results:

@@ -246,3 +246,37 @@ def test_stage_table_properties(points, eta, delta):
     deep = face_stage_table(prof, np.array([10.0]))
     mean = face_profile_summary(prof)["mean_elevation"][0]
     assert deep["flow_area"][0, 0] == pytest.approx(station[-1] * (10.0 - mean), rel=1e-9)
+
+
+def test_chunked_sums_equal_one_pass(monkeypatch):
+    rng = np.random.default_rng(4)
+    counts = rng.integers(1, 9, 40)  # faces of 1..8 stations (1 = no segment)
+    face = np.repeat(np.arange(40), counts)
+    station = np.concatenate([np.cumsum(np.r_[0.0, rng.uniform(0.1, 1, c - 1)]) for c in counts])
+    z = rng.normal(0, 1, face.size)
+    z[::9] = np.nan
+    prof = Profiles(face, station, z, 40)
+    stages = rng.normal(0, 1, (40, 5))
+    whole = face_stage_table(prof, stages)
+    monkeypatch.setattr("ntrans.faces._SEGMENTS_PER_CHUNK", 7)
+    parts = face_stage_table(prof, stages)
+    for key in whole:  # same algebra in pieces (implementation check)
+        np.testing.assert_allclose(parts[key], whole[key], rtol=1e-12, atol=1e-12)
+
+
+def test_segment_index_and_midpoints():
+    lines = [shapely.LineString([(0, 0), (1, 0)]), shapely.LineString([(5, 5), (5, 6)])]
+    prof = sample_profiles(lines, np.zeros((8, 8)), Affine(1, 0, -1, 0, -1, 7), 0.5)
+    seg = prof.segment_index()
+    # two segments per face, none across the faces' junction (station 2 -> 3)
+    np.testing.assert_array_equal(seg, [0, 1, 3, 4])
+    mx, my = prof.segment_midpoints()
+    np.testing.assert_allclose(np.c_[mx, my], [[0.25, 0], [0.75, 0], [5, 5.25], [5, 5.75]])
+
+
+def test_vertical_units_factor_scales_only_the_rise():
+    prof = Profiles([0, 0], [0.0, 4.0], [0.0, 1.0], 1)
+    t = face_stage_table(prof, np.array([1.0]), z_to_xy=3.0)
+    # geometry identity: rise of 1 vertical unit = 3 horizontal units -> P = hypot(4, 3)
+    assert t["wetted_perimeter"][0, 0] == pytest.approx(5.0)
+    assert t["flow_area"][0, 0] == pytest.approx(2.0)  # horizontal x vertical units
