@@ -439,7 +439,14 @@ def _face_part(task, elevation, transform, settings, flat_z):
     flat_depth = flat["flat_depth"]
 
     conv = {}
-    for closure in ("flat", "lumped", "strip"):
+    with np.errstate(invalid="ignore"):
+        # n = 1 everywhere: the lumped closure is A R^(2/3) straight from the table
+        area = np.asarray(ft["flow_area"], dtype=float)[:, :n_st]
+        radius = np.asarray(ft["hydraulic_radius"], dtype=float)[:, :n_st]
+        no_terrain = ~(np.asarray(fsum["covered_fraction"], dtype=float) > 0)
+        conv["lumped"] = np.where(area > 0, area * np.cbrt(radius) ** 2, 0.0)
+        conv["lumped"][no_terrain] = np.nan  # never a fake zero for a face off the DEM
+    for closure in ("flat", "strip"):
         conv[closure] = np.asarray(
             face_conveyance(
                 prof,

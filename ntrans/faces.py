@@ -180,6 +180,36 @@ def profile_segments(
     return Segments(k, face, ds, z0, z1, dl, low, p.n_faces)
 
 
+def _grid_crossings(start: np.ndarray, delta: np.ndarray, mask: np.ndarray):
+    """Segments' parameters t in (0, 1) where ``start + t*delta`` crosses an integer."""
+    end = start + delta
+    lo, hi = np.minimum(start, end), np.maximum(start, end)
+    first = np.floor(lo) + 1.0
+    last = np.ceil(hi) - 1.0
+    count = np.where(mask & (delta != 0), np.maximum(last - first + 1.0, 0.0), 0.0)
+    count = count.astype(np.int64)
+    owner = np.repeat(np.arange(start.size), count)
+    k = np.arange(int(count.sum()), dtype=np.float64) - np.repeat(np.cumsum(count) - count, count)
+    k += first[owner]
+    return owner, (k - start[owner]) / delta[owner]
+
+
+def _add_grid_crossings(owner, t, vx, vy, dx, dy, same_next, transform):
+    """Merge the crossings of pixel-centre columns and rows into the stations."""
+    a, e = float(transform.a), float(transform.e)
+    col0 = (vx - float(transform.c)) / a - 0.5
+    row0 = (vy - float(transform.f)) / e - 0.5
+    own_c, t_c = _grid_crossings(col0, dx / a, same_next)
+    own_r, t_r = _grid_crossings(row0, dy / e, same_next)
+    owner = np.concatenate([owner, own_c, own_r])
+    t = np.concatenate([t, t_c, t_r])
+    order = np.lexsort((t, owner))
+    owner, t = owner[order], t[order]
+    keep = np.ones(owner.size, dtype=bool)
+    keep[1:] = (owner[1:] != owner[:-1]) | (t[1:] - t[:-1] > 1e-9)
+    return owner[keep], t[keep]
+
+
 def sample_profiles(
     lines: object,
     elevation: np.ndarray,
@@ -200,7 +230,8 @@ def sample_profiles(
         Transform of the window.
     spacing : float
         Largest distance between stations (CRS units, > 0); every vertex of a line is
-        a station too.  Use at most half a pixel.
+        a station too, and so is every crossing of a pixel-centre row or column (with
+        the default sampler), where the bilinear surface bends.  Use at most half a pixel.
     sampler : callable, optional
         ``sampler(elevation, transform, x, y) -> z``; default
         :func:`ntrans.terrain.sample_bilinear`.
@@ -258,6 +289,11 @@ def sample_profiles(
     dy = np.zeros(nv)
     dx[:-1] = np.where(same_next[:-1], vx[1:] - vx[:-1], 0.0)
     dy[:-1] = np.where(same_next[:-1], vy[1:] - vy[:-1], 0.0)
+    if sampler is None:
+        # Bilinear terrain is linear along a line only between the pixel-centre grid
+        # lines it crosses: add a station at every crossing so the piecewise-linear
+        # profile keeps every kink of the surface (narrow ditches, bank tops).
+        owner, t = _add_grid_crossings(owner, t, vx, vy, dx, dy, same_next, transform)
     x = vx[owner] + t * dx[owner]
     y = vy[owner] + t * dy[owner]
     station = cum[owner] + t * seg_len[owner]
