@@ -35,7 +35,17 @@ from typing import Literal
 import numpy as np
 
 from .errors import InputError
-from .faces import LEVEL_RATIO, Profiles, Segments, profile_segments, ramp_sums
+from .faces import (
+    LEVEL_RATIO,
+    Profiles,
+    Segments,
+    _breakpoints,
+    _chunks,
+    _queries,
+    _station_column,
+    profile_segments,
+    ramp_sums,
+)
 
 logger = logging.getLogger(__name__)
 
@@ -254,50 +264,54 @@ def _strip_by_stations(seg: Segments, eta: np.ndarray, inv_n: np.ndarray) -> np.
     A rising segment contributes (3/8) ds/dz [(eta - zlo)+^(8/3) - (eta - zhi)+^(8/3)] / n,
     so the face total is a sum over stations i of C_i (eta - z_i)+^(8/3), with C_i the
     signed coefficients of the segments meeting there; level segments add
-    ds/n (eta - z_mean)+^(5/3).  One power per station and stage instead of two per segment.
+    ds/n (eta - z_mean)+^(5/3).  The stations (and level means) are the breakpoints of
+    :func:`ntrans.faces.ramp_sums`, sorted by elevation within each face, so the wet ones
+    at a stage are a prefix: one power per *wet* station and stage, summed per
+    (face, stage) with ``np.add.reduceat``.
     """
     n_faces, n_st = eta.shape
-    dz = seg.zhi - seg.zlo
-    level = dz <= LEVEL_RATIO * seg.ds
-    s0 = seg.start
-    s1 = s0 + 1
-    ns = int(s1.max()) + 1 if s0.size else 0
-    with np.errstate(invalid="ignore", divide="ignore"):
-        coef = np.where(level, 0.0, 0.375 * seg.ds * inv_n / np.where(level, 1.0, dz))
-    up = np.where(seg.z1 > seg.z0, 1.0, -1.0)
-    c_st = np.bincount(s0, weights=coef * up, minlength=ns) - np.bincount(
-        s1, weights=coef * up, minlength=ns
-    )
-    z_st = np.zeros(ns)
-    z_st[s0] = seg.z0
-    z_st[s1] = seg.z1
-    f_st = np.full(ns, -1, dtype=np.int64)
-    f_st[s0] = seg.face
-    f_st[s1] = seg.face
-    used = np.flatnonzero((f_st >= 0) & (c_st != 0))
-    acc = np.zeros(n_faces * n_st)
-    cols = np.arange(n_st)
-    rows_per = max(1, _CHUNK // max(n_st, 1))
-    for lo in range(0, used.size, rows_per):
-        st = used[lo : lo + rows_per]
-        f = f_st[st]
-        x = np.maximum(eta[f] - z_st[st][:, None], 0.0)
-        x *= x
-        v = x * np.cbrt(x) * c_st[st][:, None]
-        acc += np.bincount(
-            (f[:, None] * n_st + cols).ravel(), weights=np.nan_to_num(v).ravel(), minlength=acc.size
-        )
-    if level.any():
-        lv = np.flatnonzero(level)
-        for lo in range(0, lv.size, rows_per):
-            k = lv[lo : lo + rows_per]
-            f = seg.face[k]
-            h = np.maximum(eta[f] - 0.5 * (seg.z0 + seg.z1)[k][:, None], 0.0)
-            v = _pow53(h) * (seg.ds[k] * inv_n[k])[:, None]
-            acc += np.bincount(
-                (f[:, None] * n_st + cols).ravel(), weights=np.nan_to_num(v).ravel(), minlength=acc.size
-            )
-    return np.maximum(acc.reshape(n_faces, n_st), 0.0)
+    out = np.zeros((n_faces, n_st))
+    for f0, f1, lo, hi, sub in _chunks(seg):
+        out[f0:f1] = _strip_chunk(sub, np.ascontiguousarray(eta[f0:f1]), inv_n[lo:hi])
+    return np.maximum(out, 0.0)
+
+
+def _strip_chunk(seg: Segments, eta: np.ndarray, inv_n: np.ndarray) -> np.ndarray:
+    bp = _breakpoints(seg)
+    q = _queries(seg, bp, eta)
+    b, ev, pos, q_start = bp["b"], q["ev"], q["pos"], q["q_start"]
+    ds_n = seg.ds * inv_n
+    c83 = _station_column(seg, bp, 0.375 * ds_n * bp["inv_dz_up"], None)
+    any_level = bool(bp["lev"].size)
+    if any_level:
+        c53 = _station_column(seg, bp, None, ds_n)
+        is_level = bp["order"] >= bp["n_used"]
+    count = pos - q_start  # wet breakpoints of each query
+    total = np.zeros(ev.size)
+    csum = np.cumsum(count)
+    # blocks of queries holding about _CHUNK wet pairs each
+    cuts = np.searchsorted(csum, np.arange(_CHUNK, int(csum[-1]) if csum.size else 0, _CHUNK))
+    bounds = np.unique(np.concatenate([[0], cuts + 1, [ev.size]]))
+    for q0, q1 in zip(bounds[:-1], bounds[1:], strict=True):
+        cnt = count[q0:q1]
+        wet = np.flatnonzero(cnt > 0)
+        if wet.size == 0:
+            continue
+        cnt = cnt[wet]
+        offs = np.cumsum(cnt) - cnt
+        n_pairs = int(offs[-1] + cnt[-1])
+        k = np.repeat(q_start[q0:q1][wet] - offs, cnt)
+        k += np.arange(n_pairs)
+        x = np.repeat(ev[q0:q1][wet], cnt)
+        x -= b[k]
+        v = np.power(x, 8.0 / 3.0)
+        v *= c83[k]
+        if any_level:
+            lv = np.flatnonzero(is_level[k])
+            if lv.size:
+                v[lv] += c53[k[lv]] * np.power(x[lv], 5.0 / 3.0)
+        total[q0 + wet] = np.add.reduceat(v, offs)
+    return total.reshape(eta.shape)
 
 
 def _sum_per_face(seg: Segments, eta: np.ndarray, kernel, inv_n: np.ndarray) -> np.ndarray:
@@ -401,7 +415,8 @@ def face_conveyance(
         length = np.asarray(profiles.length, dtype=np.float64)
         return k / n_f[:, None] * length[:, None] * h ** (5.0 / 3.0)
 
-    seg = profile_segments(profiles, z_to_xy=z_to_xy, keep=np.isfinite(n_st_all))
+    finite = np.isfinite(n_st_all)
+    seg = profile_segments(profiles, z_to_xy=z_to_xy, keep=None if finite.all() else finite)
     nseg = n_st_all[seg.start]
     no_terrain = ~np.isfinite(seg.low)[:, None] | np.isnan(eta)
 

@@ -447,10 +447,12 @@ def _face_part(task, elevation, transform, settings, flat_z):
         conv["lumped"] = np.where(area > 0, area * np.cbrt(radius) ** 2, 0.0)
         conv["lumped"][no_terrain] = np.nan  # never a fake zero for a face off the DEM
     for closure in ("flat", "strip"):
+        # strip takes the table's stage matrix (reference column dropped after): the
+        # profile's segments, their sort and the stage lookup are then shared
         conv[closure] = np.asarray(
             face_conveyance(
                 prof,
-                stages,
+                stages if closure == "flat" else stages_ext,
                 closure=closure,
                 n_segment=None,  # n = 1 everywhere: geometric conveyance
                 flat_bed=flat_bed if closure == "flat" else None,
@@ -458,7 +460,7 @@ def _face_part(task, elevation, transform, settings, flat_z):
                 z_to_xy=settings.z_to_xy,
             ),
             dtype=float,
-        ).reshape(n_f, n_st)
+        )[:, :n_st].reshape(n_f, n_st)
 
     gb = np.where(lb >= 0, np.concatenate([tile.cells, tile.halo])[np.where(lb >= 0, lb, 0)], -1)
     ga = np.concatenate([tile.cells, tile.halo])[la] if n_f else np.empty(0, dtype=np.int64)

@@ -15,12 +15,17 @@ At a water-surface elevation (stage) eta, exactly for the piecewise-linear profi
 Method: on a segment rising by dz over ds, the wet length is a ramp in eta from the low
 end to the high end (slope ds/dz), so T is a sum of ramps started and stopped at
 breakpoints (one per station, the two adjacent segments' slopes added); A is its
-integral, a sum of quadratics.  Breakpoints are sorted per face (one argsort of a
-face-offset key, checked exactly), prefix sums of c, c*b, c*b^2 taken (b relative to the
-face's low point, against cancellation), and each (face, stage) located with one
-searchsorted plus an exact fix-up (stages equal to a breakpoint count it as dry).  Level
-segments (dz <= 1e-6 ds) are steps at their mean elevation.  Chunked over faces for
-memory; no loop per face or per station.
+integral, a sum of quadratics.  Breakpoints are sorted per face (one sort of packed
+uint64 keys, repaired exactly where quantisation tied), prefix sums of c, c*b, c*b^2
+taken (b relative to the face's low point, against cancellation), and each (face, stage)
+located with one searchsorted plus an exact fix-up (stages equal to a breakpoint count it
+as dry).  Level segments (dz <= 1e-6 ds) are steps at their mean elevation.  Chunked over
+faces for memory; no loop per face or per station.
+
+Sharing: :func:`profile_segments` without ``keep`` is cached on the :class:`Profiles`
+(per ``z_to_xy``), and the breakpoint sort and the stage lookup are cached on the
+:class:`Segments`, so the summary, the table and the conveyances of one profile set
+sort once (treat a ``Profiles`` as read-only once used).
 """
 
 from __future__ import annotations
@@ -95,6 +100,7 @@ class Profiles:
     x: np.ndarray | None = None
     y: np.ndarray | None = None
     length: np.ndarray | None = field(default=None)
+    _segments: dict = field(default_factory=dict, init=False, repr=False, compare=False)
 
     def __post_init__(self) -> None:
         self.face = np.asarray(self.face, dtype=np.int64).ravel()
@@ -114,6 +120,11 @@ class Profiles:
             self.length = length
         else:
             self.length = np.asarray(self.length, dtype=np.float64).ravel()
+
+    def __getstate__(self) -> dict:
+        state = dict(self.__dict__)
+        state["_segments"] = {}  # caches are not shipped to other processes
+        return state
 
     @property
     def n_stations(self) -> int:
@@ -149,6 +160,12 @@ class Segments:
     dl: np.ndarray
     low: np.ndarray
     n_faces: int
+    _cache: dict = field(default_factory=dict, repr=False, compare=False)
+
+    def __getstate__(self) -> dict:
+        state = dict(self.__dict__)
+        state["_cache"] = {}  # caches are not shipped to other processes
+        return state
 
     @property
     def zlo(self) -> np.ndarray:
@@ -162,8 +179,23 @@ class Segments:
 def profile_segments(
     profiles: Profiles, *, z_to_xy: float = 1.0, keep: np.ndarray | None = None
 ) -> Segments:
-    """Valid segments of ``profiles``; ``keep`` (per start station) drops more of them."""
+    """Valid segments of ``profiles``; ``keep`` (per start station) drops more of them.
+
+    Without ``keep`` the result is cached on ``profiles`` (per ``z_to_xy``), so the
+    table, the summary and the conveyances share one set of segments and one sort.
+    """
     p = profiles
+    if keep is None:
+        cached = p._segments.get(float(z_to_xy))
+        if cached is not None:
+            return cached
+        seg = _profile_segments(p, z_to_xy, None)
+        p._segments[float(z_to_xy)] = seg
+        return seg
+    return _profile_segments(p, z_to_xy, keep)
+
+
+def _profile_segments(p: Profiles, z_to_xy: float, keep: np.ndarray | None) -> Segments:
     k = p.segment_index()
     z0, z1 = p.z[k], p.z[k + 1]
     ok = np.isfinite(z0) & np.isfinite(z1)
@@ -181,7 +213,10 @@ def profile_segments(
 
 
 def _grid_crossings(start: np.ndarray, delta: np.ndarray, mask: np.ndarray):
-    """Segments' parameters t in (0, 1) where ``start + t*delta`` crosses an integer."""
+    """Segments' parameters t in (0, 1) where ``start + t*delta`` crosses an integer.
+
+    Returns ``(owner, t)`` sorted by owner, then t.
+    """
     end = start + delta
     lo, hi = np.minimum(start, end), np.maximum(start, end)
     first = np.floor(lo) + 1.0
@@ -189,9 +224,24 @@ def _grid_crossings(start: np.ndarray, delta: np.ndarray, mask: np.ndarray):
     count = np.where(mask & (delta != 0), np.maximum(last - first + 1.0, 0.0), 0.0)
     count = count.astype(np.int64)
     owner = np.repeat(np.arange(start.size), count)
-    k = np.arange(int(count.sum()), dtype=np.float64) - np.repeat(np.cumsum(count) - count, count)
-    k += first[owner]
+    j = np.arange(int(count.sum()), dtype=np.float64) - np.repeat(np.cumsum(count) - count, count)
+    # crossings in increasing t: up from the first integer when rising, down from the last
+    # when falling
+    rising = delta[owner] > 0
+    k = np.where(rising, first[owner] + j, last[owner] - j)
     return owner, (k - start[owner]) / delta[owner]
+
+
+def _merge_sorted_runs(owner: np.ndarray, t: np.ndarray, nv: int) -> np.ndarray:
+    """Order sorting (owner, t) when the arrays are a few runs each sorted that way."""
+    owner_bits = max(int(nv).bit_length(), 1)
+    t_bits = min(63 - owner_bits, 52)
+    if t_bits < 24:
+        return np.lexsort((t, owner))
+    key = owner.astype(np.uint64) << np.uint64(t_bits)
+    key |= np.floor(np.clip(t, 0.0, 1.0) * float((1 << t_bits) - 1)).astype(np.uint64)
+    # ties of the quantised t are closer than the 1e-9 merge distance: any order is fine
+    return np.argsort(key, kind="stable")  # merges the sorted runs
 
 
 def _add_grid_crossings(owner, t, vx, vy, dx, dy, same_next, transform):
@@ -203,10 +253,10 @@ def _add_grid_crossings(owner, t, vx, vy, dx, dy, same_next, transform):
     own_r, t_r = _grid_crossings(row0, dy / e, same_next)
     owner = np.concatenate([owner, own_c, own_r])
     t = np.concatenate([t, t_c, t_r])
-    order = np.lexsort((t, owner))
+    order = _merge_sorted_runs(owner, t, vx.size)
     owner, t = owner[order], t[order]
     keep = np.ones(owner.size, dtype=bool)
-    keep[1:] = (owner[1:] != owner[:-1]) | (t[1:] - t[:-1] > 1e-9)
+    keep[1:] = (owner[1:] != owner[:-1]) | (np.abs(t[1:] - t[:-1]) > 1e-9)
     return owner[keep], t[keep]
 
 
@@ -318,40 +368,136 @@ def _stage_matrix(stages: np.ndarray, n_faces: int) -> np.ndarray:
     return s
 
 
-def _sort_by_face(face: np.ndarray, value: np.ndarray) -> tuple[np.ndarray, float]:
-    """Order sorting by (face, value) exactly; also the key scale used (> 2 x max value + 3).
-
-    Fast path: one argsort of ``face * scale + value``; if rounding left two values of a
-    face out of order, falls back to an exact value sort followed by stable 16-bit radix
-    passes on the face index.
-    """
-    vmax = float(np.max(value)) if value.size else 0.0
-    scale = 2.0 * max(vmax, 0.0) + 4.0
-    order = np.argsort(face * scale + value)
-    f, v = face[order], value[order]
-    if np.any((f[1:] == f[:-1]) & (v[1:] < v[:-1])) or np.any(f[1:] < f[:-1]):
-        order = np.argsort(value, kind="stable")
-        for shift in (0, 16, 32, 48):
-            digit = ((face[order] >> shift) & 0xFFFF).astype(np.uint16)
-            if shift and not digit.any():
-                break
-            order = order[np.argsort(digit, kind="stable")]
-    return order, scale
-
-
 def _fix_positions(
     pos: np.ndarray, b: np.ndarray, e: np.ndarray, start: np.ndarray, end: np.ndarray
 ) -> np.ndarray:
     """Make ``pos`` the exact count position: b[start:pos] < e <= b[pos:end]."""
     pos = np.clip(pos, start, end)
     n = b.size
+    if n == 0:
+        return pos
     for _ in range(64):
-        down = (pos > start) & (b[np.clip(pos - 1, 0, max(n - 1, 0))] >= e) if n else pos < 0
-        up = (pos < end) & (b[np.clip(pos, 0, max(n - 1, 0))] < e) if n else pos < 0
+        down = (pos > start) & (b[np.clip(pos - 1, 0, n - 1)] >= e)
+        up = (pos < end) & (b[np.clip(pos, 0, n - 1)] < e)
         if not (down.any() or up.any()):
             break
         pos = pos - down + up
     return pos
+
+
+def _chunks(seg: Segments) -> list[tuple[int, int, int, int, Segments]]:
+    """Whole-face chunks of ``seg`` as ``(f0, f1, lo, hi, sub)`` (cached on ``seg``)."""
+    cached = seg._cache.get("chunks")
+    if cached is not None:
+        return cached
+    n_seg = seg.face.size
+    if n_seg <= _SEGMENTS_PER_CHUNK:
+        out = [(0, seg.n_faces, 0, n_seg, seg)]
+    else:
+        cuts = np.searchsorted(seg.face, seg.face[np.arange(0, n_seg, _SEGMENTS_PER_CHUNK)[1:]])
+        bounds = np.unique(np.concatenate([[0], cuts, [n_seg]]))
+        out = []
+        for lo, hi in zip(bounds[:-1], bounds[1:], strict=True):
+            lo, hi = int(lo), int(hi)
+            f0, f1 = int(seg.face[lo]), int(seg.face[hi - 1]) + 1
+            s_lo = int(seg.start[lo])
+            sub = Segments(
+                seg.start[lo:hi] - s_lo, seg.face[lo:hi] - f0, seg.ds[lo:hi], seg.z0[lo:hi],
+                seg.z1[lo:hi], seg.dl[lo:hi], seg.low[f0:f1], f1 - f0,
+            )
+            out.append((f0, f1, lo, hi, sub))
+    seg._cache["chunks"] = out
+    return out
+
+
+def _breakpoints(seg: Segments) -> dict[str, np.ndarray]:
+    """Breakpoints of ``seg`` sorted by (face, elevation), cached on ``seg``.
+
+    One breakpoint per used station (where ramps start and stop) plus one per level
+    segment (a step at its mean elevation); values relative to the face's low point.
+    """
+    bp = seg._cache.get("bp")
+    if bp is not None:
+        return bp
+    from .cells import _sort_by_item_z
+
+    n_faces = seg.n_faces
+    dz = np.abs(seg.z1 - seg.z0)
+    level = dz <= LEVEL_RATIO * seg.ds
+    low = seg.low
+    base = np.where(np.isfinite(low), low, 0.0)
+    s0 = seg.start
+    s1 = s0 + 1
+    ns = int(s1.max()) + 1 if s0.size else 0
+    z_st = np.zeros(ns)
+    z_st[s0] = seg.z0
+    z_st[s1] = seg.z1
+    f_st = np.full(ns, -1, dtype=np.int64)
+    f_st[s0] = seg.face
+    f_st[s1] = seg.face
+    used = np.flatnonzero(f_st >= 0)
+    lev = np.flatnonzero(level)
+    bp_face = np.concatenate([f_st[used], seg.face[lev]])
+    bp_val = np.concatenate(
+        [z_st[used] - base[f_st[used]], 0.5 * (seg.z0[lev] + seg.z1[lev]) - base[seg.face[lev]]]
+    )
+    order, bf, b = _sort_by_item_z(bp_face, bp_val, max(n_faces, 1))
+    faces_idx = np.arange(n_faces)
+    face_start = np.searchsorted(bf, faces_idx, side="left")
+    face_end = np.searchsorted(bf, faces_idx, side="right")
+    relief = np.zeros(n_faces)
+    has = face_end > face_start
+    relief[has] = b[face_end[has] - 1]
+    key_scale = 2.0 * max(float(relief.max()) if relief.size else 0.0, 0.0) + 4.0
+    with np.errstate(invalid="ignore", divide="ignore"):
+        # +1/dz where the start is the low end, -1/dz where it is the high end, 0 level
+        inv_dz_up = np.where(level, 0.0, np.sign(seg.z1 - seg.z0) / np.where(level, 1.0, dz))
+    bp = {
+        "b": b, "bf": bf, "order": order, "used": used, "lev": lev, "level": level,
+        "n_used": used.size, "ns": ns, "base": base, "face_start": face_start,
+        "face_end": face_end, "relief": relief, "key": bf * key_scale + b,
+        "key_scale": key_scale, "inv_dz_up": inv_dz_up,
+    }
+    seg._cache["bp"] = bp
+    return bp
+
+
+def _station_column(seg: Segments, bp: dict, ramp: np.ndarray | None, step: np.ndarray | None) -> np.ndarray:
+    """One value per sorted breakpoint: the change of ramp rate at each station (``ramp``
+    per segment, added at its start, subtracted at its end) or, with ``step``, the
+    per-segment step at the level breakpoints (0 elsewhere)."""
+    lev = bp["lev"]
+    if step is not None:
+        head = np.zeros(bp["n_used"])
+        return np.concatenate([head, np.asarray(step, dtype=np.float64)[lev]])[bp["order"]]
+    ns = bp["ns"]
+    c_st = np.bincount(seg.start, weights=ramp, minlength=ns)
+    c_st -= np.bincount(seg.start + 1, weights=ramp, minlength=ns)
+    return np.concatenate([c_st[bp["used"]], np.zeros(lev.size)])[bp["order"]]
+
+
+def _queries(seg: Segments, bp: dict, eta: np.ndarray) -> dict[str, np.ndarray]:
+    """Per (face, stage) query: stage above the low point ``ev`` and the sorted
+    breakpoint range ``[q_start, pos)`` strictly below it (cached for equal stages)."""
+    cached = seg._cache.get("q")
+    if cached is not None:
+        eta_c, q = cached
+        if eta_c.shape == eta.shape and np.array_equal(eta_c, eta, equal_nan=True):
+            return q
+    n_faces, n_st = eta.shape
+    base = bp["base"]
+    e = eta - base[:, None]
+    ev = e.ravel()
+    qf = np.repeat(np.arange(n_faces), n_st)
+    b = bp["b"]
+    e_clip = np.clip(np.where(np.isnan(ev), -1.0, ev), -1.0, bp["relief"][qf] + 1.0)
+    ks = bp["key_scale"]
+    pos = np.searchsorted(bp["key"], qf * ks + e_clip, side="left")
+    q_start = bp["face_start"][qf]
+    pos = _fix_positions(pos, b, e_clip, q_start, bp["face_end"][qf])
+    q = {"ev": ev, "qf": qf, "pos": pos, "q_start": q_start}
+    seg._cache["q"] = (np.array(eta, copy=True), q)
+    return q
 
 
 def ramp_sums(
@@ -380,21 +526,12 @@ def ramp_sums(
     or the face has no valid segment.
     """
     eta = _stage_matrix(stages, seg.n_faces)
-    n_seg = seg.face.size
-    if n_seg <= _SEGMENTS_PER_CHUNK:
+    chunks = _chunks(seg)
+    if len(chunks) == 1:
         return _ramp_sums_chunk(seg, weights, eta, integrate_first)
-    # chunks of whole faces (segments are grouped by face) to bound memory
-    cuts = np.searchsorted(seg.face, seg.face[np.arange(0, n_seg, _SEGMENTS_PER_CHUNK)[1:]])
-    bounds = np.unique(np.concatenate([[0], cuts, [n_seg]]))
     out = [np.full(eta.shape, np.nan) for _ in weights]
     integral = np.full(eta.shape, np.nan) if integrate_first else None
-    for lo, hi in zip(bounds[:-1], bounds[1:], strict=True):
-        f0, f1 = int(seg.face[lo]), int(seg.face[hi - 1]) + 1
-        s_lo = int(seg.start[lo])
-        sub = Segments(
-            seg.start[lo:hi] - s_lo, seg.face[lo:hi] - f0, seg.ds[lo:hi], seg.z0[lo:hi],
-            seg.z1[lo:hi], seg.dl[lo:hi], seg.low[f0:f1], f1 - f0,
-        )
+    for f0, f1, lo, hi, sub in chunks:
         vals, integ = _ramp_sums_chunk(
             sub, [np.asarray(w)[lo:hi] for w in weights], eta[f0:f1], integrate_first
         )
@@ -408,96 +545,49 @@ def ramp_sums(
 def _ramp_sums_chunk(
     seg: Segments, weights: list[np.ndarray], eta: np.ndarray, integrate_first: bool
 ) -> tuple[list[np.ndarray], np.ndarray | None]:
-    n_faces = seg.n_faces
-    n_st = eta.shape[1]
-    zlo, zhi = seg.zlo, seg.zhi
-    dz = zhi - zlo
-    level = dz <= LEVEL_RATIO * seg.ds
-    low = seg.low
-    base = np.where(np.isfinite(low), low, 0.0)
     # breakpoints at the stations: a ramp starts (+c) at its segment's low end and stops
     # (-c) at its high end; the contributions of a station's two segments are added, one
     # breakpoint per station.  A level segment steps (+w) at its mean elevation (one more
-    # breakpoint each).
-    s0 = seg.start
-    s1 = s0 + 1
-    ns = int(s1.max()) + 1 if s0.size else 0
-    z_st = np.zeros(ns)
-    z_st[s0] = seg.z0
-    z_st[s1] = seg.z1
-    f_st = np.full(ns, -1, dtype=np.int64)
-    f_st[s0] = seg.face
-    f_st[s1] = seg.face
-    used = np.flatnonzero(f_st >= 0)
-    lev = np.flatnonzero(level)
-    n_used = used.size
-    bp_face = np.concatenate([f_st[used], seg.face[lev]])
-    bp_val = np.concatenate(
-        [z_st[used] - base[f_st[used]], 0.5 * (seg.z0 + seg.z1)[lev] - base[seg.face[lev]]]
-    )
-    order, key_scale = _sort_by_face(bp_face, bp_val)
-    b = bp_val[order]
-    bf = bp_face[order]
-    faces_idx = np.arange(n_faces)
-    face_start = np.searchsorted(bf, faces_idx, side="left")
-    face_end = np.searchsorted(bf, faces_idx, side="right")
+    # breakpoint each).  Sorted once per segment set (cached), located per stage matrix.
+    n_faces, n_st = eta.shape
+    bp = _breakpoints(seg)
+    q = _queries(seg, bp, eta)
+    b, ev, pos, q_start = bp["b"], q["ev"], q["pos"], q["q_start"]
+    any_level = bool(bp["lev"].size)
 
-    # per query: number of its face's breakpoints strictly below the stage
-    e = eta - base[:, None]
-    qf = np.repeat(faces_idx, n_st)
-    ev = e.ravel()
-    relief = np.zeros(n_faces)
-    has = face_end > face_start
-    relief[has] = b[face_end[has] - 1]
-    e_clip = np.clip(np.where(np.isnan(ev), -1.0, ev), -1.0, relief[qf] + 1.0)
-    pos = np.searchsorted(bf * key_scale + b, qf * key_scale + e_clip, side="left")
-    q_start = face_start[qf]
-    pos = _fix_positions(pos, b, e_clip, q_start, face_end[qf])
+    pref = np.empty(b.size + 1)
+    pref[0] = 0.0
 
-    with np.errstate(invalid="ignore", divide="ignore"):
-        inv_dz = np.where(level, 0.0, 1.0 / np.where(level, 1.0, dz))
-    up = np.where(seg.z1 > seg.z0, 1.0, -1.0)  # +1 where the start is the low end
-    any_level = bool(level.any())
-    # columns per weight: c, c b, [d] (+ c b^2, [d b] for the integral of the first)
-    columns: list[np.ndarray] = []
-    layout: list[dict[str, int]] = []
-    for i, w in enumerate(weights):
-        w = np.asarray(w, dtype=np.float64)
-        c_seg = w * inv_dz * up
-        c_st = np.bincount(s0, weights=c_seg, minlength=ns)
-        c_st -= np.bincount(s1, weights=c_seg, minlength=ns)
-        c = np.concatenate([c_st[used], np.zeros(lev.size)])[order]
-        slot = {"c": len(columns)}
-        columns += [c, c * b]
-        if any_level:
-            d = np.concatenate([np.zeros(n_used), w[lev]])[order]
-            slot["d"] = len(columns)
-            columns.append(d)
-        if i == 0 and integrate_first:
-            slot["cb2"] = len(columns)
-            columns.append(c * b * b)
-            if any_level:
-                slot["db"] = len(columns)
-                columns.append(d * b)
-        layout.append(slot)
-    pref = np.zeros((b.size + 1, len(columns)))
-    np.cumsum(np.stack(columns, axis=1), axis=0, out=pref[1:])
-    del columns
-    sums = pref[pos] - pref[q_start]  # (n_queries, n_columns)
-    del pref
+    def window_sum(column: np.ndarray) -> np.ndarray:
+        np.cumsum(column, out=pref[1:])
+        return pref[pos] - pref[q_start]
+
     results = []
     integral = None
-    for slot in layout:
-        sc, scb = sums[:, slot["c"]], sums[:, slot["c"] + 1]
-        val = ev * sc - scb
-        if "d" in slot:
-            val += sums[:, slot["d"]]
+    for i, w in enumerate(weights):
+        w = np.asarray(w, dtype=np.float64)
+        c = _station_column(seg, bp, w * bp["inv_dz_up"], None)
+        sc = window_sum(c)
+        cb = c * b
+        scb = window_sum(cb)
+        val = ev * sc
+        val -= scb
+        if any_level:
+            d = _station_column(seg, bp, None, w)
+            sd = window_sum(d)
+            val += sd
         results.append(val)
-        if "cb2" in slot:
-            integral = 0.5 * (ev * ev * sc - 2.0 * ev * scb + sums[:, slot["cb2"]])
-            if "db" in slot:
-                integral += ev * sums[:, slot["d"]] - sums[:, slot["db"]]
-    bad = np.isnan(ev) | ~np.isfinite(low)[qf]
+        if i == 0 and integrate_first:
+            cb *= b
+            integral = ev * ev * sc
+            integral -= 2.0 * ev * scb
+            integral += window_sum(cb)
+            integral *= 0.5
+            if any_level:
+                integral += ev * sd
+                d *= b
+                integral -= window_sum(d)
+    bad = np.isnan(ev) | ~np.isfinite(seg.low)[q["qf"]]
     out = []
     for val in results:
         val = np.maximum(val, 0.0)

@@ -13,8 +13,12 @@ taken from one of the two cell boundaries (chosen by the cells' centroids, so it
 depend on the input order).
 
 Method (vectorised over cell pairs with shapely 2): candidate pairs from an STRtree
-``dwithin`` query; for each ordered pair (p, q), the part of p's boundary inside the
-buffer of q, merged into lines and split into connected parts; the ``snap_tolerance``
+``dwithin`` query.  Pairs of *conforming* cells (every ring edge shared exactly, same two
+vertices, with one other cell, and every neighbour within tolerance sharing such an
+edge) take their shared border straight from the matched edges, chained in numpy (the
+common case for generated meshes, and much cheaper).  For every other pair (p, q), the
+part of p's boundary inside the buffer of q, merged into lines and split into connected
+parts; the ``snap_tolerance``
 over-reach at each open end (where p's boundary leaves q's buffer) is trimmed off in
 numpy; pieces shorter than ``3 * snap_tolerance`` (corner contacts) are dropped.  A
 cell's boundary faces are its boundary minus its shared parts.
@@ -251,6 +255,132 @@ def _shared_parts(
     return parts, p[row], q[row]
 
 
+def _exact_shared(
+    geoms: np.ndarray, p: np.ndarray, q: np.ndarray, rank: np.ndarray, min_length: float
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Shared borders of conforming neighbours, found by matching identical edges.
+
+    A cell is *conforming* when every edge of its rings is also an edge (same two
+    vertices, exactly) of exactly one other cell, it has no zero-length edge, and every
+    neighbour within the snap tolerance shares at least one such edge with it (so no
+    corner contact, gap or sliver).  For a pair of conforming cells the shared border is
+    exactly the chain of their common edges, which is what the buffer intersection
+    returns for them; it is taken from the boundary of the cell first in centroid order.
+    Returns ``(lines, cell p, cell q, handled)``, ``handled`` a mask over the pairs.
+    """
+    n_cells = geoms.size
+    handled = np.zeros(p.size, dtype=bool)
+    none = (np.empty(0, dtype=object), np.empty(0, dtype=np.int64), np.empty(0, dtype=np.int64))
+    parts, part_cell = shapely.get_parts(geoms, return_index=True)
+    rings, ring_part = shapely.get_rings(parts, return_index=True)
+    if rings.size == 0:
+        return (*none, handled)
+    ring_cell = part_cell[ring_part].astype(np.int64)
+    coords, cring = shapely.get_coordinates(rings, return_index=True)
+    cring = cring.astype(np.int64)
+    nc = coords.shape[0]
+    e = np.flatnonzero(cring[1:] == cring[:-1])  # edge k: coordinate k -> k + 1
+    ecell = ring_cell[cring[e]]
+    zero = (coords[e, 0] == coords[e + 1, 0]) & (coords[e, 1] == coords[e + 1, 1])
+    bad_cell = np.zeros(n_cells, dtype=bool)
+    bad_cell[ecell[zero]] = True
+    _, vid = np.unique(coords[:, 0] + 1j * coords[:, 1], return_inverse=True)
+    vid = vid.astype(np.int64).ravel()
+    v0, v1 = vid[e], vid[e + 1]
+    key = np.minimum(v0, v1) * np.int64(nc) + np.maximum(v0, v1)
+    order = np.argsort(key, kind="stable")
+    ks = key[order]
+    new = np.ones(ks.size, dtype=bool)
+    new[1:] = ks[1:] != ks[:-1]
+    gid = np.cumsum(new) - 1
+    gsize = np.bincount(gid)
+    size = gsize[gid]
+    # orphan edges (mesh boundary, unmatched vertices) or edges used more than twice
+    bad_cell[ecell[order[size != 2]]] = True
+    pair_first = np.flatnonzero(new & (size == 2))
+    ea, eb = order[pair_first], order[pair_first + 1]
+    ca, cb = ecell[ea], ecell[eb]
+    bad_cell[ca[ca == cb]] = True
+    # every tolerance neighbour must share an exact edge
+    lo, hi = np.minimum(ca, cb), np.maximum(ca, cb)
+    adj = np.unique(lo * np.int64(n_cells) + hi)
+    pk = np.minimum(p, q) * np.int64(n_cells) + np.maximum(p, q)
+    pos = np.clip(np.searchsorted(adj, pk), 0, max(adj.size - 1, 0))
+    matched = (adj[pos] == pk) if adj.size else np.zeros(p.size, dtype=bool)
+    bad_cell[p[~matched]] = True
+    bad_cell[q[~matched]] = True
+    good = ~bad_cell
+    handled = good[p] & good[q]
+    keep = good[ca] & good[cb] & (ca != cb)
+    ea, eb, ca, cb = ea[keep], eb[keep], ca[keep], cb[keep]
+    if ea.size == 0:
+        return (*none, handled)
+    # the edge of the owner (first in centroid order), labelled with the partner
+    a_owns = rank[ca] < rank[cb]
+    k = e[np.where(a_owns, ea, eb)]
+    owner = np.where(a_owns, ca, cb)
+    partner = np.where(a_owns, cb, ca)
+    o = np.argsort(partner * np.int64(nc) + k, kind="stable")
+    k, owner, partner = k[o], owner[o], partner[o]
+    start_run = np.ones(k.size, dtype=bool)
+    start_run[1:] = (partner[1:] != partner[:-1]) | (k[1:] != k[:-1] + 1)
+    run = np.cumsum(start_run) - 1
+    n_run = int(run[-1]) + 1
+    run_first = k[start_run]
+    run_last = k[np.r_[np.flatnonzero(start_run)[1:] - 1, k.size - 1]]
+    # a run through the ring's closing vertex continues at the ring's first edge
+    ring_start = np.searchsorted(cring, np.arange(rings.size), side="left")
+    ring_last_edge = np.searchsorted(cring, np.arange(rings.size), side="right") - 2
+    r_ring = cring[run_first]
+    r_partner = partner[start_run]
+    at_end = run_last == ring_last_edge[r_ring]
+    at_start = run_first == ring_start[r_ring]
+    sort_k = k.astype(np.float64)
+    if np.any(at_end & ~at_start):
+        # pair each ring-end run with the ring-start run of the same partner and ring
+        ends = np.flatnonzero(at_end & ~at_start)
+        starts = np.flatnonzero(at_start & ~at_end)
+        skey = r_ring[starts] * np.int64(n_cells) + r_partner[starts]
+        so = np.argsort(skey)
+        ekey = r_ring[ends] * np.int64(n_cells) + r_partner[ends]
+        j = np.clip(np.searchsorted(skey[so], ekey), 0, max(starts.size - 1, 0))
+        ok = starts.size > 0
+        if ok:
+            hit = skey[so][j] == ekey
+            src = starts[so][j[hit]]
+            dst = ends[hit]
+            remap = np.arange(n_run)
+            remap[src] = dst
+            moved = np.isin(run, src)
+            sort_k[moved] += float(nc)  # after the end run's edges
+            run = remap[run]
+    o = np.lexsort((sort_k, run))
+    k, run, owner, partner = k[o], run[o], owner[o], partner[o]
+    _, run = np.unique(run, return_inverse=True)
+    run = run.ravel()
+    last_of_run = np.r_[run[1:] != run[:-1], True]
+    # vertices: each edge's start, plus the end of the run's last edge
+    rep = 1 + last_of_run.astype(np.int64)
+    idx_v = np.repeat(k, rep)
+    extra = np.cumsum(rep) - 1  # position of the appended end vertex
+    idx_v[extra[last_of_run]] = k[last_of_run] + 1
+    lines = shapely.linestrings(coords[idx_v], indices=np.repeat(run, rep))
+    first = np.r_[True, run[1:] != run[:-1]]
+    r_owner, r_partner = owner[first], partner[first]
+    # short shared pieces (near corner contacts) are left to the buffer method, which
+    # trims them the same way as every other non-conforming piece
+    short = shapely.length(lines) < 2.0 * min_length
+    if short.any():
+        lo_s = np.minimum(r_owner[short], r_partner[short])
+        hi_s = np.maximum(r_owner[short], r_partner[short])
+        short_keys = np.unique(lo_s * np.int64(n_cells) + hi_s)
+        handled &= ~np.isin(pk, short_keys)
+        rk = np.minimum(r_owner, r_partner) * np.int64(n_cells) + np.maximum(r_owner, r_partner)
+        keep_run = ~np.isin(rk, short_keys)
+        lines, r_owner, r_partner = lines[keep_run], r_owner[keep_run], r_partner[keep_run]
+    return lines, r_owner, r_partner, handled
+
+
 def _split_at_corners(lines: np.ndarray, max_turn: float) -> tuple[np.ndarray, np.ndarray]:
     """Split lines at vertices where the direction turns by more than ``max_turn`` degrees.
 
@@ -356,20 +486,41 @@ def build_faces(
     min_length = 3.0 * tol
 
     tree = shapely.STRtree(geoms)
-    p, q = tree.query(geoms, predicate="dwithin", distance=tol)
+    # boxes grown by tol, then the exact distance test on those candidates (cheaper
+    # than the tree's own dwithin predicate)
+    box = shapely.bounds(geoms)
+    box[:, :2] -= tol
+    box[:, 2:] += tol
+    p, q = tree.query(shapely.box(box[:, 0], box[:, 1], box[:, 2], box[:, 3]))
+    near = shapely.dwithin(geoms[p], geoms[q], tol)
+    p, q = p[near], q[near]
     other = p != q
     p = p[other].astype(np.int64)
     q = q[other].astype(np.int64)
     boundary = shapely.boundary(geoms)
-    buffered = shapely.buffer(geoms, tol, quad_segs=4)
     cent = shapely.get_coordinates(shapely.centroid(geoms))
     rank = np.empty(n_cells, dtype=np.int64)
     rank[np.lexsort((cent[:, 1], cent[:, 0]))] = np.arange(n_cells)
+    buffered = np.full(n_cells, None, dtype=object)
+
+    def _buffered(cells: np.ndarray) -> np.ndarray:
+        todo = np.unique(cells)
+        todo = todo[shapely.is_missing(buffered[todo])]
+        if todo.size:
+            buffered[todo] = shapely.buffer(geoms[todo], tol, quad_segs=4)
+        return buffered
 
     # interior faces: for each neighbour pair, the shared part of the boundary of the
-    # cell that comes first in centroid order (so the result does not depend on input order)
+    # cell that comes first in centroid order (so the result does not depend on input order).
+    # Conforming pairs (identical shared edges, nothing else within tol) by edge matching,
+    # the others by intersecting one boundary with the other cell's buffer.
     canon = rank[p] < rank[q]
-    parts, part_p, part_q = _shared_parts(boundary, buffered, p[canon], q[canon], tol)
+    exact_parts, exact_p, exact_q, handled = _exact_shared(geoms, p, q, rank, min_length)
+    slow = canon & ~handled
+    parts, part_p, part_q = _shared_parts(boundary, _buffered(q[slow]), p[slow], q[slow], tol)
+    parts = np.concatenate([exact_parts, parts])
+    part_p = np.concatenate([exact_p, part_p])
+    part_q = np.concatenate([exact_q, part_q])
     in_geom = parts
     in_a = np.minimum(part_p, part_q)
     in_b = np.maximum(part_p, part_q)
@@ -384,7 +535,7 @@ def build_faces(
     cand = np.flatnonzero(perimeter - covered >= 0.5 * min_length)
     if cand.size:
         rev = ~canon & np.isin(p, cand)
-        r_parts, r_p, _ = _shared_parts(boundary, buffered, p[rev], q[rev], tol)
+        r_parts, r_p, _ = _shared_parts(boundary, _buffered(q[rev]), p[rev], q[rev], tol)
         own = np.isin(part_p, cand)
         parts = np.concatenate([parts[own], r_parts])
         part_p = np.concatenate([part_p[own], r_p])

@@ -326,8 +326,14 @@ class TableWriter:
         if self._writer is None:
             assert self.schema is not None
             try:
+                # dictionary encoding pays for repeated ids and labels, not for
+                # measured floats, where it only costs time
+                repeated = [
+                    f.name for f in self.schema if not pa.types.is_floating(f.type)
+                ]
                 self._writer = pq.ParquetWriter(
-                    self.path, self.schema, compression=self._compression
+                    self.path, self.schema, compression=self._compression,
+                    use_dictionary=repeated,
                 )
             except OSError as exc:
                 raise OutputError(

@@ -188,16 +188,38 @@ def sample_bilinear(
     out = np.full(x.shape, np.nan)
     if rows == 0 or cols == 0 or not inside.any():
         return out
-    c0, c1, tc = _axis_weights(fc[inside], cols)
-    r0, r1, tr = _axis_weights(fr[inside], rows)
-    v00, v01, v10, v11 = z[r0, c0], z[r0, c1], z[r1, c0], z[r1, c1]
-    # a pixel with zero weight must not spread its NaN: take its partner's value
+    all_in = bool(inside.all())
+    c0, c1, tc = _axis_weights(fc if all_in else fc[inside], cols)
+    r0, r1, tr = _axis_weights(fr if all_in else fr[inside], rows)
+    flat = z.ravel()
+    i00 = r0 * cols
+    i10 = r1 * cols
+    v00, v01 = flat[i00 + c0], flat[i00 + c1]
+    v10, v11 = flat[i10 + c0], flat[i10 + c1]
+    # a pixel with zero weight must not spread its NaN: take its partner's value (also
+    # at weight 1, so the lerp returns the pixel value exactly); only where it matters
     c_lo, c_hi = tc == 1.0, tc == 0.0
-    v00, v10 = np.where(c_lo, v01, v00), np.where(c_lo, v11, v10)
-    v01, v11 = np.where(c_hi, v00, v01), np.where(c_hi, v10, v11)
-    top = v00 + tc * (v01 - v00)  # lerp form: exact on constants
-    bottom = v10 + tc * (v11 - v10)
-    top, bottom = np.where(tr == 1.0, bottom, top), np.where(tr == 0.0, top, bottom)
-    total = top + tr * (bottom - top)
+    r_lo, r_hi = tr == 1.0, tr == 0.0
+    any_nan = bool(np.isnan(v00).any() or np.isnan(v01).any() or np.isnan(v10).any()
+                   or np.isnan(v11).any())
+    if any_nan or c_lo.any():
+        v00, v10 = np.where(c_lo, v01, v00), np.where(c_lo, v11, v10)
+    if any_nan:
+        v01, v11 = np.where(c_hi, v00, v01), np.where(c_hi, v10, v11)
+    top = v01 - v00
+    top *= tc
+    top += v00  # lerp form: exact on constants
+    bottom = v11 - v10
+    bottom *= tc
+    bottom += v10
+    if any_nan or r_lo.any():
+        top = np.where(r_lo, bottom, top)
+    if any_nan:
+        bottom = np.where(r_hi, top, bottom)
+    total = bottom - top
+    total *= tr
+    total += top
+    if all_in and total.ndim:
+        return total
     out[inside] = total
     return out
