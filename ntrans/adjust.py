@@ -178,7 +178,6 @@ class _TileGeometry:
     cell_stages: np.ndarray      # (n_cells, n_window)
     uncovered: float             # plan area of own cells' pixels with no class
     covered: float               # plan area of own cells' pixels
-    bed_factor: np.ndarray       # (n_cells, n_window) bed_area / wet_area
 
 
 def _tile_geometry(task: Any, elevation: np.ndarray, transform: Any, plan: _Plan,
@@ -260,13 +259,9 @@ def _tile_geometry(task: Any, elevation: np.ndarray, transform: Any, plan: _Plan
         face_low=face_low, cell_low=cell_low, prof=prof, cell_pixels=(item[own], rows[own],
                                                                         cols[own], plan_area[own]),
         n_cells=n_own, window=(transform, elevation.shape), face_a=np.asarray(la, dtype=np.int64))
-    cst = cell_geom.stats(cell_stages)
-    wet = cst.total(cst.wet)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        bed_factor = np.where(wet > 0, cst.total(cst.perimeter) / np.where(wet > 0, wet, 1.0), np.nan)
     return _TileGeometry(tile.cells, tile.faces, ga, gb, face_geom, cell_geom, face_flat,
                          flat_z[:n_own], face_low, cell_low, face_stages, cell_stages,
-                         uncovered, covered, bed_factor)
+                         uncovered, covered)
 
 
 class _Window:
@@ -338,6 +333,17 @@ def _families_for(tg: _TileGeometry, plan: _Plan, domain: str) -> tuple[_Family,
     return fam(plan.source_closure), fam(plan.target_closure)
 
 
+def _family_stats(fam: _Family, stages: np.ndarray, cache: dict[int, ClassStats],
+                  need_strip: bool = False) -> ClassStats:
+    """Statistics of ``fam``'s geometry at ``stages``, computed once per geometry."""
+    key = id(fam.geometry)
+    st = cache.get(key)
+    if st is None or (fam.closure == "strip" and np.isnan(st.strip).any()):
+        st = fam.geometry.stats(stages, strip=need_strip or fam.closure == "strip")
+        cache[key] = st
+    return st
+
+
 def _offset_stats(parts: list[ClassStats], n_items: int, n_classes: int) -> ClassStats:
     """Concatenate per-tile statistics (items already global) into one."""
     if not parts:
@@ -345,10 +351,13 @@ def _offset_stats(parts: list[ClassStats], n_items: int, n_classes: int) -> Clas
         z = np.empty((0, 0))
         return ClassStats(e, e, n_items, n_classes, np.empty(0), z, z, z, z)
     cat = np.concatenate
+    wet = cat([p.wet for p in parts])
+    # strip not computed (lumped closures: a read-only NaN view, no memory)
+    no_strip = all(p.strip.size == 0 or (p.strip.strides == (0, 0)) for p in parts)
+    strip = np.broadcast_to(np.nan, wet.shape) if no_strip else cat([p.strip for p in parts])
     return ClassStats(cat([p.item for p in parts]), cat([p.cls for p in parts]), n_items,
-                      n_classes, cat([p.extent for p in parts]), cat([p.wet for p in parts]),
-                      cat([p.perimeter for p in parts]), cat([p.area for p in parts]),
-                      cat([p.strip for p in parts]))
+                      n_classes, cat([p.extent for p in parts]), wet,
+                      cat([p.perimeter for p in parts]), cat([p.area for p in parts]), strip)
 
 
 def _globalise(st: ClassStats, index: np.ndarray, n_items: int) -> ClassStats:
@@ -389,10 +398,13 @@ def _pass_statistics(job: _Job, task: Any) -> dict[str, Any]:
     faces = plan.domain == "faces"
     idx = tg.faces if faces else tg.cells
     st = tg.face_stages if faces else tg.cell_stages
+    cache: dict[int, ClassStats] = {}
+    st_s = _family_stats(fam_s, st, cache)
     return {
         "index": idx,
-        "k_source": fam_s.conveyance(st, model.n, composite=plan.composite, k=plan.k),  # type: ignore[arg-type]
-        "stats": fam_t.geometry.stats(st),
+        "k_source": fam_s.conveyance(st, model.n, composite=plan.composite, k=plan.k,  # type: ignore[arg-type]
+                                     stats=st_s),
+        "stats": _family_stats(fam_t, st, cache),
         "uncovered": tg.uncovered,
         "covered": tg.covered,
     }
@@ -408,15 +420,18 @@ def _pass_tables(job: _Job, task: Any, n_fit: np.ndarray) -> dict[str, Any]:
     # faces (with the cell closure, evaluated with the lumped radius for reference)
     fs, ft = _families_for(tg, replace(plan, domain="faces"), "faces")
     eta = tg.face_stages
-    ks = fs.conveyance(eta, model.n, composite=comp, k=k)  # type: ignore[arg-type]
-    kt0 = ft.conveyance(eta, model.n, composite=comp, k=k)  # type: ignore[arg-type]
+    fcache: dict[int, ClassStats] = {}
+    fst_s, fst_t = _family_stats(fs, eta, fcache), _family_stats(ft, eta, fcache)
+    ks = fs.conveyance(eta, model.n, composite=comp, k=k, stats=fst_s)  # type: ignore[arg-type]
+    kt0 = ft.conveyance(eta, model.n, composite=comp, k=k, stats=fst_t)  # type: ignore[arg-type]
     rr = n_ratio(ks, kt0)
     out["face"] = {
         "stage": eta,
         "depth": eta - tg.face_low[:, None],
         "n_ratio": rr.ratio,
         "conveyance_source": ks,
-        "conveyance_target": ft.conveyance(eta, n_fit, composite=comp, k=k),  # type: ignore[arg-type]
+        "conveyance_target": ft.conveyance(eta, n_fit, composite=comp, k=k,  # type: ignore[arg-type]
+                                           stats=fst_t),
         "conveyance_target_unadjusted": kt0,
         "stage_bias_unadjusted": solve_stage(ft, ks, model.n, start=eta, composite=comp, k=k) - eta,  # type: ignore[arg-type]
         "stage_bias_adjusted": solve_stage(ft, ks, n_fit, start=eta, composite=comp, k=k) - eta,  # type: ignore[arg-type]
@@ -429,9 +444,11 @@ def _pass_tables(job: _Job, task: Any, n_fit: np.ndarray) -> dict[str, Any]:
     cs, ct = _families_for(tg, replace(plan, domain="cells"), "cells")
     ceta = tg.cell_stages
     sub = tg.cell_geom.stats(ceta)
+    ccache: dict[int, ClassStats] = {id(tg.cell_geom): sub}
     flat_st = FlatGeometry.from_geometry(tg.cell_geom, tg.cell_flat).stats(ceta)
-    kc_s = cs.conveyance(ceta, model.n, composite=comp, k=k)  # type: ignore[arg-type]
-    kc_t0 = ct.conveyance(ceta, model.n, composite=comp, k=k)  # type: ignore[arg-type]
+    cst_s, cst_t = _family_stats(cs, ceta, ccache), _family_stats(ct, ceta, ccache)
+    kc_s = cs.conveyance(ceta, model.n, composite=comp, k=k, stats=cst_s)  # type: ignore[arg-type]
+    kc_t0 = ct.conveyance(ceta, model.n, composite=comp, k=k, stats=cst_t)  # type: ignore[arg-type]
     crr = n_ratio(kc_s, kc_t0)
     k_flat = conveyance(flat_st, model.n, composite=comp, k=k)  # type: ignore[arg-type]
     k_lump = conveyance(sub, model.n, closure="lumped", composite=comp, k=k)  # type: ignore[arg-type]
@@ -461,14 +478,17 @@ def _pass_tables(job: _Job, task: Any, n_fit: np.ndarray) -> dict[str, Any]:
         "n_ratio_lumped_equal_volume": ev_l,
         "n_ratio_conveyance_form_equal_volume": ev_f,
         "conveyance_source": kc_s,
-        "conveyance_target": ct.conveyance(ceta, n_fit, composite=comp, k=k),  # type: ignore[arg-type]
+        "conveyance_target": ct.conveyance(ceta, n_fit, composite=comp, k=k,  # type: ignore[arg-type]
+                                           stats=cst_t),
         "conveyance_target_unadjusted": kc_t0,
         "stage_bias_unadjusted": cbu,
         "stage_bias_adjusted": cba,
     }
     out["cell_dominant"] = flat_st.dominant_class()
     out["cell_mismatch"] = int(crr.mismatch.sum())
-    out["bed_factor"] = _nanmedian_rows(tg.bed_factor)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        bed_factor = np.where(wet > 0, bed / np.where(wet > 0, wet, 1.0), np.nan)
+    out["bed_factor"] = _nanmedian_rows(bed_factor)
     return out
 
 
@@ -588,7 +608,8 @@ def adjust_roughness(
     field_values = _field_values(layer, elevation_rule, elevation_field)
     geoms = np.asarray(layer.geometry, dtype=object)
     ids = np.asarray(layer.ids)
-    mesh_area = shapely.union_all(geoms)
+    # the mesh outline is only needed to check class polygons against it
+    mesh_area = shapely.union_all(geoms) if classes is not None else None
     model = load_roughness(n=n, classes=classes, class_field=class_field, n_table=n_table,
                            n_field=n_field, class_raster=class_raster,
                            default_class=default_class, overlap_rule=overlap_rule,  # type: ignore[arg-type]
@@ -637,9 +658,12 @@ def adjust_roughness(
             "default class (--default-class) or fill the raster"
         )
     target_stats = _offset_stats(tgt_parts, n_dom, n_cls)
-    fit = fit_class_n(np.nan_to_num(k_src_all, nan=0.0), target_stats, model.n,
+    del tgt_parts
+    np.nan_to_num(k_src_all, copy=False, nan=0.0)
+    fit = fit_class_n(k_src_all, target_stats, model.n,
                       closure=_domain_closure(tc),  # type: ignore[arg-type]
                       composite=composite, k=k)  # type: ignore[arg-type]
+    del target_stats, k_src_all  # not needed after the fit
     out_rng = outside_range(model, fit.n_target)
     flags = [list(f) + (["outside_published_range"] if out_rng[c] else []) for c, f in enumerate(fit.flags)]
     n_fit = fit.n_target
@@ -667,6 +691,12 @@ def adjust_roughness(
             "ntrans:target": f"{target}/{tc}", "ntrans:composite": composite,
             "ntrans:manning_k": str(k)}
     cls_names = np.array(model.classes + ("",), dtype=object)
+    cls_arrow = pa.array(list(model.classes) + [""], type=pa.string())
+
+    def class_column(index: np.ndarray) -> pa.Array:
+        """Class names (empty for -1) as an arrow string column, without Python lists."""
+        return cls_arrow.take(pa.array(np.where(index < 0, n_cls, index).astype(np.int64)))
+
     face_bias_un = np.full((n_faces, n_win), np.nan)
     face_bias_ad = np.full((n_faces, n_win), np.nan)
     face_ratio_med = np.full(n_faces, np.nan)
@@ -702,8 +732,7 @@ def adjust_roughness(
                     "cell_b": _ids_at(ids, np.repeat(res["face_b"], n_win)),
                 }
                 chunk.update({c: np.asarray(fr[c], dtype=float).ravel() for c in FACE_COLUMNS[3:-1]})
-                chunk["dominant_class"] = pa.array(
-                    np.repeat(cls_names[res["face_dominant"]], n_win).tolist(), type=pa.string())
+                chunk["dominant_class"] = class_column(np.repeat(res["face_dominant"], n_win))
                 fw.write(chunk)
 
                 cell_bias_un[cc] = cr["stage_bias_unadjusted"]
@@ -714,8 +743,7 @@ def adjust_roughness(
                 mismatch_cells += res["cell_mismatch"]
                 chunk = {"cell_id": _ids_at(ids, np.repeat(cc, n_win))}
                 chunk.update({c: np.asarray(cr[c], dtype=float).ravel() for c in CELL_COLUMNS[1:-1]})
-                chunk["dominant_class"] = pa.array(
-                    np.repeat(cls_names[res["cell_dominant"]], n_win).tolist(), type=pa.string())
+                chunk["dominant_class"] = class_column(np.repeat(res["cell_dominant"], n_win))
                 cw.write(chunk)
             files += [fw.close(), cw.close()]
         except BaseException:

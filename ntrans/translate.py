@@ -38,7 +38,7 @@ n_ratio = K_target(n_source) / K_source(n_source).
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Literal, Protocol
+from typing import Any, Literal, Protocol
 
 import numpy as np
 from scipy import sparse
@@ -102,6 +102,9 @@ class ClassStats:
 
     def total(self, values: np.ndarray) -> np.ndarray:
         """Sum a (n_pairs, n_stages) array into (n_items, n_stages)."""
+        if values.ndim == 2 and values.shape[1] == 1 and self._sum is None:
+            return np.bincount(self.item, weights=values[:, 0],
+                               minlength=self.n_items).reshape(self.n_items, 1)
         return np.asarray(self.summer() @ values)
 
     def dominant_class(self) -> np.ndarray:
@@ -188,6 +191,187 @@ def segment_integrals(h0: np.ndarray, h1: np.ndarray, ds: np.ndarray,
     return tuple(o.reshape(shape) for o in out)  # type: ignore[return-value]
 
 
+#: a segment whose rise is at most this fraction of its plan length is a step at its mean
+#: elevation in the breakpoint evaluation (as in ``ntrans.faces``)
+LEVEL_RATIO = 1e-6
+_QUERY_CHUNK = 1 << 20
+
+
+def _pair_order(pair: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Order sorting by (pair, b), b >= 0: one argsort of a combined key, checked exactly
+    (``np.lexsort`` when rounding of the key left anything out of order)."""
+    if pair.size == 0:
+        return np.zeros(0, dtype=np.int64)
+    scale = 2.0 * float(b.max()) + 4.0
+    order = np.argsort(pair * scale + b)
+    p, v = pair[order], b[order]
+    if np.any(p[1:] < p[:-1]) or np.any((p[1:] == p[:-1]) & (v[1:] < v[:-1])):
+        order = np.lexsort((b, pair))
+    return order
+
+
+def _restarted_prefix(columns: list[Any], pair: np.ndarray, start: np.ndarray,
+                      end: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Prefix sums of ``columns`` (arrays, or callables giving one) sorted by pair,
+    restarted per pair: a pad row before each pair's rows takes the previous pair's total
+    off, so the round-off scales with one pair, not the whole tile.  Row i of pair p sits
+    at row i + shift[p] + 1 of the returned (n + n_pairs_used + 1, n_columns) array, whose
+    first row is 0.  Returns (shift, prefix)."""
+    nonempty = end > start
+    firsts = start[nonempty]
+    shift = np.cumsum(nonempty)
+    n = pair.size
+    pref = np.zeros((n + firsts.size + 1, len(columns)))
+    rows = np.arange(n) + shift[pair] + 1
+    pads = firsts[1:] + np.arange(1, firsts.size) + 1
+    for j, col in enumerate(columns):  # loop over a few columns
+        values = col() if callable(col) else col
+        pref[rows, j] = values
+        if firsts.size > 1:
+            pref[pads, j] = -np.add.reduceat(values, firsts)[:-1]
+    np.cumsum(pref[1:], axis=0, out=pref[1:])
+    return shift, pref
+
+
+class _SortedKeys:
+    """Breakpoints ``b`` (>= 0) sorted per pair, located by one searchsorted of a combined
+    key ``pair * scale + b`` plus an exact fix-up (rounding of the key never decides)."""
+
+    def __init__(self, pair_sorted: np.ndarray, b: np.ndarray) -> None:
+        self.b = b
+        self.scale = 2.0 * (float(b.max()) if b.size else 0.0) + 4.0
+        self.key = pair_sorted * self.scale + b
+        self.top = 0.5 * self.scale - 1.0  # above every b, still inside the pair's slot
+
+    def count_below(self, p: np.ndarray, lo: np.ndarray, hi: np.ndarray,
+                    e: np.ndarray) -> np.ndarray:
+        """First index in [lo, hi) with b >= e (e finite)."""
+        b = self.b
+        pos = np.searchsorted(self.key, p * self.scale + np.clip(e, -1.0, self.top), side="left")
+        pos = np.clip(pos, lo, hi)
+        last = max(b.size - 1, 0)
+        for _ in range(64):
+            down = (pos > lo) & (b[np.clip(pos - 1, 0, last)] >= e)
+            up = (pos < hi) & (b[np.minimum(pos, last)] < e)
+            if not (down.any() or up.any()):
+                break
+            pos = pos - down + up
+        return pos
+
+
+class _StepTable:
+    """Wet plan area, wet bed area and volume per (cell, class) pair at any stage.
+
+    Pixels sorted by elevation per pair once (relative to the pair's low point) with
+    prefix sums of a, a_bed and a z restarted per pair; a query is a bisection within its
+    pair (a pixel with z == stage is dry) and one gather.  Same sums as the per-pixel
+    evaluation up to round-off.
+    """
+
+    def __init__(self, pair: np.ndarray, z: np.ndarray, a: np.ndarray, bed: np.ndarray,
+                 n_pairs: int) -> None:
+        base = np.full(n_pairs, np.inf)
+        np.minimum.at(base, pair, z)
+        self.base = np.where(np.isfinite(base), base, 0.0)
+        b = z - self.base[pair]
+        order = _pair_order(pair, b)
+        pair, b = pair[order], b[order]
+        self.order = order
+        a_s = a[order]
+        self.start = np.searchsorted(pair, np.arange(n_pairs), side="left")
+        self.end = np.searchsorted(pair, np.arange(n_pairs), side="right")
+        self.shift, self.pref = _restarted_prefix([a_s, bed[order], a_s * b], pair, self.start,
+                                                  self.end)
+        self.pair0 = self.pref[self.start + self.shift]  # prefix before each pair's rows
+        self.keys = _SortedKeys(pair, b)
+
+    def query(self, pair: np.ndarray, eta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(wet plan area, wet bed area, volume) of ``pair`` at ``eta``; 0 where not finite."""
+        wet, bed, vol = (np.zeros(eta.size) for _ in range(3))
+        ok = np.flatnonzero(np.isfinite(eta))
+        for i0 in range(0, ok.size, _QUERY_CHUNK):
+            idx = ok[i0:i0 + _QUERY_CHUNK]
+            p = pair[idx]
+            e = eta[idx] - self.base[p]
+            first = self.start[p]
+            pos = self.keys.count_below(p, first, self.end[p], e)
+            s = self.pref[pos + self.shift[p]] - self.pair0[p]
+            dry = pos == first
+            wet[idx] = np.where(dry, 0.0, s[:, 0])
+            bed[idx] = np.where(dry, 0.0, s[:, 1])
+            vol[idx] = np.where(dry, 0.0, np.maximum(e * s[:, 0] - s[:, 2], 0.0))
+        return wet, bed, vol
+
+
+class _RampTable:
+    """Wet length, wetted perimeter and flow area per (face, class) pair at any stage.
+
+    On a segment rising by dz over ds the wet fraction is a ramp in the stage from the
+    low end to the high end, so per pair W = sum ds f, P = sum dl f are sums of ramps and
+    A (integral of W over the stage) a sum of quadratics.  The ramps' start / stop
+    breakpoints are sorted per pair once (elevations relative to the pair's low point,
+    against cancellation) with prefix sums of c, c b, c b^2 (c = w / dz) restarted per
+    pair; each (pair, stage) query is then a vectorised bisection within its pair plus
+    one gather: O(log) per query instead of O(segments).  Level segments
+    (dz <= LEVEL_RATIO ds) are steps at their mean elevation; a breakpoint equal to the
+    stage counts as dry.  Agrees with :func:`segment_integrals` to round-off.
+    """
+
+    def __init__(self, pair: np.ndarray, z0: np.ndarray, z1: np.ndarray, ds: np.ndarray,
+                 dl: np.ndarray, n_pairs: int) -> None:
+        zlo, zhi = np.minimum(z0, z1), np.maximum(z0, z1)
+        dz = zhi - zlo
+        level = dz <= LEVEL_RATIO * ds
+        base = np.full(n_pairs, np.inf)
+        np.minimum.at(base, pair, zlo)
+        self.base = np.where(np.isfinite(base), base, 0.0)
+        sl = ~level
+        inv = 1.0 / dz[sl]
+        n_sl, n_lv = int(sl.sum()), int(level.sum())
+        ev_pair = np.concatenate([pair[sl], pair[sl], pair[level]])
+        b = np.concatenate([zlo[sl], zhi[sl], 0.5 * (zlo + zhi)[level]]) - self.base[ev_pair]
+        zeros_sl, zeros_lv = np.zeros(2 * n_sl), np.zeros(n_lv)
+        c_ds = np.concatenate([ds[sl] * inv, -ds[sl] * inv, zeros_lv])
+        c_dl = np.concatenate([dl[sl] * inv, -dl[sl] * inv, zeros_lv])
+        d_ds = np.concatenate([zeros_sl, ds[level]])
+        d_dl = np.concatenate([zeros_sl, dl[level]])
+        order = _pair_order(ev_pair, b)
+        ev_pair, b = ev_pair[order], b[order]
+        c_ds, c_dl, d_ds, d_dl = c_ds[order], c_dl[order], d_ds[order], d_dl[order]
+        self.start = np.searchsorted(ev_pair, np.arange(n_pairs), side="left")
+        self.end = np.searchsorted(ev_pair, np.arange(n_pairs), side="right")
+        columns = [c_ds, lambda: c_ds * b, lambda: c_ds * b * b, c_dl, lambda: c_dl * b, d_ds,
+                   lambda: d_ds * b, d_dl]
+        self.shift, self.pref = _restarted_prefix(columns, ev_pair, self.start, self.end)
+        self.pair0 = self.pref[self.start + self.shift]  # prefix before each pair's rows
+        self.keys = _SortedKeys(ev_pair, b)
+        self.n_pairs = n_pairs
+
+    def query(self, pair: np.ndarray, eta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(wet, perimeter, area) of ``pair`` at stage ``eta`` (1-D, same length).
+
+        Stages that are not finite give 0.
+        """
+        wet, per, area = (np.zeros(eta.size) for _ in range(3))
+        ok = np.flatnonzero(np.isfinite(eta))
+        for i0 in range(0, ok.size, _QUERY_CHUNK):
+            idx = ok[i0:i0 + _QUERY_CHUNK]
+            p = pair[idx]
+            e = eta[idx] - self.base[p]
+            first = self.start[p]
+            lo = self.keys.count_below(p, first, self.end[p], e)
+            s = self.pref[lo + self.shift[p]] - self.pair0[p]
+            w = e * s[:, 0] - s[:, 1] + s[:, 5]
+            pm = e * s[:, 3] - s[:, 4] + s[:, 7]
+            a = 0.5 * (e * e * s[:, 0] - 2.0 * e * s[:, 1] + s[:, 2]) + e * s[:, 5] - s[:, 6]
+            dry = lo == first
+            wet[idx] = np.where(dry, 0.0, np.maximum(w, 0.0))
+            per[idx] = np.where(dry, 0.0, np.maximum(pm, 0.0))
+            area[idx] = np.where(dry, 0.0, np.maximum(a, 0.0))
+        return wet, per, area
+
+
+
 class Geometry(Protocol):
     """Anything that gives :class:`ClassStats` at a stage matrix (n_items, n_stages)."""
 
@@ -195,7 +379,7 @@ class Geometry(Protocol):
     n_classes: int
     low: np.ndarray
 
-    def stats(self, stages: np.ndarray) -> ClassStats: ...
+    def stats(self, stages: np.ndarray, *, strip: bool = True) -> ClassStats: ...
 
 
 @dataclass
@@ -249,9 +433,16 @@ class FaceGeometry:
             self.mean_elevation = np.where(length > 0, mean_num / length, np.nan)
         self.length = length
 
-    def stats(self, stages: np.ndarray, chunk: int = 64) -> ClassStats:
-        """Statistics at a stage matrix (n_items, n_stages)."""
+    def stats(self, stages: np.ndarray, chunk: int = 64, *, strip: bool = True) -> ClassStats:
+        """Statistics at a stage matrix (n_items, n_stages).
+
+        With ``strip=False`` the strip integral is not computed (NaN) and wet, perimeter
+        and area come from the sorted breakpoint sums (:class:`_RampTable`, built once per
+        geometry): far cheaper, for the lumped closures and repeated evaluations.
+        """
         stages = np.atleast_2d(np.asarray(stages, dtype=float))
+        if not strip:
+            return self._ramp_stats(stages)
         parts: list[list[np.ndarray]] = []
         for j0 in range(0, stages.shape[1], chunk):
             eta = stages[self.seg_face, j0:j0 + chunk]
@@ -262,9 +453,20 @@ class FaceGeometry:
             h1 = np.where(bad, -1.0, h1)
             cols = segment_integrals(h0, h1, self.ds[:, None], self.dl[:, None])
             parts.append(_accumulate(self._agg, list(cols)))
-        wet, per, area, strip = (np.concatenate([p[i] for p in parts], axis=1) for i in range(4))
+        wet, per, area, h53 = (np.concatenate([p[i] for p in parts], axis=1) for i in range(4))
         return ClassStats(self.pair_item, self.pair_cls, self.n_items, self.n_classes,
-                          self.extent, wet, per, area, strip)
+                          self.extent, wet, per, area, h53)
+
+    def _ramp_stats(self, stages: np.ndarray) -> ClassStats:
+        if getattr(self, "_ramps", None) is None:
+            self._ramps = _RampTable(self.inv, self.z0, self.z1, self.ds, self.dl,
+                                     self.pair_item.size)
+        n_p, n_st = self.pair_item.size, stages.shape[1]
+        eta = stages[self.pair_item] if n_p else np.empty((0, n_st))
+        pair = np.repeat(np.arange(n_p), n_st)
+        wet, per, area = (v.reshape(n_p, n_st) for v in self._ramps.query(pair, eta.ravel()))
+        return ClassStats(self.pair_item, self.pair_cls, self.n_items, self.n_classes,
+                          self.extent, wet, per, area, np.broadcast_to(np.nan, (n_p, n_st)))
 
 
 @dataclass
@@ -300,20 +502,35 @@ class CellGeometry:
         np.minimum.at(low, self._item, self._z)
         self.low = np.where(np.isfinite(low), low, np.nan)
 
-    def stats(self, stages: np.ndarray, chunk: int = 16) -> ClassStats:
-        """Statistics at a stage matrix (n_items, n_stages)."""
+    def stats(self, stages: np.ndarray, chunk: int = 16, *, strip: bool = True) -> ClassStats:
+        """Statistics at a stage matrix (n_items, n_stages); ``strip=False``: strip NaN."""
         stages = np.atleast_2d(np.asarray(stages, dtype=float))
-        parts = []
-        for j0 in range(0, stages.shape[1], chunk):
-            h = stages[self._item, j0:j0 + chunk] - self._z[:, None]
-            h = np.where(np.isfinite(h) & (h > 0), h, 0.0)
-            wet = h > 0
-            cols = [self._a[:, None] * wet, self._b[:, None] * wet, self._a[:, None] * h,
-                    self._a[:, None] * _pow53(h)]
-            parts.append(_accumulate(self._agg, cols))
-        wet, per, area, strip = (np.concatenate([p[i] for p in parts], axis=1) for i in range(4))
+        n_p, n_st = self.pair_item.size, stages.shape[1]
+        if getattr(self, "_steps", None) is None:
+            self._steps = _StepTable(self.inv, self._z, self._a, self._b, n_p)
+        eta_p = stages[self.pair_item] if n_p else np.empty((0, n_st))
+        pair = np.repeat(np.arange(n_p), n_st)
+        wet, per, area = (v.reshape(n_p, n_st) for v in self._steps.query(pair, eta_p.ravel()))
+        if strip:
+            # sum of a h^(5/3) over the wet pixels (no closed form: per pixel and stage)
+            del chunk  # one stage column at a time, in preallocated buffers
+            h53 = np.zeros((n_p, n_st))
+            cols_t = np.ascontiguousarray(stages.T)
+            h = np.empty(self._z.size)
+            c = np.empty(self._z.size)
+            for j in range(n_st):  # loop over stage columns
+                np.take(cols_t[j], self._item, out=h)
+                h -= self._z
+                np.fmax(h, 0.0, out=h)  # dry and NaN stage -> 0
+                np.cbrt(h, out=c)
+                c *= c
+                c *= h
+                c *= self._a
+                h53[:, j] = np.bincount(self.inv, weights=c, minlength=n_p)
+        else:
+            h53 = np.full(wet.shape, np.nan)
         return ClassStats(self.pair_item, self.pair_cls, self.n_items, self.n_classes,
-                          self.extent, wet, per, area, strip)
+                          self.extent, wet, per, area, h53)
 
 
 @dataclass
@@ -340,7 +557,8 @@ class FlatGeometry:
     def low(self) -> np.ndarray:
         return self.z_flat
 
-    def stats(self, stages: np.ndarray) -> ClassStats:
+    def stats(self, stages: np.ndarray, *, strip: bool = True) -> ClassStats:
+        del strip  # always computed (cheap)
         stages = np.atleast_2d(np.asarray(stages, dtype=float))
         h = stages[self.pair_item] - self.z_flat[self.pair_item][:, None]
         h = np.where(np.isfinite(h) & (h > 0), h, 0.0)
@@ -437,7 +655,8 @@ class Family:
     def conveyance(self, stages: np.ndarray, n_class: np.ndarray, *,
                    composite: Composite = "horton_einstein", k: float = 1.0,
                    stats: ClassStats | None = None) -> np.ndarray:
-        st = self.geometry.stats(stages) if stats is None else stats
+        st = (self.geometry.stats(stages, strip=self.closure == "strip") if stats is None
+              else stats)
         return conveyance(st, n_class, closure=self.closure, composite=composite, k=k)
 
 
@@ -520,6 +739,46 @@ class ClassFit:
     cost: float
 
 
+def _entry_conveyance(stats: ClassStats, rows: np.ndarray, cols: np.ndarray, *,
+                      closure: Closure, composite: Composite, k: float) -> Any:
+    """``n -> conveyance(stats, n)[rows, cols]`` with everything that does not depend on n
+    computed once: per entry and class sums in a sparse (n_entries, n_classes) matrix."""
+    order = np.argsort(stats.item, kind="stable")
+    items = stats.item[order]
+    first = np.searchsorted(items, rows, side="left")
+    count = np.searchsorted(items, rows, side="right") - first
+    owner = np.repeat(np.arange(rows.size), count)
+    offset = np.arange(owner.size) - np.repeat(np.cumsum(count) - count, count)
+    q = order[np.repeat(first, count) + offset]
+    qc = cols[owner]
+    per = stats.perimeter[q, qc]
+    area = stats.area[q, qc]
+    if closure == "strip":
+        x = stats.strip[q, qc]
+    elif composite == "lotter":
+        with np.errstate(invalid="ignore", divide="ignore"):
+            x = np.where(per > 0, area ** (5.0 / 3.0) / np.where(per > 0, per, 1.0) ** (2.0 / 3.0),
+                         0.0)
+    else:
+        x = per
+    mat = sparse.csr_matrix((x, (owner, stats.cls[q])), shape=(rows.size, stats.n_classes))
+    if closure == "strip" or composite == "lotter":
+        return lambda n: k * (mat @ (1.0 / np.asarray(n, dtype=float)))
+    a_tot = np.bincount(owner, weights=area, minlength=rows.size)
+    p_tot = np.bincount(owner, weights=per, minlength=rows.size)
+    expo, power = (1.5, 2.0 / 3.0) if composite == "horton_einstein" else (2.0, 0.5)
+    wet = (p_tot > 0) & (a_tot > 0)
+    safe_p = np.where(wet, p_tot, 1.0)
+    geo = np.where(wet, k * a_tot * (a_tot / safe_p) ** (2.0 / 3.0), 0.0)
+
+    def kt(n: np.ndarray) -> np.ndarray:
+        num = mat @ (np.asarray(n, dtype=float) ** expo)
+        n_e = (np.where(wet, num, 1.0) / safe_p) ** power
+        return np.where(wet, geo / n_e, 0.0)
+
+    return kt
+
+
 def fit_class_n(
     k_source: np.ndarray,
     target_stats: ClassStats,
@@ -596,9 +855,11 @@ def fit_class_n(
         x[free] = x_free
         return np.exp(x)
 
+    kt_at = _entry_conveyance(target_stats, rows, cols, closure=closure, composite=composite,
+                              k=k)
+
     def residual(x_free: np.ndarray) -> np.ndarray:
-        kt = conveyance(target_stats, full_n(x_free), closure=closure, composite=composite, k=k)
-        val = kt[rows, cols]
+        val = kt_at(full_n(x_free))
         with np.errstate(divide="ignore"):
             return sqrt_w * (np.log(np.maximum(val, 1e-300)) - log_ks)
 
@@ -658,6 +919,52 @@ def fit_class_n(
 # stage bias
 
 
+def _entry_stats(geom: Any, rows: np.ndarray, eta: np.ndarray) -> ClassStats | None:
+    """Statistics of items ``rows`` at stages ``eta`` (one entry each) as a ClassStats whose
+    items are the entries (one stage column); None where the geometry has no cheap path."""
+    if not isinstance(geom, FaceGeometry | CellGeometry | FlatGeometry):
+        return None
+    pair_item = geom.pair_item
+    first = np.searchsorted(pair_item, rows, side="left")
+    count = np.searchsorted(pair_item, rows, side="right") - first
+    owner = np.repeat(np.arange(rows.size), count)
+    offset = np.arange(owner.size) - np.repeat(np.cumsum(count) - count, count)
+    q = np.repeat(first, count) + offset
+    e = eta[owner]
+    if isinstance(geom, FaceGeometry):
+        if getattr(geom, "_ramps", None) is None:
+            geom._ramps = _RampTable(geom.inv, geom.z0, geom.z1, geom.ds, geom.dl,
+                                     geom.pair_item.size)
+        wet, per, area = geom._ramps.query(q, e)
+        h53 = np.full(wet.size, np.nan)
+    elif isinstance(geom, CellGeometry):
+        if getattr(geom, "_steps", None) is None:
+            geom._steps = _StepTable(geom.inv, geom._z, geom._a, geom._b, geom.pair_item.size)
+        wet, per, area = geom._steps.query(q, e)
+        h53 = np.full(wet.size, np.nan)
+    else:
+        h = e - geom.z_flat[geom.pair_item[q]]
+        h = np.where(np.isfinite(h) & (h > 0), h, 0.0)
+        ext = geom.extent[q]
+        wet = ext * (h > 0)
+        per, area, h53 = wet, ext * h, ext * h ** (5.0 / 3.0)
+    return ClassStats(owner, geom.pair_cls[q], rows.size, geom.n_classes, geom.extent[q],
+                      wet[:, None], per[:, None], area[:, None], h53[:, None])
+
+
+def _conveyance_entries(target: Family, shape: tuple[int, int], rows: np.ndarray,
+                        cols: np.ndarray, eta: np.ndarray, n_class: np.ndarray,
+                        composite: Composite, k: float) -> np.ndarray:
+    """Target conveyance at stage ``eta`` of entry (``rows``, ``cols``) of a stage matrix."""
+    geom = target.geometry
+    st = None if target.closure == "strip" else _entry_stats(geom, rows, eta)
+    if st is not None:
+        return conveyance(st, n_class, closure=target.closure, composite=composite, k=k)[:, 0]
+    full = np.full(shape, -np.inf)
+    full[rows, cols] = eta
+    return target.conveyance(full, n_class, composite=composite, k=k)[rows, cols]
+
+
 def solve_stage(
     target: Family,
     k_wanted: np.ndarray,
@@ -671,13 +978,16 @@ def solve_stage(
 ) -> np.ndarray:
     """Stage at which the target conveyance equals ``k_wanted`` (vectorised, bracketed).
 
-    K is monotone (non-decreasing) in stage and zero at the item's low point, so a
-    bracket [low point, upper] with the upper end expanded until K >= k_wanted holds the
-    root.  The bracket is closed for all items at once by false position on
+    K is zero at the item's low point and grows with the stage (a lumped closure may dip
+    where a bench floods, so a bracket may hold several roots: the iteration path below
+    decides which one is returned).  A bracket [low point, upper] with the upper end
+    (first the start stage) expanded until K >= k_wanted holds a root.  The brackets are
+    closed for all entries at once by false position on
     f = K^(3/5) - k_wanted^(3/5) (nearly linear in depth; exact for a flat bed) with the
-    Illinois modification, which keeps a bracket and converges superlinearly.  Stops
-    when |f| <= rtol x k_wanted^(3/5) or the bracket is narrower than rtol x depth.
-    NaN where ``k_wanted`` is not a positive finite number or no bracket is found.
+    Illinois modification, which keeps a bracket and converges superlinearly; only the
+    entries still open are evaluated.  Stops when |f| <= rtol x k_wanted^(3/5) or the
+    bracket is narrower than rtol x depth.  NaN where ``k_wanted`` is not a positive
+    finite number or no bracket is found.
 
     Parameters
     ----------
@@ -689,65 +999,81 @@ def solve_stage(
     """
     geom = target.geometry
     kw = np.asarray(k_wanted, dtype=float)
-    low = np.asarray(geom.low, dtype=float)[:, None] + np.zeros_like(kw)
+    shape = kw.shape
+    n_items, n_st = shape
+    low_i = np.asarray(geom.low, dtype=float)
+    low = low_i[:, None] + np.zeros(shape)
     active = np.isfinite(kw) & (kw > 0) & np.isfinite(low)
     t = np.where(active, kw, 0.0) ** 0.6
     s0 = np.where(np.isfinite(start), start, low)
     depth0 = np.maximum(s0 - low, 0.0)
     scale = np.where(depth0 > 0, depth0, 1.0)
-    lo = np.where(active, low, np.nan)
-    hi = np.where(active, low + np.maximum(depth0, 1e-3 * scale), np.nan)
-
-    def f(stages: np.ndarray) -> np.ndarray:
-        kk = target.conveyance(np.where(np.isfinite(stages), stages, -np.inf), n_class,
-                               composite=composite, k=k)
-        return kk ** 0.6 - t
-
-    f_hi = f(hi)
-    for _ in range(60):
-        short = active & (f_hi < 0)
-        if not short.any():
-            break
-        hi = np.where(short, low + 2.0 * (hi - low), hi)
-        f_hi = np.where(short, f(hi), f_hi)
-    found = active & (f_hi >= 0)
-    f_lo = -t
-    g_lo, g_hi = f_lo.copy(), f_hi.copy()  # Illinois-scaled copies
-    side = np.zeros(kw.shape, dtype=np.int8)
-    root = np.full(kw.shape, np.nan)
-    done = ~found | (f_hi <= rtol * t)
-    root = np.where(found & (f_hi <= rtol * t), hi, root)
     width_tol = rtol * np.maximum(scale, 1.0)
-    for _ in range(max_iter):
-        todo = ~done & (hi - lo > width_tol)
-        if not todo.any():
+
+    def f(rows: np.ndarray, cols: np.ndarray, x: np.ndarray, tt: np.ndarray) -> np.ndarray:
+        x = np.where(np.isfinite(x), x, -np.inf)
+        kk = _conveyance_entries(target, shape, rows, cols, x, n_class, composite, k)
+        return kk ** 0.6 - tt
+
+    # bracket [low point, start], the upper end's depth doubled until K >= k_wanted
+    lo = np.where(active, low, np.nan)
+    f_lo = -t
+    hi = np.where(active, low + np.maximum(depth0, 1e-3 * scale), np.nan)
+    f_hi = np.full(shape, np.nan)
+    r, c = np.nonzero(active)
+    h = hi[r, c]
+    fh = f(r, c, h, t[r, c])
+    sel = np.flatnonzero(fh < 0)
+    for _ in range(60):
+        if sel.size == 0:
             break
+        rs, cs = r[sel], c[sel]
+        h[sel] = low[rs, cs] + 2.0 * (h[sel] - low[rs, cs])
+        fh[sel] = f(rs, cs, h[sel], t[rs, cs])
+        sel = sel[fh[sel] < 0]
+    hi[r, c] = h
+    f_hi[r, c] = fh
+    found = active & np.isfinite(hi) & (f_hi >= 0)
+
+    root = np.full(shape, np.nan)
+    hit0 = found & (f_hi <= rtol * t)
+    root[hit0] = hi[hit0]
+    rr, cc = np.nonzero(found & ~hit0)
+    a, b_ = lo[rr, cc], hi[rr, cc]
+    fa, fb = f_lo[rr, cc], f_hi[rr, cc]
+    ga, gb = fa.copy(), fb.copy()  # Illinois-scaled copies
+    side = np.zeros(rr.size, dtype=np.int8)
+    tt, wt = t[rr, cc], width_tol[rr, cc]
+    res = np.full(rr.size, np.nan)
+    todo = np.flatnonzero(b_ - a > wt)
+    for _ in range(max_iter):
+        if todo.size == 0:
+            break
+        A, B, GA, GB = a[todo], b_[todo], ga[todo], gb[todo]
         with np.errstate(invalid="ignore", divide="ignore"):
-            x = hi - g_hi * (hi - lo) / (g_hi - g_lo)
-        bad = ~np.isfinite(x) | (x <= lo) | (x >= hi)
-        x = np.where(bad, 0.5 * (lo + hi), x)
-        x = np.where(todo, x, np.nan)
-        fx = f(x)
-        hit = todo & (np.abs(fx) <= rtol * t)
-        root = np.where(hit, x, root)
-        done |= hit
-        up = todo & ~hit & (fx > 0)
-        down = todo & ~hit & (fx < 0)
+            x = B - GB * (B - A) / (GB - GA)
+        bad = ~np.isfinite(x) | (x <= A) | (x >= B)
+        x = np.where(bad, 0.5 * (A + B), x)
+        fx = f(rr[todo], cc[todo], x, tt[todo])
+        hit = np.abs(fx) <= rtol * tt[todo]
+        res[todo[hit]] = x[hit]
+        up = ~hit & (fx > 0)
+        down = ~hit & (fx < 0)
+        sd = side[todo]
         # Illinois: the end kept twice in a row has its value halved
-        g_lo = np.where(up & (side == 1), 0.5 * g_lo, g_lo)
-        g_hi = np.where(down & (side == -1), 0.5 * g_hi, g_hi)
-        hi = np.where(up, x, hi)
-        f_hi = np.where(up, fx, f_hi)
-        g_hi = np.where(up, fx, g_hi)
-        lo = np.where(down, x, lo)
-        f_lo = np.where(down, fx, f_lo)
-        g_lo = np.where(down, fx, g_lo)
-        side = np.where(up, 1, np.where(down, -1, side)).astype(np.int8)
+        ga[todo] = np.where(up & (sd == 1), 0.5 * GA, GA)
+        gb[todo] = np.where(down & (sd == -1), 0.5 * GB, GB)
+        iu, idn = todo[up], todo[down]
+        b_[iu], fb[iu], gb[iu] = x[up], fx[up], fx[up]
+        a[idn], fa[idn], ga[idn] = x[down], fx[down], fx[down]
+        side[iu], side[idn] = 1, -1
+        keep = ~hit & (b_[todo] - a[todo] > wt[todo])
+        todo = todo[keep]
     with np.errstate(invalid="ignore", divide="ignore"):
-        frac = np.where(f_hi > f_lo, -f_lo / np.where(f_hi > f_lo, f_hi - f_lo, 1.0), 1.0)
-    interp = lo + np.clip(frac, 0.0, 1.0) * (hi - lo)
-    out = np.where(np.isfinite(root), root, interp)
-    return np.where(found, out, np.nan)
+        frac = np.where(fb > fa, -fa / np.where(fb > fa, fb - fa, 1.0), 1.0)
+    interp = a + np.clip(frac, 0.0, 1.0) * (b_ - a)
+    root[rr, cc] = np.where(np.isfinite(res), res, interp)
+    return np.where(found, root, np.nan)
 
 
 @dataclass(frozen=True)
