@@ -579,10 +579,17 @@ def adjust_roughness(
     horizontal unit, stages and stage bias in the DEM's vertical unit; conveyance
     k A R^(2/3) / n with k = 1.0 (metre) or 1.486 (foot).
     """
-    from .inputs import open_dem, read_cells, read_water_surfaces
+    from .inputs import elevation_field_values, open_dem, read_cells, read_water_surfaces
     from .mesh import build_faces
-    from .outputs import OutputFolder, TableWriter, write_csv, write_geopackage
-    from .tables import _field_values, _id_type, _ids_at, _units
+    from .outputs import (
+        OutputFolder,
+        TableWriter,
+        id_arrow_type,
+        ids_at,
+        write_csv,
+        write_geopackage,
+    )
+    from .tables import table_units
 
     started = time.perf_counter()
     _check_choice("coverage", coverage, COVERAGE_MODES)
@@ -605,7 +612,7 @@ def adjust_roughness(
 
     dem_info = open_dem(dem, vertical_units=vertical_units)
     layer = read_cells(cells, dem=dem_info, id_field=id_field)
-    field_values = _field_values(layer, elevation_rule, elevation_field)
+    field_values = elevation_field_values(layer, elevation_rule, elevation_field)
     geoms = np.asarray(layer.geometry, dtype=object)
     ids = np.asarray(layer.ids)
     # the mesh outline is only needed to check class polygons against it
@@ -671,7 +678,7 @@ def adjust_roughness(
         log.warning("the class fit did not converge (cost %.3g); check the flags", fit.cost)
 
     # ---- pass 2: per item tables
-    units = _units(dem_info)
+    units = table_units(dem_info)
     z_unit = units["stage"]
     units.update({"conveyance_target_unadjusted": units["conveyance_source"],
                   "dominant_class": "", "n_ratio_lumped": "1", "n_ratio_conveyance_form": "1",
@@ -679,7 +686,7 @@ def adjust_roughness(
                   "n_ratio_median": "1", "stage_bias_unadjusted_median": z_unit,
                   "bed_factor": "1"})
     descriptions = _descriptions()
-    id_type = _id_type(ids)
+    id_type = id_arrow_type(ids)
     f64 = pa.float64()
     face_schema = pa.schema(
         [pa.field("face_id", pa.int64()), pa.field("cell_a", id_type), pa.field("cell_b", id_type)]
@@ -728,8 +735,8 @@ def adjust_roughness(
                 mismatch_faces += res["face_mismatch"]
                 chunk: dict[str, Any] = {
                     "face_id": np.repeat(fc, n_win).astype(np.int64),
-                    "cell_a": _ids_at(ids, np.repeat(res["face_a"], n_win)),
-                    "cell_b": _ids_at(ids, np.repeat(res["face_b"], n_win)),
+                    "cell_a": ids_at(ids, np.repeat(res["face_a"], n_win)),
+                    "cell_b": ids_at(ids, np.repeat(res["face_b"], n_win)),
                 }
                 chunk.update({c: np.asarray(fr[c], dtype=float).ravel() for c in FACE_COLUMNS[3:-1]})
                 chunk["dominant_class"] = class_column(np.repeat(res["face_dominant"], n_win))
@@ -741,7 +748,7 @@ def adjust_roughness(
                 cell_ratio_med[cc] = _nanmedian_rows(cr["n_ratio"])
                 cell_bed[cc] = res["bed_factor"]
                 mismatch_cells += res["cell_mismatch"]
-                chunk = {"cell_id": _ids_at(ids, np.repeat(cc, n_win))}
+                chunk = {"cell_id": ids_at(ids, np.repeat(cc, n_win))}
                 chunk.update({c: np.asarray(cr[c], dtype=float).ravel() for c in CELL_COLUMNS[1:-1]})
                 chunk["dominant_class"] = class_column(np.repeat(res["cell_dominant"], n_win))
                 cw.write(chunk)
@@ -779,8 +786,8 @@ def adjust_roughness(
         files.append(write_geopackage(cell_frame, tmp / "cells.gpkg", "cells"))
         face_frame = gpd.GeoDataFrame(
             {"face_id": np.arange(n_faces, dtype=np.int64),
-             "cell_a": _ids_at(ids, mesh.cell_a).to_pandas(),
-             "cell_b": _ids_at(ids, mesh.cell_b).to_pandas(),
+             "cell_a": ids_at(ids, mesh.cell_a).to_pandas(),
+             "cell_b": ids_at(ids, mesh.cell_b).to_pandas(),
              "length": mesh.length, "n_ratio_median": face_ratio_med,
              "stage_bias_unadjusted_median": face_bias_med,
              "dominant_class": cls_names[face_dom].astype(str)},

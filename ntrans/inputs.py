@@ -997,3 +997,34 @@ def check_output_not_input(
                 f"output folder '{out}' lies inside the input '{text}'; choose a folder "
                 "outside it"
             )
+
+
+def elevation_field_values(
+    layer: Any, rule: str, elevation_field: str | None
+) -> np.ndarray | None:
+    """Flat bed elevations from a cell attribute (rule ``field``), else None; checked."""
+    if rule != "field":
+        if elevation_field is not None:
+            raise InputError(
+                f"an elevation field ({elevation_field!r}) was given but the elevation rule is "
+                f"{rule!r}; use elevation_rule='field' or drop the field"
+            )
+        return None
+    if elevation_field is None:
+        raise InputError(
+            "the elevation rule 'field' needs an elevation field; name the cell attribute "
+            "holding the flat bed elevations"
+        )
+    frame = layer.frame
+    if elevation_field not in frame.columns:
+        raise InputError(
+            f"the cells have no attribute {elevation_field!r}; choose one of "
+            f"{', '.join(map(str, [c for c in frame.columns if c != frame.geometry.name]))}"
+        )
+    try:
+        values = np.asarray(frame[elevation_field], dtype=float)
+    except (TypeError, ValueError) as exc:
+        raise InputError(
+            f"cell attribute {elevation_field!r} holds non-numbers; give elevations as numbers"
+        ) from exc
+    return values

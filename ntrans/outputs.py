@@ -550,3 +550,20 @@ _DESCRIPTIONS: dict[str, str] = {
 def column_descriptions() -> dict[str, str]:
     """Short description per contract column (same keys as :func:`column_units`)."""
     return dict(_DESCRIPTIONS)
+
+
+def id_arrow_type(ids: np.ndarray) -> pa.DataType:
+    """Arrow type of a column of user ids: int64 for integer ids, else string."""
+    return pa.int64() if ids.dtype.kind in "iub" else pa.string()
+
+
+def ids_at(ids: np.ndarray, index: np.ndarray) -> pa.Array:
+    """User ids at global indices; null where the index is -1."""
+    index = np.asarray(index, dtype=np.int64)
+    missing = index < 0
+    values = ids[np.where(missing, 0, index)] if ids.size else np.empty(0, dtype=ids.dtype)
+    kind = id_arrow_type(ids)
+    if kind == pa.int64():
+        return pa.array(values.astype(np.int64), type=kind, mask=missing)
+    text = [None if m else str(v) for v, m in zip(values.tolist(), missing.tolist(), strict=True)]
+    return pa.array(text, type=kind)

@@ -88,7 +88,7 @@ class TablesResult:
     units: dict[str, str] = field(default_factory=dict)
 
 
-def _units(dem: Any) -> dict[str, str]:
+def table_units(dem: Any) -> dict[str, str]:
     from .outputs import column_units, unit_symbol
 
     units = column_units(dem.horizontal_unit, dem.vertical_unit)
@@ -126,53 +126,9 @@ def _descriptions() -> dict[str, str]:
     return d
 
 
-def _id_type(ids: np.ndarray) -> pa.DataType:
-    return pa.int64() if ids.dtype.kind in "iub" else pa.string()
-
-
-def _ids_at(ids: np.ndarray, index: np.ndarray) -> pa.Array:
-    """User ids at global indices; null where the index is -1."""
-    index = np.asarray(index, dtype=np.int64)
-    missing = index < 0
-    values = ids[np.where(missing, 0, index)] if ids.size else np.empty(0, dtype=ids.dtype)
-    kind = _id_type(ids)
-    if kind == pa.int64():
-        return pa.array(values.astype(np.int64), type=kind, mask=missing)
-    text = [None if m else str(v) for v, m in zip(values.tolist(), missing.tolist(), strict=True)]
-    return pa.array(text, type=kind)
-
-
 def _check_choice(name: str, value: str, allowed: tuple[str, ...]) -> None:
     if value not in allowed:
         raise InputError(f"{name} {value!r} is not one of {', '.join(allowed)}; choose one of them")
-
-
-def _field_values(layer: Any, rule: str, elevation_field: str | None) -> np.ndarray | None:
-    if rule != "field":
-        if elevation_field is not None:
-            raise InputError(
-                f"an elevation field ({elevation_field!r}) was given but the elevation rule is "
-                f"{rule!r}; use elevation_rule='field' or drop the field"
-            )
-        return None
-    if elevation_field is None:
-        raise InputError(
-            "the elevation rule 'field' needs an elevation field; name the cell attribute "
-            "holding the flat bed elevations"
-        )
-    frame = layer.frame
-    if elevation_field not in frame.columns:
-        raise InputError(
-            f"the cells have no attribute {elevation_field!r}; choose one of "
-            f"{', '.join(map(str, [c for c in frame.columns if c != frame.geometry.name]))}"
-        )
-    try:
-        values = np.asarray(frame[elevation_field], dtype=float)
-    except (TypeError, ValueError) as exc:
-        raise InputError(
-            f"cell attribute {elevation_field!r} holds non-numbers; give elevations as numbers"
-        ) from exc
-    return values
 
 
 def build_tables(
@@ -233,9 +189,16 @@ def build_tables(
     ``.csv`` copies of the stage tables.  Column units are in each Parquet file's
     metadata (key ``ntrans:units``) and in the summary JSON.
     """
-    from .inputs import open_dem, read_cells
+    from .inputs import elevation_field_values, open_dem, read_cells
     from .mesh import build_faces
-    from .outputs import OutputFolder, TableWriter, write_csv, write_geopackage
+    from .outputs import (
+        OutputFolder,
+        TableWriter,
+        id_arrow_type,
+        ids_at,
+        write_csv,
+        write_geopackage,
+    )
 
     started = time.perf_counter()
     _check_choice("coverage", coverage, COVERAGE_MODES)
@@ -250,7 +213,7 @@ def build_tables(
         tmp = folder.path
         dem_info = open_dem(dem, vertical_units=vertical_units)
         layer = read_cells(cells, dem=dem_info, id_field=id_field)
-        field_values = _field_values(layer, elevation_rule, elevation_field)
+        field_values = elevation_field_values(layer, elevation_rule, elevation_field)
         dx, dy = dem_info.pixel_size
         pixel = min(dx, dy)
         spacing = 0.5 * pixel if face_spacing is None else float(face_spacing)
@@ -298,7 +261,7 @@ def build_tables(
             face_length=None if mesh is None else mesh.length,
         )
 
-        units = _units(dem_info)
+        units = table_units(dem_info)
         descriptions = _descriptions()
         meta = {
             "ntrans:version": __version__,
@@ -306,7 +269,7 @@ def build_tables(
             "ntrans:dem": os.fspath(dem),
             "ntrans:cells": os.fspath(cells),
         }
-        id_type = _id_type(ids)
+        id_type = id_arrow_type(ids)
         f64 = pa.float64()
         cell_schema = pa.schema(
             [pa.field("cell_id", id_type)] + [pa.field(c, f64) for c in CELL_STAGE_COLUMNS[1:]]
@@ -343,7 +306,7 @@ def build_tables(
             step = max(len(tiles) // 10, 1)
             for k, res in enumerate(results):
                 rows = res["cell_rows"]
-                chunk: dict[str, Any] = {"cell_id": _ids_at(ids, rows["cell"])}
+                chunk: dict[str, Any] = {"cell_id": ids_at(ids, rows["cell"])}
                 chunk.update({c: rows[c] for c in CELL_STAGE_COLUMNS[1:]})
                 cell_writer.write(chunk)
                 cs = res["cell_summary"]
@@ -353,8 +316,8 @@ def build_tables(
                     fr = res["face_rows"]
                     fchunk: dict[str, Any] = {
                         "face_id": fr["face"].astype(np.int64),
-                        "cell_a": _ids_at(ids, fr["cell_a"]),
-                        "cell_b": _ids_at(ids, fr["cell_b"]),
+                        "cell_a": ids_at(ids, fr["cell_a"]),
+                        "cell_b": ids_at(ids, fr["cell_b"]),
                     }
                     fchunk.update({c: fr[c] for c in FACE_STAGE_COLUMNS[3:]})
                     face_writer.write(fchunk)
@@ -398,8 +361,8 @@ def build_tables(
             face_frame = gpd.GeoDataFrame(
                 {
                     "face_id": np.arange(n_faces, dtype=np.int64),
-                    "cell_a": _ids_at(ids, mesh.cell_a).to_pandas(),
-                    "cell_b": _ids_at(ids, mesh.cell_b).to_pandas(),
+                    "cell_a": ids_at(ids, mesh.cell_a).to_pandas(),
+                    "cell_b": ids_at(ids, mesh.cell_b).to_pandas(),
                     "length": mesh.length,
                     **face_sum,
                 },
