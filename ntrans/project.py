@@ -767,9 +767,11 @@ def _gather(project: Project, folder: Path) -> dict[str, Any]:
         "stage_mode": mode,
         "fit_domain": domain,
     }
+    weights = (fit_rows["conveyance_source"].to_numpy(dtype=float)
+               if "conveyance_source" in fit_rows.columns else None)
     for key in ("stage_bias_unadjusted", "stage_bias_adjusted"):
         if key in fit_rows.columns:
-            summary[key] = _stats(fit_rows[key].to_numpy(dtype=float))
+            summary[key] = _stats(fit_rows[key].to_numpy(dtype=float), weights)
     return {
         "tables_summary": tsum,
         "adjust_summary": asum,
@@ -785,20 +787,33 @@ def _gather(project: Project, folder: Path) -> dict[str, Any]:
     }
 
 
-def _stats(values: Any) -> dict[str, Any]:
+def _stats(values: Any, weights: Any = None) -> dict[str, Any]:
+    """Median, 10/90 % and mean |value|; with ``weights`` (the source conveyance, the
+    weight of the class fit) also the weighted median and weighted mean |value|."""
     import numpy as np
 
     v = np.asarray(values, dtype=float)
-    v = v[np.isfinite(v)]
+    w = np.ones_like(v) if weights is None else np.asarray(weights, dtype=float)
+    keep = np.isfinite(v) & np.isfinite(w) & (w >= 0)
+    v, w = v[keep], w[keep]
+    out: dict[str, Any] = {"count": 0, "median": None, "p10": None, "p90": None,
+                           "mean_abs": None, "weighted_median": None,
+                           "weighted_mean_abs": None}
     if not v.size:
-        return {"count": 0, "median": None, "p10": None, "p90": None, "mean_abs": None}
-    return {
-        "count": int(v.size),
-        "median": float(np.median(v)),
-        "p10": float(np.percentile(v, 10)),
-        "p90": float(np.percentile(v, 90)),
-        "mean_abs": float(np.mean(np.abs(v))),
-    }
+        return out
+    out.update(
+        count=int(v.size),
+        median=float(np.median(v)),
+        p10=float(np.percentile(v, 10)),
+        p90=float(np.percentile(v, 90)),
+        mean_abs=float(np.mean(np.abs(v))),
+    )
+    if weights is not None and w.sum() > 0:
+        order = np.argsort(v, kind="stable")
+        cum = np.cumsum(w[order])
+        out["weighted_median"] = float(v[order][np.searchsorted(cum, 0.5 * cum[-1])])
+        out["weighted_mean_abs"] = float(np.sum(w * np.abs(v)) / w.sum())
+    return out
 
 
 def _unit_symbol(unit: str) -> str:
@@ -923,13 +938,16 @@ def _report_context(project: Project, data: dict[str, Any]) -> dict[str, Any]:
                      "cells, and the face values are shown for reference.")
     before = summary.get("stage_bias_unadjusted") or {}
     after = summary.get("stage_bias_adjusted") or {}
-    if (before.get("mean_abs") is not None and after.get("mean_abs") is not None
-            and after["mean_abs"] > before["mean_abs"]):
+    # judge by the fit's own weighting (source conveyance) when it is known
+    key = "weighted_mean_abs" if after.get("weighted_mean_abs") is not None else "mean_abs"
+    what = ("conveyance-weighted mean absolute stage error" if key == "weighted_mean_abs"
+            else "mean absolute stage error")
+    if (before.get(key) is not None and after.get(key) is not None
+            and after[key] > before[key]):
         notes.append(
-            f"With the adjusted n the mean absolute stage error is larger "
-            f"({after['mean_abs']:.3g} {z}) than with n carried over ({before['mean_abs']:.3g} "
-            f"{z}): one n per class does not fit these faces well; review the classes with "
-            "a wide spread before using their n."
+            f"With the adjusted n the {what} is larger ({after[key]:.3g} {z}) than with n "
+            f"carried over ({before[key]:.3g} {z}): one n per class does not fit these faces "
+            "well; review the classes with a wide spread before using their n."
         )
     return {
         "title": f"Manning's n carried from {source} to {target} cells",

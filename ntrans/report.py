@@ -13,7 +13,7 @@ The context dict (all keys optional except ``classes``)::
     units                    dict: horizontal, vertical, manning_k
     counts                   dict: cells, faces, stages, classes
     classes                  list of dicts, one per class (columns of n_by_class.csv)
-    bias                     dict: before / after -> dict(median, p10, p90, mean_abs, count)
+    bias                     dict: before / after -> dict(median, p10, p90, mean_abs, weighted_median, weighted_mean_abs, count)
     inputs                   list of dicts: role, path, sha256
     notes                    list of str (warnings and remarks from the run)
     reference                str: the reference depth or stage of the friction-factor map
@@ -198,11 +198,16 @@ def _bias_table(bias: Mapping[str, Mapping[str, Any]], unit: str) -> str:
         rows.append(
             f'<tr><td class="l">{esc(label)}</td><td>{fmt(stats.get("median"), 3)}</td>'
             f'<td>{fmt(stats.get("p10"), 3)}</td><td>{fmt(stats.get("p90"), 3)}</td>'
-            f'<td>{fmt(stats.get("mean_abs"), 3)}</td><td>{fmt(stats.get("count"))}</td></tr>'
+            f'<td>{fmt(stats.get("mean_abs"), 3)}</td>'
+            f'<td>{fmt(stats.get("weighted_median"), 3)}</td>'
+            f'<td>{fmt(stats.get("weighted_mean_abs"), 3)}</td>'
+            f'<td>{fmt(stats.get("count"))}</td></tr>'
         )
     head = (
         f'<tr><th class="l"></th><th>median ({esc(unit)})</th><th>10 % ({esc(unit)})</th>'
-        f"<th>90 % ({esc(unit)})</th><th>mean |error| ({esc(unit)})</th><th>face-stages</th></tr>"
+        f"<th>90 % ({esc(unit)})</th><th>mean |error| ({esc(unit)})</th>"
+        f"<th>median, weighted by conveyance ({esc(unit)})</th>"
+        f"<th>mean |error|, weighted by conveyance ({esc(unit)})</th><th>face-stages</th></tr>"
     )
     return f"<table><thead>{head}</thead><tbody>{''.join(rows)}</tbody></table>"
 
