@@ -39,9 +39,8 @@ from .engine import (
     ELEVATION_RULES,
     FACE_RULES,
     make_tasks,
-    plan_tiles,
 )
-from .errors import DryWetMismatchWarning, InputError, RoughnessError
+from .errors import DryWetMismatchWarning, InputError, RoughnessError, check_choice
 from .roughness import (
     AREA_TOLERANCE,
     OVERLAP_RULES,
@@ -125,18 +124,13 @@ class _Plan:
     k: float
 
 
-def _check_choice(name: str, value: Any, allowed: tuple[str, ...]) -> None:
-    if value not in allowed:
-        raise InputError(f"{name} {value!r} is not one of {', '.join(allowed)}; choose one of them")
-
-
 def _families(source: str, target: str, closure: str, source_closure: str | None) -> tuple[str, str, str]:
     """(source closure, target closure, domain) from the options."""
-    _check_choice("source family", source, FAMILIES)
-    _check_choice("target family", target, FAMILIES)
-    _check_choice("closure", closure, SUBGRID_CLOSURES)
+    check_choice("source family", source, FAMILIES)
+    check_choice("target family", target, FAMILIES)
+    check_choice("closure", closure, SUBGRID_CLOSURES)
     if source_closure is not None:
-        _check_choice("source closure", source_closure, SUBGRID_CLOSURES)
+        check_choice("source closure", source_closure, SUBGRID_CLOSURES)
     if source == "flat" and target == "flat":
         raise InputError("source and target are both flat; one side must be subgrid "
                          "(use --from subgrid or --to subgrid)")
@@ -579,8 +573,7 @@ def adjust_roughness(
     horizontal unit, stages and stage bias in the DEM's vertical unit; conveyance
     k A R^(2/3) / n with k = 1.0 (metre) or 1.486 (foot).
     """
-    from .inputs import elevation_field_values, open_dem, read_cells, read_water_surfaces
-    from .mesh import build_faces
+    from .inputs import read_water_surfaces
     from .outputs import (
         OutputFolder,
         TableWriter,
@@ -589,14 +582,14 @@ def adjust_roughness(
         write_csv,
         write_geopackage,
     )
-    from .tables import table_units
+    from .tables import prepare_mesh_job, table_units
 
     started = time.perf_counter()
-    _check_choice("coverage", coverage, COVERAGE_MODES)
-    _check_choice("elevation rule", elevation_rule, ELEVATION_RULES)
-    _check_choice("face rule", face_rule, FACE_RULES)
-    _check_choice("composite method", composite, COMPOSITES)
-    _check_choice("overlap rule", overlap_rule, OVERLAP_RULES)
+    check_choice("coverage", coverage, COVERAGE_MODES)
+    check_choice("elevation rule", elevation_rule, ELEVATION_RULES)
+    check_choice("face rule", face_rule, FACE_RULES)
+    check_choice("composite method", composite, COMPOSITES)
+    check_choice("overlap rule", overlap_rule, OVERLAP_RULES)
     sc, tc, domain = _families(source, target, closure, source_closure)
     if isinstance(water_surface, str | os.PathLike):
         water_surface = [water_surface]
@@ -605,16 +598,16 @@ def adjust_roughness(
         raise InputError("give exactly one calibration window: depths, stages or water-surface "
                          "rasters")
     spec = None if water_surface else StageSpec.from_options(stages=stages, depths=depths)
-    if int(tile_size) < 1:
-        raise InputError(f"tile size {tile_size} is not a positive number of pixels; use e.g. 1024")
     if workers is not None and scheduler is not None:
         raise InputError("give either workers or a scheduler address, not both")
 
-    dem_info = open_dem(dem, vertical_units=vertical_units)
-    layer = read_cells(cells, dem=dem_info, id_field=id_field)
-    field_values = elevation_field_values(layer, elevation_rule, elevation_field)
-    geoms = np.asarray(layer.geometry, dtype=object)
-    ids = np.asarray(layer.ids)
+    setup = prepare_mesh_job(
+        dem, cells, id_field=id_field, vertical_units=vertical_units,
+        elevation_rule=elevation_rule, elevation_field=elevation_field,
+        face_spacing=face_spacing, snap_tolerance=snap_tolerance, tile_size=tile_size,
+    )
+    dem_info, layer, geoms, ids = setup.dem, setup.layer, setup.geoms, setup.ids
+    field_values, mesh, tiles = setup.field_values, setup.mesh, setup.tiles
     # the mesh outline is only needed to check class polygons against it
     mesh_area = shapely.union_all(geoms) if classes is not None else None
     model = load_roughness(n=n, classes=classes, class_field=class_field, n_table=n_table,
@@ -623,20 +616,10 @@ def adjust_roughness(
                            crs=dem_info.crs, mesh_area=mesh_area)
     surfaces = read_water_surfaces(water_surface, dem=dem_info) if water_surface else []
     window = _Window(spec, surfaces, dem_info)
-
-    dx, dy = dem_info.pixel_size
-    pixel = min(dx, dy)
-    spacing = 0.5 * pixel if face_spacing is None else float(face_spacing)
-    snap = 0.01 * pixel if snap_tolerance is None else float(snap_tolerance)
-    if not (np.isfinite(spacing) and spacing > 0):
-        raise InputError(f"face spacing {face_spacing!r} is not a positive length; give e.g. {0.5 * pixel:g}")
     plan = _Plan(source, target, sc, tc, domain, composite, elevation_rule, face_rule, coverage,
-                 spacing, float(dem_info.z_to_xy), float(dem_info.manning_k))
+                 setup.spacing, float(dem_info.z_to_xy), float(dem_info.manning_k))
     k = plan.k
-    mesh = build_faces(geoms, snap_tolerance=snap)
     n_cells, n_faces, n_cls, n_win = geoms.size, mesh.n_faces, model.n_classes, window.n
-    tiles = plan_tiles(geoms, dem_info.transform, dem_info.shape, tile_size=int(tile_size),
-                       face_cell_a=mesh.cell_a, face_cell_b=mesh.cell_b, face_lines=mesh.geometry)
     log.info("adjust: %s/%s -> %s/%s on %s, %d cells, %d faces, %d classes, %d window stages, "
              "%d tiles", source, sc, target, tc, domain, n_cells, n_faces, n_cls, n_win, len(tiles))
 

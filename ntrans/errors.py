@@ -22,6 +22,12 @@ class InputError(NtransError, ValueError):
     """An input (file, option, value) is not usable as given."""
 
 
+def check_choice(name: str, value: object, allowed: tuple[str, ...]) -> None:
+    """Raise :class:`InputError` naming the valid choices when ``value`` is not one."""
+    if value not in allowed:
+        raise InputError(f"{name} {value!r} is not one of {', '.join(allowed)}; choose one of them")
+
+
 class InputFileError(NtransError, OSError):
     """An input file is missing or cannot be read."""
 

@@ -40,7 +40,7 @@ from .engine import (
     make_tasks,
     plan_tiles,
 )
-from .errors import InputError, PartialCoverageWarning
+from .errors import InputError, PartialCoverageWarning, check_choice
 from .stages import StageSpec
 
 log = logging.getLogger(__name__)
@@ -126,9 +126,68 @@ def _descriptions() -> dict[str, str]:
     return d
 
 
-def _check_choice(name: str, value: str, allowed: tuple[str, ...]) -> None:
-    if value not in allowed:
-        raise InputError(f"{name} {value!r} is not one of {', '.join(allowed)}; choose one of them")
+@dataclass
+class MeshJob:
+    """What every job reads and builds before its tiles run."""
+
+    dem: Any  # ntrans.inputs.DemInfo
+    layer: Any  # ntrans.inputs.CellLayer
+    ids: np.ndarray
+    geoms: np.ndarray
+    field_values: np.ndarray | None
+    spacing: float
+    snap_tolerance: float
+    mesh: Any  # ntrans.mesh.Faces, or None without faces
+    tiles: list
+
+
+def prepare_mesh_job(
+    dem: str | os.PathLike[str],
+    cells: str | os.PathLike[str],
+    *,
+    id_field: str | None,
+    vertical_units: str | None,
+    elevation_rule: str,
+    elevation_field: str | None,
+    face_spacing: float | None,
+    snap_tolerance: float | None,
+    tile_size: int,
+    faces: bool = True,
+) -> MeshJob:
+    """Open the DEM, read and check the cells, build the faces and plan the tiles.
+
+    Face spacing defaults to half a pixel and the snap tolerance to 1 % of a pixel
+    (horizontal CRS units).
+    """
+    from .inputs import elevation_field_values, open_dem, read_cells
+    from .mesh import build_faces
+
+    if int(tile_size) < 1:
+        raise InputError(f"tile size {tile_size} is not a positive number of pixels; use e.g. 1024")
+    dem_info = open_dem(dem, vertical_units=vertical_units)
+    layer = read_cells(cells, dem=dem_info, id_field=id_field)
+    field_values = elevation_field_values(layer, elevation_rule, elevation_field)
+    pixel = min(dem_info.pixel_size)
+    spacing = 0.5 * pixel if face_spacing is None else float(face_spacing)
+    snap = 0.01 * pixel if snap_tolerance is None else float(snap_tolerance)
+    if not (np.isfinite(spacing) and spacing > 0):
+        raise InputError(f"face spacing {face_spacing!r} is not a positive length; give e.g. {0.5 * pixel:g}")
+    if not (np.isfinite(snap) and snap > 0):
+        raise InputError(f"snap tolerance {snap_tolerance!r} is not a positive length; give e.g. {0.01 * pixel:g}")
+    geoms = np.asarray(layer.geometry, dtype=object)
+    mesh = build_faces(geoms, snap_tolerance=snap) if faces else None
+    tiles = plan_tiles(
+        geoms,
+        dem_info.transform,
+        dem_info.shape,
+        tile_size=int(tile_size),
+        face_cell_a=None if mesh is None else mesh.cell_a,
+        face_cell_b=None if mesh is None else mesh.cell_b,
+        face_lines=None if mesh is None else mesh.geometry,
+    )
+    return MeshJob(
+        dem_info, layer, np.asarray(layer.ids), geoms, field_values, spacing, snap, mesh, tiles
+    )
 
 
 def build_tables(
@@ -189,8 +248,6 @@ def build_tables(
     ``.csv`` copies of the stage tables.  Column units are in each Parquet file's
     metadata (key ``ntrans:units``) and in the summary JSON.
     """
-    from .inputs import elevation_field_values, open_dem, read_cells
-    from .mesh import build_faces
     from .outputs import (
         OutputFolder,
         TableWriter,
@@ -201,42 +258,26 @@ def build_tables(
     )
 
     started = time.perf_counter()
-    _check_choice("coverage", coverage, COVERAGE_MODES)
-    _check_choice("elevation rule", elevation_rule, ELEVATION_RULES)
-    _check_choice("face rule", face_rule, FACE_RULES)
+    check_choice("coverage", coverage, COVERAGE_MODES)
+    check_choice("elevation rule", elevation_rule, ELEVATION_RULES)
+    check_choice("face rule", face_rule, FACE_RULES)
     spec = StageSpec.from_options(stages=stages, depths=depths)
-    if int(tile_size) < 1:
+    if int(tile_size) < 1:  # checked before the output folder is touched
         raise InputError(f"tile size {tile_size} is not a positive number of pixels; use e.g. 1024")
 
     files: list[Path] = []
     with OutputFolder(out, overwrite=overwrite, inputs=[dem, cells]) as folder:
         tmp = folder.path
-        dem_info = open_dem(dem, vertical_units=vertical_units)
-        layer = read_cells(cells, dem=dem_info, id_field=id_field)
-        field_values = elevation_field_values(layer, elevation_rule, elevation_field)
-        dx, dy = dem_info.pixel_size
-        pixel = min(dx, dy)
-        spacing = 0.5 * pixel if face_spacing is None else float(face_spacing)
-        snap = 0.01 * pixel if snap_tolerance is None else float(snap_tolerance)
-        if not (np.isfinite(spacing) and spacing > 0):
-            raise InputError(f"face spacing {face_spacing!r} is not a positive length; give e.g. {0.5 * pixel:g}")
-        if not (np.isfinite(snap) and snap > 0):
-            raise InputError(f"snap tolerance {snap_tolerance!r} is not a positive length; give e.g. {0.01 * pixel:g}")
-
-        ids = np.asarray(layer.ids)
-        geoms = np.asarray(layer.geometry, dtype=object)
-        n_cells = geoms.size
-        mesh = build_faces(geoms, snap_tolerance=snap) if faces else None
-        n_faces = mesh.n_faces if mesh is not None else 0
-        tiles = plan_tiles(
-            geoms,
-            dem_info.transform,
-            dem_info.shape,
-            tile_size=int(tile_size),
-            face_cell_a=None if mesh is None else mesh.cell_a,
-            face_cell_b=None if mesh is None else mesh.cell_b,
-            face_lines=None if mesh is None else mesh.geometry,
+        job = prepare_mesh_job(
+            dem, cells, id_field=id_field, vertical_units=vertical_units,
+            elevation_rule=elevation_rule, elevation_field=elevation_field,
+            face_spacing=face_spacing, snap_tolerance=snap_tolerance,
+            tile_size=tile_size, faces=faces,
         )
+        dem_info, layer, ids, geoms = job.dem, job.layer, job.ids, job.geoms
+        field_values, spacing, mesh, tiles = job.field_values, job.spacing, job.mesh, job.tiles
+        n_cells = geoms.size
+        n_faces = mesh.n_faces if mesh is not None else 0
         log.info(
             "%d cells, %d faces, %d stages (%s mode) in %d tiles of %d px",
             n_cells, n_faces, spec.values.size, spec.mode, len(tiles), int(tile_size),
@@ -398,7 +439,7 @@ def build_tables(
             "elevation_field": elevation_field,
             "face_rule": face_rule,
             "face_spacing": spacing,
-            "snap_tolerance": snap,
+            "snap_tolerance": job.snap_tolerance,
             "horizontal_unit": dem_info.horizontal_unit,
             "vertical_unit": dem_info.vertical_unit,
             "partial_cells": int(partial.sum()),

@@ -186,6 +186,9 @@ def test_bad_roughness_nothing_written(flat_case, tmp_path, rows, polys, kinds, 
         {"depths": "1", "stages": "11"},
         {"source_closure": "strip"},
         {"composite": "average"},
+        {"snap_tolerance": -1.0},  # the shared job setup checks it for every job
+        {"face_spacing": 0.0},
+        {"tile_size": 0},
     ],
 )
 def test_bad_options(flat_case, tmp_path, kw):
