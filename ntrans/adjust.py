@@ -19,6 +19,7 @@ bounded by one tile plus the (item, class, stage) statistics.
 
 from __future__ import annotations
 
+import contextlib
 import json
 import logging
 import os
@@ -34,6 +35,7 @@ import shapely
 
 from . import __version__
 from .cautions import CAUTIONS
+from .cluster import connect_workers
 from .engine import (
     COVERAGE_MODES,
     ELEVATION_RULES,
@@ -205,7 +207,8 @@ def _tile_geometry(task: Any, elevation: np.ndarray, transform: Any, plan: _Plan
     plan_area = frac * pixel_area
     pix_cls = cls_win[rows, cols].astype(np.int64) if elevation.size else np.empty(0, np.int64)
 
-    summary = cell_terrain_summary(item, z, plan_area, n_all)
+    summary = cell_terrain_summary(item, z, plan_area, n_all,
+                                   median=plan.elevation_rule == "median")
     centroid_z = None
     if plan.elevation_rule == "centroid":
         cent = shapely.centroid(task.polygons)
@@ -486,13 +489,13 @@ def _pass_tables(job: _Job, task: Any, n_fit: np.ndarray) -> dict[str, Any]:
     return out
 
 
-def _run_tiles(fn: Any, job: _Job, tasks: Any, *args: Any, workers: int | None,
-               scheduler: str | None, progress: bool, total: int, desc: str) -> Any:
+def _run_tiles(fn: Any, job: _Job, tasks: Any, *args: Any, connection: Any, progress: bool,
+               total: int, desc: str) -> Any:
     """Yield ``fn(job, task, *args)`` for every task, in task order (see ntrans.cluster)."""
     from .cluster import run_ordered
 
-    yield from run_ordered(_call_pass, (fn, job, args), tasks, workers=workers,
-                           scheduler=scheduler, progress=progress, total=total, desc=desc)
+    yield from run_ordered(_call_pass, (fn, job, args), tasks, connection=connection,
+                           progress=progress, total=total, desc=desc)
 
 
 def _call_pass(shared: tuple, task: Any) -> Any:
@@ -598,231 +601,230 @@ def adjust_roughness(
         raise InputError("give exactly one calibration window: depths, stages or water-surface "
                          "rasters")
     spec = None if water_surface else StageSpec.from_options(stages=stages, depths=depths)
-    if workers is not None and scheduler is not None:
-        raise InputError("give either workers or a scheduler address, not both")
-
-    setup = prepare_mesh_job(
-        dem, cells, id_field=id_field, vertical_units=vertical_units,
-        elevation_rule=elevation_rule, elevation_field=elevation_field,
-        face_spacing=face_spacing, snap_tolerance=snap_tolerance, tile_size=tile_size,
-    )
-    dem_info, layer, geoms, ids = setup.dem, setup.layer, setup.geoms, setup.ids
-    field_values, mesh, tiles = setup.field_values, setup.mesh, setup.tiles
-    # the mesh outline is only needed to check class polygons against it
-    mesh_area = shapely.union_all(geoms) if classes is not None else None
-    model = load_roughness(n=n, classes=classes, class_field=class_field, n_table=n_table,
-                           n_field=n_field, class_raster=class_raster,
-                           default_class=default_class, overlap_rule=overlap_rule,  # type: ignore[arg-type]
-                           crs=dem_info.crs, mesh_area=mesh_area)
-    surfaces = read_water_surfaces(water_surface, dem=dem_info) if water_surface else []
-    window = _Window(spec, surfaces, dem_info)
-    plan = _Plan(source, target, sc, tc, domain, composite, elevation_rule, face_rule, coverage,
-                 setup.spacing, float(dem_info.z_to_xy), float(dem_info.manning_k))
-    k = plan.k
-    n_cells, n_faces, n_cls, n_win = geoms.size, mesh.n_faces, model.n_classes, window.n
-    log.info("adjust: %s/%s -> %s/%s on %s, %d cells, %d faces, %d classes, %d window stages, "
-             "%d tiles", source, sc, target, tc, domain, n_cells, n_faces, n_cls, n_win, len(tiles))
-
-    def tasks():
-        return make_tasks(tiles, geoms, field_values=field_values, face_lines=mesh.geometry,
-                          face_cell_a=mesh.cell_a, face_cell_b=mesh.cell_b,
-                          face_length=mesh.length)
-
-    job = _Job(dem_info, plan, model, window)
-    run = {"workers": workers, "scheduler": scheduler, "progress": progress, "total": len(tiles)}
-
-    # ---- pass 1: sufficient statistics of the fit domain
-    tgt_parts: list[ClassStats] = []
-    uncovered = covered = 0.0
-    n_dom = n_faces if domain == "faces" else n_cells
-    k_src_all = np.full((n_dom, n_win), np.nan)
-    for res in _run_tiles(_pass_statistics, job, tasks(), desc="fit statistics", **run):
-        uncovered += res["uncovered"]
-        covered += res["covered"]
-        k_src_all[res["index"]] = res["k_source"]
-        tgt_parts.append(_globalise(res["stats"], res["index"], n_dom))
-    share = uncovered / covered if covered > 0 else 0.0
-    if model.source == "raster" and model.default < 0 and share > AREA_TOLERANCE:
-        raise RoughnessError(
-            f"{100 * share:.3g}% of the mesh ground has no class in the class raster; give a "
-            "default class (--default-class) or fill the raster"
+    # workers start (and warm up) in the background while the mesh is read and built
+    with connect_workers(workers, scheduler) or contextlib.nullcontext() as connection:
+        setup = prepare_mesh_job(
+            dem, cells, id_field=id_field, vertical_units=vertical_units,
+            elevation_rule=elevation_rule, elevation_field=elevation_field,
+            face_spacing=face_spacing, snap_tolerance=snap_tolerance, tile_size=tile_size,
         )
-    target_stats = _offset_stats(tgt_parts, n_dom, n_cls)
-    del tgt_parts
-    np.nan_to_num(k_src_all, copy=False, nan=0.0)
-    fit = fit_class_n(k_src_all, target_stats, model.n,
-                      closure=_domain_closure(tc),  # type: ignore[arg-type]
-                      composite=composite, k=k)  # type: ignore[arg-type]
-    del target_stats, k_src_all  # not needed after the fit
-    out_rng = outside_range(model, fit.n_target)
-    flags = [list(f) + (["outside_published_range"] if out_rng[c] else []) for c, f in enumerate(fit.flags)]
-    n_fit = fit.n_target
-    if not fit.success:
-        log.warning("the class fit did not converge (cost %.3g); check the flags", fit.cost)
+        dem_info, layer, geoms, ids = setup.dem, setup.layer, setup.geoms, setup.ids
+        field_values, mesh, tiles = setup.field_values, setup.mesh, setup.tiles
+        # the mesh outline is only needed to check class polygons against it
+        mesh_area = shapely.union_all(geoms) if classes is not None else None
+        model = load_roughness(n=n, classes=classes, class_field=class_field, n_table=n_table,
+                               n_field=n_field, class_raster=class_raster,
+                               default_class=default_class, overlap_rule=overlap_rule,  # type: ignore[arg-type]
+                               crs=dem_info.crs, mesh_area=mesh_area)
+        surfaces = read_water_surfaces(water_surface, dem=dem_info) if water_surface else []
+        window = _Window(spec, surfaces, dem_info)
+        plan = _Plan(source, target, sc, tc, domain, composite, elevation_rule, face_rule, coverage,
+                     setup.spacing, float(dem_info.z_to_xy), float(dem_info.manning_k))
+        k = plan.k
+        n_cells, n_faces, n_cls, n_win = geoms.size, mesh.n_faces, model.n_classes, window.n
+        log.info("adjust: %s/%s -> %s/%s on %s, %d cells, %d faces, %d classes, %d window stages, "
+                 "%d tiles", source, sc, target, tc, domain, n_cells, n_faces, n_cls, n_win, len(tiles))
 
-    # ---- pass 2: per item tables
-    units = table_units(dem_info)
-    z_unit = units["stage"]
-    units.update({"conveyance_target_unadjusted": units["conveyance_source"],
-                  "dominant_class": "", "n_ratio_lumped": "1", "n_ratio_conveyance_form": "1",
-                  "n_ratio_lumped_equal_volume": "1", "n_ratio_conveyance_form_equal_volume": "1",
-                  "n_ratio_median": "1", "stage_bias_unadjusted_median": z_unit,
-                  "bed_factor": "1"})
-    descriptions = _descriptions()
-    id_type = id_arrow_type(ids)
-    f64 = pa.float64()
-    face_schema = pa.schema(
-        [pa.field("face_id", pa.int64()), pa.field("cell_a", id_type), pa.field("cell_b", id_type)]
-        + [pa.field(c, f64) for c in FACE_COLUMNS[3:-1]] + [pa.field("dominant_class", pa.string())])
-    cell_schema = pa.schema([pa.field("cell_id", id_type)]
-                            + [pa.field(c, f64) for c in CELL_COLUMNS[1:-1]]
-                            + [pa.field("dominant_class", pa.string())])
-    meta = {"ntrans:version": __version__, "ntrans:source": f"{source}/{sc}",
-            "ntrans:target": f"{target}/{tc}", "ntrans:composite": composite,
-            "ntrans:manning_k": str(k)}
-    cls_names = np.array(model.classes + ("",), dtype=object)
-    cls_arrow = pa.array(list(model.classes) + [""], type=pa.string())
+        def tasks():
+            return make_tasks(tiles, geoms, field_values=field_values, face_lines=mesh.geometry,
+                              face_cell_a=mesh.cell_a, face_cell_b=mesh.cell_b,
+                              face_length=mesh.length)
 
-    def class_column(index: np.ndarray) -> pa.Array:
-        """Class names (empty for -1) as an arrow string column, without Python lists."""
-        return cls_arrow.take(pa.array(np.where(index < 0, n_cls, index).astype(np.int64)))
+        job = _Job(dem_info, plan, model, window)
+        run = {"connection": connection, "progress": progress, "total": len(tiles)}
 
-    face_bias_un = np.full((n_faces, n_win), np.nan)
-    face_bias_ad = np.full((n_faces, n_win), np.nan)
-    face_ratio_med = np.full(n_faces, np.nan)
-    face_dom = np.full(n_faces, -1, dtype=np.int64)
-    cell_bias_un = np.full((n_cells, n_win), np.nan)
-    cell_bias_ad = np.full((n_cells, n_win), np.nan)
-    cell_ratio_med = np.full(n_cells, np.nan)
-    cell_bed = np.full(n_cells, np.nan)
-    cell_dom = np.full(n_cells, -1, dtype=np.int64)
-    mismatch_faces = mismatch_cells = 0
+        # ---- pass 1: sufficient statistics of the fit domain
+        tgt_parts: list[ClassStats] = []
+        uncovered = covered = 0.0
+        n_dom = n_faces if domain == "faces" else n_cells
+        k_src_all = np.full((n_dom, n_win), np.nan)
+        for res in _run_tiles(_pass_statistics, job, tasks(), desc="fit statistics", **run):
+            uncovered += res["uncovered"]
+            covered += res["covered"]
+            k_src_all[res["index"]] = res["k_source"]
+            tgt_parts.append(_globalise(res["stats"], res["index"], n_dom))
+        share = uncovered / covered if covered > 0 else 0.0
+        if model.source == "raster" and model.default < 0 and share > AREA_TOLERANCE:
+            raise RoughnessError(
+                f"{100 * share:.3g}% of the mesh ground has no class in the class raster; give a "
+                "default class (--default-class) or fill the raster"
+            )
+        target_stats = _offset_stats(tgt_parts, n_dom, n_cls)
+        del tgt_parts
+        np.nan_to_num(k_src_all, copy=False, nan=0.0)
+        fit = fit_class_n(k_src_all, target_stats, model.n,
+                          closure=_domain_closure(tc),  # type: ignore[arg-type]
+                          composite=composite, k=k)  # type: ignore[arg-type]
+        del target_stats, k_src_all  # not needed after the fit
+        out_rng = outside_range(model, fit.n_target)
+        flags = [list(f) + (["outside_published_range"] if out_rng[c] else []) for c, f in enumerate(fit.flags)]
+        n_fit = fit.n_target
+        if not fit.success:
+            log.warning("the class fit did not converge (cost %.3g); check the flags", fit.cost)
 
-    files: list[Path] = []
-    with OutputFolder(out, overwrite=overwrite,
-                      inputs=[dem, cells, classes, n_table, class_raster, *(water_surface or [])]) as folder:
-        tmp = folder.path
-        face_path, cell_path = tmp / "face_adjustment.parquet", tmp / "cell_adjustment.parquet"
-        fw = TableWriter(face_path, schema=face_schema, units=units, descriptions=descriptions,
-                         metadata=meta)
-        cw = TableWriter(cell_path, schema=cell_schema, units=units, descriptions=descriptions,
-                         metadata=meta)
-        try:
-            for res in _run_tiles(_pass_tables, job, tasks(), n_fit, desc="tables", **run):
-                fc, cc = res["faces"], res["cells"]
-                fr, cr = res["face"], res["cell"]
-                face_bias_un[fc] = fr["stage_bias_unadjusted"]
-                face_bias_ad[fc] = fr["stage_bias_adjusted"]
-                face_dom[fc] = res["face_dominant"]
-                face_ratio_med[fc] = _nanmedian_rows(fr["n_ratio"])
-                mismatch_faces += res["face_mismatch"]
-                chunk: dict[str, Any] = {
-                    "face_id": np.repeat(fc, n_win).astype(np.int64),
-                    "cell_a": ids_at(ids, np.repeat(res["face_a"], n_win)),
-                    "cell_b": ids_at(ids, np.repeat(res["face_b"], n_win)),
-                }
-                chunk.update({c: np.asarray(fr[c], dtype=float).ravel() for c in FACE_COLUMNS[3:-1]})
-                chunk["dominant_class"] = class_column(np.repeat(res["face_dominant"], n_win))
-                fw.write(chunk)
+        # ---- pass 2: per item tables
+        units = table_units(dem_info)
+        z_unit = units["stage"]
+        units.update({"conveyance_target_unadjusted": units["conveyance_source"],
+                      "dominant_class": "", "n_ratio_lumped": "1", "n_ratio_conveyance_form": "1",
+                      "n_ratio_lumped_equal_volume": "1", "n_ratio_conveyance_form_equal_volume": "1",
+                      "n_ratio_median": "1", "stage_bias_unadjusted_median": z_unit,
+                      "bed_factor": "1"})
+        descriptions = _descriptions()
+        id_type = id_arrow_type(ids)
+        f64 = pa.float64()
+        face_schema = pa.schema(
+            [pa.field("face_id", pa.int64()), pa.field("cell_a", id_type), pa.field("cell_b", id_type)]
+            + [pa.field(c, f64) for c in FACE_COLUMNS[3:-1]] + [pa.field("dominant_class", pa.string())])
+        cell_schema = pa.schema([pa.field("cell_id", id_type)]
+                                + [pa.field(c, f64) for c in CELL_COLUMNS[1:-1]]
+                                + [pa.field("dominant_class", pa.string())])
+        meta = {"ntrans:version": __version__, "ntrans:source": f"{source}/{sc}",
+                "ntrans:target": f"{target}/{tc}", "ntrans:composite": composite,
+                "ntrans:manning_k": str(k)}
+        cls_names = np.array(model.classes + ("",), dtype=object)
+        cls_arrow = pa.array(list(model.classes) + [""], type=pa.string())
 
-                cell_bias_un[cc] = cr["stage_bias_unadjusted"]
-                cell_bias_ad[cc] = cr["stage_bias_adjusted"]
-                cell_dom[cc] = res["cell_dominant"]
-                cell_ratio_med[cc] = _nanmedian_rows(cr["n_ratio"])
-                cell_bed[cc] = res["bed_factor"]
-                mismatch_cells += res["cell_mismatch"]
-                chunk = {"cell_id": ids_at(ids, np.repeat(cc, n_win))}
-                chunk.update({c: np.asarray(cr[c], dtype=float).ravel() for c in CELL_COLUMNS[1:-1]})
-                chunk["dominant_class"] = class_column(np.repeat(res["cell_dominant"], n_win))
-                cw.write(chunk)
-            files += [fw.close(), cw.close()]
-        except BaseException:
-            fw.abort()
-            cw.abort()
-            raise
+        def class_column(index: np.ndarray) -> pa.Array:
+            """Class names (empty for -1) as an arrow string column, without Python lists."""
+            return cls_arrow.take(pa.array(np.where(index < 0, n_cls, index).astype(np.int64)))
 
-        # ---- per class table
-        from .translate import bias_summary
+        face_bias_un = np.full((n_faces, n_win), np.nan)
+        face_bias_ad = np.full((n_faces, n_win), np.nan)
+        face_ratio_med = np.full(n_faces, np.nan)
+        face_dom = np.full(n_faces, -1, dtype=np.int64)
+        cell_bias_un = np.full((n_cells, n_win), np.nan)
+        cell_bias_ad = np.full((n_cells, n_win), np.nan)
+        cell_ratio_med = np.full(n_cells, np.nan)
+        cell_bed = np.full(n_cells, np.nan)
+        cell_dom = np.full(n_cells, -1, dtype=np.int64)
+        mismatch_faces = mismatch_cells = 0
 
-        if domain == "faces":
-            b_un, b_ad, dom_all = face_bias_un, face_bias_ad, face_dom
-        else:
-            b_un, b_ad, dom_all = cell_bias_un, cell_bias_ad, cell_dom
-        bias = {"unadjusted": bias_summary(b_un, dom_all, model.classes),
-                "adjusted": bias_summary(b_ad, dom_all, model.classes)}
-        frame = _class_frame(model, fit, flags, bias)
-        class_path = tmp / "n_by_class.csv"
-        frame.to_csv(class_path, index=False, float_format="%.6g")
-        files.append(class_path)
+        files: list[Path] = []
+        with OutputFolder(out, overwrite=overwrite,
+                          inputs=[dem, cells, classes, n_table, class_raster, *(water_surface or [])]) as folder:
+            tmp = folder.path
+            face_path, cell_path = tmp / "face_adjustment.parquet", tmp / "cell_adjustment.parquet"
+            fw = TableWriter(face_path, schema=face_schema, units=units, descriptions=descriptions,
+                             metadata=meta)
+            cw = TableWriter(cell_path, schema=cell_schema, units=units, descriptions=descriptions,
+                             metadata=meta)
+            try:
+                for res in _run_tiles(_pass_tables, job, tasks(), n_fit, desc="tables", **run):
+                    fc, cc = res["faces"], res["cells"]
+                    fr, cr = res["face"], res["cell"]
+                    face_bias_un[fc] = fr["stage_bias_unadjusted"]
+                    face_bias_ad[fc] = fr["stage_bias_adjusted"]
+                    face_dom[fc] = res["face_dominant"]
+                    face_ratio_med[fc] = _nanmedian_rows(fr["n_ratio"])
+                    mismatch_faces += res["face_mismatch"]
+                    chunk: dict[str, Any] = {
+                        "face_id": np.repeat(fc, n_win).astype(np.int64),
+                        "cell_a": ids_at(ids, np.repeat(res["face_a"], n_win)),
+                        "cell_b": ids_at(ids, np.repeat(res["face_b"], n_win)),
+                    }
+                    chunk.update({c: np.asarray(fr[c], dtype=float).ravel() for c in FACE_COLUMNS[3:-1]})
+                    chunk["dominant_class"] = class_column(np.repeat(res["face_dominant"], n_win))
+                    fw.write(chunk)
 
-        # ---- maps
-        import geopandas as gpd
+                    cell_bias_un[cc] = cr["stage_bias_unadjusted"]
+                    cell_bias_ad[cc] = cr["stage_bias_adjusted"]
+                    cell_dom[cc] = res["cell_dominant"]
+                    cell_ratio_med[cc] = _nanmedian_rows(cr["n_ratio"])
+                    cell_bed[cc] = res["bed_factor"]
+                    mismatch_cells += res["cell_mismatch"]
+                    chunk = {"cell_id": ids_at(ids, np.repeat(cc, n_win))}
+                    chunk.update({c: np.asarray(cr[c], dtype=float).ravel() for c in CELL_COLUMNS[1:-1]})
+                    chunk["dominant_class"] = class_column(np.repeat(res["cell_dominant"], n_win))
+                    cw.write(chunk)
+                files += [fw.close(), cw.close()]
+            except BaseException:
+                fw.abort()
+                cw.abort()
+                raise
 
-        crs = layer.frame.crs
-        cell_bias_med = _nanmedian_rows(cell_bias_un)
-        face_bias_med = _nanmedian_rows(face_bias_un)
-        cell_frame = gpd.GeoDataFrame(
-            {"cell_id": ids, "n_ratio_median": cell_ratio_med,
-             "stage_bias_unadjusted_median": cell_bias_med, "bed_factor": cell_bed,
-             "dominant_class": cls_names[cell_dom].astype(str)},
-            geometry=gpd.GeoSeries(geoms, crs=crs), crs=crs)
-        files.append(write_geopackage(cell_frame, tmp / "cells.gpkg", "cells"))
-        face_frame = gpd.GeoDataFrame(
-            {"face_id": np.arange(n_faces, dtype=np.int64),
-             "cell_a": ids_at(ids, mesh.cell_a).to_pandas(),
-             "cell_b": ids_at(ids, mesh.cell_b).to_pandas(),
-             "length": mesh.length, "n_ratio_median": face_ratio_med,
-             "stage_bias_unadjusted_median": face_bias_med,
-             "dominant_class": cls_names[face_dom].astype(str)},
-            geometry=gpd.GeoSeries(mesh.geometry, crs=crs), crs=crs)
-        if id_type == pa.int64():
-            face_frame["cell_a"] = face_frame["cell_a"].astype("Int64")
-            face_frame["cell_b"] = face_frame["cell_b"].astype("Int64")
-        files.append(write_geopackage(face_frame, tmp / "faces.gpkg", "faces"))
-        if csv:
-            files.append(write_csv(face_path, tmp / "face_adjustment.csv"))
-            files.append(write_csv(cell_path, tmp / "cell_adjustment.csv"))
+            # ---- per class table
+            from .translate import bias_summary
 
-        seconds = time.perf_counter() - started
-        summary = {
-            "ntrans_version": __version__,
-            "dem": os.fspath(dem),
-            "cells": os.fspath(cells),
-            "source": {"family": source, "closure": sc},
-            "target": {"family": target, "closure": tc},
-            "fit_domain": domain,
-            "composite": composite,
-            "manning_k": k,
-            "roughness": {"input": model.source, "classes": list(model.classes),
-                          "default_class": (model.classes[model.default] if model.default >= 0
-                                            else None),
-                          "overlap_rule": overlap_rule},
-            "window": ({"mode": spec.mode, "values": spec.values.tolist()} if spec is not None
-                       else {"mode": "water_surface", "rasters": [s.name for s in surfaces]}),
-            "elevation_rule": elevation_rule,
-            "face_rule": face_rule,
-            "coverage": coverage,
-            "cells_count": int(n_cells),
-            "faces_count": int(n_faces),
-            "tiles": len(tiles),
-            "horizontal_unit": dem_info.horizontal_unit,
-            "vertical_unit": dem_info.vertical_unit,
-            "classes": json.loads(frame.to_json(orient="records")),
-            "stage_bias": {"unadjusted": bias["unadjusted"]["overall"],
-                           "adjusted": bias["adjusted"]["overall"]},
-            "flagged": {"face_stage_dry_wet_mismatch": mismatch_faces,
-                        "cell_stage_dry_wet_mismatch": mismatch_cells,
-                        "classes_flagged": int(sum(1 for f in flags if f))},
-            "fit": {"success": fit.success, "cost": fit.cost},
-            "weighting": "source conveyance share per window stage; spread = weighted "
-                         "quantiles with weight x class share of the item's extent",
-            "cautions": list(CAUTIONS),
-            "seconds": round(seconds, 3),
-            "units": {c: units.get(c, "") for c in (*FACE_COLUMNS, *CELL_COLUMNS)},
-        }
-        (tmp / "adjust_summary.json").write_text(json.dumps(summary, indent=2, default=_json_default))
-        files.append(tmp / "adjust_summary.json")
-        rel = [p.name for p in files]
+            if domain == "faces":
+                b_un, b_ad, dom_all = face_bias_un, face_bias_ad, face_dom
+            else:
+                b_un, b_ad, dom_all = cell_bias_un, cell_bias_ad, cell_dom
+            bias = {"unadjusted": bias_summary(b_un, dom_all, model.classes),
+                    "adjusted": bias_summary(b_ad, dom_all, model.classes)}
+            frame = _class_frame(model, fit, flags, bias)
+            class_path = tmp / "n_by_class.csv"
+            frame.to_csv(class_path, index=False, float_format="%.6g")
+            files.append(class_path)
+
+            # ---- maps
+            import geopandas as gpd
+
+            crs = layer.frame.crs
+            cell_bias_med = _nanmedian_rows(cell_bias_un)
+            face_bias_med = _nanmedian_rows(face_bias_un)
+            cell_frame = gpd.GeoDataFrame(
+                {"cell_id": ids, "n_ratio_median": cell_ratio_med,
+                 "stage_bias_unadjusted_median": cell_bias_med, "bed_factor": cell_bed,
+                 "dominant_class": cls_names[cell_dom].astype(str)},
+                geometry=gpd.GeoSeries(geoms, crs=crs), crs=crs)
+            files.append(write_geopackage(cell_frame, tmp / "cells.gpkg", "cells"))
+            face_frame = gpd.GeoDataFrame(
+                {"face_id": np.arange(n_faces, dtype=np.int64),
+                 "cell_a": ids_at(ids, mesh.cell_a).to_pandas(),
+                 "cell_b": ids_at(ids, mesh.cell_b).to_pandas(),
+                 "length": mesh.length, "n_ratio_median": face_ratio_med,
+                 "stage_bias_unadjusted_median": face_bias_med,
+                 "dominant_class": cls_names[face_dom].astype(str)},
+                geometry=gpd.GeoSeries(mesh.geometry, crs=crs), crs=crs)
+            if id_type == pa.int64():
+                face_frame["cell_a"] = face_frame["cell_a"].astype("Int64")
+                face_frame["cell_b"] = face_frame["cell_b"].astype("Int64")
+            files.append(write_geopackage(face_frame, tmp / "faces.gpkg", "faces"))
+            if csv:
+                files.append(write_csv(face_path, tmp / "face_adjustment.csv"))
+                files.append(write_csv(cell_path, tmp / "cell_adjustment.csv"))
+
+            seconds = time.perf_counter() - started
+            summary = {
+                "ntrans_version": __version__,
+                "dem": os.fspath(dem),
+                "cells": os.fspath(cells),
+                "source": {"family": source, "closure": sc},
+                "target": {"family": target, "closure": tc},
+                "fit_domain": domain,
+                "composite": composite,
+                "manning_k": k,
+                "roughness": {"input": model.source, "classes": list(model.classes),
+                              "default_class": (model.classes[model.default] if model.default >= 0
+                                                else None),
+                              "overlap_rule": overlap_rule},
+                "window": ({"mode": spec.mode, "values": spec.values.tolist()} if spec is not None
+                           else {"mode": "water_surface", "rasters": [s.name for s in surfaces]}),
+                "elevation_rule": elevation_rule,
+                "face_rule": face_rule,
+                "coverage": coverage,
+                "cells_count": int(n_cells),
+                "faces_count": int(n_faces),
+                "tiles": len(tiles),
+                "horizontal_unit": dem_info.horizontal_unit,
+                "vertical_unit": dem_info.vertical_unit,
+                "classes": json.loads(frame.to_json(orient="records")),
+                "stage_bias": {"unadjusted": bias["unadjusted"]["overall"],
+                               "adjusted": bias["adjusted"]["overall"]},
+                "flagged": {"face_stage_dry_wet_mismatch": mismatch_faces,
+                            "cell_stage_dry_wet_mismatch": mismatch_cells,
+                            "classes_flagged": int(sum(1 for f in flags if f))},
+                "fit": {"success": fit.success, "cost": fit.cost},
+                "weighting": "source conveyance share per window stage; spread = weighted "
+                             "quantiles with weight x class share of the item's extent",
+                "cautions": list(CAUTIONS),
+                "seconds": round(seconds, 3),
+                "units": {c: units.get(c, "") for c in (*FACE_COLUMNS, *CELL_COLUMNS)},
+            }
+            (tmp / "adjust_summary.json").write_text(json.dumps(summary, indent=2, default=_json_default))
+            files.append(tmp / "adjust_summary.json")
+            rel = [p.name for p in files]
 
     final = Path(os.fspath(out)).expanduser().absolute()
     mism = mismatch_faces if domain == "faces" else mismatch_cells

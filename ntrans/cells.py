@@ -1,6 +1,7 @@
 """Cell stage tables: subgrid terrain and flat bed.
 
-Pure functions on numpy arrays; no loop per cell.  The inputs are per-entry arrays of one
+Pure functions on numpy arrays; no loop per cell in Python (the per-entry sums are
+compiled kernels in :mod:`ntrans._kernels`, one pass over the entries and no sort).  The inputs are per-entry arrays of one
 tile: ``item`` (local cell index), ``z`` (pixel elevation, NaN for nodata), ``plan_area``
 (covered fraction x pixel area, horizontal units squared) and ``bed_area`` (plan area x
 surface factor).  Stage matrices are ``(n_items, n_stages)`` float64, NaN allowed.
@@ -21,6 +22,7 @@ from typing import Literal, get_args
 
 import numpy as np
 
+from ._kernels import item_low_high, item_weighted_sums, stage_sums
 from .coverage import _group_cumsum, _sorted_order
 from .errors import InputError
 
@@ -125,26 +127,6 @@ def _sort_by_item_z(
     return order, it, zs
 
 
-def _lower_bound(values: np.ndarray, lo: np.ndarray, hi: np.ndarray, target: np.ndarray) -> np.ndarray:
-    """First index in ``values[lo:hi]`` (sorted) with ``values >= target``, per query.
-
-    Vectorised bisection over all queries at once (about log2(hi - lo) passes).
-    """
-    lo = lo.copy()
-    hi = hi.copy()
-    active = np.flatnonzero(lo < hi)
-    while active.size:
-        a, b = lo[active], hi[active]
-        mid = (a + b) >> 1
-        right = values[mid] < target[active]
-        a = np.where(right, mid + 1, a)
-        b = np.where(right, b, mid)
-        lo[active] = a
-        hi[active] = b
-        active = active[a < b]
-    return lo
-
-
 def cell_stage_table(
     item: np.ndarray,
     z: np.ndarray,
@@ -182,36 +164,21 @@ def cell_stage_table(
         )
     n_items, n_stages = stages.shape
     item, z, (a, b) = _entries(item, z, plan_area, bed_area, n_items=n_items)
-    order, item, z = _sort_by_item_z(item, z, n_items)
-    a, b = a[order], b[order]
-
-    count = np.bincount(item, minlength=n_items)
-    start = np.zeros(n_items, dtype=np.int64)
-    np.cumsum(count[:-1], out=start[1:])
-    has = count > 0
-    z_min = np.full(n_items, np.nan)
-    z_min[has] = z[start[has]]
-
-    out = {k: np.full((n_items, n_stages), np.nan) for k in ("wet_area", "volume", "bed_area")}
-    if item.size:
-        z_rel = z - z_min[item]  # relative to the cell's low point: no cancellation
-        gstart, gsize = start[has], count[has]
-        cum_a = _group_cumsum(a, gstart, gsize)
-        cum_az = _group_cumsum(a * z_rel, gstart, gsize)
-        cum_b = _group_cumsum(b, gstart, gsize)
-
-        qi, qs = np.nonzero(has[:, None] & ~np.isnan(stages))
-        eta = stages[qi, qs]
-        end = _lower_bound(z, start[qi], start[qi] + count[qi], eta)
-        wet = end > start[qi]
-        last = np.where(wet, end - 1, 0)
-        aw = np.where(wet, cum_a[last], 0.0)
-        saz = np.where(wet, cum_az[last], 0.0)
-        ab = np.where(wet, cum_b[last], 0.0)
-        vol = np.maximum((eta - z_min[qi]) * aw - saz, 0.0)
-        out["wet_area"][qi, qs] = aw
-        out["volume"][qi, qs] = vol
-        out["bed_area"][qi, qs] = ab
+    low, _ = item_low_high(item, z, n_items)
+    # each item's stages in increasing order, NaN last; results go back by `order`
+    order = np.argsort(stages, axis=1, kind="stable")
+    stages_sorted = np.ascontiguousarray(np.take_along_axis(stages, order, axis=1))
+    n_finite = np.count_nonzero(~np.isnan(stages), axis=1).astype(np.int64)
+    sums = stage_sums(item, z, a, b, low, stages_sorted, n_finite)
+    wet, wet_bed, moment = (np.empty((n_items, n_stages)) for _ in range(3))
+    for target, value in zip((wet, wet_bed, moment), sums, strict=True):
+        np.put_along_axis(target, order, value, axis=1)
+    unknown = np.isnan(stages) | np.isnan(low)[:, None]  # no stage, or no terrain
+    with np.errstate(invalid="ignore"):
+        volume = np.maximum((stages - low[:, None]) * wet - moment, 0.0)
+    out = {"wet_area": wet, "volume": volume, "bed_area": wet_bed}
+    for value in out.values():
+        value[unknown] = np.nan
 
     with np.errstate(invalid="ignore", divide="ignore"):
         out["hydraulic_radius"] = np.where(
@@ -222,7 +189,7 @@ def cell_stage_table(
 
 
 def cell_terrain_summary(
-    item: np.ndarray, z: np.ndarray, plan_area: np.ndarray, n_items: int
+    item: np.ndarray, z: np.ndarray, plan_area: np.ndarray, n_items: int, *, median: bool = True
 ) -> dict[str, np.ndarray]:
     """Terrain statistics of every cell, weighted by covered plan area.
 
@@ -230,8 +197,9 @@ def cell_terrain_summary(
     -------
     dict of (n_items,) float64 arrays: ``covered_area`` (area over valid terrain; 0 for a
     cell without terrain), ``z_min``, ``z_max``, ``z_mean`` (area-weighted), ``z_median``
-    (first elevation where the cumulative area reaches half the covered area).  The
-    elevation statistics are NaN for a cell without terrain.
+    (first elevation where the cumulative area reaches half the covered area; NaN for all
+    when ``median`` is False, which skips the one sort this needs).  The elevation
+    statistics are NaN for a cell without terrain.
 
     Examples
     --------
@@ -241,30 +209,32 @@ def cell_terrain_summary(
     """
     n_items = int(n_items)
     item, z, (a,) = _entries(item, z, plan_area, n_items=n_items)
+    low, high = item_low_high(item, z, n_items)
+    covered, moment = item_weighted_sums(item, z, a, low, n_items)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        z_mean = np.where(covered > 0, low + moment / np.where(covered > 0, covered, 1.0), np.nan)
+    out = {"covered_area": covered, "z_min": low, "z_max": high, "z_mean": z_mean}
+    out["z_median"] = _weighted_median(item, z, a, n_items) if median else np.full(n_items, np.nan)
+    return out
+
+
+def _weighted_median(item: np.ndarray, z: np.ndarray, a: np.ndarray, n_items: int) -> np.ndarray:
+    """First elevation of each item where the cumulative area reaches half its total."""
+    out = np.full(n_items, np.nan)
+    if item.size == 0:
+        return out
     order, item, z = _sort_by_item_z(item, z, n_items)
     a = a[order]
     count = np.bincount(item, minlength=n_items)
     start = np.zeros(n_items, dtype=np.int64)
     np.cumsum(count[:-1], out=start[1:])
     has = count > 0
-    out = {k: np.full(n_items, np.nan) for k in ("z_min", "z_max", "z_mean", "z_median")}
-    out["covered_area"] = np.bincount(item, weights=a, minlength=n_items).astype(np.float64)
-    if item.size == 0:
-        return out
     gstart, gsize = start[has], count[has]
-    out["z_min"][has] = z[gstart]
-    out["z_max"][has] = z[gstart + gsize - 1]
-    z_rel = z - out["z_min"][item]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean_rel = np.bincount(item, weights=a * z_rel, minlength=n_items) / out["covered_area"]
-    out["z_mean"][has] = out["z_min"][has] + mean_rel[has]
     cum = _group_cumsum(a, gstart, gsize)
     total = cum[gstart + gsize - 1]
     below = cum < 0.5 * np.repeat(total, gsize)
     n_below = np.bincount(item[below], minlength=n_items)[has]
-    out["z_median"][has] = z[gstart + np.minimum(n_below, gsize - 1)]
-    zero = has & ~(out["covered_area"] > 0)
-    out["z_mean"][zero] = np.nan
+    out[has] = z[gstart + np.minimum(n_below, gsize - 1)]
     return out
 
 

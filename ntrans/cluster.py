@@ -3,6 +3,11 @@
 One small runner shared by every job (tables, adjustment).  Results always come back in
 task order, so outputs are identical whichever way they were computed.  At most
 ``2 x workers`` tasks are in flight, so memory stays bounded by the tile size.
+
+:func:`connect_workers` starts the local cluster (or connects to the scheduler) in a
+background thread and warms every worker up (imports, compiled kernels), so a job can
+read its inputs and build its mesh meanwhile; the job then passes the connection to
+:func:`run_ordered` for each of its passes.
 """
 
 from __future__ import annotations
@@ -10,6 +15,7 @@ from __future__ import annotations
 import logging
 from collections import deque
 from collections.abc import Callable, Iterable, Iterator
+from concurrent.futures import ThreadPoolExecutor
 from typing import Any
 
 from .errors import InputError
@@ -20,6 +26,99 @@ log = logging.getLogger(__name__)
 SCHEDULER_TIMEOUT = "10s"
 
 
+def _check_where(workers: int | None, scheduler: str | None) -> None:
+    if workers is not None and scheduler is not None:
+        raise InputError("give either workers or a scheduler address, not both")
+    if workers is not None and int(workers) < 1:
+        raise InputError(f"workers must be 1 or more, got {workers}")
+
+
+def _warm_worker() -> None:
+    """Import the tile code and load the compiled kernels once per worker process."""
+    from . import engine  # noqa: F401
+    from ._kernels import warm_up
+
+    warm_up()
+
+
+def _connect(workers: int | None, scheduler: str | None) -> tuple[Any, Any]:
+    try:
+        from distributed import Client, LocalCluster
+    except ImportError as exc:  # pragma: no cover - dask is a test dependency
+        raise InputError(
+            "running on workers needs dask.distributed; install ntrans[cluster] or drop --workers"
+        ) from exc
+    cluster = None
+    if scheduler is not None:
+        try:
+            client = Client(scheduler, timeout=SCHEDULER_TIMEOUT)
+        except OSError as exc:
+            raise InputError(
+                f"no Dask scheduler answered at {scheduler}; check the address or drop --scheduler"
+            ) from exc
+    else:
+        import dask
+
+        # Dask sets MALLOC_TRIM_THRESHOLD_ for its workers by default; with it, glibc maps
+        # and unmaps every large array afresh, and the tile arithmetic here (many large
+        # temporaries) then takes about twice the CPU time it takes in one process
+        with dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None}):
+            cluster = LocalCluster(
+                n_workers=int(workers),
+                threads_per_worker=1,
+                processes=True,
+                dashboard_address=":0",
+                silence_logs=logging.WARNING,
+            )
+        client = Client(cluster)
+    try:
+        client.run(_warm_worker)
+    except Exception:
+        client.close()
+        if cluster is not None:
+            cluster.close()
+        raise
+    return client, cluster
+
+
+class WorkerConnection:
+    """A Dask client being connected in the background; close it when the job ends."""
+
+    def __init__(self, workers: int | None, scheduler: str | None) -> None:
+        _check_where(workers, scheduler)
+        self._pool = ThreadPoolExecutor(1, thread_name_prefix="ntrans-workers")
+        self._future = self._pool.submit(_connect, workers, scheduler)
+
+    @property
+    def client(self) -> Any:
+        """The connected client (waits for the start-up to finish)."""
+        return self._future.result()[0]
+
+    def close(self) -> None:
+        """Close the client and the local cluster, if one was started."""
+        try:
+            if self._future.exception() is None:
+                client, cluster = self._future.result()
+                client.close()
+                if cluster is not None:
+                    cluster.close()
+        finally:
+            self._pool.shutdown(wait=True)
+
+    def __enter__(self) -> WorkerConnection:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+def connect_workers(workers: int | None, scheduler: str | None) -> WorkerConnection | None:
+    """Start connecting to workers in the background, or None to run in this process."""
+    if workers is None and scheduler is None:
+        return None
+    return WorkerConnection(workers, scheduler)
+
+
 def run_ordered(
     fn: Callable[..., Any],
     shared: Any,
@@ -27,6 +126,7 @@ def run_ordered(
     *,
     workers: int | None = None,
     scheduler: str | None = None,
+    connection: WorkerConnection | None = None,
     progress: bool = False,
     total: int | None = None,
     desc: str = "tiles",
@@ -41,61 +141,43 @@ def run_ordered(
     shared
         Read-only data every task needs; sent to each worker once.
     workers
-        Start a local cluster of this many single-threaded processes.
+        Start a local cluster of this many single-threaded processes (closed at the end).
     scheduler
         Address of an existing Dask scheduler (all workers must see the input paths).
+    connection
+        An open :class:`WorkerConnection` to use instead (left open at the end).
     """
-    if workers is not None and scheduler is not None:
-        raise InputError("give either workers or a scheduler address, not both")
-    if workers is not None and int(workers) < 1:
-        raise InputError(f"workers must be 1 or more, got {workers}")
-    if workers is None and scheduler is None:
-        results: Iterator[Any] = (fn(shared, task) for task in tasks)
+    _check_where(workers, scheduler)
+    if connection is not None and (workers is not None or scheduler is not None):
+        raise InputError("give either a worker connection or workers / a scheduler, not both")
+    if connection is not None:
+        results: Iterator[Any] = _run_dask(fn, shared, tasks, connection.client, max_in_flight)
+    elif workers is None and scheduler is None:
+        results = (fn(shared, task) for task in tasks)
     else:
-        results = _run_dask(fn, shared, tasks, workers, scheduler, max_in_flight)
+        results = _run_own_connection(fn, shared, tasks, workers, scheduler, max_in_flight)
     yield from track(results, total=total, desc=desc, enabled=progress)
 
 
-def _run_dask(fn, shared, tasks, workers, scheduler, max_in_flight) -> Iterator[Any]:
-    try:
-        from distributed import Client, LocalCluster
-    except ImportError as exc:  # pragma: no cover - dask is a test dependency
-        raise InputError(
-            "running on workers needs dask.distributed; install ntrans[cluster] or drop --workers"
-        ) from exc
+def _run_own_connection(fn, shared, tasks, workers, scheduler, max_in_flight) -> Iterator[Any]:
+    with WorkerConnection(workers, scheduler) as connection:
+        yield from _run_dask(fn, shared, tasks, connection.client, max_in_flight)
 
-    cluster = None
+
+def _run_dask(fn, shared, tasks, client, max_in_flight) -> Iterator[Any]:
+    n_workers = max(len(client.scheduler_info().get("workers", {})), 1)
+    limit = max_in_flight or 2 * n_workers
+    log.info("running tiles on %d Dask worker(s)", n_workers)
+    shared_future = client.scatter(shared, broadcast=True)
+    pending: deque = deque()
     try:
-        if scheduler is not None:
-            try:
-                client = Client(scheduler, timeout=SCHEDULER_TIMEOUT)
-            except OSError as exc:
-                raise InputError(
-                    f"no Dask scheduler answered at {scheduler}; check the address or drop --scheduler"
-                ) from exc
-        else:
-            cluster = LocalCluster(
-                n_workers=int(workers),
-                threads_per_worker=1,
-                processes=True,
-                dashboard_address=":0",
-                silence_logs=logging.WARNING,
-            )
-            client = Client(cluster)
-        try:
-            n_workers = max(len(client.scheduler_info().get("workers", {})), 1)
-            limit = max_in_flight or 2 * n_workers
-            log.info("running tiles on %d Dask worker(s)", n_workers)
-            shared_future = client.scatter(shared, broadcast=True)
-            pending: deque = deque()
-            for task in tasks:
-                pending.append(client.submit(fn, shared_future, task, pure=False))
-                if len(pending) >= limit:
-                    yield pending.popleft().result()
-            while pending:
+        for task in tasks:
+            pending.append(client.submit(fn, shared_future, task, pure=False))
+            if len(pending) >= limit:
                 yield pending.popleft().result()
-        finally:
-            client.close()
+        while pending:
+            yield pending.popleft().result()
     finally:
-        if cluster is not None:
-            cluster.close()
+        for future in pending:
+            future.cancel()
+        del shared_future

@@ -9,7 +9,9 @@ pixel (r, c).  A sub-segment with signed rise ``dv`` and mean column ``um`` depo
 ``dv * (c + 1 - um)`` at (r, c) and the rest of ``dv`` at (r, c + 1); the running sum of
 the deposits along a row is the covered fraction of each pixel (Green's theorem applied
 per row band).  Rings are oriented through their signed areas, so input orientation
-does not matter and holes subtract.
+does not matter and holes subtract.  The edge geometry is vectorised numpy; the walk
+through pixels and the running sums are a compiled kernel (:mod:`ntrans._kernels`)
+working on one polygon's bounding box at a time.
 """
 
 from __future__ import annotations
@@ -122,45 +124,6 @@ def _edges(geoms: np.ndarray, transform: Affine, rows: int, cols: int):
     return item, u0, v0, u1, v1, sign
 
 
-def _split(a0: np.ndarray, b0: np.ndarray, a1: np.ndarray, b1: np.ndarray):
-    """Split segments at the integer values of coordinate ``a`` they cross, in order.
-
-    Returns ``(parent, a0, b0, a1, b1)`` of the pieces; crossing points get ``a`` exactly
-    integer.
-    """
-    lo, hi = np.minimum(a0, a1), np.maximum(a0, a1)
-    n_cross = np.maximum(np.ceil(hi) - np.floor(lo) - 1, 0).astype(np.int64)
-    n_pts = n_cross + 2
-    offset = np.zeros(a0.size + 1, dtype=np.int64)
-    np.cumsum(n_pts, out=offset[1:])
-    total = int(offset[-1])
-    pa = np.empty(total)
-    pb = np.empty(total)
-    pa[offset[:-1]] = a0
-    pb[offset[:-1]] = b0
-    pa[offset[1:] - 1] = a1
-    pb[offset[1:] - 1] = b1
-    n_total = int(n_cross.sum())
-    if n_total:
-        seg = np.repeat(np.arange(a0.size), n_cross)
-        i = np.arange(n_total)
-        run_start = offset[:-1] - 2 * np.arange(a0.size)  # first crossing of each segment
-        up = a1 > a0
-        base = np.where(up, np.floor(a0) + 1, np.ceil(a0) - 1)
-        step = np.where(up, 1.0, -1.0)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            slope = (b1 - b0) / (a1 - a0)
-        k = base[seg] + step[seg] * (i - run_start[seg])
-        pos = i + 2 * seg + 1  # slot after the segment's start point and earlier crossings
-        pa[pos] = k
-        pb[pos] = b0[seg] + (k - a0[seg]) * slope[seg]
-    is_start = np.ones(total, dtype=bool)
-    is_start[offset[1:] - 1] = False
-    starts = np.flatnonzero(is_start)
-    parent = np.repeat(np.arange(a0.size), n_pts - 1)
-    return parent, pa[starts], pb[starts], pa[starts + 1], pb[starts + 1]
-
-
 def _row_runs(item, row, col, local, carry, rows, cols, *, threshold):
     """Sum deposits along each (item, row) and expand them into pixel runs.
 
@@ -263,6 +226,8 @@ def exact_coverage(polygons, transform: Affine, shape: tuple[int, int]) -> Pixel
     >>> w.fraction.tolist()
     [0.25, 0.25]
     """
+    from ._kernels import exact_coverage_runs
+
     rows, cols = _check_window(transform, shape)
     geoms = _as_geometry_array(polygons)
     if geoms.size == 0 or rows == 0 or cols == 0:
@@ -270,33 +235,16 @@ def exact_coverage(polygons, transform: Affine, shape: tuple[int, int]) -> Pixel
     item, u0, v0, u1, v1, sign = _edges(geoms, transform, rows, cols)
     if item.size == 0:
         return PixelWeights.empty()
-    deposits = _exact_deposits(item, u0, v0, u1, v1, sign, rows, cols)
-    del item, u0, v0, u1, v1, sign
-    return _row_runs(*deposits, rows, cols, threshold=_MIN_FRACTION)
-
-
-def _exact_deposits(item, u0, v0, u1, v1, sign, rows, cols):
-    """Split ring edges into per-pixel pieces; return their row deposits.
-
-    Returns ``(item, row, col, local, carry)`` for :func:`_row_runs`: a piece with
-    signed rise ``dv`` and mean column ``um`` in pixel ``(r, c)`` covers
-    ``dv * (c + 1 - um)`` of that pixel and ``dv`` of every pixel right of it.
-    """
-    # split at vertical grid lines (integer u), then at horizontal ones (integer v)
-    p1, u0, v0, u1, v1 = _split(u0, v0, u1, v1)
-    p2, v0, u0, v1, u1 = _split(v0, u0, v1, u1)
-    parent = p1[p2]
-    dv = (v1 - v0) * sign[parent]
-    um = 0.5 * (u0 + u1)
-    r = np.floor(0.5 * (v0 + v1)).astype(np.int64)
-    c = np.floor(um).astype(np.int64)
-    local = dv * (c + 1 - um)
-    # pieces left of the window add dv to every column from 0 on
-    left = c < 0
-    local[left] = dv[left]
-    c[left] = 0
-    ok = (dv != 0) & (r >= 0) & (r < rows) & (c < cols)
-    return item[parent[ok]], r[ok], c[ok], local[ok], dv[ok]
+    if np.any(item[1:] < item[:-1]):
+        order = np.argsort(item, kind="stable")
+        item, u0, v0, u1, v1, sign = (a[order] for a in (item, u0, v0, u1, v1, sign))
+    edge_start = np.searchsorted(item, np.arange(int(item[-1]) + 2)).astype(np.int64)
+    out_item, out_row, out_col, fraction = exact_coverage_runs(
+        edge_start, u0, v0, u1, v1, sign.astype(np.float64), rows, cols, _MIN_FRACTION
+    )
+    return PixelWeights(
+        out_item.astype(np.int64), out_row.astype(np.int64), out_col.astype(np.int64), fraction
+    )
 
 
 def centre_coverage(polygons, transform: Affine, shape: tuple[int, int]) -> PixelWeights:

@@ -244,6 +244,20 @@ class TileTask:
     face_b: np.ndarray = field(default_factory=lambda: np.empty(0, dtype=np.int64))
     face_length: np.ndarray = field(default_factory=lambda: np.empty(0))
 
+    def __reduce__(self):
+        # geometry travels as WKB, converted for the whole array at once: pickling
+        # shapely objects one by one costs more than computing the tile
+        return (
+            _task_from_wkb,
+            (self.tile, shapely.to_wkb(self.polygons), self.field_values,
+             shapely.to_wkb(self.face_lines), self.face_a, self.face_b, self.face_length),
+        )
+
+
+def _task_from_wkb(tile, polygons, field_values, face_lines, face_a, face_b, face_length):
+    return TileTask(tile, shapely.from_wkb(polygons), field_values, shapely.from_wkb(face_lines),
+                    face_a, face_b, face_length)
+
 
 def make_tasks(
     tiles: Iterable[Tile],
@@ -347,7 +361,7 @@ def run_tile(
     plan = np.asarray(w.fraction, dtype=float) * pixel_area
     bed = plan * s_pix
 
-    summary = cell_terrain_summary(item, z, plan, n_all)
+    summary = cell_terrain_summary(item, z, plan, n_all, median=settings.elevation_rule == "median")
     centroid_z = None
     if settings.elevation_rule == "centroid":
         cent = shapely.centroid(task.polygons)
@@ -543,6 +557,7 @@ def execute(
     open_kwargs: dict[str, Any] | None = None,
     workers: int | None = None,
     scheduler: str | None = None,
+    connection: Any = None,
     progress: bool = False,
     total: int | None = None,
     max_in_flight: int | None = None,
@@ -557,6 +572,8 @@ def execute(
     workers : start a ``dask.distributed.LocalCluster`` with this many single-threaded
         worker processes.
     scheduler : address of an existing Dask scheduler (``tcp://host:8786``).
+    connection : a :class:`ntrans.cluster.WorkerConnection` opened by the caller
+        (instead of ``workers`` / ``scheduler``; lets start-up overlap the job's setup).
     progress : show a progress bar (stderr) via :func:`ntrans.progress.track`.
     max_in_flight : tasks submitted but not yet yielded (default 2 per worker), which
         bounds memory on the client.
@@ -567,14 +584,15 @@ def execute(
     """
     from .cluster import run_ordered
 
-    if workers is None and scheduler is None:
+    if workers is None and scheduler is None and connection is None:
         shared = (local_runner or run_task_local, dem, settings)
         fn = _run_with_open_dem
     else:
         shared = (str(dem_path), tuple(sorted((open_kwargs or {}).items())), settings)
         fn = _run_with_dem_path
     yield from run_ordered(
-        fn, shared, tasks, workers=workers, scheduler=scheduler, progress=progress,
+        fn, shared, tasks, workers=workers, scheduler=scheduler, connection=connection,
+        progress=progress,
         total=total, desc="tiles", max_in_flight=max_in_flight,
     )
 

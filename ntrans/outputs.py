@@ -425,7 +425,8 @@ def write_geopackage(frame: Any, path: str | os.PathLike[str], layer: str) -> Pa
     """Write a GeoDataFrame as one layer of a GeoPackage (created or appended to)."""
     target = Path(os.fspath(path))
     try:
-        frame.to_file(target, layer=layer, driver="GPKG", engine="pyogrio")
+        # the Arrow path writes whole columns at once (about twice as fast)
+        frame.to_file(target, layer=layer, driver="GPKG", engine="pyogrio", use_arrow=True)
     except Exception as exc:  # pyogrio / GDAL errors
         raise OutputError(
             f"GeoPackage '{target}' layer '{layer}' cannot be written ({exc}); check the output "

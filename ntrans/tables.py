@@ -16,6 +16,7 @@ tile, then by stage; the order is the same in-process and on Dask workers.
 
 from __future__ import annotations
 
+import contextlib
 import json
 import logging
 import os
@@ -248,6 +249,7 @@ def build_tables(
     ``.csv`` copies of the stage tables.  Column units are in each Parquet file's
     metadata (key ``ntrans:units``) and in the summary JSON.
     """
+    from .cluster import connect_workers
     from .outputs import (
         OutputFolder,
         TableWriter,
@@ -266,7 +268,11 @@ def build_tables(
         raise InputError(f"tile size {tile_size} is not a positive number of pixels; use e.g. 1024")
 
     files: list[Path] = []
-    with OutputFolder(out, overwrite=overwrite, inputs=[dem, cells]) as folder:
+    # workers start (and warm up) in the background while the mesh is read and built
+    with (
+        connect_workers(workers, scheduler) or contextlib.nullcontext() as connection,
+        OutputFolder(out, overwrite=overwrite, inputs=[dem, cells]) as folder,
+    ):
         tmp = folder.path
         job = prepare_mesh_job(
             dem, cells, id_field=id_field, vertical_units=vertical_units,
@@ -339,8 +345,7 @@ def build_tables(
                 dem_path=dem_info.path,
                 settings=settings,
                 open_kwargs={"vertical_units": vertical_units},
-                workers=workers,
-                scheduler=scheduler,
+                connection=connection,
                 progress=progress,
                 total=len(tiles),
             )

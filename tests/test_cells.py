@@ -212,13 +212,17 @@ def test_invariants_and_brute_force(seed, n_items, n, levels):
     a = rng.uniform(0.0, 2.0, n)
     b = a * rng.uniform(1.0, 1.5, n)  # surface factor >= 1
     stages = np.sort(rng.integers(-1, levels + 1, (n_items, 8)) * 0.25, axis=1)
+    if seed % 2:  # stages in any order, some missing (the reference column is unsorted)
+        stages = rng.permuted(stages, axis=1)
+        stages[rng.random(stages.shape) < 0.2] = np.nan
     t = cell_stage_table(item, z, a, b, stages)
     ref = brute_table(item, z, a, b, stages)
     for key in ("wet_area", "volume", "bed_area"):
         # definitions of DESIGN.md section 2, summed directly (round-off only)
         np.testing.assert_allclose(t[key], ref[key], rtol=1e-10, atol=1e-10)
     with np.errstate(invalid="ignore"):
-        assert not (np.diff(t["volume"], axis=1) < -1e-12).any()  # V non-decreasing in stage
+        by_stage = np.take_along_axis(t["volume"], np.argsort(stages, axis=1), axis=1)
+        assert not (np.diff(by_stage, axis=1) < -1e-12).any()  # V non-decreasing in stage
         assert not (t["bed_area"] < t["wet_area"] - 1e-12).any()  # s >= 1 -> A_b >= A_w
         # R = V / A_b <= V / A_w = mean depth because A_b >= A_w
         assert not (t["hydraulic_radius"] > t["mean_depth"] * (1 + 1e-12)).any()
@@ -331,3 +335,12 @@ def test_sort_by_item_z_is_exact_for_any_key_width(n_items):
     np.testing.assert_array_equal(it, item[ref])
     np.testing.assert_array_equal(zs, z[ref])
     np.testing.assert_array_equal(item[order], it)
+
+
+@pytest.mark.parametrize("median", [True, False])
+def test_terrain_summary_median_only_on_request(median):
+    s = cell_terrain_summary([0, 0, 0, 1], [3.0, 1.0, 2.0, np.nan], [1.0, 1.0, 2.0, 1.0], 2,
+                             median=median)
+    assert s["z_min"][0] == 1.0 and s["z_max"][0] == 3.0 and s["z_mean"][0] == 2.0  # by hand
+    assert np.isnan(s["z_min"][1]) and s["covered_area"][1] == 0.0  # nodata only
+    assert (s["z_median"][0] == 2.0) if median else np.isnan(s["z_median"][0])

@@ -116,6 +116,36 @@ def test_workers_and_scheduler_exclusive():
                      scheduler="tcp://127.0.0.1:1"))
 
 
+@pytest.mark.parametrize("workers, scheduler", [(2, "tcp://127.0.0.1:1"), (0, None), (-1, None)])
+def test_worker_connection_checks_its_options_at_once(workers, scheduler):
+    from ntrans.cluster import connect_workers
+
+    with pytest.raises(InputError):
+        connect_workers(workers, scheduler)  # before any cluster is started
+    assert connect_workers(None, None) is None  # neither: run in this process
+
+
+def test_task_travels_as_wkb_and_comes_back_identical():
+    import pickle
+
+    from ntrans.engine import TileTask
+
+    tiles = plan_tiles(np.array(grid_polygons(2, 2, 10.0), dtype=object), T40, (40, 40))
+    polys = np.array([shapely.Polygon([(0, 0), (1.0 / 3.0, 0), (0, 0.1 + 1e-13)]), None],
+                     dtype=object)
+    lines = np.array([shapely.LineString([(0, 0), (2.0 / 3.0, 1.0 / 7.0)])], dtype=object)
+    task = TileTask(tiles[0], polys, None, lines, np.array([0]), np.array([-1]), np.array([1.0]))
+    back = pickle.loads(pickle.dumps(task))
+    # WKB stores IEEE doubles: coordinates come back to the bit
+    np.testing.assert_array_equal(shapely.get_coordinates(back.polygons),
+                                  shapely.get_coordinates(polys))
+    assert back.polygons[1] is None
+    np.testing.assert_array_equal(shapely.get_coordinates(back.face_lines),
+                                  shapely.get_coordinates(lines))
+    assert back.tile.index == task.tile.index and back.tile.window == task.tile.window
+    np.testing.assert_array_equal(back.face_b, task.face_b)
+
+
 # --------------------------------------------------------------------------- running
 
 
