@@ -218,3 +218,47 @@ def warm_up() -> None:
     low, _ = item_low_high(one, z, 1)
     item_weighted_sums(one, z, z, low, 1)
     stage_sums(one, z, z, z, low, np.ones((1, 1)), one + 1)
+    horn_surface_factor(np.zeros((3, 3)), 0.125, 0.125)
+    strip_station_sums(z + 1.0, one, one + 1, z, z, z, np.zeros(1, np.bool_))
+
+
+@njit(**_JIT)
+def horn_surface_factor(zp, x_scale, y_scale):
+    """``sqrt(1 + zx^2 + zy^2)`` by Horn's 3x3 stencil on a grid padded by one NaN pixel.
+
+    ``x_scale`` = 1 / (8 dx), ``y_scale`` = 1 / (8 dy).  NaN wherever one of the eight
+    neighbours is NaN (the caller fills those pixels from the neighbours that exist).
+    """
+    rows, cols = zp.shape[0] - 2, zp.shape[1] - 2
+    out = np.empty((rows, cols))
+    for r in range(rows):
+        for c in range(cols):
+            a, b, cc = zp[r, c], zp[r, c + 1], zp[r, c + 2]
+            d, f = zp[r + 1, c], zp[r + 1, c + 2]
+            g, h, i = zp[r + 2, c], zp[r + 2, c + 1], zp[r + 2, c + 2]
+            zx = ((cc + 2.0 * f + i) - (a + 2.0 * d + g)) * x_scale
+            zy = ((g + 2.0 * h + i) - (a + 2.0 * b + cc)) * y_scale
+            out[r, c] = math.sqrt(zx * zx + zy * zy + 1.0)
+    return out
+
+
+@njit(**_JIT)
+def strip_station_sums(ev, q_start, wet_end, b, c83, c53, is_level):
+    """Per query i: sum over breakpoints k in [q_start[i], wet_end[i]) of
+    ``c83[k] x^(8/3)`` plus, at level breakpoints, ``c53[k] x^(5/3)``, with
+    ``x = ev[i] - b[k]`` (> 0: the breakpoints are below the query's stage).
+    """
+    total = np.zeros(ev.size)
+    for i in range(ev.size):
+        e = ev[i]
+        acc = 0.0
+        for k in range(q_start[i], wet_end[i]):
+            x = e - b[k]
+            x2 = x * x
+            root = np.cbrt(x2)  # x^(2/3)
+            v = c83[k] * x2 * root
+            if is_level[k]:
+                v += c53[k] * x * root
+            acc += v
+        total[i] = acc
+    return total

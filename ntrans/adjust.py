@@ -639,10 +639,12 @@ def adjust_roughness(
         n_dom = n_faces if domain == "faces" else n_cells
         k_src_all = np.full((n_dom, n_win), np.nan)
         for res in _run_tiles(_pass_statistics, job, tasks(), desc="fit statistics", **run):
+            layer.raise_if_checks_failed()
             uncovered += res["uncovered"]
             covered += res["covered"]
             k_src_all[res["index"]] = res["k_source"]
             tgt_parts.append(_globalise(res["stats"], res["index"], n_dom))
+        layer.finish_checks()
         share = uncovered / covered if covered > 0 else 0.0
         if model.source == "raster" and model.default < 0 and share > AREA_TOLERANCE:
             raise RoughnessError(
@@ -737,6 +739,8 @@ def adjust_roughness(
                     chunk.update({c: np.asarray(cr[c], dtype=float).ravel() for c in CELL_COLUMNS[1:-1]})
                     chunk["dominant_class"] = class_column(np.repeat(res["cell_dominant"], n_win))
                     cw.write(chunk)
+                if connection is not None:
+                    connection.release()  # workers shut down while the last files are written
                 files += [fw.close(), cw.close()]
             except BaseException:
                 fw.abort()

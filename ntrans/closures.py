@@ -277,40 +277,29 @@ def _strip_by_stations(seg: Segments, eta: np.ndarray, inv_n: np.ndarray) -> np.
 
 
 def _strip_chunk(seg: Segments, eta: np.ndarray, inv_n: np.ndarray) -> np.ndarray:
+    from ._kernels import strip_station_sums
+
     bp = _breakpoints(seg)
     q = _queries(seg, bp, eta)
-    b, ev, pos, q_start = bp["b"], q["ev"], q["pos"], q["q_start"]
     ds_n = seg.ds * inv_n
     c83 = _station_column(seg, bp, 0.375 * ds_n * bp["inv_dz_up"], None)
-    any_level = bool(bp["lev"].size)
-    if any_level:
+    if bp["lev"].size:
         c53 = _station_column(seg, bp, None, ds_n)
         is_level = bp["order"] >= bp["n_used"]
-    count = pos - q_start  # wet breakpoints of each query
-    total = np.zeros(ev.size)
-    csum = np.cumsum(count)
-    # blocks of queries holding about _CHUNK wet pairs each
-    cuts = np.searchsorted(csum, np.arange(_CHUNK, int(csum[-1]) if csum.size else 0, _CHUNK))
-    bounds = np.unique(np.concatenate([[0], cuts + 1, [ev.size]]))
-    for q0, q1 in zip(bounds[:-1], bounds[1:], strict=True):
-        cnt = count[q0:q1]
-        wet = np.flatnonzero(cnt > 0)
-        if wet.size == 0:
-            continue
-        cnt = cnt[wet]
-        offs = np.cumsum(cnt) - cnt
-        n_pairs = int(offs[-1] + cnt[-1])
-        k = np.repeat(q_start[q0:q1][wet] - offs, cnt)
-        k += np.arange(n_pairs)
-        x = np.repeat(ev[q0:q1][wet], cnt)
-        x -= b[k]
-        v = np.power(x, 8.0 / 3.0)
-        v *= c83[k]
-        if any_level:
-            lv = np.flatnonzero(is_level[k])
-            if lv.size:
-                v[lv] += c53[k[lv]] * np.power(x[lv], 5.0 / 3.0)
-        total[q0 + wet] = np.add.reduceat(v, offs)
+    else:
+        c53 = np.zeros(c83.size)
+        is_level = np.zeros(c83.size, dtype=bool)
+    # the wet breakpoints of each (face, stage) are a prefix of the face's sorted ones:
+    # one pass per query in compiled code (no pairs array, one root per wet station)
+    total = strip_station_sums(
+        np.ascontiguousarray(q["ev"], dtype=np.float64),
+        np.ascontiguousarray(q["q_start"], dtype=np.int64),
+        np.ascontiguousarray(q["pos"], dtype=np.int64),
+        np.ascontiguousarray(bp["b"], dtype=np.float64),
+        np.ascontiguousarray(c83, dtype=np.float64),
+        np.ascontiguousarray(c53, dtype=np.float64),
+        np.ascontiguousarray(is_level, dtype=np.bool_),
+    )
     return total.reshape(eta.shape)
 
 

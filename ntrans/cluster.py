@@ -88,20 +88,34 @@ class WorkerConnection:
         _check_where(workers, scheduler)
         self._pool = ThreadPoolExecutor(1, thread_name_prefix="ntrans-workers")
         self._future = self._pool.submit(_connect, workers, scheduler)
+        self._closing: Any = None
 
     @property
     def client(self) -> Any:
         """The connected client (waits for the start-up to finish)."""
         return self._future.result()[0]
 
+    def release(self) -> None:
+        """Start closing the client and local cluster in the background (no waiting).
+
+        Call it when no more tiles will be submitted; the job can then write its last
+        files while the workers shut down.
+        """
+        if self._closing is None:
+            self._closing = self._pool.submit(self._shut_down)
+
+    def _shut_down(self) -> None:
+        if self._future.exception() is None:
+            client, cluster = self._future.result()
+            client.close()
+            if cluster is not None:
+                cluster.close()
+
     def close(self) -> None:
-        """Close the client and the local cluster, if one was started."""
+        """Close the client and the local cluster, if one was started, and wait for it."""
         try:
-            if self._future.exception() is None:
-                client, cluster = self._future.result()
-                client.close()
-                if cluster is not None:
-                    cluster.close()
+            self.release()
+            self._closing.result()
         finally:
             self._pool.shutdown(wait=True)
 

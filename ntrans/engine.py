@@ -355,9 +355,10 @@ def run_tile(
         cover = exact_coverage if settings.coverage == "exact" else centre_coverage
         w = cover(task.polygons, transform, elevation.shape)
         sf = surface_factor(elevation, dx, dy, z_to_xy=settings.z_to_xy)
-        s_pix = sf[w.row, w.col]
+        pixel = w.row * elevation.shape[1] + w.col  # flat index: one gather per array
+        s_pix = sf.ravel().take(pixel)
     item = np.asarray(w.item, dtype=np.int64)
-    z = elevation[w.row, w.col] if elevation.size else np.empty(0)
+    z = elevation.ravel().take(pixel) if elevation.size else np.empty(0)
     plan = np.asarray(w.fraction, dtype=float) * pixel_area
     bed = plan * s_pix
 
@@ -377,7 +378,7 @@ def run_tile(
     )
 
     # --- cell stage rows (own cells only), plus one reference column
-    own = item < n_own
+    own = slice(0, int(np.searchsorted(item, n_own)))  # entries come sorted by item: own first
     z_low = np.asarray(summary["z_min"], dtype=float)[:n_own]
     stages = spec.for_items(z_low)
     ref = reference_stages(spec, settings.reference, z_low)

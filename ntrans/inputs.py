@@ -20,7 +20,8 @@ import math
 import os
 import warnings
 from collections.abc import Iterable, Sequence
-from dataclasses import dataclass
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
 
@@ -434,9 +435,21 @@ class CellLayer:
     frame: Any
     path: str
     covered_fraction: np.ndarray | None = None
+    pending_checks: Any = field(default=None, repr=False)
 
     def __len__(self) -> int:
         return int(self.ids.shape[0])
+
+    def raise_if_checks_failed(self) -> None:
+        """Raise now what a background check found, if it has finished (never waits)."""
+        if self.pending_checks is not None and self.pending_checks.done():
+            self.finish_checks()
+
+    def finish_checks(self) -> None:
+        """Wait for checks still running in the background and raise what they found."""
+        if self.pending_checks is not None:
+            pending, self.pending_checks = self.pending_checks, None
+            pending.result()
 
 
 def _choose_layer(path: str, layer: str | int | None) -> str | int | None:
@@ -624,6 +637,7 @@ def read_cells(
     id_field: str | None = None,
     layer: str | int | None = None,
     overlap_tolerance: float = 0.01,
+    overlaps_in_background: bool = False,
 ) -> CellLayer:
     """Read the cell polygons, reproject them to the DEM's CRS and check them.
 
@@ -641,6 +655,10 @@ def read_cells(
         Layer name or number; None: the only layer, or the first polygon layer.
     overlap_tolerance : float
         Largest shared area allowed between two cells, as a fraction of the smaller one.
+    overlaps_in_background : bool
+        Run the overlap check in a background thread; the caller then calls
+        :meth:`CellLayer.raise_if_checks_failed` as it goes and
+        :meth:`CellLayer.finish_checks` before it writes anything final.
 
     Returns
     -------
@@ -729,7 +747,14 @@ def read_cells(
         raise GeometryError(
             f"cells {_name_list(ids[zero])} have zero area; fix or remove them"
         )
-    _check_overlaps(geoms, ids, overlap_tolerance)
+    pending = None
+    if overlaps_in_background:
+        # GEOS releases the GIL: the check runs beside the job's own work
+        pool = ThreadPoolExecutor(1, thread_name_prefix="ntrans-overlaps")
+        pending = pool.submit(_check_overlaps, geoms, ids, overlap_tolerance)
+        pool.shutdown(wait=False)
+    else:
+        _check_overlaps(geoms, ids, overlap_tolerance)
 
     extent = shapely.box(*dem.bounds)
     touching = shapely.intersects(geoms, extent) & ~shapely.touches(geoms, extent)
@@ -745,7 +770,8 @@ def read_cells(
     frame = gpd.GeoDataFrame(frame.drop(columns=frame.geometry.name),
                              geometry=gpd.GeoSeries(geoms, crs=target), crs=target)
     frame.index = np.arange(len(frame))
-    return CellLayer(ids=ids, geometry=geoms, id_field=id_name, frame=frame, path=text)
+    return CellLayer(ids=ids, geometry=geoms, id_field=id_name, frame=frame, path=text,
+                     pending_checks=pending)
 
 
 def _check_unique(ids: np.ndarray, id_name: str) -> None:

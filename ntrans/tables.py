@@ -157,6 +157,10 @@ def prepare_mesh_job(
 ) -> MeshJob:
     """Open the DEM, read and check the cells, build the faces and plan the tiles.
 
+    The cell overlap check goes on in a background thread: callers check
+    ``layer.raise_if_checks_failed()`` as tiles come in and ``layer.finish_checks()``
+    before writing their summaries.
+
     Face spacing defaults to half a pixel and the snap tolerance to 1 % of a pixel
     (horizontal CRS units).
     """
@@ -166,7 +170,7 @@ def prepare_mesh_job(
     if int(tile_size) < 1:
         raise InputError(f"tile size {tile_size} is not a positive number of pixels; use e.g. 1024")
     dem_info = open_dem(dem, vertical_units=vertical_units)
-    layer = read_cells(cells, dem=dem_info, id_field=id_field)
+    layer = read_cells(cells, dem=dem_info, id_field=id_field, overlaps_in_background=True)
     field_values = elevation_field_values(layer, elevation_rule, elevation_field)
     pixel = min(dem_info.pixel_size)
     spacing = 0.5 * pixel if face_spacing is None else float(face_spacing)
@@ -351,6 +355,7 @@ def build_tables(
             )
             step = max(len(tiles) // 10, 1)
             for k, res in enumerate(results):
+                layer.raise_if_checks_failed()
                 rows = res["cell_rows"]
                 chunk: dict[str, Any] = {"cell_id": ids_at(ids, rows["cell"])}
                 chunk.update({c: rows[c] for c in CELL_STAGE_COLUMNS[1:]})
@@ -374,6 +379,9 @@ def build_tables(
                     # the progress bar already shows this; keep it in the log otherwise
                     log.log(logging.DEBUG if progress else logging.INFO,
                             "tiles done: %d of %d", k + 1, len(tiles))
+            if connection is not None:
+                connection.release()  # workers shut down while the last files are written
+            layer.finish_checks()
             files.append(cell_writer.close())
             if face_writer is not None:
                 files.append(face_writer.close())

@@ -97,25 +97,20 @@ def surface_factor(
     dy = _check_spacing("dy", dy)
     if not np.isfinite(z_to_xy) or z_to_xy <= 0:
         raise InputError(f"z_to_xy={z_to_xy!r} is not a positive number; give the vertical-to-horizontal unit factor")
+    from ._kernels import horn_surface_factor
+
     zp = np.pad(z * float(z_to_xy), 1, mode="constant", constant_values=np.nan)
-    a, b, c = zp[:-2, :-2], zp[:-2, 1:-1], zp[:-2, 2:]
-    d, f = zp[1:-1, :-2], zp[1:-1, 2:]
-    g, h, i = zp[2:, :-2], zp[2:, 1:-1], zp[2:, 2:]
     # Horn (1981): full 3x3 stencil wherever all neighbours exist (NaN elsewhere)
-    zx = ((c + 2.0 * f + i) - (a + 2.0 * d + g)) * (0.125 / dx)
-    zy = ((g + 2.0 * h + i) - (a + 2.0 * b + c)) * (0.125 / dy)
+    s = horn_surface_factor(zp, 0.125 / dx, 0.125 / dy)
     # window edges and pixels next to nodata: use the neighbours that exist
-    rr, cc = np.nonzero((np.isnan(zx) | np.isnan(zy)) & ~np.isnan(z))
+    rr, cc = np.nonzero(np.isnan(s) & ~np.isnan(z))
     if rr.size:
         k = np.arange(3)
         nb = zp[rr[:, None, None] + k[None, :, None], cc[:, None, None] + k[None, None, :]]
         gx, gy = _fallback_gradient(nb)
-        zx[rr, cc] = gx / dx
-        zy[rr, cc] = gy / dy
-    s = zx * zx
-    s += zy * zy
-    s += 1.0
-    np.sqrt(s, out=s)
+        gx /= dx
+        gy /= dy
+        s[rr, cc] = np.sqrt(gx * gx + gy * gy + 1.0)
     s[np.isnan(z)] = np.nan
     return s
 

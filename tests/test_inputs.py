@@ -432,6 +432,24 @@ def test_read_cells_overlap_within_tolerance(tmp_path: Path, tmp_dem: Path) -> N
         read_cells(path, dem=dem, overlap_tolerance=0.001)
 
 
+@pytest.mark.parametrize("offset, overlapping", [(5.0, True), (10.0, False)])
+def test_read_cells_overlap_check_in_background(tmp_path: Path, tmp_dem: Path, offset,
+                                                overlapping) -> None:
+    """The background check finds the same overlap, when the caller asks for it."""
+    polys = [shapely.box(0, 0, 10, 10), shapely.box(offset, 0, offset + 10, 10)]
+    dem = open_dem(tmp_dem)
+    cells = read_cells(write_cells(tmp_path / "c.gpkg", polys), dem=dem,
+                       overlaps_in_background=True)
+    assert len(cells) == 2  # the layer comes back at once
+    if overlapping:
+        with pytest.raises(GeometryError):
+            cells.finish_checks()
+    else:
+        cells.finish_checks()
+    cells.finish_checks()  # reported once; later calls have nothing left to wait for
+    cells.raise_if_checks_failed()
+
+
 def test_read_cells_non_conforming_mesh(tmp_path: Path, tmp_dem: Path) -> None:
     """A refined (quadtree-like) mesh with hanging nodes is no overlap; a sliver is."""
     polys = [shapely.box(0, 0, 10, 10), shapely.box(10, 0, 15, 5), shapely.box(15, 0, 20, 5),
