@@ -2,7 +2,8 @@
 
 One small runner shared by every job (tables, adjustment).  Results always come back in
 task order, so outputs are identical whichever way they were computed.  At most
-``2 x workers`` tasks are in flight, so memory stays bounded by the tile size.
+``4 x workers`` tasks are in flight (workers keep busy while the job writes results),
+so memory stays bounded by the tile size.
 
 :func:`connect_workers` starts the local cluster (or connects to the scheduler) in a
 background thread and warms every worker up (imports, compiled kernels), so a job can
@@ -180,7 +181,7 @@ def _run_own_connection(fn, shared, tasks, workers, scheduler, max_in_flight) ->
 
 def _run_dask(fn, shared, tasks, client, max_in_flight) -> Iterator[Any]:
     n_workers = max(len(client.scheduler_info().get("workers", {})), 1)
-    limit = max_in_flight or 2 * n_workers
+    limit = max_in_flight or 4 * n_workers
     log.info("running tiles on %d Dask worker(s)", n_workers)
     shared_future = client.scatter(shared, broadcast=True)
     pending: deque = deque()

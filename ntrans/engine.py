@@ -24,6 +24,8 @@ from __future__ import annotations
 
 import functools
 import logging
+import os
+import time
 from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, field
 from typing import Any, Literal
@@ -536,9 +538,17 @@ def read_tile_window(dem: Any, window: Window) -> tuple[np.ndarray, Affine]:
 
 
 def run_task_local(dem: Any, task: TileTask, settings: TileSettings) -> dict[str, Any]:
-    """Read the tile's window from an open DEM and run :func:`run_tile`."""
+    """Read the tile's window from an open DEM and run :func:`run_tile`.
+
+    The result also holds ``timing``: process id, end time (epoch seconds), wall and CPU
+    seconds of the tile, which the job logs at debug level.
+    """
+    started, cpu = time.perf_counter(), time.process_time()
     arr, wt = read_tile_window(dem, task.tile.window)
-    return run_tile(task, arr, wt, settings)
+    out = run_tile(task, arr, wt, settings)
+    out["timing"] = (os.getpid(), time.time(), time.perf_counter() - started,
+                     time.process_time() - cpu)
+    return out
 
 
 def run_task_from_path(
@@ -576,7 +586,7 @@ def execute(
     connection : a :class:`ntrans.cluster.WorkerConnection` opened by the caller
         (instead of ``workers`` / ``scheduler``; lets start-up overlap the job's setup).
     progress : show a progress bar (stderr) via :func:`ntrans.progress.track`.
-    max_in_flight : tasks submitted but not yet yielded (default 2 per worker), which
+    max_in_flight : tasks submitted but not yet yielded (default 4 per worker), which
         bounds memory on the client.
 
     Without ``workers`` or ``scheduler`` everything runs in this process, one tile at a

@@ -22,6 +22,14 @@ parts; the ``snap_tolerance``
 over-reach at each open end (where p's boundary leaves q's buffer) is trimmed off in
 numpy; pieces shorter than ``3 * snap_tolerance`` (corner contacts) are dropped.  A
 cell's boundary faces are its boundary minus its shared parts.
+
+Memory: the neighbour pairs, the centroid order and the coordinate scale are found once
+for all cells; everything else runs in spatial blocks of ``block_cells`` cells, each with
+its neighbours two rings out (a cell is judged conforming from all of its neighbours, so
+every neighbour of a block cell must see all of its own).  A block keeps the faces whose
+``cell_a`` is one of its cells.  Every step is computed per pair, per cell or per line
+(never from sums over other lines), so the faces are the same to the bit for any block
+size.
 """
 
 from __future__ import annotations
@@ -120,6 +128,32 @@ def _explode_lines(geoms: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return parts[linear], index[linear].astype(np.int64)
 
 
+def _segment_cumsum(values: np.ndarray, idx: np.ndarray, n: np.ndarray) -> np.ndarray:
+    """Running sum of ``values`` within each line (vertices of line ``i`` are where ``idx == i``,
+    contiguous, in order).
+
+    Each line's sums are computed from its own values only (a padded row per line, lines
+    grouped by vertex count in powers of two), so they do not depend on which other lines
+    are processed with it, to the bit.
+    """
+    out = np.empty(values.size)
+    if values.size == 0:
+        return out
+    start = np.cumsum(n) - n
+    pos = np.arange(values.size) - start[idx]
+    width_class = np.ceil(np.log2(np.maximum(n, 1))).astype(np.int64)
+    vclass = width_class[idx]
+    for c in np.unique(width_class[n > 0]):
+        rows = np.flatnonzero((width_class == c) & (n > 0))
+        verts = np.flatnonzero(vclass == c)
+        row_of = np.searchsorted(rows, idx[verts])
+        m = np.zeros((rows.size, int(n[rows].max())))
+        m[row_of, pos[verts]] = values[verts]
+        np.cumsum(m, axis=1, out=m)
+        out[verts] = m[row_of, pos[verts]]
+    return out
+
+
 def _trim_open_ends(
     lines: np.ndarray, tol: float, min_length: float, *, corner_cap: float = 6.0
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -148,7 +182,7 @@ def _trim_open_ends(
     seg = np.zeros(coords.shape[0])
     seg[1:] = np.hypot(*(coords[1:] - coords[:-1]).T)
     seg[start] = 0.0  # no length across line boundaries
-    dist = np.cumsum(seg)  # global, nondecreasing
+    dist = _segment_cumsum(seg, idx, n)  # along each line, nondecreasing within it
     d0 = dist[start]
     d_end = dist[last]
 
@@ -176,8 +210,8 @@ def _trim_open_ends(
     a = d0 + trim_s
     b = d_end - trim_e
     # first vertex strictly beyond a, first vertex at or beyond b (inside the line)
-    ka = np.searchsorted(dist, a, side="right")
-    kb = np.searchsorted(dist, b, side="left")
+    ka = start + np.bincount(idx[dist <= a[idx]], minlength=sel.size)
+    kb = start + np.bincount(idx[dist < b[idx]], minlength=sel.size)
     ka = np.clip(ka, start + 1, last)
     kb = np.clip(kb, ka, last)
 
@@ -442,97 +476,142 @@ def _split_at_corners(lines: np.ndarray, max_turn: float) -> tuple[np.ndarray, n
     return pieces, piece_src
 
 
-def build_faces(
-    polygons: object, *, snap_tolerance: float, boundary_corner_angle: float | None = None
-) -> Faces:
-    """Find the faces of a mesh of cell polygons.
+def _near_pairs(geoms: np.ndarray, tol: float, chunk: int) -> tuple[np.ndarray, np.ndarray]:
+    """All ordered pairs ``(p, q)``, ``p != q``, of cells within ``tol``, sorted by (p, q).
 
-    Parameters
-    ----------
-    polygons : array_like of shapely Polygon / MultiPolygon
-        One geometry per cell; its position is the cell's local index.
-    snap_tolerance : float
-        Distance (CRS units, > 0) within which two cell boundaries count as shared:
-        covers unmatched vertices, small gaps and overlaps.  Pieces shorter than
-        ``3 * snap_tolerance`` (corner contacts) are not faces.
-    boundary_corner_angle : float, optional
-        Degrees.  By default a boundary face is one connected piece of a cell's
-        boundary (around a mesh corner it bends).  With an angle, boundary pieces are
-        also split where the boundary turns by more than it (e.g. 45: one face per side
-        of a rectangular cell).
-
-    Returns
-    -------
-    Faces
-        Sorted by ``(cell_a, cell_b, start x, start y)``; boundary faces have
-        ``cell_b == -1`` (so a cell's boundary faces come before its shared ones).
-
-    Examples
-    --------
-    >>> from shapely import box
-    >>> f = build_faces([box(0, 0, 1, 1), box(1, 0, 2, 1)], snap_tolerance=1e-6)
-    >>> [(int(a), int(b)) for a, b in zip(f.cell_a, f.cell_b) if b >= 0]
-    [(0, 1)]
+    Each unordered pair is tested once (``dwithin`` of the lower index against the
+    higher), so the pairs are symmetric.
     """
-    tol = float(snap_tolerance)
-    if not (np.isfinite(tol) and tol > 0):
-        raise InputError(
-            f"snap_tolerance must be a positive distance in CRS units, got {snap_tolerance!r}"
-        )
-    geoms = _check_polygons(polygons)
-    n_cells = geoms.size
-    if n_cells == 0:
-        return _empty_faces()
-    min_length = 3.0 * tol
-
+    n = geoms.size
     tree = shapely.STRtree(geoms)
-    # boxes grown by tol, then the exact distance test on those candidates (cheaper
-    # than the tree's own dwithin predicate)
-    box = shapely.bounds(geoms)
-    box[:, :2] -= tol
-    box[:, 2:] += tol
-    p, q = tree.query(shapely.box(box[:, 0], box[:, 1], box[:, 2], box[:, 3]))
-    near = shapely.dwithin(geoms[p], geoms[q], tol)
-    p, q = p[near], q[near]
-    other = p != q
-    p = p[other].astype(np.int64)
-    q = q[other].astype(np.int64)
-    boundary = shapely.boundary(geoms)
-    cent = shapely.get_coordinates(shapely.centroid(geoms))
-    rank = np.empty(n_cells, dtype=np.int64)
-    rank[np.lexsort((cent[:, 1], cent[:, 0]))] = np.arange(n_cells)
+    keys = []
+    for s in range(0, n, chunk):
+        # boxes grown by 2 tol (a margin over tol, so that rounding cannot hide a pair
+        # from the query of its lower index), then the exact distance test on those
+        # candidates (cheaper than the tree's own dwithin predicate)
+        box = shapely.bounds(geoms[s : s + chunk])
+        box[:, :2] -= 2.0 * tol
+        box[:, 2:] += 2.0 * tol
+        p, q = tree.query(shapely.box(box[:, 0], box[:, 1], box[:, 2], box[:, 3]))
+        p = p.astype(np.int64) + s
+        q = q.astype(np.int64)
+        up = q > p
+        p, q = p[up], q[up]
+        near = shapely.dwithin(geoms[p], geoms[q], tol)
+        keys.append(p[near] * np.int64(n) + q[near])
+    lo_hi = np.sort(np.concatenate(keys))
+    del keys
+    lo, hi = np.divmod(lo_hi, n)
+    hi_lo = np.sort(hi * np.int64(n) + lo)
+    del lo, hi
+    # both halves are sorted: the stable sort (timsort) merges them
+    return np.divmod(np.sort(np.concatenate([lo_hi, hi_lo]), kind="stable"), n)
+
+
+def _centroids(geoms: np.ndarray, chunk: int) -> np.ndarray:
+    """Centroid coordinates, shape (n, 2), computed in chunks."""
+    out = np.empty((geoms.size, 2))
+    for s in range(0, geoms.size, chunk):
+        out[s : s + chunk] = shapely.get_coordinates(shapely.centroid(geoms[s : s + chunk]))
+    return out
+
+
+def _blocks(cent: np.ndarray, rank: np.ndarray, block_cells: int) -> list[np.ndarray]:
+    """Split cells into spatial blocks of at most ``block_cells`` (sorted cell indices each).
+
+    Strips of equal count in centroid x order, each cut into runs of equal count in
+    centroid y order; the number of strips follows the extent's aspect ratio, so blocks
+    are roughly square.
+    """
+    n = cent.shape[0]
+    n_blocks = -(-n // block_cells)
+    if n_blocks <= 1:
+        return [np.arange(n)]
+    width, height = np.ptp(cent, axis=0)
+    ratio = width / height if height > 0 else float(n_blocks)
+    n_strips = int(np.clip(np.rint(np.sqrt(n_blocks * ratio)), 1, n_blocks))
+    by_x = np.empty(n, dtype=np.int64)
+    by_x[rank] = np.arange(n)  # cells in (x, y) centroid order
+    blocks = []
+    for strip in np.array_split(by_x, n_strips):
+        strip = strip[np.lexsort((cent[strip, 0], cent[strip, 1]))]
+        for block in np.array_split(strip, -(-strip.size // block_cells)):
+            blocks.append(np.sort(block))
+    return blocks
+
+
+def _gather(indptr: np.ndarray, cells: np.ndarray) -> np.ndarray:
+    """Positions, in the (p, q)-sorted pair arrays, of the pairs whose p is in ``cells``."""
+    lo = indptr[cells]
+    cnt = indptr[cells + 1] - lo
+    total = int(cnt.sum())
+    return np.repeat(lo - (np.cumsum(cnt) - cnt), cnt) + np.arange(total)
+
+
+def _block_faces(
+    geoms: np.ndarray,
+    p: np.ndarray,
+    q: np.ndarray,
+    rank: np.ndarray,
+    core: np.ndarray,
+    tol: float,
+    eps: float,
+    boundary_corner_angle: float | None,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Faces of the cells of one block, with local indices: (lines, cell_a, cell_b).
+
+    ``geoms`` are the block's cells and their neighbours two rings out (so every cell of
+    the block and every neighbour of it sees all of its own neighbours), ``p, q`` all
+    pairs within ``tol`` among them, ``rank`` their global centroid order, ``core`` the
+    mask of the block's own cells.  Only faces whose ``cell_a`` is in the core are
+    returned; local indices must increase with the global ones.
+    """
+    n_cells = geoms.size
+    min_length = 3.0 * tol
+    core_idx = np.flatnonzero(core)
+    boundary = np.full(n_cells, None, dtype=object)
     buffered = np.full(n_cells, None, dtype=object)
 
-    def _buffered(cells: np.ndarray) -> np.ndarray:
+    def _fill(store: np.ndarray, cells: np.ndarray, make) -> np.ndarray:
         todo = np.unique(cells)
-        todo = todo[shapely.is_missing(buffered[todo])]
+        todo = todo[shapely.is_missing(store[todo])]
         if todo.size:
-            buffered[todo] = shapely.buffer(geoms[todo], tol, quad_segs=4)
-        return buffered
+            store[todo] = make(geoms[todo])
+        return store
+
+    def _boundary(cells: np.ndarray) -> np.ndarray:
+        return _fill(boundary, cells, shapely.boundary)
+
+    def _buffered(cells: np.ndarray) -> np.ndarray:
+        return _fill(buffered, cells, lambda g: shapely.buffer(g, tol, quad_segs=4))
 
     # interior faces: for each neighbour pair, the shared part of the boundary of the
     # cell that comes first in centroid order (so the result does not depend on input order).
     # Conforming pairs (identical shared edges, nothing else within tol) by edge matching,
-    # the others by intersecting one boundary with the other cell's buffer.
+    # the others by intersecting one boundary with the other cell's buffer.  Pairs with no
+    # cell in the core are not needed (neither for the faces kept nor for the boundary).
     canon = rank[p] < rank[q]
     exact_parts, exact_p, exact_q, handled = _exact_shared(geoms, p, q, rank, min_length)
-    slow = canon & ~handled
-    parts, part_p, part_q = _shared_parts(boundary, _buffered(q[slow]), p[slow], q[slow], tol)
+    slow = canon & ~handled & (core[p] | core[q])
+    ps, qs = p[slow], q[slow]
+    parts, part_p, part_q = _shared_parts(_boundary(ps), _buffered(qs), ps, qs, tol)
     parts = np.concatenate([exact_parts, parts])
     part_p = np.concatenate([exact_p, part_p])
     part_q = np.concatenate([exact_q, part_q])
-    in_geom = parts
     in_a = np.minimum(part_p, part_q)
     in_b = np.maximum(part_p, part_q)
+    kept = core[in_a]
+    in_geom, in_a, in_b = parts[kept], in_a[kept], in_b[kept]
 
-    # boundary faces: a cell's boundary minus its own shared parts.  Cells whose faces
-    # (measured from either side) cover their perimeter have none; for the others the
-    # shared parts on their own side are computed too.
-    perimeter = shapely.length(boundary)
+    # boundary faces (core cells only): a cell's boundary minus its own shared parts.
+    # Cells whose faces (measured from either side) cover their perimeter have none; for
+    # the others the shared parts on their own side are computed too.
+    perimeter = np.zeros(n_cells)
+    perimeter[core_idx] = shapely.length(_boundary(core_idx)[core_idx])
     plen = shapely.length(parts)
     covered = np.bincount(part_p, weights=plen, minlength=n_cells)
     covered += np.bincount(part_q, weights=plen, minlength=n_cells)
-    cand = np.flatnonzero(perimeter - covered >= 0.5 * min_length)
+    cand = core_idx[perimeter[core_idx] - covered[core_idx] >= 0.5 * min_length]
     if cand.size:
         rev = ~canon & np.isin(p, cand)
         r_parts, r_p, _ = _shared_parts(boundary, _buffered(q[rev]), p[rev], q[rev], tol)
@@ -550,8 +629,6 @@ def build_faces(
             has = has[np.argsort(part_p[has], kind="stable")]
             owners, local = np.unique(part_p[has], return_inverse=True)
             removed = shapely.multilinestrings(parts[has], indices=local)
-            scale = float(np.max(np.abs(cent)))
-            eps = min(max(tol * 1e-3, 1e-11 * scale), 0.5 * tol)
             pos = np.searchsorted(cand, owners)
             rest[pos] = shapely.difference(
                 rest[pos], shapely.buffer(removed, eps, quad_segs=2)
@@ -563,16 +640,136 @@ def build_faces(
         good = shapely.length(pieces) >= min_length
         bd_geom = pieces[good]
         bd_a = cand[src[good]]
+    return (
+        np.concatenate([in_geom, bd_geom]),
+        np.concatenate([in_a, bd_a]).astype(np.int64),
+        np.concatenate([in_b, np.full(bd_a.size, -1, dtype=np.int64)]),
+    )
 
-    geometry = _orient(np.concatenate([in_geom, bd_geom]))
-    cell_a = np.concatenate([in_a, bd_a]).astype(np.int64)
-    cell_b = np.concatenate([in_b, np.full(bd_a.size, -1, dtype=np.int64)])
+
+def _check_block_cells(block_cells: object) -> int | None:
+    ok = block_cells is None or (
+        isinstance(block_cells, int | np.integer)
+        and not isinstance(block_cells, bool | np.bool_)
+        and block_cells > 0
+    )
+    if not ok:
+        raise InputError(
+            f"block_cells must be a positive whole number of cells or None, got {block_cells!r}"
+        )
+    return None if block_cells is None else int(block_cells)
+
+
+def build_faces(
+    polygons: object,
+    *,
+    snap_tolerance: float,
+    boundary_corner_angle: float | None = None,
+    block_cells: int | None = 20_000,
+) -> Faces:
+    """Find the faces of a mesh of cell polygons.
+
+    Parameters
+    ----------
+    polygons : array_like of shapely Polygon / MultiPolygon
+        One geometry per cell; its position is the cell's local index.
+    snap_tolerance : float
+        Distance (CRS units, > 0) within which two cell boundaries count as shared:
+        covers unmatched vertices, small gaps and overlaps.  Pieces shorter than
+        ``3 * snap_tolerance`` (corner contacts) are not faces.
+    boundary_corner_angle : float, optional
+        Degrees.  By default a boundary face is one connected piece of a cell's
+        boundary (around a mesh corner it bends).  With an angle, boundary pieces are
+        also split where the boundary turns by more than it (e.g. 45: one face per side
+        of a rectangular cell).
+    block_cells : int or None, default 20_000
+        Cells per spatial block.  The cells are processed block by block (each with its
+        neighbours two rings out), which bounds the working memory; the result is the
+        same, to the bit, for every block size.  ``None``: all cells in one block.
+
+    Returns
+    -------
+    Faces
+        Sorted by ``(cell_a, cell_b, start x, start y, end x, end y)``; boundary faces
+        have ``cell_b == -1`` (so a cell's boundary faces come before its shared ones).
+
+    Examples
+    --------
+    >>> from shapely import box
+    >>> f = build_faces([box(0, 0, 1, 1), box(1, 0, 2, 1)], snap_tolerance=1e-6)
+    >>> [(int(a), int(b)) for a, b in zip(f.cell_a, f.cell_b) if b >= 0]
+    [(0, 1)]
+    """
+    tol = float(snap_tolerance)
+    if not (np.isfinite(tol) and tol > 0):
+        raise InputError(
+            f"snap_tolerance must be a positive distance in CRS units, got {snap_tolerance!r}"
+        )
+    block = _check_block_cells(block_cells)
+    geoms = _check_polygons(polygons)
+    n_cells = geoms.size
+    if n_cells == 0:
+        return _empty_faces()
+    if block is None:
+        block = n_cells
+    chunk = max(block, 1_000)
+
+    # global quantities, so that every block sees the same as one run over all cells:
+    # the centroid order, the clean-up buffer width and the neighbour pairs
+    cent = _centroids(geoms, chunk)
+    rank = np.empty(n_cells, dtype=np.int64)
+    rank[np.lexsort((cent[:, 1], cent[:, 0]))] = np.arange(n_cells)
+    scale = float(np.max(np.abs(cent)))
+    eps = min(max(tol * 1e-3, 1e-11 * scale), 0.5 * tol)
+    p, q = _near_pairs(geoms, tol, chunk)
+    indptr = np.searchsorted(p, np.arange(n_cells + 1))
+    blocks = _blocks(cent, rank, block)
+    del cent
+
+    mark = np.zeros(n_cells, dtype=np.int8)  # 1 core, 2 first ring, 3 second ring
+    local = np.zeros(n_cells, dtype=np.int64)
+    out_geom, out_a, out_b, out_ends = [], [], [], []
+    for core in blocks:
+        if core.size == n_cells:
+            ctx, lp, lq = core, p, q
+            is_core = np.ones(n_cells, dtype=bool)
+        else:
+            # the block's cells and their neighbours two rings out, in index order
+            mark[core] = 1
+            ring = q[_gather(indptr, core)]
+            mark[ring[mark[ring] == 0]] = 2
+            ring = q[_gather(indptr, np.flatnonzero(mark == 2))]
+            mark[ring[mark[ring] == 0]] = 3
+            ctx = np.flatnonzero(mark)
+            is_core = mark[ctx] == 1
+            at = _gather(indptr, ctx)
+            at = at[mark[q[at]] > 0]
+            local[ctx] = np.arange(ctx.size)
+            lp, lq = local[p[at]], local[q[at]]
+            mark[ctx] = 0
+            del at, ring
+        geom, a, b = _block_faces(
+            geoms[ctx], lp, lq, rank[ctx], is_core, tol, eps, boundary_corner_angle
+        )
+        geom = _orient(geom)
+        out_geom.append(geom)
+        out_a.append(ctx[a])
+        out_b.append(np.where(b >= 0, ctx[np.maximum(b, 0)], -1))
+        coords, idx = shapely.get_coordinates(geom, return_index=True)
+        n = np.bincount(idx, minlength=geom.size)
+        last = np.cumsum(n) - 1
+        out_ends.append(np.hstack([coords[last - n + 1], coords[last]]))
+        del geom, a, b, coords, idx, lp, lq, ctx
+        logger.debug("faces of block of %d cells done", core.size)
+    del p, q, indptr, mark, local
+
+    geometry = np.concatenate(out_geom)
     if geometry.size == 0:
         return _empty_faces()
-    coords, idx = shapely.get_coordinates(geometry, return_index=True)
-    n = np.bincount(idx, minlength=geometry.size)
-    first = coords[np.cumsum(n) - n]
-    order = np.lexsort((first[:, 1], first[:, 0], cell_b, cell_a))
+    cell_a = np.concatenate(out_a)
+    cell_b = np.concatenate(out_b)
+    ends = np.concatenate(out_ends)
+    order = np.lexsort((ends[:, 3], ends[:, 2], ends[:, 1], ends[:, 0], cell_b, cell_a))
     geometry = geometry[order]
     faces = Faces(
         geometry=geometry,
@@ -581,9 +778,10 @@ def build_faces(
         length=shapely.length(geometry).astype(np.float64),
     )
     logger.debug(
-        "built %d faces (%d boundary) for %d cells",
+        "built %d faces (%d boundary) for %d cells in %d blocks",
         faces.n_faces,
         int(np.count_nonzero(faces.cell_b < 0)),
         n_cells,
+        len(blocks),
     )
     return faces

@@ -356,6 +356,9 @@ def build_tables(
             step = max(len(tiles) // 10, 1)
             for k, res in enumerate(results):
                 layer.raise_if_checks_failed()
+                pid, end, wall, cpu = res["timing"]
+                log.debug("tile %d of %d: process %d, %.2f s (%.2f s CPU), %.2f s ago",
+                          res["tile"] + 1, len(tiles), pid, wall, cpu, time.time() - end)
                 rows = res["cell_rows"]
                 chunk: dict[str, Any] = {"cell_id": ids_at(ids, rows["cell"])}
                 chunk.update({c: rows[c] for c in CELL_STAGE_COLUMNS[1:]})

@@ -206,10 +206,10 @@ def test_input_errors():
     assert build_faces([], snap_tolerance=TOL).n_faces == 0
 
 
-def test_jittered_mesh_with_unmatched_vertices_finds_the_same_faces():
-    # every cell's vertices moved independently by ~1e-4 (gaps and overlaps), and every
-    # other cell's edges split at 5 m (unmatched vertices); tolerance 1e-3
-    cells = voronoi_mesh(60, 7)
+def jittered_mesh(n: int, seed: int) -> np.ndarray:
+    """A Voronoi mesh with every cell's vertices moved independently by ~1e-4 (gaps and
+    overlaps), and every other cell's edges split at 5 m (unmatched vertices)."""
+    cells = voronoi_mesh(n, seed)
     rng = np.random.default_rng(1)
     moved = []
     for poly in cells:
@@ -218,6 +218,13 @@ def test_jittered_mesh_with_unmatched_vertices_finds_the_same_faces():
     moved = np.array(moved, dtype=object)
     moved[::2] = shapely.segmentize(moved[::2], 5.0)
     assert np.all(shapely.is_valid(moved))
+    return moved
+
+
+def test_jittered_mesh_with_unmatched_vertices_finds_the_same_faces():
+    # tolerance 1e-3 covers the 1e-4 jitter
+    cells = voronoi_mesh(60, 7)
+    moved = jittered_mesh(60, 7)
     exact = build_faces(cells, snap_tolerance=1e-6)
     rough = build_faces(moved, snap_tolerance=1e-3)
     assert pairs(rough) == pairs(exact)
@@ -249,3 +256,125 @@ def test_conforming_cells_by_edge_matching_agree_with_the_buffer_method(seed, mo
     dist = shapely.hausdorff_distance(fast.geometry, slow.geometry)
     assert np.all(dist < 10 * 1e-6)
     np.testing.assert_allclose(fast.length, slow.length, atol=10 * 1e-6)
+
+
+# --- processing in spatial blocks -------------------------------------------------------
+
+
+def jittered_grid_voronoi(n_side: int, seed: int) -> np.ndarray:
+    """A conforming mesh: Voronoi cells of jittered grid points, clipped to the box."""
+    rng = np.random.default_rng(seed)
+    i, j = np.meshgrid(np.arange(n_side), np.arange(n_side))
+    pts = np.column_stack([i.ravel(), j.ravel()]) + 0.5 + rng.uniform(-0.3, 0.3, (i.size, 2))
+    env = box(0, 0, n_side, n_side)
+    cells = shapely.get_parts(shapely.voronoi_polygons(shapely.multipoints(pts), extend_to=env))
+    return shapely.intersection(cells, env)
+
+
+def patchwork_mesh() -> np.ndarray:
+    """A non-conforming 8 x 6 grid of unit squares: a cell with a hole filled by another
+    cell, a two-part cell, edges split on one side only, a shifted cell (gap on one side,
+    overlap on the other, 4e-4) and an enlarged cell (overlap 3e-4); tolerance 1e-3."""
+    cells: list = grid(8, 6)
+    cells[9] = box(1, 1, 2, 2).difference(box(1.3, 1.3, 1.7, 1.7))
+    cells.append(box(1.3, 1.3, 1.7, 1.7))
+    cells[12] = box(4, 1, 5, 2 + 3e-4)
+    cells[30] = box(6 + 4e-4, 3, 7 + 4e-4, 4)
+    cells[20] = shapely.MultiPolygon([box(4, 2, 5, 3), box(6, 2, 7, 3)])
+    del cells[22]  # its square is the second part of cell 20
+    out = np.array(cells, dtype=object)
+    out[::3] = shapely.segmentize(out[::3], 0.25)
+    assert np.all(shapely.is_valid(out))
+    return out
+
+
+def assert_identical(f1: Faces, f2: Faces) -> None:
+    # no tolerance: blocks must reproduce the one-block result to the bit
+    assert np.array_equal(f1.cell_a, f2.cell_a)
+    assert np.array_equal(f1.cell_b, f2.cell_b)
+    assert np.array_equal(f1.length, f2.length)
+    c1, i1 = shapely.get_coordinates(f1.geometry, return_index=True)
+    c2, i2 = shapely.get_coordinates(f2.geometry, return_index=True)
+    assert np.array_equal(i1, i2)
+    assert np.array_equal(c1, c2)
+
+
+MESHES = {
+    "conforming": (lambda: jittered_grid_voronoi(18, 0), 1e-6),
+    "jittered_split": (lambda: jittered_mesh(120, 3), 1e-3),
+    "patchwork": (patchwork_mesh, 1e-3),
+    # far from the origin the clean-up buffer width follows the coordinate scale
+    "patchwork_far": (lambda: shapely.transform(patchwork_mesh(), lambda c: c + 3e5), 1e-3),
+}
+
+
+@pytest.mark.parametrize("angle", [None, 45.0])
+@pytest.mark.parametrize("block_cells", [1, 3, 7, 50])
+@pytest.mark.parametrize("mesh", sorted(MESHES))
+def test_blocks_give_identical_faces(mesh, block_cells, angle):
+    make, tol = MESHES[mesh]
+    cells = make()
+    whole = build_faces(cells, snap_tolerance=tol, boundary_corner_angle=angle, block_cells=None)
+    assert whole.n_faces > len(cells)  # a real mesh, boundary faces included
+    assert boundary_count(whole) > 0
+    blocked = build_faces(
+        cells, snap_tolerance=tol, boundary_corner_angle=angle, block_cells=block_cells
+    )
+    assert_identical(whole, blocked)
+
+
+def test_patchwork_mesh_faces_are_found():
+    # the non-conforming fixture really has its special faces (geometry identity)
+    f = build_faces(patchwork_mesh(), snap_tolerance=1e-3, block_cells=5)
+    hole = (f.cell_a == 9) & (f.cell_b == 47)
+    assert hole.sum() == 1 and shapely.is_closed(f.geometry[hole][0])
+    # geometry identity: perimeter of the 0.4 x 0.4 hole (a closed face is not trimmed;
+    # default relative 1e-6 only absorbs float rounding of the segmentized ring)
+    assert f.length[hole][0] == pytest.approx(1.6)
+    # the two-part cell 20 borders cells on both sides of the removed square
+    assert {(20, 21), (20, 22)} <= set(pairs(f))  # cell 22 is the old 23
+    # the enlarged cell 12 and the shifted cell 29 (old 30) still share full sides
+    for a, b in [(12, 20), (28, 29), (29, 30)]:
+        side = (f.cell_a == a) & (f.cell_b == b)
+        assert side.sum() == 1
+        # face ends accurate to about the tolerance (mesh construction, no source)
+        assert f.length[side][0] == pytest.approx(1.0, abs=3e-3)
+
+
+@pytest.mark.parametrize("block_cells", [None, 1, 20_000])
+def test_blocks_on_tiny_meshes(block_cells):
+    assert build_faces([], snap_tolerance=TOL, block_cells=block_cells).n_faces == 0
+    one = build_faces([box(0, 0, 2, 1)], snap_tolerance=TOL, block_cells=block_cells)
+    assert pairs(one) == [] and boundary_count(one, 0) == 1
+    # geometry identity: the whole perimeter (default relative 1e-6: float rounding only)
+    assert one.length[0] == pytest.approx(6.0)
+    two = build_faces(grid(2, 1), snap_tolerance=TOL, block_cells=block_cells)
+    assert_identical(two, build_faces(grid(2, 1), snap_tolerance=TOL, block_cells=None))
+
+
+@pytest.mark.parametrize("bad", [0, -5, 2.5, "100", True, np.float64(10.0)])
+def test_bad_block_cells(bad):
+    with pytest.raises(InputError):
+        build_faces(grid(2, 2), snap_tolerance=TOL, block_cells=bad)
+
+
+def test_block_cells_accepts_numpy_integers():
+    assert_identical(
+        build_faces(grid(3, 3), snap_tolerance=TOL, block_cells=np.int32(2)),
+        build_faces(grid(3, 3), snap_tolerance=TOL, block_cells=None),
+    )
+
+
+def test_trimmed_ends_do_not_depend_on_the_other_lines():
+    # the over-reach trim measures along each line on its own: the same line trimmed
+    # alone or after long lines gives the same coordinates, to the bit
+    from ntrans.mesh import _trim_open_ends
+
+    rng = np.random.default_rng(2)
+    lines = shapely.linestrings(np.cumsum(rng.uniform(0.1, 3.0, (40, 7, 2)), axis=1) + 1e5)
+    tol = 0.05
+    together, kept = _trim_open_ends(lines, tol, 3 * tol)
+    assert kept.all()
+    for i in [0, 17, 39]:
+        alone, _ = _trim_open_ends(lines[i : i + 1], tol, 3 * tol)
+        assert np.array_equal(shapely.get_coordinates(alone), shapely.get_coordinates(together[i]))
