@@ -91,6 +91,10 @@ class WorkerConnection:
         self._future = self._pool.submit(_connect, workers, scheduler)
         self._closing: Any = None
 
+    def ready(self) -> bool:
+        """True once the workers are up and warm (never waits)."""
+        return self._future.done()
+
     @property
     def client(self) -> Any:
         """The connected client (waits for the start-up to finish)."""
@@ -132,6 +136,11 @@ def connect_workers(workers: int | None, scheduler: str | None) -> WorkerConnect
     if workers is None and scheduler is None:
         return None
     return WorkerConnection(workers, scheduler)
+
+
+def call(fn: Callable[[Any], Any], task: Any) -> Any:
+    """``fn(task)``: lets :func:`run_ordered` map a plain one-argument function."""
+    return fn(task)
 
 
 def run_ordered(

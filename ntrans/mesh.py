@@ -36,8 +36,10 @@ from __future__ import annotations
 
 import logging
 import os
+from collections.abc import Callable, Iterable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import shapely
@@ -660,12 +662,69 @@ def _check_block_cells(block_cells: object) -> int | None:
     return None if block_cells is None else int(block_cells)
 
 
+@dataclass
+class _BlockJob:
+    """One block of :func:`build_faces`: its cells with two rings of neighbours."""
+
+    geoms: np.ndarray
+    p: np.ndarray
+    q: np.ndarray
+    rank: np.ndarray
+    core: np.ndarray
+    cells: np.ndarray  # global index of each local cell
+    tol: float
+    eps: float
+    corner_angle: float | None
+
+    def __reduce__(self):
+        # geometry travels as WKB, converted for the whole array at once
+        return (_block_job_from_wkb, (shapely.to_wkb(self.geoms), self.p, self.q, self.rank,
+                                      self.core, self.cells, self.tol, self.eps,
+                                      self.corner_angle))
+
+
+def _block_job_from_wkb(wkb, *rest) -> _BlockJob:
+    return _BlockJob(shapely.from_wkb(wkb), *rest)
+
+
+@dataclass
+class _BlockResult:
+    """Faces of one block, global cell indices, with their end points (x0, y0, x1, y1)."""
+
+    geometry: np.ndarray
+    cell_a: np.ndarray
+    cell_b: np.ndarray
+    ends: np.ndarray
+
+    def __reduce__(self):
+        return (_block_result_from_wkb,
+                (shapely.to_wkb(self.geometry), self.cell_a, self.cell_b, self.ends))
+
+
+def _block_result_from_wkb(wkb, *rest) -> _BlockResult:
+    return _BlockResult(shapely.from_wkb(wkb), *rest)
+
+
+def run_block_job(job: _BlockJob) -> _BlockResult:
+    """Faces of one block of :func:`build_faces` (pure; runs anywhere)."""
+    geom, a, b = _block_faces(job.geoms, job.p, job.q, job.rank, job.core, job.tol, job.eps,
+                              job.corner_angle)
+    geom = _orient(geom)
+    ctx = job.cells
+    coords, idx = shapely.get_coordinates(geom, return_index=True)
+    n = np.bincount(idx, minlength=geom.size)
+    last = np.cumsum(n) - 1
+    ends = np.hstack([coords[last - n + 1], coords[last]]) if geom.size else np.zeros((0, 4))
+    return _BlockResult(geom, ctx[a], np.where(b >= 0, ctx[np.maximum(b, 0)], -1), ends)
+
+
 def build_faces(
     polygons: object,
     *,
     snap_tolerance: float,
     boundary_corner_angle: float | None = None,
     block_cells: int | None = 20_000,
+    map_blocks: Callable[[Callable[[Any], Any], Iterable[Any]], Iterable[Any]] | None = None,
 ) -> Faces:
     """Find the faces of a mesh of cell polygons.
 
@@ -686,6 +745,10 @@ def build_faces(
         Cells per spatial block.  The cells are processed block by block (each with its
         neighbours two rings out), which bounds the working memory; the result is the
         same, to the bit, for every block size.  ``None``: all cells in one block.
+    map_blocks : callable, optional
+        Used instead of the built-in ``map`` to run :func:`run_block_job` over the
+        blocks; it must yield the results in order (e.g. one that runs the blocks on
+        Dask workers: jobs and results pickle their geometry as WKB).
 
     Returns
     -------
@@ -726,42 +789,37 @@ def build_faces(
     blocks = _blocks(cent, rank, block)
     del cent
 
-    mark = np.zeros(n_cells, dtype=np.int8)  # 1 core, 2 first ring, 3 second ring
-    local = np.zeros(n_cells, dtype=np.int64)
+    def jobs():
+        mark = np.zeros(n_cells, dtype=np.int8)  # 1 core, 2 first ring, 3 second ring
+        local = np.zeros(n_cells, dtype=np.int64)
+        for core in blocks:
+            if core.size == n_cells:
+                ctx, lp, lq = core, p, q
+                is_core = np.ones(n_cells, dtype=bool)
+            else:
+                # the block's cells and their neighbours two rings out, in index order
+                mark[core] = 1
+                ring = q[_gather(indptr, core)]
+                mark[ring[mark[ring] == 0]] = 2
+                ring = q[_gather(indptr, np.flatnonzero(mark == 2))]
+                mark[ring[mark[ring] == 0]] = 3
+                ctx = np.flatnonzero(mark)
+                is_core = mark[ctx] == 1
+                at = _gather(indptr, ctx)
+                at = at[mark[q[at]] > 0]
+                local[ctx] = np.arange(ctx.size)
+                lp, lq = local[p[at]], local[q[at]]
+                mark[ctx] = 0
+            yield _BlockJob(geoms[ctx], lp, lq, rank[ctx], is_core, ctx, tol, eps,
+                            boundary_corner_angle)
+
     out_geom, out_a, out_b, out_ends = [], [], [], []
-    for core in blocks:
-        if core.size == n_cells:
-            ctx, lp, lq = core, p, q
-            is_core = np.ones(n_cells, dtype=bool)
-        else:
-            # the block's cells and their neighbours two rings out, in index order
-            mark[core] = 1
-            ring = q[_gather(indptr, core)]
-            mark[ring[mark[ring] == 0]] = 2
-            ring = q[_gather(indptr, np.flatnonzero(mark == 2))]
-            mark[ring[mark[ring] == 0]] = 3
-            ctx = np.flatnonzero(mark)
-            is_core = mark[ctx] == 1
-            at = _gather(indptr, ctx)
-            at = at[mark[q[at]] > 0]
-            local[ctx] = np.arange(ctx.size)
-            lp, lq = local[p[at]], local[q[at]]
-            mark[ctx] = 0
-            del at, ring
-        geom, a, b = _block_faces(
-            geoms[ctx], lp, lq, rank[ctx], is_core, tol, eps, boundary_corner_angle
-        )
-        geom = _orient(geom)
-        out_geom.append(geom)
-        out_a.append(ctx[a])
-        out_b.append(np.where(b >= 0, ctx[np.maximum(b, 0)], -1))
-        coords, idx = shapely.get_coordinates(geom, return_index=True)
-        n = np.bincount(idx, minlength=geom.size)
-        last = np.cumsum(n) - 1
-        out_ends.append(np.hstack([coords[last - n + 1], coords[last]]))
-        del geom, a, b, coords, idx, lp, lq, ctx
-        logger.debug("faces of block of %d cells done", core.size)
-    del p, q, indptr, mark, local
+    for res in (map_blocks or map)(run_block_job, jobs()):
+        out_geom.append(res.geometry)
+        out_a.append(res.cell_a)
+        out_b.append(res.cell_b)
+        out_ends.append(res.ends)
+        logger.debug("faces of a block done (%d faces)", res.geometry.size)
 
     geometry = np.concatenate(out_geom)
     if geometry.size == 0:

@@ -17,6 +17,7 @@ tile, then by stage; the order is the same in-process and on Dask workers.
 from __future__ import annotations
 
 import contextlib
+import itertools
 import json
 import logging
 import os
@@ -154,6 +155,7 @@ def prepare_mesh_job(
     snap_tolerance: float | None,
     tile_size: int,
     faces: bool = True,
+    connection: Any = None,
 ) -> MeshJob:
     """Open the DEM, read and check the cells, build the faces and plan the tiles.
 
@@ -162,7 +164,8 @@ def prepare_mesh_job(
     before writing their summaries.
 
     Face spacing defaults to half a pixel and the snap tolerance to 1 % of a pixel
-    (horizontal CRS units).
+    (horizontal CRS units).  With a worker ``connection`` the faces are built block by
+    block on the workers.
     """
     from .inputs import elevation_field_values, open_dem, read_cells
     from .mesh import build_faces
@@ -180,7 +183,21 @@ def prepare_mesh_job(
     if not (np.isfinite(snap) and snap > 0):
         raise InputError(f"snap tolerance {snap_tolerance!r} is not a positive length; give e.g. {0.01 * pixel:g}")
     geoms = np.asarray(layer.geometry, dtype=object)
-    mesh = build_faces(geoms, snap_tolerance=snap) if faces else None
+    map_blocks = None
+    if connection is not None:
+        from .cluster import call, run_ordered
+
+        def map_blocks(fn, jobs):
+            # blocks run here while the workers start, then on the workers (same result)
+            jobs = iter(jobs)
+            for job in jobs:
+                if connection.ready():
+                    yield from run_ordered(call, fn, itertools.chain([job], jobs),
+                                           connection=connection, desc="face blocks")
+                    return
+                yield fn(job)
+
+    mesh = build_faces(geoms, snap_tolerance=snap, map_blocks=map_blocks) if faces else None
     tiles = plan_tiles(
         geoms,
         dem_info.transform,
@@ -282,7 +299,7 @@ def build_tables(
             dem, cells, id_field=id_field, vertical_units=vertical_units,
             elevation_rule=elevation_rule, elevation_field=elevation_field,
             face_spacing=face_spacing, snap_tolerance=snap_tolerance,
-            tile_size=tile_size, faces=faces,
+            tile_size=tile_size, faces=faces, connection=connection,
         )
         dem_info, layer, ids, geoms = job.dem, job.layer, job.ids, job.geoms
         field_values, spacing, mesh, tiles = job.field_values, job.spacing, job.mesh, job.tiles

@@ -323,6 +323,22 @@ def test_blocks_give_identical_faces(mesh, block_cells, angle):
     assert_identical(whole, blocked)
 
 
+@pytest.mark.parametrize("mesh", sorted(MESHES))
+def test_blocks_mapped_through_pickle_give_identical_faces(mesh):
+    import pickle
+
+    def on_workers(fn, jobs):
+        # what a Dask worker sees: the job and its result each cross a pickle
+        for job in jobs:
+            yield pickle.loads(pickle.dumps(fn(pickle.loads(pickle.dumps(job)))))
+
+    make, tol = MESHES[mesh]
+    cells = make()
+    whole = build_faces(cells, snap_tolerance=tol, block_cells=None)
+    mapped = build_faces(cells, snap_tolerance=tol, block_cells=7, map_blocks=on_workers)
+    assert_identical(whole, mapped)
+
+
 def test_patchwork_mesh_faces_are_found():
     # the non-conforming fixture really has its special faces (geometry identity)
     f = build_faces(patchwork_mesh(), snap_tolerance=1e-3, block_cells=5)
