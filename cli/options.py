@@ -140,7 +140,7 @@ csv = click.option(
 tile_size = click.option(
     "--tile-size",
     type=click.IntRange(min=1),
-    default=1024,
+    default=512,
     show_default=True,
     metavar="PIXELS",
     help="Tile edge in DEM pixels; cells are processed tile by tile, which bounds memory.",

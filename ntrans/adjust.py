@@ -537,7 +537,7 @@ def adjust_roughness(
     vertical_units: str | None = None,
     csv: bool = False,
     overwrite: bool = False,
-    tile_size: int = 1024,
+    tile_size: int = 512,
     workers: int | None = None,
     scheduler: str | None = None,
     progress: bool = False,

@@ -97,7 +97,7 @@ def plan_tiles(
     transform: Affine,
     shape: tuple[int, int],
     *,
-    tile_size: int = 1024,
+    tile_size: int = 512,
     face_cell_a: np.ndarray | None = None,
     face_cell_b: np.ndarray | None = None,
     face_lines: np.ndarray | None = None,
@@ -120,7 +120,7 @@ def plan_tiles(
     not returned.
     """
     if int(tile_size) < 1:
-        raise InputError(f"tile size {tile_size} is not a positive number of pixels; use e.g. 1024")
+        raise InputError(f"tile size {tile_size} is not a positive number of pixels; use e.g. 512")
     tile_size = int(tile_size)
     polygons = np.asarray(polygons, dtype=object)
     n_cells = polygons.size

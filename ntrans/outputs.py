@@ -421,12 +421,22 @@ def write_csv(parquet_path: str | os.PathLike[str], csv_path: str | os.PathLike[
     return target
 
 
-def write_geopackage(frame: Any, path: str | os.PathLike[str], layer: str) -> Path:
-    """Write a GeoDataFrame as one layer of a GeoPackage (created or appended to)."""
+def write_geopackage(
+    frame: Any, path: str | os.PathLike[str], layer: str, *, chunk_rows: int = 100_000
+) -> Path:
+    """Write a GeoDataFrame as one layer of a GeoPackage (created or appended to).
+
+    Rows go in chunks of ``chunk_rows`` (appended to the layer), so the encoded geometry
+    of only one chunk is in memory at a time.
+    """
     target = Path(os.fspath(path))
     try:
         # the Arrow path writes whole columns at once (about twice as fast)
-        frame.to_file(target, layer=layer, driver="GPKG", engine="pyogrio", use_arrow=True)
+        for start in range(0, max(len(frame), 1), chunk_rows):
+            frame.iloc[start:start + chunk_rows].to_file(
+                target, layer=layer, driver="GPKG", engine="pyogrio", use_arrow=True,
+                mode="a" if start else "w",
+            )
     except Exception as exc:  # pyogrio / GDAL errors
         raise OutputError(
             f"GeoPackage '{target}' layer '{layer}' cannot be written ({exc}); check the output "

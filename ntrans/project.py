@@ -356,7 +356,7 @@ overwrite = false               # replace an existing bundle folder
 
 [run]
 coverage = "exact"              # pixel-to-cell weights: exact | centre
-tile_size = 1024                # tile edge in DEM pixels (bounds memory)
+tile_size = 512                 # tile edge in DEM pixels (bounds memory)
 # workers = 4                   # local worker processes (default: this process)
 """
 

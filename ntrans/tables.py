@@ -171,7 +171,7 @@ def prepare_mesh_job(
     from .mesh import build_faces
 
     if int(tile_size) < 1:
-        raise InputError(f"tile size {tile_size} is not a positive number of pixels; use e.g. 1024")
+        raise InputError(f"tile size {tile_size} is not a positive number of pixels; use e.g. 512")
     dem_info = open_dem(dem, vertical_units=vertical_units)
     layer = read_cells(cells, dem=dem_info, id_field=id_field, overlaps_in_background=True)
     field_values = elevation_field_values(layer, elevation_rule, elevation_field)
@@ -230,7 +230,7 @@ def build_tables(
     faces: bool = True,
     csv: bool = False,
     overwrite: bool = False,
-    tile_size: int = 1024,
+    tile_size: int = 512,
     workers: int | None = None,
     scheduler: str | None = None,
     progress: bool = False,
@@ -286,7 +286,7 @@ def build_tables(
     check_choice("face rule", face_rule, FACE_RULES)
     spec = StageSpec.from_options(stages=stages, depths=depths)
     if int(tile_size) < 1:  # checked before the output folder is touched
-        raise InputError(f"tile size {tile_size} is not a positive number of pixels; use e.g. 1024")
+        raise InputError(f"tile size {tile_size} is not a positive number of pixels; use e.g. 512")
 
     files: list[Path] = []
     # workers start (and warm up) in the background while the mesh is read and built

@@ -257,6 +257,24 @@ def test_write_geopackage_round_trip(tmp_path: Path) -> None:
     assert back.crs.to_epsg() == 32633
 
 
+@pytest.mark.parametrize("chunk_rows", [1, 4, 7, 100_000])
+def test_write_geopackage_in_chunks_keeps_every_row(tmp_path: Path, chunk_rows) -> None:
+    import geopandas as gpd
+
+    n = 23
+    cells = gpd.GeoDataFrame(
+        {"cell_id": np.arange(n), "cell_b": pd.array([1, None] * 11 + [3], dtype="Int64")},
+        geometry=grid_polygons(n, 1, 2.0), crs="EPSG:32633",
+    )
+    path = write_geopackage(cells, tmp_path / "m.gpkg", "cells", chunk_rows=chunk_rows)
+    write_geopackage(cells.iloc[:3], path, "other", chunk_rows=chunk_rows)  # second layer
+    back = gpd.read_file(path, layer="cells")
+    assert back["cell_id"].tolist() == list(range(n))  # order kept across chunks
+    assert back["cell_b"].isna().sum() == 11  # nulls survive the chunked append
+    assert all(shapely.equals(back.geometry.to_numpy(), cells.geometry.to_numpy()))
+    assert len(gpd.read_file(path, layer="other")) == 3  # the first layer is kept
+
+
 # --------------------------------------------------------------------------- units
 
 CONTRACT_COLUMNS = [  # DESIGN.md section 4
