@@ -43,6 +43,7 @@ from .engine import (
     make_tasks,
 )
 from .errors import DryWetMismatchWarning, InputError, RoughnessError, check_choice
+from .memory import release_free_memory
 from .roughness import (
     AREA_TOLERANCE,
     OVERLAP_RULES,
@@ -742,6 +743,7 @@ def adjust_roughness(
                     cw.write(chunk)
                 if connection is not None:
                     connection.release()  # workers shut down while the last files are written
+                release_free_memory()  # the tiles' temporaries, before the summaries
                 files += [fw.close(), cw.close()]
             except BaseException:
                 fw.abort()

@@ -82,14 +82,25 @@ class Tile:
 
 
 def _pixel_bounds(bounds: np.ndarray, transform: Affine) -> np.ndarray:
-    """(n, 4) world bounds -> (n, 4) float pixel bounds ``col0, row0, col1, row1``."""
+    """(n, 4) world bounds -> (n, 4) float pixel bounds ``col0, row0, col1, row1``.
+
+    Overwrites and returns ``bounds`` (a fresh array from ``shapely.bounds``): the mesh
+    may hold millions of faces, so no (4, n) temporaries.
+    """
     inv = ~transform
-    minx, miny, maxx, maxy = bounds.T
-    xs = np.stack([minx, maxx, minx, maxx])
-    ys = np.stack([miny, miny, maxy, maxy])
-    cols = inv.a * xs + inv.b * ys + inv.c
-    rows = inv.d * xs + inv.e * ys + inv.f
-    return np.stack([cols.min(0), rows.min(0), cols.max(0), rows.max(0)], axis=1)
+    if inv.b != 0 or inv.d != 0:  # rotated: all four corners
+        minx, miny, maxx, maxy = bounds.T
+        xs = np.stack([minx, maxx, minx, maxx])
+        ys = np.stack([miny, miny, maxy, maxy])
+        cols = inv.a * xs + inv.b * ys + inv.c
+        rows = inv.d * xs + inv.e * ys + inv.f
+        return np.stack([cols.min(0), rows.min(0), cols.max(0), rows.max(0)], axis=1)
+    for lo, hi, scale, offset in ((0, 2, inv.a, inv.c), (1, 3, inv.e, inv.f)):
+        a = bounds[:, lo] * scale + offset
+        b = bounds[:, hi] * scale + offset
+        np.minimum(a, b, out=bounds[:, lo])
+        np.maximum(a, b, out=bounds[:, hi])
+    return bounds
 
 
 def plan_tiles(

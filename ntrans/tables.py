@@ -43,6 +43,7 @@ from .engine import (
     plan_tiles,
 )
 from .errors import InputError, PartialCoverageWarning, check_choice
+from .memory import release_free_memory
 from .stages import StageSpec
 
 log = logging.getLogger(__name__)
@@ -143,6 +144,13 @@ class MeshJob:
     tiles: list
 
 
+def _nullable_int(arrow_type: pa.DataType) -> Any:
+    """Arrow int64 ids -> pandas nullable Int64 (boundary faces have no cell_b)."""
+    import pandas as pd
+
+    return pd.Int64Dtype() if arrow_type == pa.int64() else None
+
+
 def prepare_mesh_job(
     dem: str | os.PathLike[str],
     cells: str | os.PathLike[str],
@@ -174,6 +182,7 @@ def prepare_mesh_job(
         raise InputError(f"tile size {tile_size} is not a positive number of pixels; use e.g. 512")
     dem_info = open_dem(dem, vertical_units=vertical_units)
     layer = read_cells(cells, dem=dem_info, id_field=id_field, overlaps_in_background=True)
+    release_free_memory()  # the reading's temporaries, before the faces are built
     field_values = elevation_field_values(layer, elevation_rule, elevation_field)
     pixel = min(dem_info.pixel_size)
     spacing = 0.5 * pixel if face_spacing is None else float(face_spacing)
@@ -198,6 +207,7 @@ def prepare_mesh_job(
                 yield fn(job)
 
     mesh = build_faces(geoms, snap_tolerance=snap, map_blocks=map_blocks) if faces else None
+    release_free_memory()
     tiles = plan_tiles(
         geoms,
         dem_info.transform,
@@ -402,6 +412,7 @@ def build_tables(
             if connection is not None:
                 connection.release()  # workers shut down while the last files are written
             layer.finish_checks()
+            release_free_memory()  # the tiles' temporaries, before the summaries are written
             files.append(cell_writer.close())
             if face_writer is not None:
                 files.append(face_writer.close())
@@ -431,23 +442,22 @@ def build_tables(
             crs=crs,
         )
         files.append(write_geopackage(cell_frame, tmp / "cells.gpkg", "cells"))
+        del cell_frame
         if mesh is not None:
+            columns: dict[str, Any] = {
+                "face_id": np.arange(n_faces, dtype=np.int64),
+                "cell_a": ids_at(ids, mesh.cell_a).to_pandas(types_mapper=_nullable_int),
+                "cell_b": ids_at(ids, mesh.cell_b).to_pandas(types_mapper=_nullable_int),
+                "length": mesh.length,
+                **face_sum,
+            }
             face_frame = gpd.GeoDataFrame(
-                {
-                    "face_id": np.arange(n_faces, dtype=np.int64),
-                    "cell_a": ids_at(ids, mesh.cell_a).to_pandas(),
-                    "cell_b": ids_at(ids, mesh.cell_b).to_pandas(),
-                    "length": mesh.length,
-                    **face_sum,
-                },
+                {name: columns.pop(name) for name in FACE_SUMMARY_COLUMNS},
                 geometry=gpd.GeoSeries(mesh.geometry, crs=crs),
                 crs=crs,
             )
-            if id_type == pa.int64():
-                face_frame["cell_a"] = face_frame["cell_a"].astype("Int64")
-                face_frame["cell_b"] = face_frame["cell_b"].astype("Int64")
-            face_frame = face_frame[[*FACE_SUMMARY_COLUMNS, "geometry"]]
             files.append(write_geopackage(face_frame, tmp / "faces.gpkg", "faces"))
+            del face_frame
         if csv:
             files.append(write_csv(cell_path, tmp / "cell_stage.csv"))
             if faces:
