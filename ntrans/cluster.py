@@ -14,6 +14,7 @@ read its inputs and build its mesh meanwhile; the job then passes the connection
 from __future__ import annotations
 
 import logging
+import multiprocessing
 from collections import deque
 from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import ThreadPoolExecutor
@@ -63,7 +64,13 @@ def _connect(workers: int | None, scheduler: str | None) -> tuple[Any, Any]:
         # Dask sets MALLOC_TRIM_THRESHOLD_ for its workers by default; with it, glibc maps
         # and unmaps every large array afresh, and the tile arithmetic here (many large
         # temporaries) then takes about twice the CPU time it takes in one process
-        with dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None}):
+        config = {"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None}
+        method = dask.config.get("distributed.worker.multiprocessing-method")
+        if method == "spawn" and "forkserver" in multiprocessing.get_all_start_methods():
+            # workers fork from one process that has imported and loaded everything once
+            multiprocessing.set_forkserver_preload(["ntrans._worker_preload"])
+            config["distributed.worker.multiprocessing-method"] = "forkserver"
+        with dask.config.set(config):
             cluster = LocalCluster(
                 n_workers=int(workers),
                 threads_per_worker=1,
@@ -87,6 +94,7 @@ class WorkerConnection:
 
     def __init__(self, workers: int | None, scheduler: str | None) -> None:
         _check_where(workers, scheduler)
+        self.local = scheduler is None  # workers on this machine: they see its files
         self._pool = ThreadPoolExecutor(1, thread_name_prefix="ntrans-workers")
         self._future = self._pool.submit(_connect, workers, scheduler)
         self._closing: Any = None

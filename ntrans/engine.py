@@ -563,11 +563,51 @@ def run_task_local(dem: Any, task: TileTask, settings: TileSettings) -> dict[str
 
 
 def run_task_from_path(
-    dem_path: str, open_kwargs: tuple, task: TileTask, settings: TileSettings
+    dem_path: str, open_kwargs: tuple, task: TileTask, settings: TileSettings,
+    spill_dir: str | None = None,
 ) -> dict[str, Any]:
-    """Dask-side wrapper: open the DEM by path (cached per worker), read, compute."""
+    """Dask-side wrapper: open the DEM by path (cached per worker), read, compute.
+
+    With ``spill_dir`` (a folder on this machine that the job reads too) the row tables
+    are left there as Arrow IPC files (:class:`SpilledRows`) instead of travelling back
+    through the scheduler's connections.
+    """
     dem = _open_cached(str(dem_path), open_kwargs)
-    return run_task_local(dem, task, settings)
+    out = run_task_local(dem, task, settings)
+    if spill_dir is not None:
+        for key in ("cell_rows", "face_rows"):
+            if key in out:
+                path = os.path.join(spill_dir, f"tile-{task.tile.index:06d}-{key}.arrow")
+                out[key] = spill_rows(out[key], path)
+    return out
+
+
+@dataclass(frozen=True)
+class SpilledRows:
+    """Columns of a tile result that a worker left in an Arrow IPC file at ``path``."""
+
+    path: str
+
+
+def spill_rows(rows: dict[str, np.ndarray], path: str) -> SpilledRows:
+    """Write a dict of equal-length 1-D arrays to an uncompressed Arrow IPC file."""
+    import pyarrow as pa
+
+    table = pa.table(rows)
+    with pa.OSFile(path, "wb") as sink, pa.ipc.new_file(sink, table.schema) as writer:
+        writer.write_table(table)
+    return SpilledRows(path)
+
+
+def rows_of(value: dict[str, np.ndarray] | SpilledRows) -> dict[str, np.ndarray]:
+    """The row columns of a tile result; spilled ones are memory-mapped, then deleted."""
+    if not isinstance(value, SpilledRows):
+        return value
+    import pyarrow as pa
+
+    table = pa.ipc.open_file(pa.memory_map(value.path)).read_all()
+    os.unlink(value.path)  # the mapping stays valid while the arrays use it
+    return {name: table.column(name).to_numpy() for name in table.column_names}
 
 
 def execute(
@@ -584,6 +624,7 @@ def execute(
     total: int | None = None,
     max_in_flight: int | None = None,
     local_runner: Callable[..., dict[str, Any]] | None = None,
+    spill_dir: str | os.PathLike[str] | None = None,
 ) -> Iterator[dict[str, Any]]:
     """Run tile tasks and yield their results in tile order.
 
@@ -599,6 +640,9 @@ def execute(
     progress : show a progress bar (stderr) via :func:`ntrans.progress.track`.
     max_in_flight : tasks submitted but not yet yielded (default 4 per worker), which
         bounds memory on the client.
+    spill_dir : for workers on this machine only: a folder where they leave the row
+        tables (read back with :func:`rows_of`), which costs the job far less than
+        receiving them over the scheduler's connections.
 
     Without ``workers`` or ``scheduler`` everything runs in this process, one tile at a
     time, with no extra service.  In every mode results come back in the order of
@@ -610,7 +654,8 @@ def execute(
         shared = (local_runner or run_task_local, dem, settings)
         fn = _run_with_open_dem
     else:
-        shared = (str(dem_path), tuple(sorted((open_kwargs or {}).items())), settings)
+        shared = (str(dem_path), tuple(sorted((open_kwargs or {}).items())), settings,
+                  None if spill_dir is None else os.fspath(spill_dir))
         fn = _run_with_dem_path
     yield from run_ordered(
         fn, shared, tasks, workers=workers, scheduler=scheduler, connection=connection,
@@ -625,5 +670,5 @@ def _run_with_open_dem(shared: tuple, task: TileTask) -> dict[str, Any]:
 
 
 def _run_with_dem_path(shared: tuple, task: TileTask) -> dict[str, Any]:
-    dem_path, open_kwargs, settings = shared
-    return run_task_from_path(dem_path, open_kwargs, task, settings)
+    dem_path, open_kwargs, settings, spill_dir = shared
+    return run_task_from_path(dem_path, open_kwargs, task, settings, spill_dir)

@@ -21,6 +21,7 @@ import itertools
 import json
 import logging
 import os
+import shutil
 import time
 import warnings
 from dataclasses import dataclass, field
@@ -41,6 +42,7 @@ from .engine import (
     execute,
     make_tasks,
     plan_tiles,
+    rows_of,
 )
 from .errors import InputError, PartialCoverageWarning, check_choice
 from .memory import release_free_memory
@@ -369,6 +371,10 @@ def build_tables(
                         descriptions=descriptions, metadata=meta)
             if faces else None
         )
+        spill_dir = None
+        if connection is not None and connection.local:
+            spill_dir = tmp / "_tiles"  # local workers leave their rows here
+            spill_dir.mkdir()
         try:
             results = execute(
                 tasks,
@@ -378,6 +384,7 @@ def build_tables(
                 open_kwargs={"vertical_units": vertical_units},
                 connection=connection,
                 progress=progress,
+                spill_dir=spill_dir,
                 total=len(tiles),
             )
             step = max(len(tiles) // 10, 1)
@@ -386,7 +393,7 @@ def build_tables(
                 pid, end, wall, cpu = res["timing"]
                 log.debug("tile %d of %d: process %d, %.2f s (%.2f s CPU), %.2f s ago",
                           res["tile"] + 1, len(tiles), pid, wall, cpu, time.time() - end)
-                rows = res["cell_rows"]
+                rows = rows_of(res["cell_rows"])
                 chunk: dict[str, Any] = {"cell_id": ids_at(ids, rows["cell"])}
                 chunk.update({c: rows[c] for c in CELL_STAGE_COLUMNS[1:]})
                 cell_writer.write(chunk)
@@ -394,7 +401,7 @@ def build_tables(
                 for name in cell_sum:
                     cell_sum[name][cs["cell"]] = cs[name]
                 if face_writer is not None:
-                    fr = res["face_rows"]
+                    fr = rows_of(res["face_rows"])
                     fchunk: dict[str, Any] = {
                         "face_id": fr["face"].astype(np.int64),
                         "cell_a": ids_at(ids, fr["cell_a"]),
@@ -412,6 +419,8 @@ def build_tables(
             if connection is not None:
                 connection.release()  # workers shut down while the last files are written
             layer.finish_checks()
+            if spill_dir is not None:
+                shutil.rmtree(spill_dir)
             release_free_memory()  # the tiles' temporaries, before the summaries are written
             files.append(cell_writer.close())
             if face_writer is not None:

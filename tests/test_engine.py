@@ -2,8 +2,7 @@
 
 from __future__ import annotations
 
-import dask
-import distributed  # noqa: F401  (loads its config defaults before dask.config.set)
+import distributed  # noqa: F401  (loads its config defaults)
 import numpy as np
 import pandas as pd
 import pytest
@@ -207,17 +206,32 @@ def test_dask_two_processes_equals_single_process(mesh, tmp_path):
 
     dem, cells = mesh
     build_tables(dem, cells, out=tmp_path / "local", stages="9:12:1", tile_size=8)
-    # Two worker processes.  They are forked rather than spawned here only to keep the
-    # test fast (spawning re-imports the stack, ~10 s on a small machine); tasks and
-    # results still travel pickled between processes, as in production.
-    with dask.config.set({"distributed.worker.multiprocessing-method": "fork"}):
-        build_tables(dem, cells, out=tmp_path / "dask", stages="9:12:1", tile_size=8,
-                     workers=2)
+    # Two worker processes, started as in production (forked from a server process
+    # that has loaded ntrans once); tasks and results travel pickled between processes.
+    build_tables(dem, cells, out=tmp_path / "dask", stages="9:12:1", tile_size=8, workers=2)
     for name in ("cell_stage.parquet", "face_stage.parquet"):
         a = pd.read_parquet(tmp_path / "local" / name)
         b = pd.read_parquet(tmp_path / "dask" / name)
         # same tiles, same functions, same order: identical to the bit, row order included
         pd.testing.assert_frame_equal(a, b, check_exact=True)
+    # the workers' row files were read back and removed: same files as in one process
+    assert sorted(p.name for p in (tmp_path / "dask").iterdir()) == sorted(
+        p.name for p in (tmp_path / "local").iterdir())
+
+
+def test_spilled_rows_come_back_identical(tmp_path):
+    from ntrans.engine import SpilledRows, rows_of, spill_rows
+
+    rows = {"cell": np.array([3, 3, 9], dtype=np.int64),
+            "volume": np.array([0.1, np.nan, 1e300]), "empty_ok": np.zeros(3)}
+    spilled = spill_rows(rows, str(tmp_path / "t.arrow"))
+    assert isinstance(spilled, SpilledRows)
+    back = rows_of(spilled)
+    assert not (tmp_path / "t.arrow").exists()  # read once, then removed
+    for name, values in rows.items():
+        assert back[name].dtype == values.dtype
+        np.testing.assert_array_equal(back[name], values)  # bits, NaN included
+    assert rows_of(rows) is rows  # rows that were never spilled pass through
 
 
 def test_existing_scheduler_equals_single_process(mesh, tmp_path):
