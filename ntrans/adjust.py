@@ -43,6 +43,7 @@ from .engine import (
     make_tasks,
 )
 from .errors import DryWetMismatchWarning, InputError, RoughnessError, check_choice
+from .inputs import rasters_kept_open
 from .memory import release_free_memory
 from .roughness import (
     AREA_TOLERANCE,
@@ -603,7 +604,10 @@ def adjust_roughness(
                          "rasters")
     spec = None if water_surface else StageSpec.from_options(stages=stages, depths=depths)
     # workers start (and warm up) in the background while the mesh is read and built
-    with connect_workers(workers, scheduler) or contextlib.nullcontext() as connection:
+    with (
+        connect_workers(workers, scheduler) or contextlib.nullcontext() as connection,
+        rasters_kept_open(),  # tiles share DEM blocks: decode each once
+    ):
         setup = prepare_mesh_job(
             dem, cells, id_field=id_field, vertical_units=vertical_units,
             elevation_rule=elevation_rule, elevation_field=elevation_field,

@@ -14,12 +14,14 @@ the thing that is wrong and ending with what to do.  Nothing here computes hydra
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import logging
 import math
 import os
+import threading
 import warnings
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -157,6 +159,46 @@ def _same_crs(a: pyproj.CRS, b: pyproj.CRS) -> bool:
         return a == b
 
 
+RASTER_CACHE_BYTES = 64 * 2**20
+"""GDAL's block cache while ntrans reads windows: neighbouring tiles share blocks."""
+
+_open_rasters = threading.local()
+
+
+@contextlib.contextmanager
+def rasters_kept_open() -> Iterator[None]:
+    """Keep the rasters read inside this block open (per thread) until it ends.
+
+    Tiles overlap by their margins and share compressed blocks; with the dataset kept
+    open, GDAL decodes each block once instead of once per window (about 4x faster on a
+    tiled, compressed DEM), in a block cache of at most :data:`RASTER_CACHE_BYTES`.
+    Jobs wrap their tile loop in it; outside it every read opens and closes the file.
+    """
+    outer = getattr(_open_rasters, "by_path", None)
+    if outer is not None:  # nested: the outer block owns the handles
+        yield
+        return
+    _open_rasters.by_path = {}
+    try:
+        with rasterio.Env(GDAL_CACHEMAX=RASTER_CACHE_BYTES):
+            yield
+    finally:
+        for src in _open_rasters.by_path.values():
+            src.close()
+        _open_rasters.by_path = None
+
+
+def _read_window(path: str, window: Window) -> np.ma.MaskedArray:
+    cache = getattr(_open_rasters, "by_path", None)
+    if cache is None:
+        with rasterio.open(path) as src:
+            return src.read(1, window=window, masked=True)
+    src = cache.get(path)
+    if src is None:
+        src = cache[path] = rasterio.open(path)
+    return src.read(1, window=window, masked=True)
+
+
 def _read_band1(path: str, row_off: int, col_off: int, height: int, width: int,
                 shape: tuple[int, int]) -> np.ndarray:
     """Boundless float64 read of band 1: NaN for masked pixels and outside the raster."""
@@ -169,8 +211,7 @@ def _read_band1(path: str, row_off: int, col_off: int, height: int, width: int,
     if r1 <= r0 or c1 <= c0:
         return out
     try:
-        with rasterio.open(path) as src:
-            data = src.read(1, window=Window(c0, r0, c1 - c0, r1 - r0), masked=True)
+        data = _read_window(path, Window(c0, r0, c1 - c0, r1 - r0))
     except rasterio.errors.RasterioIOError as exc:
         raise InputFileError(
             f"raster '{path}' could not be read ({_reason(exc, path)}); check the file"

@@ -422,12 +422,14 @@ def write_csv(parquet_path: str | os.PathLike[str], csv_path: str | os.PathLike[
 
 
 def write_geopackage(
-    frame: Any, path: str | os.PathLike[str], layer: str, *, chunk_rows: int = 100_000
+    frame: Any, path: str | os.PathLike[str], layer: str, *, chunk_rows: int = 500_000
 ) -> Path:
     """Write a GeoDataFrame as one layer of a GeoPackage (created or appended to).
 
     Rows go in chunks of ``chunk_rows`` (appended to the layer), so the encoded geometry
-    of only one chunk is in memory at a time.
+    of only one chunk is in memory at a time.  Chunks are large because every appended
+    row also updates the layer's spatial index one by one, while a first write builds it
+    in one pass.
     """
     target = Path(os.fspath(path))
     try:

@@ -45,6 +45,7 @@ from .engine import (
     rows_of,
 )
 from .errors import InputError, PartialCoverageWarning, check_choice
+from .inputs import rasters_kept_open
 from .memory import release_free_memory
 from .stages import StageSpec
 
@@ -305,6 +306,7 @@ def build_tables(
     with (
         connect_workers(workers, scheduler) or contextlib.nullcontext() as connection,
         OutputFolder(out, overwrite=overwrite, inputs=[dem, cells]) as folder,
+        rasters_kept_open(),  # tiles share DEM blocks: decode each once
     ):
         tmp = folder.path
         job = prepare_mesh_job(

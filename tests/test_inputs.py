@@ -206,6 +206,26 @@ def test_read_window_nodata_round_trip(tmp_path: Path, nodata, dtype: str) -> No
     assert got.dtype == np.float64
 
 
+def test_rasters_kept_open_read_the_same_and_close_after(tmp_path: Path) -> None:
+    from ntrans.inputs import rasters_kept_open
+
+    array = np.arange(48, dtype=float).reshape(6, 8)
+    path = write_dem(tmp_path / "d.tif", array)
+    dem = open_dem(path)
+    windows = [(-1, -1, 4, 4), (2, 3, 4, 5), (0, 0, 6, 8), (5, 7, 3, 3)]
+    apart = [dem.read_window(*w) for w in windows]
+    with rasters_kept_open():
+        with rasters_kept_open():  # nested blocks share the outer one's handles
+            kept = [dem.read_window(*w) for w in windows]
+        kept.append(dem.read_window(*windows[0]))
+    for a, b in zip(apart, kept, strict=False):
+        np.testing.assert_array_equal(a, b)  # same pixels, NaN outside included
+    np.testing.assert_array_equal(kept[-1], apart[0])
+    # after the block nothing is held open: a rewritten file is read afresh
+    write_dem(path, array + 1.0)
+    np.testing.assert_array_equal(dem.read_window(0, 0, 6, 8), array + 1.0)
+
+
 def test_read_window_outside_is_nan(tmp_path: Path) -> None:
     array = np.arange(12, dtype=float).reshape(3, 4)
     dem = open_dem(write_dem(tmp_path / "d.tif", array))
