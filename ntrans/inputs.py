@@ -159,7 +159,7 @@ def _same_crs(a: pyproj.CRS, b: pyproj.CRS) -> bool:
         return a == b
 
 
-RASTER_CACHE_BYTES = 64 * 2**20
+RASTER_CACHE_BYTES = 32 * 2**20
 """GDAL's block cache while ntrans reads windows: neighbouring tiles share blocks."""
 
 _open_rasters = threading.local()

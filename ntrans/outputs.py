@@ -422,7 +422,7 @@ def write_csv(parquet_path: str | os.PathLike[str], csv_path: str | os.PathLike[
 
 
 def write_geopackage(
-    frame: Any, path: str | os.PathLike[str], layer: str, *, chunk_rows: int = 500_000
+    frame: Any, path: str | os.PathLike[str], layer: str, *, chunk_rows: int = 250_000
 ) -> Path:
     """Write a GeoDataFrame as one layer of a GeoPackage (created or appended to).
 
