@@ -584,6 +584,7 @@ def adjust_roughness(
         TableWriter,
         id_arrow_type,
         ids_at,
+        ids_series,
         write_csv,
         write_geopackage,
     )
@@ -782,15 +783,12 @@ def adjust_roughness(
             files.append(write_geopackage(cell_frame, tmp / "cells.gpkg", "cells"))
             face_frame = gpd.GeoDataFrame(
                 {"face_id": np.arange(n_faces, dtype=np.int64),
-                 "cell_a": ids_at(ids, mesh.cell_a).to_pandas(),
-                 "cell_b": ids_at(ids, mesh.cell_b).to_pandas(),
+                 "cell_a": ids_series(ids, mesh.cell_a),
+                 "cell_b": ids_series(ids, mesh.cell_b),
                  "length": mesh.length, "n_ratio_median": face_ratio_med,
                  "stage_bias_unadjusted_median": face_bias_med,
                  "dominant_class": cls_names[face_dom].astype(str)},
                 geometry=gpd.GeoSeries(mesh.geometry, crs=crs), crs=crs)
-            if id_type == pa.int64():
-                face_frame["cell_a"] = face_frame["cell_a"].astype("Int64")
-                face_frame["cell_b"] = face_frame["cell_b"].astype("Int64")
             files.append(write_geopackage(face_frame, tmp / "faces.gpkg", "faces"))
             if csv:
                 files.append(write_csv(face_path, tmp / "face_adjustment.csv"))

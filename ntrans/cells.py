@@ -1,10 +1,10 @@
 """Cell stage tables: subgrid terrain and flat bed.
 
 Pure functions on numpy arrays; no loop per cell in Python (the per-entry sums are
-compiled kernels in :mod:`ntrans._kernels`, one pass over the entries and no sort).  The inputs are per-entry arrays of one
-tile: ``item`` (local cell index), ``z`` (pixel elevation, NaN for nodata), ``plan_area``
-(covered fraction x pixel area, horizontal units squared) and ``bed_area`` (plan area x
-surface factor).  Stage matrices are ``(n_items, n_stages)`` float64, NaN allowed.
+compiled kernels in :mod:`ntrans._kernels`, one pass over the entries and no sort).
+The inputs are per-entry arrays of one tile: ``item`` (local cell index), ``z`` (pixel
+elevation, NaN for nodata), ``plan_area`` (covered fraction x pixel area, horizontal
+units squared) and ``bed_area`` (plan area x surface factor).  Stage matrices are ``(n_items, n_stages)`` float64, NaN allowed.
 
 Definitions (shared design notes, section 2), at stage eta:
 

@@ -239,12 +239,10 @@ def exact_coverage(polygons, transform: Affine, shape: tuple[int, int]) -> Pixel
         order = np.argsort(item, kind="stable")
         item, u0, v0, u1, v1, sign = (a[order] for a in (item, u0, v0, u1, v1, sign))
     edge_start = np.searchsorted(item, np.arange(int(item[-1]) + 2)).astype(np.int64)
-    out_item, out_row, out_col, fraction = exact_coverage_runs(
+    # the kernel returns int64 indices and float64 fractions already
+    return PixelWeights(*exact_coverage_runs(
         edge_start, u0, v0, u1, v1, sign.astype(np.float64), rows, cols, _MIN_FRACTION
-    )
-    return PixelWeights(
-        out_item.astype(np.int64), out_row.astype(np.int64), out_col.astype(np.int64), fraction
-    )
+    ))
 
 
 def centre_coverage(polygons, transform: Affine, shape: tuple[int, int]) -> PixelWeights:

@@ -170,9 +170,10 @@ def rasters_kept_open() -> Iterator[None]:
     """Keep the rasters read inside this block open (per thread) until it ends.
 
     Tiles overlap by their margins and share compressed blocks; with the dataset kept
-    open, GDAL decodes each block once instead of once per window (about 4x faster on a
-    tiled, compressed DEM), in a block cache of at most :data:`RASTER_CACHE_BYTES`.
-    Jobs wrap their tile loop in it; outside it every read opens and closes the file.
+    open, GDAL decodes each block once instead of once per window (reading every 512 px
+    window of a 10^8-pixel tiled, compressed DEM: 7.3 s -> 1.6 s with a 64 MB cache,
+    2.9 s with 16 MB), in a block cache of at most :data:`RASTER_CACHE_BYTES`.  Jobs
+    wrap their whole run in it; outside it every read opens and closes the file.
     """
     outer = getattr(_open_rasters, "by_path", None)
     if outer is not None:  # nested: the outer block owns the handles

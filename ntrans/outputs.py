@@ -580,3 +580,12 @@ def ids_at(ids: np.ndarray, index: np.ndarray) -> pa.Array:
         return pa.array(values.astype(np.int64), type=kind, mask=missing)
     text = [None if m else str(v) for v, m in zip(values.tolist(), missing.tolist(), strict=True)]
     return pa.array(text, type=kind)
+
+
+def ids_series(ids: np.ndarray, index: np.ndarray) -> Any:
+    """:func:`ids_at` as a pandas column: nullable ``Int64`` for integer ids, else text."""
+    import pandas as pd
+
+    return ids_at(ids, index).to_pandas(
+        types_mapper=lambda t: pd.Int64Dtype() if t == pa.int64() else None
+    )

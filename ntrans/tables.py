@@ -147,13 +147,6 @@ class MeshJob:
     tiles: list
 
 
-def _nullable_int(arrow_type: pa.DataType) -> Any:
-    """Arrow int64 ids -> pandas nullable Int64 (boundary faces have no cell_b)."""
-    import pandas as pd
-
-    return pd.Int64Dtype() if arrow_type == pa.int64() else None
-
-
 def prepare_mesh_job(
     dem: str | os.PathLike[str],
     cells: str | os.PathLike[str],
@@ -289,6 +282,7 @@ def build_tables(
         TableWriter,
         id_arrow_type,
         ids_at,
+        ids_series,
         write_csv,
         write_geopackage,
     )
@@ -457,8 +451,8 @@ def build_tables(
         if mesh is not None:
             columns: dict[str, Any] = {
                 "face_id": np.arange(n_faces, dtype=np.int64),
-                "cell_a": ids_at(ids, mesh.cell_a).to_pandas(types_mapper=_nullable_int),
-                "cell_b": ids_at(ids, mesh.cell_b).to_pandas(types_mapper=_nullable_int),
+                "cell_a": ids_series(ids, mesh.cell_a),
+                "cell_b": ids_series(ids, mesh.cell_b),
                 "length": mesh.length,
                 **face_sum,
             }
