@@ -11,6 +11,7 @@ tables agree, and prints one table.  Results also go to ``bench/_cases/results.j
 Pipelines:
   ntrans_cells     build_tables(..., faces=False)           cell stage table only
   ntrans_faces     build_tables(..., faces=True)            cells + faces
+  ntrans_threads   build_tables(..., faces=True, threads=T) T tiles at once in one process
   ntrans_workers   build_tables(..., faces=True, workers=W) local Dask cluster of W workers
   ntrans_adjust    adjust_roughness(n=0.035, flat -> subgrid, lumped closure, 30 depths)
   exactextract     exactextract pixel lists + numpy per cell (reference_pipelines.py)
@@ -47,15 +48,16 @@ from make_case import CASES_DIR, cached_case, case_folder, estimate_case_bytes  
 ALL_PIPELINES = [
     "ntrans_cells",
     "ntrans_faces",
+    "ntrans_threads",
     "ntrans_workers",
     "ntrans_adjust",
     "exactextract",
     "rasterstats",
     "floor",
 ]
-TABLE_PIPELINES = {"ntrans_cells", "ntrans_faces", "ntrans_workers", "exactextract",
-                   "rasterstats"}
-FACE_PIPELINES = {"ntrans_faces", "ntrans_workers", "ntrans_adjust"}
+TABLE_PIPELINES = {"ntrans_cells", "ntrans_faces", "ntrans_threads", "ntrans_workers",
+                   "exactextract", "rasterstats"}
+FACE_PIPELINES = {"ntrans_faces", "ntrans_threads", "ntrans_workers", "ntrans_adjust"}
 BYTES_DISK_PER_PIXEL = 60  # case + the largest pipeline output + temporary rasters (rough)
 BYTES_MEMORY_PER_PIXEL = 60  # peak of the heaviest pipeline (rough, from the 1e7 case)
 
@@ -98,11 +100,12 @@ def _run_child(job_path: Path) -> None:
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         t0 = time.perf_counter()
-        if name in ("ntrans_cells", "ntrans_faces", "ntrans_workers"):
+        if name in ("ntrans_cells", "ntrans_faces", "ntrans_threads", "ntrans_workers"):
             res = ntrans.tables.build_tables(
                 job["dem"], job["cells"], stages=job["stages"],
                 faces=name != "ntrans_cells",
                 workers=job["workers"] if name == "ntrans_workers" else None,
+                threads=job["threads"] if name == "ntrans_threads" else None,
                 overwrite=True, **common,
             )
             result.update(n_cells=res.n_cells, n_faces=res.n_faces, n_stages=res.n_stages,
@@ -329,10 +332,10 @@ def _agreement_lines(case: str, agreement: dict) -> list[str]:
 def run(sizes: list[float], n_stages: int, workers: int, pipelines: list[str],
         keep_outputs: bool, timeout: float = 1800.0,
         results_path: Path = CASES_DIR / "results.json",
-        rasterstats_max: float = 1e7) -> dict:
+        rasterstats_max: float = 1e7, threads: int = 2) -> dict:
     results: dict = {"started": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
                      "python": sys.version.split()[0], "cpus": os.cpu_count(),
-                     "stages": n_stages, "workers": workers, "cases": []}
+                     "stages": n_stages, "workers": workers, "threads": threads, "cases": []}
     all_rows: list[dict] = []
     all_agree: list[str] = []
     for size in sizes:
@@ -350,7 +353,7 @@ def run(sizes: list[float], n_stages: int, workers: int, pipelines: list[str],
               f"({folder}, ready in {time.perf_counter() - t0:.1f} s)", flush=True)
         job = {"dem": str(folder / "dem.tif"), "cells": str(folder / "cells.gpkg"),
                "stages": _stage_spec(meta, n_stages), "depths": _depth_spec(n_stages),
-               "workers": workers}
+               "workers": workers, "threads": threads}
         runs = folder / "runs"
         rows = []
         for name in pipelines:
@@ -365,7 +368,8 @@ def run(sizes: list[float], n_stages: int, workers: int, pipelines: list[str],
                   f"(peak {outcome['peak_mb']:.0f} MB)", flush=True)
             rows.append(outcome)
         by_name = {r["pipeline"]: r for r in rows if "error" not in r}
-        n_faces = next((by_name[p].get("n_faces") for p in ("ntrans_faces", "ntrans_workers")
+        n_faces = next((by_name[p].get("n_faces")
+                        for p in ("ntrans_faces", "ntrans_threads", "ntrans_workers")
                         if p in by_name and by_name[p].get("n_faces")), None)
         base = by_name.get("ntrans_cells", {}).get("seconds")
         base_cpu = by_name.get("ntrans_cells", {}).get("cpu_s")
@@ -392,6 +396,8 @@ def run(sizes: list[float], n_stages: int, workers: int, pipelines: list[str],
             pairs = [("ntrans_cells vs exactextract", nt_table, ref_table),
                      ("ntrans_faces vs ntrans_cells",
                       runs / "ntrans_faces" / "out" / "cell_stage.parquet", nt_table),
+                     ("ntrans_threads vs ntrans_cells",
+                      runs / "ntrans_threads" / "out" / "cell_stage.parquet", nt_table),
                      ("ntrans_workers vs ntrans_cells",
                       runs / "ntrans_workers" / "out" / "cell_stage.parquet", nt_table),
                      ("rasterstats (pixel centre) vs exactextract",
@@ -415,8 +421,8 @@ def run(sizes: list[float], n_stages: int, workers: int, pipelines: list[str],
         results_path.parent.mkdir(parents=True, exist_ok=True)
         results_path.write_text(json.dumps(results, indent=2, default=str))
     print("\n" + "=" * 100)
-    print(f"stages per item: {n_stages}; workers for ntrans_workers: {workers}; "
-          f"cpus: {os.cpu_count()}")
+    print(f"stages per item: {n_stages}; workers for ntrans_workers: {workers}; threads for "
+          f"ntrans_threads: {threads}; cpus: {os.cpu_count()}")
     table = print_table(all_rows)
     print("\nagreement (relative difference |a-b|/max(|a|,|b|), cells wholly inside the DEM):")
     print("\n".join(all_agree))
@@ -442,6 +448,7 @@ def main() -> None:
                         help="comma list of pixel counts (default 1e6,1e7; add 1e8 on request)")
     parser.add_argument("--stages", type=int, default=30, help="stages (and depths) per item")
     parser.add_argument("--workers", type=int, default=2, help="Dask workers for ntrans_workers")
+    parser.add_argument("--threads", type=int, default=2, help="threads for ntrans_threads")
     parser.add_argument("--pipelines", default=",".join(ALL_PIPELINES),
                         help=f"comma list out of {','.join(ALL_PIPELINES)}")
     parser.add_argument("--keep-outputs", action="store_true",
@@ -463,7 +470,7 @@ def main() -> None:
     if unknown:
         parser.error(f"unknown pipelines {unknown}; choose from {ALL_PIPELINES}")
     run(sizes, args.stages, args.workers, pipelines, args.keep_outputs, args.timeout,
-        args.results, rasterstats_max=args.rasterstats_max)
+        args.results, rasterstats_max=args.rasterstats_max, threads=args.threads)
 
 
 if __name__ == "__main__":

@@ -35,7 +35,7 @@ import shapely
 
 from . import __version__
 from .cautions import CAUTIONS
-from .cluster import connect_workers
+from .cluster import check_where, connect_workers
 from .engine import (
     COVERAGE_MODES,
     ELEVATION_RULES,
@@ -492,12 +492,12 @@ def _pass_tables(job: _Job, task: Any, n_fit: np.ndarray) -> dict[str, Any]:
 
 
 def _run_tiles(fn: Any, job: _Job, tasks: Any, *args: Any, connection: Any, progress: bool,
-               total: int, desc: str) -> Any:
+               total: int, desc: str, threads: int | None = None) -> Any:
     """Yield ``fn(job, task, *args)`` for every task, in task order (see ntrans.cluster)."""
     from .cluster import run_ordered
 
     yield from run_ordered(_call_pass, (fn, job, args), tasks, connection=connection,
-                           progress=progress, total=total, desc=desc)
+                           progress=progress, total=total, desc=desc, threads=threads)
 
 
 def _call_pass(shared: tuple, task: Any) -> Any:
@@ -542,6 +542,7 @@ def adjust_roughness(
     tile_size: int = 512,
     workers: int | None = None,
     scheduler: str | None = None,
+    threads: int | None = None,
     progress: bool = False,
 ) -> AdjustResult:
     """Fit one Manning's n per roughness class for the target model family.
@@ -567,6 +568,7 @@ def adjust_roughness(
     csv : also write the face and cell tables as CSV.
     workers, scheduler : run the tiles on a local Dask cluster of ``workers`` processes or
         on an existing scheduler (both passes); results are the same as in-process.
+    threads : without workers: tiles at once in this process (default 1); same results.
     progress : progress bar on stderr.
 
     Returns
@@ -597,6 +599,7 @@ def adjust_roughness(
     check_choice("composite method", composite, COMPOSITES)
     check_choice("overlap rule", overlap_rule, OVERLAP_RULES)
     sc, tc, domain = _families(source, target, closure, source_closure)
+    check_where(workers, scheduler, threads)
     if isinstance(water_surface, str | os.PathLike):
         water_surface = [water_surface]
     given = sum(v is not None and v != [] for v in (depths, stages, water_surface))
@@ -638,7 +641,8 @@ def adjust_roughness(
                               face_length=mesh.length)
 
         job = _Job(dem_info, plan, model, window)
-        run = {"connection": connection, "progress": progress, "total": len(tiles)}
+        run = {"connection": connection, "progress": progress, "total": len(tiles),
+               "threads": threads}
 
         # ---- pass 1: sufficient statistics of the fit domain
         tgt_parts: list[ClassStats] = []
@@ -853,9 +857,12 @@ def _nanmedian_rows(values: np.ndarray) -> np.ndarray:
     values = np.asarray(values, dtype=float)
     if values.shape[0] == 0 or values.shape[1] == 0:
         return np.full(values.shape[0], np.nan)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        return np.nanmedian(values, axis=1)
+    # rows without any value get a dummy row, not a warning (warning filters are not
+    # thread-safe, and tiles may run in threads)
+    empty = np.isnan(values).all(axis=1)
+    out = np.nanmedian(np.where(empty[:, None], 0.0, values), axis=1)
+    out[empty] = np.nan
+    return out
 
 
 def _json_default(value: Any) -> Any:

@@ -1,4 +1,5 @@
-"""Run tile tasks in order: in this process, on a local Dask cluster, or on a scheduler.
+"""Run tile tasks in order: in this process (one or more threads), on a local Dask
+cluster, or on a scheduler.
 
 One small runner shared by every job (tables, adjustment).  Results always come back in
 task order, so outputs are identical whichever way they were computed.  At most
@@ -28,11 +29,18 @@ log = logging.getLogger(__name__)
 SCHEDULER_TIMEOUT = "10s"
 
 
-def _check_where(workers: int | None, scheduler: str | None) -> None:
+def check_where(workers: int | None, scheduler: str | None, threads: int | None = None) -> None:
+    """Raise InputError unless workers / scheduler / threads make one valid choice."""
     if workers is not None and scheduler is not None:
         raise InputError("give either workers or a scheduler address, not both")
     if workers is not None and int(workers) < 1:
         raise InputError(f"workers must be 1 or more, got {workers}")
+    if threads is not None and int(threads) < 1:
+        raise InputError(f"threads must be 1 or more, got {threads}")
+    if threads is not None and int(threads) > 1 and (workers is not None or scheduler is not None):
+        raise InputError(
+            "threads run tiles in this process; give either threads or workers / a scheduler"
+        )
 
 
 def _warm_worker() -> None:
@@ -93,7 +101,7 @@ class WorkerConnection:
     """A Dask client being connected in the background; close it when the job ends."""
 
     def __init__(self, workers: int | None, scheduler: str | None) -> None:
-        _check_where(workers, scheduler)
+        check_where(workers, scheduler)
         self.local = scheduler is None  # workers on this machine: they see its files
         self._pool = ThreadPoolExecutor(1, thread_name_prefix="ntrans-workers")
         self._future = self._pool.submit(_connect, workers, scheduler)
@@ -163,6 +171,7 @@ def run_ordered(
     total: int | None = None,
     desc: str = "tiles",
     max_in_flight: int | None = None,
+    threads: int | None = None,
 ) -> Iterator[Any]:
     """Yield ``fn(shared, task)`` for every task, in task order.
 
@@ -178,17 +187,45 @@ def run_ordered(
         Address of an existing Dask scheduler (all workers must see the input paths).
     connection
         An open :class:`WorkerConnection` to use instead (left open at the end).
+    threads
+        In this process: run this many tasks at once in a thread pool (``fn`` must be
+        thread-safe; the tile code is, its kernels release the GIL).  Default 1.
     """
-    _check_where(workers, scheduler)
+    check_where(workers, scheduler, threads)
     if connection is not None and (workers is not None or scheduler is not None):
         raise InputError("give either a worker connection or workers / a scheduler, not both")
     if connection is not None:
         results: Iterator[Any] = _run_dask(fn, shared, tasks, connection.client, max_in_flight)
     elif workers is None and scheduler is None:
-        results = (fn(shared, task) for task in tasks)
+        if threads is not None and int(threads) > 1:
+            results = _run_threads(fn, shared, tasks, int(threads), max_in_flight)
+        else:
+            results = (fn(shared, task) for task in tasks)
     else:
         results = _run_own_connection(fn, shared, tasks, workers, scheduler, max_in_flight)
     yield from track(results, total=total, desc=desc, enabled=progress)
+
+
+def _run_threads(fn, shared, tasks, threads: int, max_in_flight: int | None) -> Iterator[Any]:
+    """``fn(shared, task)`` on a pool of ``threads`` threads, yielded in task order.
+
+    At most ``max_in_flight`` (default 2 x threads) tasks are submitted and not yet
+    yielded, so memory stays bounded by a few tiles.  On an error or an early stop the
+    tasks not yet started are cancelled and the running ones finish before this returns.
+    """
+    limit = max_in_flight or 2 * threads
+    pending: deque = deque()
+    with ThreadPoolExecutor(threads, thread_name_prefix="ntrans-tiles") as pool:
+        try:
+            for task in tasks:
+                pending.append(pool.submit(fn, shared, task))
+                if len(pending) >= limit:
+                    yield pending.popleft().result()
+            while pending:
+                yield pending.popleft().result()
+        finally:
+            for future in pending:
+                future.cancel()
 
 
 def _run_own_connection(fn, shared, tasks, workers, scheduler, max_in_flight) -> Iterator[Any]:

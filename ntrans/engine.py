@@ -625,6 +625,7 @@ def execute(
     max_in_flight: int | None = None,
     local_runner: Callable[..., dict[str, Any]] | None = None,
     spill_dir: str | os.PathLike[str] | None = None,
+    threads: int | None = None,
 ) -> Iterator[dict[str, Any]]:
     """Run tile tasks and yield their results in tile order.
 
@@ -643,10 +644,11 @@ def execute(
     spill_dir : for workers on this machine only: a folder where they leave the row
         tables (read back with :func:`rows_of`), which costs the job far less than
         receiving them over the scheduler's connections.
+    threads : without workers: run this many tiles at once in this process (default 1).
 
     Without ``workers`` or ``scheduler`` everything runs in this process, one tile at a
-    time, with no extra service.  In every mode results come back in the order of
-    ``tasks``, so outputs are identical.
+    time (or ``threads`` at a time), with no extra service.  In every mode results come
+    back in the order of ``tasks``, so outputs are identical.
     """
     from .cluster import run_ordered
 
@@ -659,8 +661,8 @@ def execute(
         fn = _run_with_dem_path
     yield from run_ordered(
         fn, shared, tasks, workers=workers, scheduler=scheduler, connection=connection,
-        progress=progress,
-        total=total, desc="tiles", max_in_flight=max_in_flight,
+        progress=progress, total=total, desc="tiles", max_in_flight=max_in_flight,
+        threads=threads,
     )
 
 

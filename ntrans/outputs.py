@@ -16,7 +16,9 @@ import logging
 import os
 import secrets
 import shutil
+from collections import deque
 from collections.abc import Iterable, Mapping
+from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
 from types import TracebackType
 from typing import Any
@@ -242,6 +244,10 @@ class TableWriter:
         Chunks are buffered until this many rows, then written as one row group.
     compression : str
         Parquet compression codec.
+    background : bool
+        Encode and write row groups in a background thread (pyarrow releases the GIL),
+        so the caller computes the next rows meanwhile.  At most two row groups wait;
+        an error of the thread is raised by a later ``write`` or by ``close``.
 
     Chunks are a dict of column -> 1-D array, a pandas DataFrame or a pyarrow Table; the
     column set must match the schema (order may differ).  Cell ids may be int64 or string;
@@ -261,6 +267,7 @@ class TableWriter:
         metadata: Mapping[str, Any] | None = None,
         row_group_rows: int = 65_536,
         compression: str = "zstd",
+        background: bool = True,
     ) -> None:
         self.path = Path(os.fspath(path))
         self.schema: pa.Schema | None = None
@@ -270,6 +277,10 @@ class TableWriter:
         self._row_group_rows = int(row_group_rows)
         self._compression = compression
         self._writer: pq.ParquetWriter | None = None
+        self._pool = (
+            ThreadPoolExecutor(1, thread_name_prefix="ntrans-parquet") if background else None
+        )
+        self._pending: deque[Future[None]] = deque()
         self._buffer: list[pa.Table] = []
         self._buffered = 0
         self.rows_written = 0
@@ -344,12 +355,31 @@ class TableWriter:
     def _flush(self) -> None:
         if not self._buffer:
             return
-        table = pa.concat_tables(self._buffer).combine_chunks()
+        parts, rows = self._buffer, self._buffered
         self._buffer, self._buffered = [], 0
         writer = self._open()
+        if self._pool is None:
+            self._write_group(writer, parts, rows)
+            return
+        while len(self._pending) >= 2:  # bounded: at most two row groups wait
+            self._pending.popleft().result()
+        self._pending.append(self._pool.submit(self._write_group, writer, parts, rows))
+
+    def _write_group(self, writer: pq.ParquetWriter, parts: list[pa.Table], rows: int) -> None:
+        table = pa.concat_tables(parts).combine_chunks()
         writer.write_table(table.replace_schema_metadata(self.schema.metadata),
-                           row_group_size=max(self._row_group_rows, table.num_rows))
-        self.rows_written += table.num_rows
+                           row_group_size=max(self._row_group_rows, rows))
+        self.rows_written += rows
+
+    def _drain(self) -> None:
+        """Wait for the row groups in the background; raise the first error."""
+        try:
+            while self._pending:
+                self._pending.popleft().result()
+        finally:
+            if self._pool is not None and not self._pending:
+                self._pool.shutdown(wait=True)
+                self._pool = None
 
     def close(self) -> Path:
         """Write what is buffered and finish the file; returns its path."""
@@ -360,6 +390,11 @@ class TableWriter:
                 "TableWriter got no chunk and no schema; pass schema= to write an empty table"
             )
         self._flush()
+        try:
+            self._drain()
+        except BaseException:
+            self.abort()
+            raise
         writer = self._open()  # an empty table still gets its schema and metadata
         writer.close()
         self.closed = True
@@ -368,6 +403,15 @@ class TableWriter:
 
     def abort(self) -> None:
         """Close without finishing normally (used on errors); the file may be partial."""
+        for future in self._pending:
+            future.cancel()
+        for future in self._pending:  # the one being written finishes first
+            if not future.cancelled():
+                future.exception()
+        self._pending.clear()
+        if self._pool is not None:
+            self._pool.shutdown(wait=True)
+            self._pool = None
         if self._writer is not None:
             self._writer.close()
         self.closed = True

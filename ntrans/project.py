@@ -8,7 +8,8 @@ A project file is TOML.  Its keys are the keyword names of the Python API
     [families]  source, target, closure, source_closure, composite, elevation_rule, face_rule
     [window]    depths | stages
     [outputs]   out, csv, zip, overwrite
-    [run]       coverage, tile_size, workers, scheduler, face_spacing, snap_tolerance
+    [run]       coverage, tile_size, threads, workers, scheduler, face_spacing,
+                snap_tolerance
 
 Paths are relative to the project file.  :func:`load_project` validates the file: an
 unknown key, a value of the wrong type or a value outside its choices raises
@@ -121,6 +122,7 @@ SCHEMA: dict[str, dict[str, Key]] = {
     "run": {
         "coverage": _choice(COVERAGE_MODES),
         "tile_size": _INT_POS,
+        "threads": _INT_POS,
         "workers": _INT_POS,
         "scheduler": _STR,
         "face_spacing": _FLOAT_POS,
@@ -357,6 +359,7 @@ overwrite = false               # replace an existing bundle folder
 [run]
 coverage = "exact"              # pixel-to-cell weights: exact | centre
 tile_size = 512                 # tile edge in DEM pixels (bounds memory)
+# threads = 2                   # tiles at once in this process (default 1)
 # workers = 4                   # local worker processes (default: this process)
 """
 

@@ -24,6 +24,7 @@ outside the published range for its surface, or above 0.3, emits
 from __future__ import annotations
 
 import logging
+import threading
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -34,6 +35,11 @@ import numpy as np
 from .errors import InputFileError, RoughnessError, RoughnessRangeWarning
 
 log = logging.getLogger(__name__)
+
+# rasterio's in-memory raster operations (rasterize, reproject) run one at a time: two at
+# once in threads of one process emit a spurious NotGeoreferencedWarning (results stay
+# right; seen with rasterio 1.4.4), and GDAL's rasterize is single-threaded anyway
+_IN_MEMORY_RASTER_LOCK = threading.Lock()
 
 OverlapRule = Literal["error", "first", "last", "max_n"]
 OVERLAP_RULES: tuple[str, ...] = ("error", "first", "last", "max_n")
@@ -139,8 +145,9 @@ def class_index_on_window(model: RoughnessModel, transform: Any, shape: tuple[in
         if rows == 0 or cols == 0 or len(model.polygons) == 0:
             return out
         shapes = ((geom, int(c)) for geom, c in zip(model.polygons, model.polygon_class, strict=True))
-        return rasterize(shapes, out_shape=(rows, cols), transform=transform, fill=model.default,
-                         dtype="int32", out=out)
+        with _IN_MEMORY_RASTER_LOCK:
+            return rasterize(shapes, out_shape=(rows, cols), transform=transform,
+                             fill=model.default, dtype="int32", out=out)
     if model.raster is not None:
         from rasterio.enums import Resampling
         from rasterio.warp import reproject
@@ -148,17 +155,18 @@ def class_index_on_window(model: RoughnessModel, transform: Any, shape: tuple[in
         out = np.full((rows, cols), -1, dtype=np.int32)
         if rows == 0 or cols == 0:
             return out
-        reproject(
-            source=model.raster.astype(np.int32),
-            destination=out,
-            src_transform=model.raster_transform,
-            src_crs=model.raster_crs if model.raster_crs is not None else crs,
-            dst_transform=transform,
-            dst_crs=crs if crs is not None else model.raster_crs,
-            src_nodata=-1,
-            dst_nodata=-1,
-            resampling=Resampling.nearest,
-        )
+        with _IN_MEMORY_RASTER_LOCK:
+            reproject(
+                source=model.raster.astype(np.int32),
+                destination=out,
+                src_transform=model.raster_transform,
+                src_crs=model.raster_crs if model.raster_crs is not None else crs,
+                dst_transform=transform,
+                dst_crs=crs if crs is not None else model.raster_crs,
+                src_nodata=-1,
+                dst_nodata=-1,
+                resampling=Resampling.nearest,
+            )
         if model.default >= 0:
             out[out < 0] = model.default
         return out

@@ -219,6 +219,91 @@ def test_dask_two_processes_equals_single_process(mesh, tmp_path):
         p.name for p in (tmp_path / "local").iterdir())
 
 
+@pytest.mark.parametrize("threads", [2, 3])
+def test_threads_equal_one_thread_to_the_bit(mesh, tmp_path, threads):
+    from ntrans.tables import build_tables
+
+    dem, cells = mesh
+    build_tables(dem, cells, out=tmp_path / "one", stages="9:12:0.5", tile_size=8)
+    res = build_tables(dem, cells, out=tmp_path / "many", stages="9:12:0.5", tile_size=8,
+                       threads=threads)
+    assert res.n_tiles > threads  # several tiles really run at once
+    for name in ("cell_stage.parquet", "face_stage.parquet"):
+        # same tiles, same functions, results taken in tile order: identical, row order
+        # included
+        pd.testing.assert_frame_equal(pd.read_parquet(tmp_path / "one" / name),
+                                      pd.read_parquet(tmp_path / "many" / name),
+                                      check_exact=True)
+
+
+def test_thread_runner_keeps_order_bounds_work_and_stops_on_error():
+    import threading
+    import time
+
+    from ntrans.cluster import run_ordered
+
+    started: list[int] = []
+    lock = threading.Lock()
+
+    def slow_then_fast(shared, task):
+        with lock:
+            started.append(task)
+        time.sleep(0.02 if task % 2 == 0 else 0.0)  # later tasks finish first
+        if task == shared:
+            raise ValueError("tile failed")
+        return task * 10
+
+    assert list(run_ordered(slow_then_fast, -1, range(12), threads=3)) == [
+        10 * k for k in range(12)]
+    started.clear()
+    results = run_ordered(slow_then_fast, 4, iter(range(1000)), threads=2, max_in_flight=3)
+    with pytest.raises(ValueError, match="tile failed"):
+        list(results)
+    # the error stops the run: tasks past the bounded window were never started
+    assert max(started) < 4 + 3 + 2
+
+
+@pytest.mark.parametrize("kwargs", [{"threads": 0}, {"threads": 2, "workers": 2},
+                                    {"threads": 2, "scheduler": "tcp://127.0.0.1:1"}])
+def test_threads_checked_at_once(mesh, tmp_path, kwargs):
+    from ntrans.tables import build_tables
+
+    dem, cells = mesh
+    with pytest.raises(InputError, match="threads"):
+        build_tables(dem, cells, out=tmp_path / "out", stages="10", **kwargs)
+    assert not (tmp_path / "out").exists()
+
+
+def test_rasters_kept_open_give_each_thread_its_own_handle(mesh):
+    import threading
+    from concurrent.futures import ThreadPoolExecutor
+
+    import ntrans.inputs as inputs
+
+    dem, _ = mesh
+    info = inputs.open_dem(dem)
+    alone = info.read_window(0, 0, 30, 30)
+    together = threading.Barrier(3, timeout=30)
+
+    def read_twice(k):
+        first = info.read_window(k, k, 10, 12)
+        together.wait()  # three threads read at the same time
+        return first, info.read_window(k + 1, k, 10, 12)
+
+    with inputs.rasters_kept_open():
+        with ThreadPoolExecutor(3) as pool:
+            reads = list(pool.map(read_twice, range(3)))
+        session = inputs._session
+        handles = list(session._by_key.values())
+        assert len(handles) == 3  # one handle per reading thread, not per read
+        with inputs.rasters_kept_open():  # nested (any thread): the outer block owns them
+            assert inputs._session is session
+    assert inputs._session is None and all(src.closed for src in handles)
+    for k, (first, second) in enumerate(reads):
+        np.testing.assert_array_equal(first, alone[k:k + 10, k:k + 12])
+        np.testing.assert_array_equal(second, alone[k + 1:k + 11, k:k + 12])
+
+
 def test_spilled_rows_come_back_identical(tmp_path):
     from ntrans.engine import SpilledRows, rows_of, spill_rows
 

@@ -220,6 +220,36 @@ def test_table_writer_errors(tmp_path: Path) -> None:
     assert pq.read_table(tmp_path / "c.parquet").num_rows == 2
 
 
+def test_table_writer_background_writes_the_same_file(tmp_path: Path) -> None:
+    chunks = [_chunk(s, 7) for s in range(0, 70, 7)]
+    for background in (True, False):
+        with TableWriter(tmp_path / f"{background}.parquet", row_group_rows=10,
+                         background=background) as writer:
+            for chunk in chunks:
+                writer.write(chunk)
+        assert writer.rows_written == 70
+    a, b = pq.ParquetFile(tmp_path / "True.parquet"), pq.ParquetFile(tmp_path / "False.parquet")
+    assert a.num_row_groups == b.num_row_groups == 5  # same row groups, same order
+    assert a.read().equals(b.read())
+
+
+def test_table_writer_background_error_reaches_the_caller(tmp_path: Path, monkeypatch) -> None:
+    writer = TableWriter(tmp_path / "t.parquet", row_group_rows=5)
+    writer.write(_chunk(0, 5))  # opens the file and queues one row group
+
+    def disk_full(*args, **kwargs):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(writer._writer, "write_table", disk_full)
+    writer.write(_chunk(5, 5))
+    with pytest.raises(OSError, match="No space left"):
+        for start in range(10, 60, 5):  # waits on the queue within two row groups
+            writer.write(_chunk(start, 5))
+        writer.close()
+    writer.abort()  # after an error: closes what is open, raises nothing
+    assert writer.closed and writer._pool is None
+
+
 # --------------------------------------------------------------------------- CSV / GPKG
 
 

@@ -66,7 +66,7 @@ def test_template_is_a_valid_project(tmp_path):
     ("extra", "words"),
     [
         ('[inputs]\ndem = "d.tif"\ncells = "c.gpkg"\ncolour = "red"\n', ["colour", "class_field"]),
-        ('[run]\nthreads = 4\n', ["threads", "[run]", "tile_size", "workers"]),
+        ('[run]\ncores = 4\n', ["cores", "[run]", "tile_size", "threads", "workers"]),
         ('[extras]\na = 1\n', ["extras", "[inputs]", "[window]"]),
     ],
 )

@@ -47,7 +47,7 @@ def test_init_writes_a_template_and_refuses_to_overwrite(runner, tmp_path):
 @pytest.mark.parametrize(
     ("extra", "words"),
     [
-        ("[run]\nthreads = 4\n", ["threads", "tile_size"]),
+        ("[run]\ncores = 4\n", ["cores", "tile_size"]),
         ('[run]\ntile_size = "big"\n', ["run.tile_size", "an integer"]),
         ('[families]\nclosure = "round"\n', ["families.closure", "lumped", "strip", "cell"]),
         ('[outputs]\nzip = "yes"\n', ["outputs.zip", "true or false"]),
