@@ -27,7 +27,7 @@ import logging
 import os
 import time
 from collections.abc import Callable, Iterable, Iterator
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any, Literal
 
 import numpy as np
@@ -240,36 +240,76 @@ class TileSettings:
     faces: bool = True
 
 
-@dataclass(frozen=True)
 class TileTask:
     """What a worker needs for one tile besides the DEM window (small, picklable).
 
     ``polygons`` holds the tile's own cells then its halo cells (local cell index =
     position); ``field_values`` the user's flat elevations in the same order (or None);
-    ``face_a`` / ``face_b`` are local cell indices of the faces (-1 on the boundary).
+    ``face_lines`` the tile's faces, ``face_a`` / ``face_b`` their local cell indices
+    (-1 on the boundary) and ``face_length`` their lengths.
+
+    Geometry travels as WKB, converted for the whole array at once (pickling shapely
+    objects one by one costs more than computing the tile), and is decoded only where
+    it is used: a Dask scheduler unpickles and re-pickles every task it forwards, which
+    then costs it a copy of bytes instead of a decode and an encode.
     """
 
-    tile: Tile
-    polygons: np.ndarray
-    field_values: np.ndarray | None = None
-    face_lines: np.ndarray = field(default_factory=lambda: np.empty(0, dtype=object))
-    face_a: np.ndarray = field(default_factory=lambda: np.empty(0, dtype=np.int64))
-    face_b: np.ndarray = field(default_factory=lambda: np.empty(0, dtype=np.int64))
-    face_length: np.ndarray = field(default_factory=lambda: np.empty(0))
+    __slots__ = ("tile", "field_values", "face_a", "face_b", "face_length",
+                 "_polygons", "_face_lines", "_wkb")
+
+    def __init__(
+        self,
+        tile: Tile,
+        polygons: np.ndarray,
+        field_values: np.ndarray | None = None,
+        face_lines: np.ndarray | None = None,
+        face_a: np.ndarray | None = None,
+        face_b: np.ndarray | None = None,
+        face_length: np.ndarray | None = None,
+    ) -> None:
+        self.tile = tile
+        self.field_values = field_values
+        self.face_a = np.empty(0, dtype=np.int64) if face_a is None else face_a
+        self.face_b = np.empty(0, dtype=np.int64) if face_b is None else face_b
+        self.face_length = np.empty(0) if face_length is None else face_length
+        self._polygons: np.ndarray | None = np.asarray(polygons, dtype=object)
+        self._face_lines: np.ndarray | None = (
+            np.empty(0, dtype=object) if face_lines is None
+            else np.asarray(face_lines, dtype=object)
+        )
+        self._wkb: tuple[np.ndarray, np.ndarray] | None = None
+
+    @property
+    def polygons(self) -> np.ndarray:
+        self._decode()
+        return self._polygons  # type: ignore[return-value]
+
+    @property
+    def face_lines(self) -> np.ndarray:
+        self._decode()
+        return self._face_lines  # type: ignore[return-value]
+
+    def _decode(self) -> None:
+        if self._wkb is not None:
+            polygons, lines = self._wkb
+            self._polygons, self._face_lines = shapely.from_wkb(polygons), shapely.from_wkb(lines)
+            self._wkb = None
 
     def __reduce__(self):
-        # geometry travels as WKB, converted for the whole array at once: pickling
-        # shapely objects one by one costs more than computing the tile
-        return (
-            _task_from_wkb,
-            (self.tile, shapely.to_wkb(self.polygons), self.field_values,
-             shapely.to_wkb(self.face_lines), self.face_a, self.face_b, self.face_length),
-        )
+        if self._wkb is not None:  # forwarded without being used: the same bytes
+            polygons, lines = self._wkb
+        else:
+            polygons, lines = shapely.to_wkb(self._polygons), shapely.to_wkb(self._face_lines)
+        return (_task_from_wkb, (self.tile, polygons, self.field_values, lines, self.face_a,
+                                 self.face_b, self.face_length))
 
 
 def _task_from_wkb(tile, polygons, field_values, face_lines, face_a, face_b, face_length):
-    return TileTask(tile, shapely.from_wkb(polygons), field_values, shapely.from_wkb(face_lines),
-                    face_a, face_b, face_length)
+    task = TileTask(tile, np.empty(0, dtype=object), field_values, None, face_a, face_b,
+                    face_length)
+    task._polygons = task._face_lines = None
+    task._wkb = (polygons, face_lines)
+    return task
 
 
 def make_tasks(

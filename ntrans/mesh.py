@@ -664,7 +664,11 @@ def _check_block_cells(block_cells: object) -> int | None:
 
 @dataclass
 class _BlockJob:
-    """One block of :func:`build_faces`: its cells with two rings of neighbours."""
+    """One block of :func:`build_faces`: its cells with two rings of neighbours.
+
+    ``geoms`` are shapely polygons, or their WKB when ``wkb`` (as the job travels):
+    :func:`run_block_job` decodes them, a Dask scheduler forwarding the job does not.
+    """
 
     geoms: np.ndarray
     p: np.ndarray
@@ -675,16 +679,13 @@ class _BlockJob:
     tol: float
     eps: float
     corner_angle: float | None
+    wkb: bool = False
 
     def __reduce__(self):
         # geometry travels as WKB, converted for the whole array at once
-        return (_block_job_from_wkb, (shapely.to_wkb(self.geoms), self.p, self.q, self.rank,
-                                      self.core, self.cells, self.tol, self.eps,
-                                      self.corner_angle))
-
-
-def _block_job_from_wkb(wkb, *rest) -> _BlockJob:
-    return _BlockJob(shapely.from_wkb(wkb), *rest)
+        wkb = self.geoms if self.wkb else shapely.to_wkb(self.geoms)
+        return (_BlockJob, (wkb, self.p, self.q, self.rank, self.core, self.cells, self.tol,
+                            self.eps, self.corner_angle, True))
 
 
 @dataclass
@@ -707,7 +708,8 @@ def _block_result_from_wkb(wkb, *rest) -> _BlockResult:
 
 def run_block_job(job: _BlockJob) -> _BlockResult:
     """Faces of one block of :func:`build_faces` (pure; runs anywhere)."""
-    geom, a, b = _block_faces(job.geoms, job.p, job.q, job.rank, job.core, job.tol, job.eps,
+    geoms = shapely.from_wkb(job.geoms) if job.wkb else job.geoms
+    geom, a, b = _block_faces(geoms, job.p, job.q, job.rank, job.core, job.tol, job.eps,
                               job.corner_angle)
     geom = _orient(geom)
     ctx = job.cells

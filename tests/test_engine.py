@@ -134,7 +134,13 @@ def test_task_travels_as_wkb_and_comes_back_identical():
                      dtype=object)
     lines = np.array([shapely.LineString([(0, 0), (2.0 / 3.0, 1.0 / 7.0)])], dtype=object)
     task = TileTask(tiles[0], polys, None, lines, np.array([0]), np.array([-1]), np.array([1.0]))
-    back = pickle.loads(pickle.dumps(task))
+    wire = pickle.dumps(task)
+    # what a scheduler does: unpickle and pickle again, without using the geometry;
+    # the bytes are forwarded as they are, not decoded and encoded again
+    forwarded = pickle.loads(wire)
+    assert forwarded._wkb is not None
+    assert pickle.dumps(forwarded) == wire
+    back = pickle.loads(pickle.dumps(forwarded))
     # WKB stores IEEE doubles: coordinates come back to the bit
     np.testing.assert_array_equal(shapely.get_coordinates(back.polygons),
                                   shapely.get_coordinates(polys))

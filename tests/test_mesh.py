@@ -328,9 +328,12 @@ def test_blocks_mapped_through_pickle_give_identical_faces(mesh):
     import pickle
 
     def on_workers(fn, jobs):
-        # what a Dask worker sees: the job and its result each cross a pickle
+        # what a Dask worker sees: the job crosses a scheduler (unpickled and pickled
+        # again, forwarded as the same bytes) and the result crosses a pickle
         for job in jobs:
-            yield pickle.loads(pickle.dumps(fn(pickle.loads(pickle.dumps(job)))))
+            wire = pickle.dumps(job)
+            assert pickle.dumps(pickle.loads(wire)) == wire
+            yield pickle.loads(pickle.dumps(fn(pickle.loads(wire))))
 
     make, tol = MESHES[mesh]
     cells = make()
