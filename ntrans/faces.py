@@ -387,25 +387,26 @@ def _fix_positions(
 
 def _chunks(seg: Segments) -> list[tuple[int, int, int, int, Segments]]:
     """Whole-face chunks of ``seg`` as ``(f0, f1, lo, hi, sub)`` (cached on ``seg``)."""
+    n_seg = seg.face.size
+    if n_seg <= _SEGMENTS_PER_CHUNK:
+        # not cached: a cache on ``seg`` holding ``seg`` would be a reference cycle, and
+        # the tile's arrays would then wait for Python's cyclic garbage collector
+        return [(0, seg.n_faces, 0, n_seg, seg)]
     cached = seg._cache.get("chunks")
     if cached is not None:
         return cached
-    n_seg = seg.face.size
-    if n_seg <= _SEGMENTS_PER_CHUNK:
-        out = [(0, seg.n_faces, 0, n_seg, seg)]
-    else:
-        cuts = np.searchsorted(seg.face, seg.face[np.arange(0, n_seg, _SEGMENTS_PER_CHUNK)[1:]])
-        bounds = np.unique(np.concatenate([[0], cuts, [n_seg]]))
-        out = []
-        for lo, hi in zip(bounds[:-1], bounds[1:], strict=True):
-            lo, hi = int(lo), int(hi)
-            f0, f1 = int(seg.face[lo]), int(seg.face[hi - 1]) + 1
-            s_lo = int(seg.start[lo])
-            sub = Segments(
-                seg.start[lo:hi] - s_lo, seg.face[lo:hi] - f0, seg.ds[lo:hi], seg.z0[lo:hi],
-                seg.z1[lo:hi], seg.dl[lo:hi], seg.low[f0:f1], f1 - f0,
-            )
-            out.append((f0, f1, lo, hi, sub))
+    cuts = np.searchsorted(seg.face, seg.face[np.arange(0, n_seg, _SEGMENTS_PER_CHUNK)[1:]])
+    bounds = np.unique(np.concatenate([[0], cuts, [n_seg]]))
+    out = []
+    for lo, hi in zip(bounds[:-1], bounds[1:], strict=True):
+        lo, hi = int(lo), int(hi)
+        f0, f1 = int(seg.face[lo]), int(seg.face[hi - 1]) + 1
+        s_lo = int(seg.start[lo])
+        sub = Segments(
+            seg.start[lo:hi] - s_lo, seg.face[lo:hi] - f0, seg.ds[lo:hi], seg.z0[lo:hi],
+            seg.z1[lo:hi], seg.dl[lo:hi], seg.low[f0:f1], f1 - f0,
+        )
+        out.append((f0, f1, lo, hi, sub))
     seg._cache["chunks"] = out
     return out
 

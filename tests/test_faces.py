@@ -130,6 +130,31 @@ def test_hand_checked_v_profile():
     assert all(np.isnan(t[k][0, 5]) for k in t)  # NaN stage -> NaN
 
 
+@pytest.mark.parametrize("closure", ["lumped", "strip"])
+def test_tile_arrays_freed_without_the_cyclic_collector(closure):
+    import gc
+    import weakref
+
+    from ntrans.closures import face_conveyance
+
+    # a profile per face, stages, the strip closure's chunks and breakpoints: everything
+    # cached on the profiles must go with them by reference counting alone (a cycle
+    # would hold a tile's arrays until a full collection, which a large mesh delays)
+    prof = Profiles([0, 0, 0, 1, 1], [0.0, 1.0, 2.0, 0.0, 1.0], [1.0, 0.0, 1.0, 2.0, 0.5], 2)
+    gc.disable()
+    try:
+        face_stage_table(prof, np.array([0.5, 1.0]))
+        face_conveyance(prof, np.array([[0.5, 1.0], [1.0, 2.0]]), closure=closure,
+                        n_segment=0.03)
+        segments = list(prof._segments.values())
+        assert segments  # the cache really was filled
+        refs = [weakref.ref(prof)] + [weakref.ref(seg) for seg in segments]
+        del prof, segments
+        assert all(ref() is None for ref in refs)
+    finally:
+        gc.enable()
+
+
 def test_level_profile_steps_exactly_at_its_elevation():
     prof = Profiles([0, 0, 0], [0.0, 1.0, 3.0], [2.0, 2.0, 2.0], 1)
     t = face_stage_table(prof, np.array([2.0, 2.5]))
