@@ -162,6 +162,7 @@ def _same_crs(a: pyproj.CRS, b: pyproj.CRS) -> bool:
 RASTER_CACHE_BYTES = 32 * 2**20
 """GDAL's block cache while ntrans reads windows: neighbouring tiles share blocks."""
 
+
 class _OpenRasters:
     """Datasets kept open by :func:`rasters_kept_open`: one per (thread, path).
 
