@@ -33,6 +33,7 @@ import rasterio
 import shapely
 from affine import Affine
 from rasterio.crs import CRS
+from rasterio.enums import MaskFlags
 from rasterio.windows import Window
 
 from .errors import (
@@ -225,12 +226,44 @@ def rasters_kept_open() -> Iterator[None]:
             session.close()
 
 
-def _read_window(path: str, window: Window) -> np.ma.MaskedArray:
+def _read_window(path: str, window: Window) -> np.ndarray:
+    """Band 1 in ``window`` as float64, NaN where GDAL's mask says the pixel is invalid."""
     session = _session
     if session is None:
         with rasterio.open(path) as src:
-            return src.read(1, window=window, masked=True)
-    return session.get(path).read(1, window=window, masked=True)
+            return _valid_float64(src, window)
+    return _valid_float64(session.get(path), window)
+
+
+def _valid_float64(src: Any, window: Window) -> np.ndarray:
+    flags = src.mask_flag_enums[0]
+    if flags == [MaskFlags.all_valid] or flags == [MaskFlags.nodata]:
+        # GDAL's nodata mask compares in the band's own type (a float32 band with
+        # nodata -3.4e38 masks float32(-3.4e38)); doing the same here saves the mask
+        # band read, which costs as much as the data (0.33 s -> 0.2 s for every window
+        # of a 10^7-pixel DEM)
+        raw = src.read(1, window=window)
+        values = raw.astype(np.float64)
+        nodata = src.nodatavals[0] if flags == [MaskFlags.nodata] else None
+        if nodata is not None:
+            invalid = _equals_nodata(raw, nodata)
+            if invalid is not None:
+                values[invalid] = np.nan
+        return values
+    data = src.read(1, window=window, masked=True)  # alpha or internal mask bands
+    return np.ma.filled(data.astype(np.float64), np.nan)
+
+
+def _equals_nodata(raw: np.ndarray, nodata: float) -> np.ndarray | None:
+    """Where ``raw`` equals ``nodata`` in its own dtype; None if no value can."""
+    if np.isnan(nodata):
+        return np.isnan(raw) if raw.dtype.kind == "f" else None
+    if raw.dtype.kind == "f":
+        return raw == raw.dtype.type(nodata)
+    info = np.iinfo(raw.dtype)
+    if nodata != int(nodata) or not info.min <= nodata <= info.max:
+        return None  # not a value of this integer type
+    return raw == raw.dtype.type(int(nodata))
 
 
 def _read_band1(path: str, row_off: int, col_off: int, height: int, width: int,
@@ -250,8 +283,7 @@ def _read_band1(path: str, row_off: int, col_off: int, height: int, width: int,
         raise InputFileError(
             f"raster '{path}' could not be read ({_reason(exc, path)}); check the file"
         ) from exc
-    values = np.ma.filled(data.astype(np.float64), np.nan)
-    out[r0 - row_off : r1 - row_off, c0 - col_off : c1 - col_off] = values
+    out[r0 - row_off : r1 - row_off, c0 - col_off : c1 - col_off] = data
     return out
 
 

@@ -590,3 +590,65 @@ def test_check_output_not_input_refuses(tmp_path: Path, out: str, inputs: list[s
 def test_check_output_not_input_allows(tmp_path: Path) -> None:
     check_output_not_input(tmp_path / "out", [tmp_path / "dem.tif", None, "/vsimem/x.tif",
                                               tmp_path / "outside" / "c.gpkg"])
+
+
+# --------------------------------------------------------------------------- window reads
+
+
+def _raster(path, values, dtype, nodata, *, mask=None):
+    profile = {"driver": "GTiff", "width": values.shape[1], "height": values.shape[0],
+               "count": 1, "dtype": dtype, "crs": "EPSG:32633", "nodata": nodata,
+               "transform": Affine(1.0, 0.0, 0.0, 0.0, -1.0, float(values.shape[0]))}
+    with rasterio.Env(GDAL_TIFF_INTERNAL_MASK=True), rasterio.open(path, "w", **profile) as dst:
+        dst.write(values.astype(dtype), 1)
+        if mask is not None:
+            dst.write_mask(mask)
+    return str(path)
+
+
+@pytest.mark.parametrize(
+    "dtype, nodata, mask",
+    [
+        ("float32", -9999.0, False),
+        ("float32", -3.4e38, False),  # not a float32 value: GDAL masks float32(-3.4e38)
+        ("float32", float("nan"), False),
+        ("float32", None, False),  # no mask: NaN pixels stay NaN
+        ("float64", -9999.0, False),
+        ("int16", -32768, False),
+        ("uint8", 0, False),
+        ("float32", None, True),  # an internal mask band (per dataset)
+    ],
+)
+def test_window_read_masks_what_gdal_masks(tmp_path, dtype, nodata, mask):
+    from ntrans.inputs import _read_band1
+
+    rng = np.random.default_rng(3)
+    values = rng.integers(1, 200, size=(20, 30)).astype(np.float64)
+    if nodata is not None and not (isinstance(nodata, float) and np.isnan(nodata)):
+        values[::4, ::3] = nodata
+    if dtype.startswith("float"):
+        values[5, 6] = np.nan  # inside the window read below
+    band_mask = None
+    if mask:
+        band_mask = np.full(values.shape, 255, dtype=np.uint8)
+        band_mask[5:9, 10:14] = 0
+    path = _raster(tmp_path / "d.tif", values, dtype, nodata, mask=band_mask)
+    got = _read_band1(path, 2, 3, 15, 25, (20, 30))
+    # reference: GDAL's own mask, through rasterio's masked read
+    with rasterio.open(path) as src:
+        ref = src.read(1, masked=True)
+    want = np.ma.filled(ref.astype(np.float64), np.nan)[2:17, 3:28]
+    np.testing.assert_array_equal(got, want)
+    assert np.isnan(got).any() == (nodata is not None or mask or dtype.startswith("float"))
+
+
+def test_nodata_no_pixel_of_the_type_can_hold_masks_nothing():
+    from ntrans.inputs import _equals_nodata
+
+    raw = np.array([0, 7, 255], dtype=np.uint8)
+    assert _equals_nodata(raw, -9999.0) is None  # outside uint8
+    assert _equals_nodata(raw, 7.5) is None  # not an integer
+    assert _equals_nodata(raw, float("nan")) is None  # integers are never NaN
+    np.testing.assert_array_equal(_equals_nodata(raw, 7.0), [False, True, False])
+    f32 = np.array([np.float32(-3.4e38), -3.4e38, 1.0], dtype=np.float32)
+    np.testing.assert_array_equal(_equals_nodata(f32, -3.4e38), [True, True, False])
