@@ -213,30 +213,16 @@ def _run_threads(fn, shared, tasks, threads: int, max_in_flight: int | None) -> 
     yielded, so memory stays bounded by a few tiles.  On an error or an early stop the
     tasks not yet started are cancelled and the running ones finish before this returns.
     """
-    from .memory import release_free_memory
-
     limit = max_in_flight or 2 * threads
     pending: deque = deque()
-    done = 0
-
-    def next_result() -> Any:
-        nonlocal done
-        result = pending.popleft().result()
-        done += 1
-        if done % threads == 0:
-            # each thread allocates from its own heap arena, where freed tile
-            # temporaries otherwise stay resident
-            release_free_memory()
-        return result
-
     with ThreadPoolExecutor(threads, thread_name_prefix="ntrans-tiles") as pool:
         try:
             for task in tasks:
                 pending.append(pool.submit(fn, shared, task))
                 if len(pending) >= limit:
-                    yield next_result()
+                    yield pending.popleft().result()
             while pending:
-                yield next_result()
+                yield pending.popleft().result()
         finally:
             for future in pending:
                 future.cancel()

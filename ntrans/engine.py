@@ -305,8 +305,9 @@ class TileTask:
 
 
 def _task_from_wkb(tile, polygons, field_values, face_lines, face_a, face_b, face_length):
-    task = TileTask(tile, np.empty(0, dtype=object), field_values, None, face_a, face_b,
-                    face_length)
+    task = TileTask.__new__(TileTask)  # geometry stays WKB until it is used
+    task.tile, task.field_values = tile, field_values
+    task.face_a, task.face_b, task.face_length = face_a, face_b, face_length
     task._polygons = task._face_lines = None
     task._wkb = (polygons, face_lines)
     return task

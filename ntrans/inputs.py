@@ -271,18 +271,20 @@ def _read_band1(path: str, row_off: int, col_off: int, height: int, width: int,
     """Boundless float64 read of band 1: NaN for masked pixels and outside the raster."""
     if height < 0 or width < 0:
         raise ValueError("window height and width must be zero or positive")
-    out = np.full((height, width), np.nan, dtype=np.float64)
     n_rows, n_cols = shape
     r0, r1 = max(row_off, 0), min(row_off + height, n_rows)
     c0, c1 = max(col_off, 0), min(col_off + width, n_cols)
     if r1 <= r0 or c1 <= c0:
-        return out
+        return np.full((height, width), np.nan, dtype=np.float64)
     try:
         data = _read_window(path, Window(c0, r0, c1 - c0, r1 - r0))
     except rasterio.errors.RasterioIOError as exc:
         raise InputFileError(
             f"raster '{path}' could not be read ({_reason(exc, path)}); check the file"
         ) from exc
+    if data.shape == (height, width):  # wholly inside the raster: already the result
+        return data
+    out = np.full((height, width), np.nan, dtype=np.float64)
     out[r0 - row_off : r1 - row_off, c0 - col_off : c1 - col_off] = data
     return out
 

@@ -375,13 +375,15 @@ class TableWriter:
 
     def _drain(self) -> None:
         """Wait for the row groups in the background; raise the first error."""
-        try:
-            while self._pending:
-                self._pending.popleft().result()
-        finally:
-            if self._pool is not None and not self._pending:
-                self._pool.shutdown(wait=True)
-                self._pool = None
+        while self._pending:
+            self._pending.popleft().result()
+
+    def _stop_pool(self) -> None:
+        """Stop the background thread: queued row groups are dropped, a running one ends."""
+        if self._pool is not None:
+            self._pool.shutdown(wait=True, cancel_futures=True)
+            self._pool = None
+        self._pending.clear()
 
     def close(self) -> Path:
         """Write what is buffered and finish the file; returns its path."""
@@ -397,6 +399,7 @@ class TableWriter:
         except BaseException:
             self.abort()
             raise
+        self._stop_pool()
         writer = self._open()  # an empty table still gets its schema and metadata
         writer.close()
         self.closed = True
@@ -405,15 +408,7 @@ class TableWriter:
 
     def abort(self) -> None:
         """Close without finishing normally (used on errors); the file may be partial."""
-        for future in self._pending:
-            future.cancel()
-        for future in self._pending:  # the one being written finishes first
-            if not future.cancelled():
-                future.exception()
-        self._pending.clear()
-        if self._pool is not None:
-            self._pool.shutdown(wait=True)
-            self._pool = None
+        self._stop_pool()
         if self._writer is not None:
             self._writer.close()
         self.closed = True
