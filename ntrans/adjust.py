@@ -638,7 +638,7 @@ def adjust_roughness(
         def tasks():
             return make_tasks(tiles, geoms, field_values=field_values, face_lines=mesh.geometry,
                               face_cell_a=mesh.cell_a, face_cell_b=mesh.cell_b,
-                              face_length=mesh.length)
+                              face_length=mesh.length, as_wkb=connection is not None)
 
         job = _Job(dem_info, plan, model, window)
         run = {"connection": connection, "progress": progress, "total": len(tiles),

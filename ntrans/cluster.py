@@ -51,6 +51,26 @@ def _warm_worker() -> None:
     warm_up()
 
 
+def _preload_forkserver() -> None:
+    """Make local workers fork from one process that has loaded the tile code once.
+
+    Dask gives the forkserver its own preload list the first time it makes its
+    multiprocessing context, replacing any set before; so that context is made first and
+    the tile code added to its list.  Without it every worker imports the libraries and
+    loads the compiled kernels itself (about a second of CPU each).  It has no effect once
+    this process's forkserver runs (a cluster started before in the same process).
+    """
+    from multiprocessing import forkserver
+
+    from distributed.utils import get_mp_context
+
+    context = get_mp_context()
+    server = getattr(forkserver, "_forkserver", None)
+    preload = list(getattr(server, "_preload_modules", None) or ["distributed"])
+    if "ntrans._worker_preload" not in preload:
+        context.set_forkserver_preload([*preload, "ntrans._worker_preload"])
+
+
 def _connect(workers: int | None, scheduler: str | None) -> tuple[Any, Any]:
     try:
         from distributed import Client, LocalCluster
@@ -72,13 +92,18 @@ def _connect(workers: int | None, scheduler: str | None) -> tuple[Any, Any]:
         # Dask sets MALLOC_TRIM_THRESHOLD_ for its workers by default; with it, glibc maps
         # and unmaps every large array afresh, and the tile arithmetic here (many large
         # temporaries) then takes about twice the CPU time it takes in one process
-        config = {"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None}
+        config = {
+            "distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None,
+            # the workers' statistical profiler samples every thread's stack 100 times
+            # a second (for the dashboard); on tiles it costs CPU time and holds the GIL
+            "distributed.worker.profile.enabled": False,
+        }
         method = dask.config.get("distributed.worker.multiprocessing-method")
         if method == "spawn" and "forkserver" in multiprocessing.get_all_start_methods():
-            # workers fork from one process that has imported and loaded everything once
-            multiprocessing.set_forkserver_preload(["ntrans._worker_preload"])
             config["distributed.worker.multiprocessing-method"] = "forkserver"
         with dask.config.set(config):
+            if config.get("distributed.worker.multiprocessing-method") == "forkserver":
+                _preload_forkserver()
             cluster = LocalCluster(
                 n_workers=int(workers),
                 threads_per_worker=1,
@@ -110,6 +135,10 @@ class WorkerConnection:
     def ready(self) -> bool:
         """True once the workers are up and warm (never waits)."""
         return self._future.done()
+
+    def n_workers(self) -> int:
+        """Workers the scheduler knows of now (at least 1; waits for the start-up)."""
+        return max(len(self.client.scheduler_info().get("workers", {})), 1)
 
     @property
     def client(self) -> Any:

@@ -304,6 +304,10 @@ class TileTask:
                                  self.face_b, self.face_length))
 
 
+_NO_INDEX = np.empty(0, dtype=np.int64)
+_NO_LENGTH = np.empty(0)
+
+
 def _task_from_wkb(tile, polygons, field_values, face_lines, face_a, face_b, face_length):
     task = TileTask.__new__(TileTask)  # geometry stays WKB until it is used
     task.tile, task.field_values = tile, field_values
@@ -322,14 +326,31 @@ def make_tasks(
     face_cell_a: np.ndarray | None = None,
     face_cell_b: np.ndarray | None = None,
     face_length: np.ndarray | None = None,
+    as_wkb: bool = False,
 ) -> Iterator[TileTask]:
-    """Yield one :class:`TileTask` per tile (lazily: memory bounded by one tile)."""
+    """Yield one :class:`TileTask` per tile (lazily: memory bounded by one tile).
+
+    ``as_wkb``: encode all the geometry once, in one vectorised call, and build tasks that
+    hold WKB (for tasks sent to other processes, which would otherwise encode each tile's
+    geometry when pickled).
+    """
     polygons = np.asarray(polygons, dtype=object)
+    lines_all = None if face_lines is None else np.asarray(face_lines, dtype=object)
+    build: Callable[..., TileTask] = TileTask
+    if as_wkb:
+        polygons = shapely.to_wkb(polygons)
+        lines_all = None if lines_all is None else shapely.to_wkb(lines_all)
+        build = _task_from_wkb
+    no_lines = polygons[:0]
     for tile in tiles:
         local = np.concatenate([tile.cells, tile.halo])
         fv = None if field_values is None else np.asarray(field_values, dtype=float)[local]
         if face_cell_a is None or tile.faces.size == 0:
-            yield TileTask(tile, polygons[local], fv)
+            if as_wkb:
+                yield _task_from_wkb(tile, polygons[local], fv, no_lines, _NO_INDEX, _NO_INDEX,
+                                     _NO_LENGTH)
+            else:
+                yield TileTask(tile, polygons[local], fv)
             continue
         # global cell index -> local index (own cells then halo), by binary search
         sorter = np.argsort(local, kind="stable")
@@ -338,11 +359,11 @@ def make_tasks(
         la = sorter[np.searchsorted(local, ga, sorter=sorter)]
         lb = np.where(gb >= 0, sorter[np.searchsorted(local, np.maximum(gb, 0), sorter=sorter)
                                       .clip(0, local.size - 1)], -1)
-        yield TileTask(
+        yield build(
             tile,
             polygons[local],
             fv,
-            np.asarray(face_lines, dtype=object)[tile.faces],
+            lines_all[tile.faces],  # type: ignore[index]
             la,
             lb,
             np.asarray(face_length, dtype=float)[tile.faces],
@@ -592,14 +613,14 @@ def read_tile_window(dem: Any, window: Window) -> tuple[np.ndarray, Affine]:
 def run_task_local(dem: Any, task: TileTask, settings: TileSettings) -> dict[str, Any]:
     """Read the tile's window from an open DEM and run :func:`run_tile`.
 
-    The result also holds ``timing``: process id, end time (epoch seconds), wall and CPU
-    seconds of the tile, which the job logs at debug level.
+    The result also holds ``timing``: process id, end time (epoch seconds), wall seconds
+    and CPU seconds of the thread that ran the tile, which the job logs at debug level.
     """
-    started, cpu = time.perf_counter(), time.process_time()
+    started, cpu = time.perf_counter(), time.thread_time()
     arr, wt = read_tile_window(dem, task.tile.window)
     out = run_tile(task, arr, wt, settings)
     out["timing"] = (os.getpid(), time.time(), time.perf_counter() - started,
-                     time.process_time() - cpu)
+                     time.thread_time() - cpu)
     return out
 
 

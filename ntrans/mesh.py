@@ -36,7 +36,7 @@ from __future__ import annotations
 
 import logging
 import os
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any
@@ -706,6 +706,19 @@ def _block_result_from_wkb(wkb, *rest) -> _BlockResult:
     return _BlockResult(shapely.from_wkb(wkb), *rest)
 
 
+class _Sized:
+    """An iterator that knows how many items it yields (``len``)."""
+
+    def __init__(self, items: Iterator[Any], size: int) -> None:
+        self._items, self._size = items, int(size)
+
+    def __len__(self) -> int:
+        return self._size
+
+    def __iter__(self) -> Iterator[Any]:
+        return self._items
+
+
 def run_block_job(job: _BlockJob) -> _BlockResult:
     """Faces of one block of :func:`build_faces` (pure; runs anywhere)."""
     geoms = shapely.from_wkb(job.geoms) if job.wkb else job.geoms
@@ -750,7 +763,8 @@ def build_faces(
     map_blocks : callable, optional
         Used instead of the built-in ``map`` to run :func:`run_block_job` over the
         blocks; it must yield the results in order (e.g. one that runs the blocks on
-        Dask workers: jobs and results pickle their geometry as WKB).
+        Dask workers: jobs and results pickle their geometry as WKB).  The jobs it gets
+        support ``len``.
 
     Returns
     -------
@@ -816,7 +830,7 @@ def build_faces(
                             boundary_corner_angle)
 
     out_geom, out_a, out_b, out_ends = [], [], [], []
-    for res in (map_blocks or map)(run_block_job, jobs()):
+    for res in (map_blocks or map)(run_block_job, _Sized(jobs(), len(blocks))):
         out_geom.append(res.geometry)
         out_a.append(res.cell_a)
         out_b.append(res.cell_b)

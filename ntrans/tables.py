@@ -193,13 +193,17 @@ def prepare_mesh_job(
         from .cluster import call, run_ordered
 
         def map_blocks(fn, jobs):
-            # blocks run here while the workers start, then on the workers (same result)
+            # blocks run here while the workers start, then on the workers (same result);
+            # the last few stay here: sending a block costs more than its share of the
+            # work unless every worker gets two or more
+            left = len(jobs)
             jobs = iter(jobs)
             for job in jobs:
-                if connection.ready():
+                if connection.ready() and left >= 2 * connection.n_workers():
                     yield from run_ordered(call, fn, itertools.chain([job], jobs),
                                            connection=connection, desc="face blocks")
                     return
+                left -= 1
                 yield fn(job)
 
     mesh = build_faces(geoms, snap_tolerance=snap, map_blocks=map_blocks) if faces else None
@@ -339,6 +343,7 @@ def build_tables(
             face_cell_a=None if mesh is None else mesh.cell_a,
             face_cell_b=None if mesh is None else mesh.cell_b,
             face_length=None if mesh is None else mesh.length,
+            as_wkb=connection is not None,
         )
 
         units = table_units(dem_info)

@@ -225,6 +225,24 @@ def test_dask_two_processes_equals_single_process(mesh, tmp_path):
         p.name for p in (tmp_path / "local").iterdir())
 
 
+def test_local_workers_start_loaded_and_without_the_profiler():
+    import multiprocessing
+
+    from ntrans.cluster import WorkerConnection
+
+    if "forkserver" not in multiprocessing.get_all_start_methods():
+        pytest.skip("no forkserver on this platform")
+    with WorkerConnection(2, None) as connection:
+        client = connection.client
+        # forked from the server that imported the tile code (Dask replaces a preload
+        # list set before it makes its context; the worker would then load it itself)
+        loaded = client.run(lambda: "ntrans._worker_preload" in __import__("sys").modules)
+        profiling = client.run(
+            lambda: __import__("dask").config.get("distributed.worker.profile.enabled"))
+    assert list(loaded.values()) == [True, True]
+    assert list(profiling.values()) == [False, False]
+
+
 @pytest.mark.parametrize("threads", [2, 3])
 def test_threads_equal_one_thread_to_the_bit(mesh, tmp_path, threads):
     from ntrans.tables import build_tables
