@@ -843,9 +843,11 @@ def read_cells(
     else:
         frame = frame.set_crs(target, allow_override=True)
 
-    geoms = shapely.force_2d(geoms)
-    if not np.all(np.isfinite(shapely.bounds(geoms))):
-        bad = ~np.all(np.isfinite(shapely.bounds(geoms)), axis=1)
+    if shapely.has_z(geoms).any():  # force_2d rebuilds every geometry: only when needed
+        geoms = shapely.force_2d(geoms)
+    bounds = shapely.bounds(geoms)
+    if not np.all(np.isfinite(bounds)):
+        bad = ~np.all(np.isfinite(bounds), axis=1)
         raise GeometryError(
             f"cells {_name_list(ids[bad])} have coordinates that cannot be placed in the DEM's "
             "CRS; check the layer's CRS"
@@ -865,8 +867,20 @@ def read_cells(
     else:
         _check_overlaps(geoms, ids, overlap_tolerance)
 
-    extent = shapely.box(*dem.bounds)
-    touching = shapely.intersects(geoms, extent) & ~shapely.touches(geoms, extent)
+    # over the DEM: interiors meet its extent.  Bounds settle most cells; the exact
+    # predicates run only where a cell's bounding box crosses the extent's border
+    left, bottom, right, top = dem.bounds
+    bounds = shapely.bounds(geoms)
+    inside = ((bounds[:, 0] > left) & (bounds[:, 2] < right)
+              & (bounds[:, 1] > bottom) & (bounds[:, 3] < top))
+    apart = ((bounds[:, 2] <= left) | (bounds[:, 0] >= right)
+             | (bounds[:, 3] <= bottom) | (bounds[:, 1] >= top))
+    touching = inside.copy()
+    unsure = np.flatnonzero(~inside & ~apart)
+    if unsure.size:
+        extent = shapely.box(left, bottom, right, top)
+        touching[unsure] = (shapely.intersects(geoms[unsure], extent)
+                            & ~shapely.touches(geoms[unsure], extent))
     if not touching.any():
         raise InputError(
             f"none of the {ids.size} cells in '{text}' lies over the DEM's extent; check that "

@@ -652,3 +652,38 @@ def test_nodata_no_pixel_of_the_type_can_hold_masks_nothing():
     np.testing.assert_array_equal(_equals_nodata(raw, 7.0), [False, True, False])
     f32 = np.array([np.float32(-3.4e38), -3.4e38, 1.0], dtype=np.float32)
     np.testing.assert_array_equal(_equals_nodata(f32, -3.4e38), [True, True, False])
+
+
+def test_cells_over_the_dem_by_interior_not_by_border(tmp_path, caplog):
+    # geometry identity: a cell counts as over the DEM when its interior meets the DEM's
+    # extent; one sharing only a border or a corner with it, or lying apart, does not
+    dem = open_dem(write_dem(tmp_path / "d.tif", np.ones((4, 4))))
+    x0, y0, x1, y1 = dem.bounds
+    cells = [
+        shapely.box(x0 + 1, y0 + 1, x0 + 2, y0 + 2),  # inside
+        shapely.box(x1 - 1, y0 + 1, x1 + 1, y0 + 2),  # across the right border
+        shapely.box(x1, y0 + 2.5, x1 + 1, y0 + 3),  # shares the right border only
+        shapely.box(x0 - 1, y1, x0, y1 + 1),  # shares the top-left corner only
+        shapely.box(x1 + 5, y1 + 5, x1 + 6, y1 + 6),  # apart
+        shapely.Polygon([(x0 - 1, y0 + 2), (x0 + 0.5, y0 + 2), (x0 - 1, y0 + 3.5)]),  # into it
+    ]
+    path = write_cells(tmp_path / "c.gpkg", cells, ids=list(range(len(cells))))
+    with caplog.at_level(logging.INFO, logger="ntrans"):
+        layer = read_cells(path, dem=dem)
+    assert len(layer.ids) == len(cells)  # all kept
+    assert "3 cells lie wholly outside the DEM" in caplog.text
+    with pytest.raises(InputError, match="none of the 3 cells"):
+        read_cells(write_cells(tmp_path / "out.gpkg", cells[2:5], ids=[2, 3, 4]), dem=dem)
+
+
+def test_cells_with_z_coordinates_are_read_in_plan(tmp_path):
+    # cells drawn with elevations (PolygonZ) are used in plan: same area and same layer
+    # as the same cells without Z
+    dem = open_dem(write_dem(tmp_path / "d.tif", np.ones((4, 4))))
+    x0, y0, _, _ = dem.bounds
+    flat = [shapely.box(x0, y0, x0 + 2, y0 + 2), shapely.box(x0 + 2, y0, x0 + 4, y0 + 2)]
+    with_z = [shapely.force_3d(g, 7.5) for g in flat]
+    a = read_cells(write_cells(tmp_path / "z.gpkg", with_z), dem=dem)
+    b = read_cells(write_cells(tmp_path / "f.gpkg", flat), dem=dem)
+    assert not shapely.has_z(a.geometry).any()
+    assert shapely.equals_exact(a.geometry, b.geometry, tolerance=0).all()
