@@ -747,10 +747,18 @@ def _entry_conveyance(stats: ClassStats, rows: np.ndarray, cols: np.ndarray, *,
     items = stats.item[order]
     first = np.searchsorted(items, rows, side="left")
     count = np.searchsorted(items, rows, side="right") - first
-    owner = np.repeat(np.arange(rows.size), count)
-    offset = np.arange(owner.size) - np.repeat(np.cumsum(count) - count, count)
-    q = order[np.repeat(first, count) + offset]
-    qc = cols[owner]
+    del items
+    # the (entry, class) pairs in entry order, laid out as the rows of a CSR matrix: the
+    # pairs of entry i are indptr[i]:indptr[i + 1] (built in place: this runs over every
+    # wet item-stage, the largest arrays of the fit)
+    indptr = np.zeros(rows.size + 1, dtype=np.int64)
+    np.cumsum(count, out=indptr[1:])
+    q = np.repeat(first - indptr[:-1], count)
+    del first
+    q += np.arange(q.size)
+    q = order[q]
+    del order
+    qc = np.repeat(cols, count)
     per = stats.perimeter[q, qc]
     area = stats.area[q, qc]
     if closure == "strip":
@@ -761,11 +769,19 @@ def _entry_conveyance(stats: ClassStats, rows: np.ndarray, cols: np.ndarray, *,
                          0.0)
     else:
         x = per
-    mat = sparse.csr_matrix((x, (owner, stats.cls[q])), shape=(rows.size, stats.n_classes))
-    if closure == "strip" or composite == "lotter":
+    del qc
+    lumped_sums = not (closure == "strip" or composite == "lotter")
+    if lumped_sums:  # before the matrix, which may reorder x (= per) in place
+        owner = np.repeat(np.arange(rows.size), count)
+        a_tot = np.bincount(owner, weights=area, minlength=rows.size)
+        p_tot = np.bincount(owner, weights=per, minlength=rows.size)
+        del owner
+    del per, area
+    mat = sparse.csr_matrix((x, stats.cls[q], indptr), shape=(rows.size, stats.n_classes))
+    del q, x
+    mat.sum_duplicates()  # canonical: classes in order within each entry
+    if not lumped_sums:
         return lambda n: k * (mat @ (1.0 / np.asarray(n, dtype=float)))
-    a_tot = np.bincount(owner, weights=area, minlength=rows.size)
-    p_tot = np.bincount(owner, weights=per, minlength=rows.size)
     expo, power = (1.5, 2.0 / 3.0) if composite == "horton_einstein" else (2.0, 0.5)
     wet = (p_tot > 0) & (a_tot > 0)
     safe_p = np.where(wet, p_tot, 1.0)
@@ -849,6 +865,30 @@ def fit_class_n(
         start_ratio = float(np.exp(np.sum(w[rows, cols] * np.log(res.ratio[rows, cols]))
                                    / np.sum(w[rows, cols])))
         x0 = np.clip(x0 + np.log(start_ratio), lo + 1e-12, hi - 1e-12)
+    ratio, item_mismatch = res.ratio, res.mismatch.sum(axis=1)
+    del res, kt0, ks
+
+    # spread per class (at n carried over: it does not depend on the fit), computed
+    # before the fit so that the (item, stage) arrays are freed before the solver's own
+    share = target_stats.class_share()
+    p10 = np.full(n_cls, np.nan)
+    p50 = np.full(n_cls, np.nan)
+    p90 = np.full(n_cls, np.nan)
+    items = np.bincount(target_stats.cls[target_stats.extent > 0], minlength=n_cls)
+    weight_p = w[target_stats.item] * share[:, None]  # (n_pairs, n_stages)
+    wsum = np.bincount(target_stats.cls, weights=weight_p.sum(axis=1), minlength=n_cls)
+    total_w = weight_p.sum()
+    weight_share = wsum / total_w if total_w > 0 else np.zeros(n_cls)
+    mismatch = np.bincount(target_stats.cls, weights=item_mismatch[target_stats.item],
+                           minlength=n_cls).astype(int)
+    order = np.argsort(target_stats.cls, kind="stable")
+    bounds = np.searchsorted(target_stats.cls[order], np.arange(n_cls + 1))
+    for c in range(n_cls):  # loop over classes
+        sel = order[bounds[c]:bounds[c + 1]]
+        if sel.size:
+            p10[c], p50[c], p90[c] = weighted_quantile(
+                ratio[target_stats.item[sel]].ravel(), weight_p[sel].ravel(), [0.1, 0.5, 0.9])
+    del weight_p, ratio, w, both
 
     def full_n(x_free: np.ndarray) -> np.ndarray:
         x = x0.copy()
@@ -857,6 +897,7 @@ def fit_class_n(
 
     kt_at = _entry_conveyance(target_stats, rows, cols, closure=closure, composite=composite,
                               k=k)
+    del rows, cols
 
     def residual(x_free: np.ndarray) -> np.ndarray:
         val = kt_at(full_n(x_free))
@@ -865,33 +906,13 @@ def fit_class_n(
 
     success, cost = True, 0.0
     n_target = n_source.copy()
-    if free.size and rows.size:
+    if free.size and sqrt_w.size:
         sol = least_squares(residual, x0[free], bounds=(lo[free], hi[free]), method="trf",
                             x_scale=1.0, xtol=1e-12, ftol=1e-12, gtol=1e-12, max_nfev=200)
         n_target = full_n(sol.x)
         n_target[~present] = n_source[~present]
         success, cost = bool(sol.success), float(sol.cost)
 
-    # spread per class
-    share = target_stats.class_share()
-    ratio_p = res.ratio[target_stats.item]              # (n_pairs, n_stages)
-    weight_p = w[target_stats.item] * share[:, None]
-    mism_p = res.mismatch[target_stats.item]
-    p10 = np.full(n_cls, np.nan)
-    p50 = np.full(n_cls, np.nan)
-    p90 = np.full(n_cls, np.nan)
-    items = np.bincount(target_stats.cls[target_stats.extent > 0], minlength=n_cls)
-    wsum = np.bincount(target_stats.cls, weights=weight_p.sum(axis=1), minlength=n_cls)
-    total_w = weight_p.sum()
-    weight_share = wsum / total_w if total_w > 0 else np.zeros(n_cls)
-    mismatch = np.bincount(target_stats.cls, weights=mism_p.sum(axis=1), minlength=n_cls).astype(int)
-    order = np.argsort(target_stats.cls, kind="stable")
-    bounds = np.searchsorted(target_stats.cls[order], np.arange(n_cls + 1))
-    for c in range(n_cls):  # loop over classes
-        sel = order[bounds[c]:bounds[c + 1]]
-        if sel.size:
-            p10[c], p50[c], p90[c] = weighted_quantile(ratio_p[sel].ravel(), weight_p[sel].ravel(),
-                                                        [0.1, 0.5, 0.9])
     flags: list[list[str]] = []
     for c in range(n_cls):
         f: list[str] = []

@@ -428,3 +428,37 @@ def test_fit_flags():
     fit = fit_class_n(ks, st, np.array([0.03, 0.04]), outside_range=np.array([True, False]))
     assert "few_faces" in fit.flags[0] and "outside_published_range" in fit.flags[0]
     assert "outside_published_range" not in fit.flags[1]
+
+
+@pytest.mark.parametrize("closure, composite", [
+    ("lumped", "horton_einstein"), ("lumped", "pavlovskii"), ("lumped", "lotter"),
+    ("strip", "horton_einstein"),
+])
+def test_fit_residual_conveyance_is_the_conveyance_at_the_fit_entries(closure, composite):
+    # the fit evaluates K only at the wet (item, stage) entries, from sums built once; it
+    # must be the conveyance of the whole table at those entries (same operations per
+    # entry, so equal to round-off), for items holding one to three classes in any order
+    from ntrans.translate import _entry_conveyance
+
+    rng = np.random.default_rng(7)
+    n_items, n_classes, n_stages = 400, 4, 5
+    item = np.concatenate([np.full(k, i) for i, k in
+                           enumerate(rng.integers(1, 4, n_items))])
+    cls = np.concatenate([rng.choice(n_classes, np.count_nonzero(item == i), replace=False)
+                          for i in range(n_items)])
+    shuffle = rng.permutation(item.size)
+    item, cls = item[shuffle], cls[shuffle]
+
+    def table():
+        t = rng.random((item.size, n_stages))
+        t[rng.random(t.shape) < 0.2] = 0.0  # dry pairs
+        return t
+
+    stats = ClassStats(item, cls, n_items, n_classes, rng.random(item.size), table(),
+                       table(), table(), table())
+    rows = np.sort(rng.choice(n_items, 300))  # repeated items allowed
+    cols = rng.integers(0, n_stages, rows.size)
+    n = 0.02 + 0.05 * rng.random(n_classes)
+    whole = conveyance(stats, n, closure=closure, composite=composite)[rows, cols]
+    at = _entry_conveyance(stats, rows, cols, closure=closure, composite=composite, k=1.0)(n)
+    np.testing.assert_allclose(at, whole, rtol=1e-13, atol=0)
