@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import distributed  # noqa: F401
 
-from . import engine, tables  # noqa: F401
+from . import engine, mesh  # noqa: F401  (the tile and face-block code; not the job's)
 from ._kernels import warm_up
 
 warm_up()
