@@ -19,8 +19,10 @@ Pipelines:
   floor            read the DEM + one numpy sort of all pixels
 
 Seconds are measured inside the subprocess around the pipeline call (imports excluded,
-Dask cluster start-up included); cpu_s is user + system time of the subprocess and its
-reaped children (os.wait4).  Peak memory is the larger of the subprocess's ru_maxrss and
+Dask cluster start-up included); cpu_s is user + system time of the subprocess and all
+its descendants: the larger of what os.wait4 reports (the subprocess and the children it
+reaped) and the sum of the last sampled CPU time of every process in its tree (psutil,
+every 50 ms), which also counts Dask workers forked by a server process.  Peak memory is the larger of the subprocess's ru_maxrss and
 the largest sampled sum of resident memory over the subprocess and all its descendants
 (psutil, every 50 ms; counts the Dask workers, may double-count shared pages).
 """
@@ -150,16 +152,20 @@ def _run_pipeline(name: str, job: dict, run_dir: Path, timeout: float) -> dict:
     )
     parent = psutil.Process(proc.pid)
     peak_tree = 0
+    cpu_seen: dict[tuple[int, float], float] = {}  # (pid, start time) -> last CPU seconds
     timed_out = False
     while True:
         pid, status, usage = os.wait4(proc.pid, os.WNOHANG)
         if pid != 0:
             break
         try:
-            rss = parent.memory_info().rss
-            for child in parent.children(recursive=True):
+            rss = 0
+            for member in [parent, *parent.children(recursive=True)]:
                 try:
-                    rss += child.memory_info().rss
+                    with member.oneshot():
+                        rss += member.memory_info().rss
+                        times = member.cpu_times()
+                        cpu_seen[(member.pid, member.create_time())] = times.user + times.system
                 except psutil.Error:
                     pass
             peak_tree = max(peak_tree, rss)
@@ -173,7 +179,7 @@ def _run_pipeline(name: str, job: dict, run_dir: Path, timeout: float) -> dict:
     proc.returncode = os.waitstatus_to_exitcode(status)
     log.close()
     outcome = {"pipeline": name, "returncode": proc.returncode, "wall_s": wall,
-               "cpu_s": usage.ru_utime + usage.ru_stime,
+               "cpu_s": max(usage.ru_utime + usage.ru_stime, sum(cpu_seen.values())),
                "maxrss_mb": usage.ru_maxrss / 1024.0, "tree_peak_mb": peak_tree / 2**20}
     outcome["peak_mb"] = max(outcome["maxrss_mb"], outcome["tree_peak_mb"])
     result_path = Path(job["result"])
