@@ -242,19 +242,9 @@ def _run_threads(fn, shared, tasks, threads: int, max_in_flight: int | None) -> 
     yielded, so memory stays bounded by a few tiles.  On an error or an early stop the
     tasks not yet started are cancelled and the running ones finish before this returns.
     """
-    limit = max_in_flight or 2 * threads
-    pending: deque = deque()
     with ThreadPoolExecutor(threads, thread_name_prefix="ntrans-tiles") as pool:
-        try:
-            for task in tasks:
-                pending.append(pool.submit(fn, shared, task))
-                if len(pending) >= limit:
-                    yield pending.popleft().result()
-            while pending:
-                yield pending.popleft().result()
-        finally:
-            for future in pending:
-                future.cancel()
+        yield from _in_order(lambda task: pool.submit(fn, shared, task), tasks,
+                             max_in_flight or 2 * threads)
 
 
 def _run_own_connection(fn, shared, tasks, workers, scheduler, max_in_flight) -> Iterator[Any]:
@@ -267,10 +257,22 @@ def _run_dask(fn, shared, tasks, client, max_in_flight) -> Iterator[Any]:
     limit = max_in_flight or 4 * n_workers
     log.info("running tiles on %d Dask worker(s)", n_workers)
     shared_future = client.scatter(shared, broadcast=True)
+    try:
+        yield from _in_order(lambda task: client.submit(fn, shared_future, task, pure=False),
+                             tasks, limit)
+    finally:
+        del shared_future
+
+
+def _in_order(submit: Callable[[Any], Any], tasks: Iterable[Any], limit: int) -> Iterator[Any]:
+    """Results of ``submit(task)`` futures in task order, at most ``limit`` not yet taken.
+
+    On an error or an early stop the futures not yet taken are cancelled.
+    """
     pending: deque = deque()
     try:
         for task in tasks:
-            pending.append(client.submit(fn, shared_future, task, pure=False))
+            pending.append(submit(task))
             if len(pending) >= limit:
                 yield pending.popleft().result()
         while pending:
@@ -278,4 +280,3 @@ def _run_dask(fn, shared, tasks, client, max_in_flight) -> Iterator[Any]:
     finally:
         for future in pending:
             future.cancel()
-        del shared_future
