@@ -346,11 +346,7 @@ def make_tasks(
         local = np.concatenate([tile.cells, tile.halo])
         fv = None if field_values is None else np.asarray(field_values, dtype=float)[local]
         if face_cell_a is None or tile.faces.size == 0:
-            if as_wkb:
-                yield _task_from_wkb(tile, polygons[local], fv, no_lines, _NO_INDEX, _NO_INDEX,
-                                     _NO_LENGTH)
-            else:
-                yield TileTask(tile, polygons[local], fv)
+            yield build(tile, polygons[local], fv, no_lines, _NO_INDEX, _NO_INDEX, _NO_LENGTH)
             continue
         # global cell index -> local index (own cells then halo), by binary search
         sorter = np.argsort(local, kind="stable")
