@@ -102,7 +102,7 @@ def _connect(workers: int | None, scheduler: str | None) -> tuple[Any, Any]:
         if method == "spawn" and "forkserver" in multiprocessing.get_all_start_methods():
             config["distributed.worker.multiprocessing-method"] = "forkserver"
         with dask.config.set(config):
-            if config.get("distributed.worker.multiprocessing-method") == "forkserver":
+            if dask.config.get("distributed.worker.multiprocessing-method") == "forkserver":
                 _preload_forkserver()
             cluster = LocalCluster(
                 n_workers=int(workers),
