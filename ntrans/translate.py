@@ -278,6 +278,7 @@ class _StepTable:
         pair, b = pair[order], b[order]
         self.order = order
         a_s = a[order]
+        self.a_sorted = a_s
         self.start = np.searchsorted(pair, np.arange(n_pairs), side="left")
         self.end = np.searchsorted(pair, np.arange(n_pairs), side="right")
         self.shift, self.pref = _restarted_prefix([a_s, bed[order], a_s * b], pair, self.start,
@@ -285,9 +286,21 @@ class _StepTable:
         self.pair0 = self.pref[self.start + self.shift]  # prefix before each pair's rows
         self.keys = _SortedKeys(pair, b)
 
-    def query(self, pair: np.ndarray, eta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """(wet plan area, wet bed area, volume) of ``pair`` at ``eta``; 0 where not finite."""
+    def query(self, pair: np.ndarray, eta: np.ndarray, *,
+              strip: bool = False) -> tuple[np.ndarray, ...]:
+        """(wet plan area, wet bed area, volume) of ``pair`` at ``eta``; 0 where not finite.
+
+        ``strip=True`` adds a fourth array: the sum of a h^(5/3) over the pair's wet pixels
+        (h = eta - z).  It has no closed form, so it is summed pixel by pixel, but over the
+        wet pixels only: they are a prefix of the pair's sorted pixels.
+        """
+        from ._kernels import strip_station_sums
+
         wet, bed, vol = (np.zeros(eta.size) for _ in range(3))
+        h53 = np.zeros(eta.size) if strip else None
+        if strip:
+            no_ramp = np.zeros(self.a_sorted.size)
+            every = np.ones(self.a_sorted.size, dtype=bool)
         ok = np.flatnonzero(np.isfinite(eta))
         for i0 in range(0, ok.size, _QUERY_CHUNK):
             idx = ok[i0:i0 + _QUERY_CHUNK]
@@ -300,7 +313,11 @@ class _StepTable:
             wet[idx] = np.where(dry, 0.0, s[:, 0])
             bed[idx] = np.where(dry, 0.0, s[:, 1])
             vol[idx] = np.where(dry, 0.0, np.maximum(e * s[:, 0] - s[:, 2], 0.0))
-        return wet, bed, vol
+            if h53 is not None:
+                # the kernel's level term: a x^(5/3) at every breakpoint, no ramp term
+                h53[idx] = strip_station_sums(np.ascontiguousarray(e), first, pos, self.keys.b,
+                                              no_ramp, self.a_sorted, every)
+        return (wet, bed, vol) if h53 is None else (wet, bed, vol, h53)
 
 
 class _RampTable:
@@ -510,25 +527,11 @@ class CellGeometry:
             self._steps = _StepTable(self.inv, self._z, self._a, self._b, n_p)
         eta_p = stages[self.pair_item] if n_p else np.empty((0, n_st))
         pair = np.repeat(np.arange(n_p), n_st)
-        wet, per, area = (v.reshape(n_p, n_st) for v in self._steps.query(pair, eta_p.ravel()))
-        if strip:
-            # sum of a h^(5/3) over the wet pixels (no closed form: per pixel and stage)
-            del chunk  # one stage column at a time, in preallocated buffers
-            h53 = np.zeros((n_p, n_st))
-            cols_t = np.ascontiguousarray(stages.T)
-            h = np.empty(self._z.size)
-            c = np.empty(self._z.size)
-            for j in range(n_st):  # loop over stage columns
-                np.take(cols_t[j], self._item, out=h)
-                h -= self._z
-                np.fmax(h, 0.0, out=h)  # dry and NaN stage -> 0
-                np.cbrt(h, out=c)
-                c *= c
-                c *= h
-                c *= self._a
-                h53[:, j] = np.bincount(self.inv, weights=c, minlength=n_p)
-        else:
-            h53 = np.full(wet.shape, np.nan)
+        del chunk
+        # sum of a h^(5/3) over the wet pixels (no closed form: per pixel and stage)
+        out = self._steps.query(pair, eta_p.ravel(), strip=strip)
+        wet, per, area = (v.reshape(n_p, n_st) for v in out[:3])
+        h53 = out[3].reshape(n_p, n_st) if strip else np.full(wet.shape, np.nan)
         return ClassStats(self.pair_item, self.pair_cls, self.n_items, self.n_classes,
                           self.extent, wet, per, area, h53)
 

@@ -462,3 +462,31 @@ def test_fit_residual_conveyance_is_the_conveyance_at_the_fit_entries(closure, c
     whole = conveyance(stats, n, closure=closure, composite=composite)[rows, cols]
     at = _entry_conveyance(stats, rows, cols, closure=closure, composite=composite, k=1.0)(n)
     np.testing.assert_allclose(at, whole, rtol=1e-13, atol=0)
+
+
+def test_cell_strip_sums_are_the_per_pixel_sums():
+    # definition (METHODS.md conveyance form): per (cell, class) pair and stage, the sum
+    # over the pair's pixels of a max(eta - z, 0)^(5/3); summed over the wet pixels only,
+    # in elevation order, so equal to round-off (1e-12 relative).  Covers NaN pixels, a
+    # NaN stage, a pixel exactly at the stage (dry), dropped pixels (class -1)
+    rng = np.random.default_rng(3)
+    n_pix, n_items, n_classes = 2000, 40, 3
+    item = rng.integers(0, n_items, n_pix)
+    z = rng.uniform(0.0, 5.0, n_pix)
+    z[rng.random(n_pix) < 0.02] = np.nan
+    area = rng.uniform(0.5, 1.5, n_pix)
+    cls = rng.integers(-1, n_classes, n_pix)
+    geom = CellGeometry(item, z, area, area * 1.1, cls, n_items, n_classes)
+    stages = rng.uniform(-1.0, 6.0, (n_items, 4))
+    stages[0, 1] = np.nan
+    ok0 = np.flatnonzero(np.isfinite(z) & (cls >= 0))
+    stages[item[ok0[0]], 2] = z[ok0[0]]  # exactly at a pixel
+    st = geom.stats(stages)
+    expected = np.zeros(st.strip.shape)
+    for pair, (i, c) in enumerate(zip(st.item, st.cls)):
+        sel = (item == i) & (cls == c) & np.isfinite(z)
+        for j in range(stages.shape[1]):
+            h = np.fmax(stages[i, j] - z[sel], 0.0)
+            expected[pair, j] = np.sum(area[sel] * h ** (5.0 / 3.0))
+    np.testing.assert_allclose(st.strip, expected, rtol=1e-12, atol=1e-12)
+    assert st.strip[st.item == 0][:, 1].tolist() == [0.0] * int(np.sum(st.item == 0))
