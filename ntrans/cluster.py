@@ -14,6 +14,7 @@ read its inputs and build its mesh meanwhile; the job then passes the connection
 
 from __future__ import annotations
 
+import functools
 import logging
 import multiprocessing
 from collections import deque
@@ -256,12 +257,13 @@ def _run_dask(fn, shared, tasks, client, max_in_flight) -> Iterator[Any]:
     n_workers = max(len(client.scheduler_info().get("workers", {})), 1)
     limit = max_in_flight or 4 * n_workers
     log.info("running tiles on %d Dask worker(s)", n_workers)
-    shared_future = client.scatter(shared, broadcast=True)
+    # the partial holds the only reference to the scattered data: released with it
+    submit = functools.partial(client.submit, fn, client.scatter(shared, broadcast=True),
+                               pure=False)
     try:
-        yield from _in_order(lambda task: client.submit(fn, shared_future, task, pure=False),
-                             tasks, limit)
+        yield from _in_order(submit, tasks, limit)
     finally:
-        del shared_future
+        del submit
 
 
 def _in_order(submit: Callable[[Any], Any], tasks: Iterable[Any], limit: int) -> Iterator[Any]:

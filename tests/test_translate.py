@@ -483,7 +483,7 @@ def test_cell_strip_sums_are_the_per_pixel_sums():
     stages[item[ok0[0]], 2] = z[ok0[0]]  # exactly at a pixel
     st = geom.stats(stages)
     expected = np.zeros(st.strip.shape)
-    for pair, (i, c) in enumerate(zip(st.item, st.cls)):
+    for pair, (i, c) in enumerate(zip(st.item, st.cls, strict=True)):
         sel = (item == i) & (cls == c) & np.isfinite(z)
         for j in range(stages.shape[1]):
             h = np.fmax(stages[i, j] - z[sel], 0.0)
