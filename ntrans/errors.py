@@ -82,3 +82,7 @@ class RoughnessRangeWarning(NtransWarning):
 
 class DryWetMismatchWarning(NtransWarning):
     """Items wet in one model family and dry in the other were left out of a fit."""
+
+
+class MemoryEstimateWarning(NtransWarning):
+    """A job is expected to need more memory than the machine has available."""

@@ -1,4 +1,4 @@
-"""Give freed memory back to the operating system between the phases of a job.
+"""Memory between the phases of a job: give freed memory back, tell what is available.
 
 Reading a mesh and building its faces create and free millions of small geometry
 objects; the C allocator keeps the freed space in the process, where it counts towards
@@ -36,3 +36,16 @@ def release_free_memory() -> bool:
         return False
     libc.malloc_trim(0)
     return True
+
+
+def available_memory() -> int | None:
+    """Bytes the operating system can still give to programs (Linux ``MemAvailable``);
+    None where this is not known."""
+    try:
+        with open("/proc/meminfo", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except (OSError, ValueError, IndexError):
+        return None
+    return None

@@ -258,3 +258,30 @@ def test_scheduler_same_result(channel_case, tmp_path):
     a = pd.read_parquet(tmp_path / "local" / "face_adjustment.parquet")
     b = pd.read_parquet(tmp_path / "dask" / "face_adjustment.parquet")
     pd.testing.assert_frame_equal(a, b)
+
+
+@pytest.mark.parametrize("available, warns", [(10_000, True), (10**13, False), (None, False)])
+def test_warns_up_front_when_memory_looks_short(flat_case, tmp_path, monkeypatch, available,
+                                               warns):
+    import ntrans.adjust as adjust_module
+    from ntrans.errors import MemoryEstimateWarning
+
+    monkeypatch.setattr(adjust_module, "available_memory", lambda: available)
+    dem, cells = flat_case
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        adjust_roughness(dem, cells, out=tmp_path / "out", n=0.03, depths="0.5,1,2",
+                         source="flat", target="subgrid", closure="lumped")
+    memory = [w for w in caught if issubclass(w.category, MemoryEstimateWarning)]
+    assert len(memory) == int(warns)
+    if warns:
+        # one sentence saying what to change; the job still runs (an estimate, not a limit)
+        assert "window stages (--depths / --stages)" in str(memory[0].message)
+        assert (tmp_path / "out" / "n_by_class.csv").exists()
+
+
+def test_available_memory_is_a_positive_byte_count_or_unknown():
+    from ntrans.memory import available_memory
+
+    value = available_memory()
+    assert value is None or value > 0
