@@ -139,7 +139,7 @@ class WorkerConnection:
 
     def n_workers(self) -> int:
         """Workers the scheduler knows of now (at least 1; waits for the start-up)."""
-        return max(len(self.client.scheduler_info().get("workers", {})), 1)
+        return _n_workers(self.client)
 
     @property
     def client(self) -> Any:
@@ -253,8 +253,13 @@ def _run_own_connection(fn, shared, tasks, workers, scheduler, max_in_flight) ->
         yield from _run_dask(fn, shared, tasks, connection.client, max_in_flight)
 
 
+def _n_workers(client: Any) -> int:
+    """Workers a Dask client's scheduler knows of now (at least 1)."""
+    return max(len(client.scheduler_info().get("workers", {})), 1)
+
+
 def _run_dask(fn, shared, tasks, client, max_in_flight) -> Iterator[Any]:
-    n_workers = max(len(client.scheduler_info().get("workers", {})), 1)
+    n_workers = _n_workers(client)
     limit = max_in_flight or 4 * n_workers
     log.info("running tiles on %d Dask worker(s)", n_workers)
     # the partial holds the only reference to the scattered data: released with it

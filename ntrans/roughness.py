@@ -157,7 +157,7 @@ def class_index_on_window(model: RoughnessModel, transform: Any, shape: tuple[in
             return out
         with _IN_MEMORY_RASTER_LOCK:
             reproject(
-                source=model.raster.astype(np.int32),
+                source=np.asarray(model.raster, dtype=np.int32),  # no copy: int32 already
                 destination=out,
                 src_transform=model.raster_transform,
                 src_crs=model.raster_crs if model.raster_crs is not None else crs,
