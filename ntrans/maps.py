@@ -200,8 +200,9 @@ def write_face_layer(path: str | os.PathLike[str], faces: Any, values: pd.DataFr
     layer = layer.sort_values(face_id, kind="mergesort").reset_index(drop=True)
     if p.exists():
         p.unlink()
-    layer.to_file(p, layer="faces", driver="GPKG")
-    return p
+    from .outputs import write_geopackage
+
+    return write_geopackage(layer, p, "faces")
 
 
 # --------------------------------------------------------------------------- quick-looks

@@ -17,13 +17,14 @@ import os
 import secrets
 import shutil
 from collections import deque
-from collections.abc import Iterable, Mapping
+from collections.abc import Iterable, Iterator, Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
 from types import TracebackType
 from typing import Any
 
 import numpy as np
+import pandas as pd
 import pyarrow as pa
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
@@ -467,25 +468,99 @@ def write_geopackage(
 ) -> Path:
     """Write a GeoDataFrame as one layer of a GeoPackage (created or appended to).
 
-    Rows go in chunks of ``chunk_rows`` (appended to the layer), so the encoded geometry
-    of only one chunk is in memory at a time.  Chunks are large because every appended
-    row also updates the layer's spatial index one by one, while a first write builds it
-    in one pass.
+    The rows stream to GDAL in batches of ``chunk_rows`` within one write, so the
+    encoded geometry of only one batch is in memory at a time, and the layer's spatial
+    index is built once at the end (appending batch by batch would update it row by
+    row: about twice the time for 500,000 cells).  The layer type is taken from all
+    rows: a mix of single and multi parts (``Polygon`` and ``MultiPolygon``) is written
+    as the multi type.
     """
+    import pyogrio.raw
+
     target = Path(os.fspath(path))
     try:
-        # the Arrow path writes whole columns at once (about twice as fast)
-        for start in range(0, max(len(frame), 1), chunk_rows):
-            frame.iloc[start:start + chunk_rows].to_file(
-                target, layer=layer, driver="GPKG", engine="pyogrio", use_arrow=True,
-                mode="a" if start else "w",
-            )
-    except Exception as exc:  # pyogrio / GDAL errors
+        geometry_type, promote = _layer_geometry_type(frame.geometry.to_numpy())
+        batches = _geopackage_batches(frame, chunk_rows=max(int(chunk_rows), 1), promote=promote)
+        first = next(batches)
+        stream = pa.RecordBatchReader.from_batches(first.schema, _chain_first(first, batches))
+        crs = frame.crs
+        epsg = crs.to_epsg() if crs is not None else None
+        pyogrio.raw.write_arrow(
+            stream, os.fspath(target), layer=layer, driver="GPKG",
+            geometry_name=frame.geometry.name, geometry_type=geometry_type,
+            crs=None if crs is None else (f"EPSG:{epsg}" if epsg else crs.to_wkt("WKT1_GDAL")),
+            append=target.exists(),
+        )
+    except Exception as exc:  # pyogrio / GDAL / Arrow errors
         raise OutputError(
             f"GeoPackage '{target}' layer '{layer}' cannot be written ({exc}); check the output "
             "folder"
         ) from exc
     return target
+
+
+#: GDAL layer type per shapely type id (a linear ring is written as a line string)
+_GDAL_TYPE = {0: "Point", 1: "LineString", 2: "LineString", 3: "Polygon", 4: "MultiPoint",
+              5: "MultiLineString", 6: "MultiPolygon", 7: "GeometryCollection"}
+_MULTI_OF = {"Point": "MultiPoint", "LineString": "MultiLineString", "Polygon": "MultiPolygon"}
+
+
+def _layer_geometry_type(geometry: np.ndarray) -> tuple[str, bool]:
+    """(GDAL layer geometry type, promote single parts to multi) for a geometry array."""
+    import shapely
+
+    present = geometry[~shapely.is_missing(geometry)]
+    names = {_GDAL_TYPE[int(k)] for k in np.unique(shapely.get_type_id(present))}
+    promote = False
+    if len(names) == 1:
+        kind = names.pop()
+    elif len(names) == 2 and any(names == {single, multi} for single, multi in _MULTI_OF.items()):
+        kind, promote = max(names, key=len), True
+    else:
+        kind = "Unknown"
+    if kind != "Unknown" and present.size and bool(shapely.has_z(present).any()):
+        kind += " Z"
+    return kind, promote
+
+
+def _geopackage_batches(frame: Any, *, chunk_rows: int, promote: bool) -> Iterator[pa.RecordBatch]:
+    """Arrow record batches of ``frame`` with its geometry as WKB, ``chunk_rows`` at a time."""
+    import shapely
+
+    geometry_name = frame.geometry.name
+    attributes = pd.DataFrame(frame.drop(columns=geometry_name), copy=False)
+    schema: pa.Schema | None = None
+    for start in range(0, max(len(frame), 1), chunk_rows):
+        part = attributes.iloc[start:start + chunk_rows]
+        geometry = frame.geometry.to_numpy()[start:start + chunk_rows]
+        if promote:
+            geometry = _promoted(geometry)
+        table = pa.Table.from_pandas(part, preserve_index=False)
+        table = table.append_column(geometry_name, pa.array(shapely.to_wkb(geometry), pa.binary()))
+        if schema is None:
+            # GDAL has no null type: a column with no values in the first batch is text
+            schema = pa.schema([f.with_type(pa.string()) if pa.types.is_null(f.type) else f
+                                for f in table.schema]).remove_metadata()
+        yield from table.cast(schema).to_batches()
+
+
+def _promoted(geometry: np.ndarray) -> np.ndarray:
+    """Single-part geometries as one-part multi geometries (others unchanged)."""
+    import shapely
+
+    out = geometry.copy()
+    type_id = shapely.get_type_id(geometry)
+    for single, make in ((0, shapely.multipoints), (1, shapely.multilinestrings),
+                         (3, shapely.multipolygons)):
+        pick = np.flatnonzero(type_id == single)
+        if pick.size:
+            out[pick] = make(geometry[pick][:, None], axis=1)
+    return out
+
+
+def _chain_first(first: pa.RecordBatch, rest: Iterator[pa.RecordBatch]) -> Iterator[pa.RecordBatch]:
+    yield first
+    yield from rest
 
 
 # --------------------------------------------------------------------------- units

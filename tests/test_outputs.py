@@ -305,6 +305,41 @@ def test_write_geopackage_in_chunks_keeps_every_row(tmp_path: Path, chunk_rows) 
     assert len(gpd.read_file(path, layer="other")) == 3  # the first layer is kept
 
 
+@pytest.mark.parametrize("chunk_rows", [2, 100])
+def test_write_geopackage_layer_type_from_all_rows(tmp_path: Path, chunk_rows) -> None:
+    """Single and multi polygons in one layer: written as multi, whichever batch has them
+    (GDAL's layer type is one per layer; pyogrio's own rule promotes a mix to multi)."""
+    import geopandas as gpd
+    import pyogrio
+
+    squares = list(grid_polygons(4, 1, 2.0))
+    geometry = squares[:3] + [shapely.MultiPolygon([squares[3], shapely.box(20, 0, 22, 2)])]
+    frame = gpd.GeoDataFrame({"cell_id": np.arange(4), "flags": [None, None, "a", "b"]},
+                             geometry=geometry, crs="EPSG:32633")
+    path = write_geopackage(frame, tmp_path / "m.gpkg", "cells", chunk_rows=chunk_rows)
+    info = pyogrio.read_info(path, layer="cells")
+    assert info["geometry_type"] == "MultiPolygon"
+    assert info["features"] == 4
+    assert info["capabilities"]["fast_spatial_filter"]  # the spatial index is there
+    back = gpd.read_file(path, layer="cells")
+    # a column with no value in the first batch is still text, values kept
+    assert back["flags"].tolist()[2:] == ["a", "b"]
+    assert back["flags"].isna().tolist()[:2] == [True, True]
+    # promotion to one-part multi polygons keeps the shapes
+    assert all(shapely.equals(back.geometry.to_numpy(), frame.geometry.to_numpy()))
+
+
+def test_write_geopackage_lines_keep_their_type(tmp_path: Path) -> None:
+    import geopandas as gpd
+    import pyogrio
+
+    lines = gpd.GeoDataFrame({"face_id": np.arange(3)},
+                             geometry=[shapely.LineString([(0, i), (1, i)]) for i in range(3)],
+                             crs="EPSG:32633")
+    path = write_geopackage(lines, tmp_path / "f.gpkg", "faces", chunk_rows=2)
+    assert pyogrio.read_info(path, layer="faces")["geometry_type"] == "LineString"
+
+
 # --------------------------------------------------------------------------- units
 
 CONTRACT_COLUMNS = [  # DESIGN.md section 4
