@@ -1,6 +1,6 @@
 """Tiles: which cells and faces go together, which DEM window they need, where they run.
 
-A *tile* is a group of cells binned by the location of their centroid on a grid of
+A *tile* is a group of cells binned by the centre of their bounding box on a grid of
 ``tile_size`` x ``tile_size`` DEM pixels, together with the faces whose ``cell_a`` is one
 of those cells and one DEM window that covers all of them plus a margin of
 :data:`MARGIN` pixels (the 3x3 slope stencil and the bilinear profile sampler both
@@ -65,7 +65,7 @@ class Tile:
     ----------
     index : position in the deterministic tile order (0, 1, ...).
     key : (tile_row, tile_col) on the tile grid (may be negative for cells whose
-        centroid lies outside the DEM).
+        box centre lies outside the DEM).
     cells : global indices of the cells owned by this tile, increasing.
     halo : global indices of other tiles' cells that this tile's faces touch, increasing.
     faces : global indices of the faces owned by this tile (their ``cell_a`` is here).
@@ -139,18 +139,20 @@ def plan_tiles(
         return []
     height, width = int(shape[0]), int(shape[1])
 
-    # centroid -> tile key
-    cent = shapely.centroid(polygons)
-    cx, cy = shapely.get_x(cent), shapely.get_y(cent)
-    inv = ~transform
-    ccol = inv.a * cx + inv.b * cy + inv.c
-    crow = inv.d * cx + inv.e * cy + inv.f
-    trow = np.floor(crow / tile_size).astype(np.int64)
-    tcol = np.floor(ccol / tile_size).astype(np.int64)
-    # a cell whose centroid is not finite (empty geometry) goes to tile (0, 0)
-    bad = ~(np.isfinite(crow) & np.isfinite(ccol))
+    # bounding-box centre -> tile key (as good as the centroid for grouping neighbours,
+    # and the bounds are needed anyway: a centroid costs more than the whole plan)
+    pb_cells = _pixel_bounds(shapely.bounds(polygons), transform)
+    ccol = 0.5 * (pb_cells[:, 0] + pb_cells[:, 2])
+    crow = 0.5 * (pb_cells[:, 1] + pb_cells[:, 3])
+    with np.errstate(invalid="ignore"):
+        trow = np.floor(crow / tile_size)
+        tcol = np.floor(ccol / tile_size)
+    # a cell without a finite box (empty geometry) goes to tile (0, 0)
+    bad = ~(np.isfinite(trow) & np.isfinite(tcol))
     trow[bad] = 0
     tcol[bad] = 0
+    trow = trow.astype(np.int64)
+    tcol = tcol.astype(np.int64)
 
     order = np.lexsort((np.arange(n_cells), tcol, trow))
     keys = np.stack([trow[order], tcol[order]], axis=1)
@@ -161,7 +163,6 @@ def plan_tiles(
     tile_of_cell = np.empty(n_cells, dtype=np.int64)
     tile_of_cell[order] = tile_of_sorted
     n_tiles = starts.size
-    pb_cells = _pixel_bounds(shapely.bounds(polygons), transform)
 
     # faces: owner tile = tile of cell_a; halo = cell_b in another tile
     if face_cell_a is not None and len(face_cell_a) > 0:

@@ -739,6 +739,10 @@ def _check_overlaps(geoms: np.ndarray, ids: np.ndarray, tolerance: float) -> Non
         )
 
 
+#: vector formats whose text is UTF-8 by specification
+_UTF8_VECTOR_SUFFIXES = frozenset({".gpkg", ".fgb", ".geojson", ".json"})
+
+
 def read_cells(
     path: str | os.PathLike[str],
     *,
@@ -789,8 +793,12 @@ def read_cells(
 
     text = _check_exists(path, "cells")
     chosen = _choose_layer(text, layer)
+    # through Arrow: about a third faster on large layers; only for formats whose text is
+    # UTF-8 by their specification (a Shapefile's may be in any code page)
+    use_arrow = Path(text).suffix.lower() in _UTF8_VECTOR_SUFFIXES
     try:
-        frame = gpd.read_file(text, layer=chosen, engine="pyogrio", fid_as_index=True)
+        frame = gpd.read_file(text, layer=chosen, engine="pyogrio", fid_as_index=True,
+                              use_arrow=use_arrow)
     except Exception as exc:  # pyogrio / GDAL errors of every kind
         raise InputFileError(
             f"cells file '{text}' cannot be read ({_reason(exc, text)}); give a GeoPackage, "
@@ -852,7 +860,9 @@ def read_cells(
             f"cells {_name_list(ids[bad])} have coordinates that cannot be placed in the DEM's "
             "CRS; check the layer's CRS"
         )
-    geoms = _repair(geoms, ids)
+    repaired = _repair(geoms, ids)
+    if repaired is not geoms:  # repaired cells may have changed their bounds
+        geoms, bounds = repaired, shapely.bounds(repaired)
     zero = shapely.area(geoms) <= 0
     if zero.any():
         raise GeometryError(
@@ -870,7 +880,6 @@ def read_cells(
     # over the DEM: interiors meet its extent.  Bounds settle most cells; the exact
     # predicates run only where a cell's bounding box crosses the extent's border
     left, bottom, right, top = dem.bounds
-    bounds = shapely.bounds(geoms)
     inside = ((bounds[:, 0] > left) & (bounds[:, 2] < right)
               & (bounds[:, 1] > bottom) & (bounds[:, 3] < top))
     apart = ((bounds[:, 2] <= left) | (bounds[:, 0] >= right)

@@ -290,6 +290,22 @@ def test_read_cells_formats(tmp_path: Path, tmp_dem: Path, suffix: str) -> None:
     assert all(shapely.equals(cells.geometry, grid_polygons(3, 3, 10.0)))
 
 
+def test_read_cells_shapefile_not_in_utf8(tmp_path: Path, tmp_dem: Path) -> None:
+    """A Windows-1252 Shapefile without its .cpg loads with its text intact: Shapefiles
+    are read without Arrow, which would pass the bytes on as invalid UTF-8."""
+    import geopandas as gpd
+
+    path = tmp_path / "c.shp"
+    names = ["Müller", "Ødegård"] + ["x"] * 7
+    gpd.GeoDataFrame({"cell_id": range(1, 10), "owner": names},
+                     geometry=grid_polygons(3, 3, 10.0), crs="EPSG:32633").to_file(
+        path, engine="pyogrio", encoding="cp1252")
+    path.with_suffix(".cpg").unlink()
+    cells = read_cells(path, dem=open_dem(tmp_dem))
+    np.testing.assert_array_equal(cells.ids, np.arange(1, 10))
+    assert list(cells.frame["owner"])[:2] == ["Müller", "Ødegård"]
+
+
 def test_read_cells_flatgeobuf_spatial_index(tmp_path: Path, tmp_dem: Path) -> None:
     """An indexed FlatGeobuf returns features in index order: ids stay with their polygon."""
     import geopandas as gpd
