@@ -631,8 +631,11 @@ def run_task_from_path(
     are left there as Arrow IPC files (:class:`SpilledRows`) instead of travelling back
     through the scheduler's connections.
     """
+    from .inputs import rasters_kept_open_by_this_process
+
     dem = _open_cached(str(dem_path), open_kwargs)
-    out = run_task_local(dem, task, settings)
+    with rasters_kept_open_by_this_process():  # neighbouring tiles share DEM blocks
+        out = run_task_local(dem, task, settings)
     if spill_dir is not None:
         for key in ("cell_rows", "face_rows"):
             if key in out:

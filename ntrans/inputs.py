@@ -169,31 +169,51 @@ class _OpenRasters:
 
     GDAL datasets must not be used by two threads at once, so every thread that reads
     (the job's own, a tile thread) gets its own handle; all are closed when the block
-    that opened the session ends.
+    that opened the session ends.  A handle is reopened when the file at its path is no
+    longer the one it was opened on (replaced or rewritten: another inode, size or
+    modification time), so a long-lived session never reads a stale file.
     """
 
     def __init__(self) -> None:
         self._lock = threading.Lock()
-        self._by_key: dict[tuple[int, str], Any] = {}
+        self._by_key: dict[tuple[int, str], tuple[Any, tuple[int, ...] | None]] = {}
 
     def get(self, path: str) -> Any:
         key = (threading.get_ident(), path)
-        src = self._by_key.get(key)
-        if src is None:
-            src = rasterio.open(path)
-            with self._lock:
-                self._by_key[key] = src
+        stamp = _file_stamp(path)
+        held = self._by_key.get(key)
+        if held is not None and held[1] == stamp:
+            return held[0]
+        src = rasterio.open(path)
+        with self._lock:
+            self._by_key[key] = (src, stamp)
+        if held is not None:
+            held[0].close()
         return src
+
+    def handles(self) -> list[Any]:
+        with self._lock:
+            return [src for src, _ in self._by_key.values()]
 
     def close(self) -> None:
         with self._lock:
-            handles, self._by_key = list(self._by_key.values()), {}
+            handles, self._by_key = [src for src, _ in self._by_key.values()], {}
         for src in handles:
             src.close()
 
 
+def _file_stamp(path: str) -> tuple[int, ...] | None:
+    """Identity of the file at ``path`` (device, inode, size, mtime); None if not a file."""
+    try:
+        st = os.stat(path)
+    except (OSError, ValueError):  # a GDAL virtual path (/vsicurl/...) or a URL
+        return None
+    return (st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns)
+
+
 _session: _OpenRasters | None = None
 _session_lock = threading.Lock()
+_process_session: _OpenRasters | None = None  # see rasters_kept_open_by_this_process
 
 
 @contextlib.contextmanager
@@ -226,9 +246,27 @@ def rasters_kept_open() -> Iterator[None]:
             session.close()
 
 
+@contextlib.contextmanager
+def rasters_kept_open_by_this_process() -> Iterator[None]:
+    """Like :func:`rasters_kept_open`, for a process that serves many jobs (a Dask worker).
+
+    The handles stay open after the block ends, for the next task of any job, so a
+    worker decodes each compressed block of the DEM once instead of once per tile
+    window; a file replaced or rewritten at the same path is reopened (see
+    :class:`_OpenRasters`).  The block cache is bounded by :data:`RASTER_CACHE_BYTES` as
+    in a job.  A job's own session, when one is open in this process, takes precedence.
+    """
+    global _process_session
+    with _session_lock:
+        if _process_session is None:
+            _process_session = _OpenRasters()
+    with rasterio.Env(GDAL_CACHEMAX=RASTER_CACHE_BYTES):
+        yield
+
+
 def _read_window(path: str, window: Window) -> np.ndarray:
     """Band 1 in ``window`` as float64, NaN where GDAL's mask says the pixel is invalid."""
-    session = _session
+    session = _session or _process_session
     if session is None:
         with rasterio.open(path) as src:
             return _valid_float64(src, window)

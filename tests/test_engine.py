@@ -318,7 +318,7 @@ def test_rasters_kept_open_give_each_thread_its_own_handle(mesh):
         with ThreadPoolExecutor(3) as pool:
             reads = list(pool.map(read_twice, range(3)))
         session = inputs._session
-        handles = list(session._by_key.values())
+        handles = session.handles()
         assert len(handles) == 3  # one handle per reading thread, not per read
         with inputs.rasters_kept_open():  # nested (any thread): the outer block owns them
             assert inputs._session is session

@@ -703,3 +703,41 @@ def test_cells_with_z_coordinates_are_read_in_plan(tmp_path):
     b = read_cells(write_cells(tmp_path / "f.gpkg", flat), dem=dem)
     assert not shapely.has_z(a.geometry).any()
     assert shapely.equals_exact(a.geometry, b.geometry, tolerance=0).all()
+
+
+# --------------------------------------------------------------------------- raster sessions
+
+
+@pytest.mark.parametrize("change", ["replace", "rewrite in place"])
+def test_process_session_keeps_handles_and_never_reads_a_stale_file(
+    tmp_path: Path, monkeypatch, change
+) -> None:
+    """A worker keeps the DEM open across tasks (one handle for many reads), yet a DEM
+    replaced or rewritten at the same path is read afresh, not from the old handle."""
+    import os
+    import time
+
+    import ntrans.inputs as inputs
+
+    monkeypatch.setattr(inputs, "_process_session", None)
+    path = write_dem(tmp_path / "dem.tif", np.full((20, 20), 1.0))
+    info = open_dem(path)
+    for _ in range(2):  # two tasks
+        with inputs.rasters_kept_open_by_this_process():
+            np.testing.assert_array_equal(info.read_window(0, 0, 5, 5), 1.0)
+    session = inputs._process_session
+    first = session.handles()
+    assert len(first) == 1 and not first[0].closed  # kept after the block ended
+
+    if change == "replace":
+        write_dem(tmp_path / "new.tif", np.full((20, 20), 2.0))
+        os.replace(tmp_path / "new.tif", path)
+    else:
+        time.sleep(0.01)  # a new modification time even on coarse clocks
+        with rasterio.open(path, "r+") as dst:
+            dst.write(np.full((1, 20, 20), 2.0, dtype="float32"))
+        os.utime(path, ns=(time.time_ns(), time.time_ns() + 10**9))
+    with inputs.rasters_kept_open_by_this_process():
+        np.testing.assert_array_equal(info.read_window(0, 0, 5, 5), 2.0)
+    assert first[0].closed and len(session.handles()) == 1  # the stale handle was closed
+    session.close()
