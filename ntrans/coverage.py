@@ -88,7 +88,15 @@ def _edges(geoms: np.ndarray, transform: Affine, rows: int, cols: int):
     """
     x0, y0 = transform.c, transform.f
     x1, y1 = x0 + transform.a * cols, y0 + transform.e * rows
-    clipped = shapely.clip_by_rect(geoms, min(x0, x1), min(y0, y1), max(x0, x1), max(y0, y1))
+    rect = (min(x0, x1), min(y0, y1), max(x0, x1), max(y0, y1))
+    # tile windows are made to hold their polygons: clip only those reaching out of it
+    box = shapely.bounds(geoms)
+    with np.errstate(invalid="ignore"):
+        inside = ((box[:, 0] >= rect[0]) & (box[:, 1] >= rect[1])
+                  & (box[:, 2] <= rect[2]) & (box[:, 3] <= rect[3]))
+    clipped = np.array(geoms, dtype=object, copy=True)
+    if not inside.all():
+        clipped[~inside] = shapely.clip_by_rect(geoms[~inside], *rect)
     idx = np.arange(geoms.size)
     # explode multi-part results (possibly nested in collections) down to polygons
     for _ in range(3):
@@ -99,10 +107,16 @@ def _edges(geoms: np.ndarray, transform: Affine, rows: int, cols: int):
         idx = idx[pos]
     keep = (shapely.get_type_id(clipped) == 3) & ~shapely.is_empty(clipped)
     parts, part_item = clipped[keep], idx[keep]
-    rings, ring_part = shapely.get_rings(parts, return_index=True)
-    exterior = np.ones(rings.size, dtype=bool)
-    exterior[1:] = ring_part[1:] != ring_part[:-1]
-    xy, coord_ring = shapely.get_coordinates(rings, return_index=True)
+    # coordinates with ring and polygon offsets, without a Python object per ring
+    if parts.size:
+        _, xy, (ring_offsets, part_offsets) = shapely.to_ragged_array(parts)
+    else:
+        xy, ring_offsets, part_offsets = np.empty((0, 2)), np.zeros(1, np.int64), np.zeros(1, np.int64)
+    n_rings = ring_offsets.size - 1
+    ring_part = np.repeat(np.arange(parts.size), np.diff(part_offsets))
+    exterior = np.zeros(n_rings, dtype=bool)
+    exterior[part_offsets[:-1][np.diff(part_offsets) > 0]] = True
+    coord_ring = np.repeat(np.arange(n_rings), np.diff(ring_offsets))
     u = (xy[:, 0] - x0) / transform.a
     v = (xy[:, 1] - y0) / transform.e
     same = coord_ring[:-1] == coord_ring[1:]
@@ -110,13 +124,13 @@ def _edges(geoms: np.ndarray, transform: Affine, rows: int, cols: int):
     u0, v0 = u[:-1][same], v[:-1][same]
     u1, v1 = u[1:][same], v[1:][same]
     # signed area per ring (shoelace, about the ring's first vertex for precision)
-    first = np.zeros(rings.size, dtype=np.int64)
+    first = np.zeros(n_rings, dtype=np.int64)
     if e_ring.size:
         starts = np.flatnonzero(np.r_[True, e_ring[1:] != e_ring[:-1]])
         first[e_ring[starts]] = starts
     ur, vr = u0[first[e_ring]], v0[first[e_ring]]
     cross = (u0 - ur) * (v1 - vr) - (u1 - ur) * (v0 - vr)
-    area2 = np.bincount(e_ring, weights=cross, minlength=rings.size)
+    area2 = np.bincount(e_ring, weights=cross, minlength=n_rings)
     # deposits below assume exteriors with negative shoelace area in (u, v)
     ring_sign = np.where(exterior, -np.sign(area2), np.sign(area2))
     sign = ring_sign[e_ring]

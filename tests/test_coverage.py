@@ -149,6 +149,23 @@ def test_polygon_partly_outside_window():
     np.testing.assert_allclose(got, want, atol=ROUND_OFF)
 
 
+def test_inside_on_the_border_and_across_it_against_brute_force():
+    """Polygons wholly inside the window are used as they are, the others clipped: one
+    inside, one with edges on the window's border, one across it with a hole cut by it,
+    and a two-part polygon with a part outside all match the pixel-by-pixel overlay."""
+    transform, shape = Affine(1.0, 0.0, 0.0, 0.0, -1.0, 6.0), (6, 6)
+    inside = shapely.Polygon([(1.2, 1.1), (3.7, 1.4), (2.5, 4.3)])
+    on_border = shapely.box(0.0, 0.0, 6.0, 2.5)
+    across = shapely.Polygon([(4.5, 3.0), (8.0, 3.0), (8.0, 7.0), (4.5, 7.0)],
+                             holes=[[(5.5, 5.0), (6.5, 5.0), (6.5, 6.5), (5.5, 6.5)]])
+    two_parts = shapely.MultiPolygon([shapely.box(0.3, 4.2, 1.7, 5.6), shapely.box(7, 7, 8, 8)])
+    polys = [inside, on_border, across, two_parts]
+    w = exact_coverage(polys, transform, shape)
+    # geometry identity: shapely overlay per pixel
+    np.testing.assert_allclose(dense(w, len(polys), shape), brute_force(polys, transform, shape),
+                               atol=ROUND_OFF)
+
+
 def test_polygon_outside_window_and_empty_items():
     transform, shape = Affine(1.0, 0.0, 0.0, 0.0, -1.0, 3.0), (3, 3)
     polys = [shapely.box(10, 10, 11, 11), None, shapely.Polygon(), shapely.box(0, 0, 1, 1)]
