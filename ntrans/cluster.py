@@ -262,9 +262,13 @@ def _run_dask(fn, shared, tasks, client, max_in_flight) -> Iterator[Any]:
     n_workers = _n_workers(client)
     limit = max_in_flight or 4 * n_workers
     log.info("running tiles on %d Dask worker(s)", n_workers)
-    # the partial holds the only reference to the scattered data: released with it
-    submit = functools.partial(client.submit, fn, client.scatter(shared, broadcast=True),
-                               pure=False)
+    # the partial holds the only reference to the scattered data: released with it.  A
+    # fresh key every time (hash=False): a tuple is scattered item by item, and with
+    # content keys a pass sharing an item with the previous pass (adjust's job) got the
+    # same key, which the previous pass's release could then remove under it; its tasks
+    # failed with "lost dependencies" (about one run in three of a two-pass test)
+    submit = functools.partial(client.submit, fn,
+                               client.scatter(shared, broadcast=True, hash=False), pure=False)
     try:
         yield from _in_order(submit, tasks, limit)
     finally:

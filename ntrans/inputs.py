@@ -171,24 +171,35 @@ class _OpenRasters:
     (the job's own, a tile thread) gets its own handle; all are closed when the block
     that opened the session ends.  A handle is reopened when the file at its path is no
     longer the one it was opened on (replaced or rewritten: another inode, size or
-    modification time), so a long-lived session never reads a stale file.
+    modification time), so a long-lived session never reads a stale file.  With
+    ``max_per_thread`` a thread keeps at most that many paths open, closing the ones it
+    used least recently (a worker that serves job after job on other rasters).
     """
 
-    def __init__(self) -> None:
+    def __init__(self, max_per_thread: int | None = None) -> None:
         self._lock = threading.Lock()
         self._by_key: dict[tuple[int, str], tuple[Any, tuple[int, ...] | None]] = {}
+        self._max_per_thread = max_per_thread
 
     def get(self, path: str) -> Any:
-        key = (threading.get_ident(), path)
+        thread = threading.get_ident()
+        key = (thread, path)
         stamp = _file_stamp(path)
-        held = self._by_key.get(key)
-        if held is not None and held[1] == stamp:
-            return held[0]
+        with self._lock:
+            held = self._by_key.pop(key, None)
+            if held is not None and held[1] == stamp:
+                self._by_key[key] = held  # most recently used last
+                return held[0]
         src = rasterio.open(path)
+        stale = [] if held is None else [held[0]]
         with self._lock:
             self._by_key[key] = (src, stamp)
-        if held is not None:
-            held[0].close()
+            if self._max_per_thread is not None:
+                mine = [k for k in self._by_key if k[0] == thread]
+                for old in mine[:max(len(mine) - self._max_per_thread, 0)]:
+                    stale.append(self._by_key.pop(old)[0])
+        for handle in stale:  # only this thread's handles: no other thread is reading them
+            handle.close()
         return src
 
     def handles(self) -> list[Any]:
@@ -214,6 +225,8 @@ def _file_stamp(path: str) -> tuple[int, ...] | None:
 _session: _OpenRasters | None = None
 _session_lock = threading.Lock()
 _process_session: _OpenRasters | None = None  # see rasters_kept_open_by_this_process
+PROCESS_RASTERS_PER_THREAD = 4
+"""Rasters a worker thread keeps open between tasks (least recently used closed first)."""
 
 
 @contextlib.contextmanager
@@ -259,7 +272,7 @@ def rasters_kept_open_by_this_process() -> Iterator[None]:
     global _process_session
     with _session_lock:
         if _process_session is None:
-            _process_session = _OpenRasters()
+            _process_session = _OpenRasters(max_per_thread=PROCESS_RASTERS_PER_THREAD)
     with rasterio.Env(GDAL_CACHEMAX=RASTER_CACHE_BYTES):
         yield
 

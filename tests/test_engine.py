@@ -38,16 +38,21 @@ def test_every_cell_in_exactly_one_tile(tile_size):
     assert keys == sorted(keys)
 
 
-def test_tile_membership_by_centroid():
+def test_tile_membership_by_box_centre():
     polys = np.array(grid_polygons(8, 8, 5.0), dtype=object)
     tiles = plan_tiles(polys, T40, (40, 40), tile_size=10)
-    # 4 x 4 tiles of 10 px; centroid (2.5 + 5i, 2.5 + 5j) -> column bin (5i + 2.5) // 10
+    # 4 x 4 tiles of 10 px; box centre (2.5 + 5i, 2.5 + 5j) -> column bin (5i + 2.5) // 10
     assert len(tiles) == 16
     for t in tiles:
-        cent = shapely.centroid(polys[t.cells])
+        cent = shapely.centroid(shapely.envelope(polys[t.cells]))
         cols = np.floor(shapely.get_x(cent) / 10)
         rows = np.floor((40 - shapely.get_y(cent)) / 10)
         assert np.all(cols == t.key[1]) and np.all(rows == t.key[0])
+    # an L whose centroid (x 7.5) and box centre (x 10.5) fall in different tiles
+    ell = shapely.Polygon([(1, 1), (20, 1), (20, 3), (3, 3), (3, 20), (1, 20)])
+    assert shapely.centroid(ell).x < 10 < shapely.centroid(shapely.envelope(ell)).x
+    (tile,) = plan_tiles(np.array([ell], dtype=object), T40, (40, 40), tile_size=10)
+    assert tile.key == (2, 1)  # box centre (10.5, 10.5): row (40 - 10.5) // 10, col 10.5 // 10
 
 
 def test_window_covers_cells_plus_margin_and_is_clipped():
@@ -426,3 +431,48 @@ def test_run_tile_is_pure_on_arrays():
     # geometry identity: 4 pixels of 1 m2 under 1 m (cell 0 at stage 1) or 2 m of water
     np.testing.assert_allclose(rows["volume"], [4.0, 8.0, 0.0, 4.0])
     np.testing.assert_allclose(rows["wet_area"], [4.0, 4.0, 0.0, 4.0])
+
+
+class _Payload:
+    """Data two passes share (tokenised by content, like a job object)."""
+
+    def __init__(self, values):
+        self.values = values
+
+    def __dask_tokenize__(self):
+        return ("payload", self.values)
+
+
+def _scaled(shared, task):
+    kind, payload, factor = shared
+    return task * factor + payload.values[0]
+
+
+def test_passes_sharing_scattered_data_back_to_back():
+    """Pass after pass over the same shared item on one connection: every result comes
+    back.  With content keys, a pass scattered its shared items under the keys the
+    previous pass was releasing, and its tasks could fail with lost dependencies."""
+    from distributed import Client, LocalCluster
+
+    from ntrans.cluster import run_ordered
+
+    payload = _Payload((7,))
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=False,
+                      dashboard_address=":0") as cluster, Client(cluster):
+        connection = _ClientConnection(cluster)
+        for repeat in range(40):
+            factor = repeat % 3 + 1
+            got = list(run_ordered(_scaled, ("pass", payload, factor), range(5),
+                                   connection=connection))
+            assert got == [t * factor + 7 for t in range(5)]
+
+
+class _ClientConnection:
+    """The part of WorkerConnection run_ordered uses, over an existing cluster."""
+
+    local = True
+
+    def __init__(self, cluster):
+        from distributed import Client
+
+        self.client = Client(cluster)

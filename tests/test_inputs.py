@@ -741,3 +741,24 @@ def test_process_session_keeps_handles_and_never_reads_a_stale_file(
         np.testing.assert_array_equal(info.read_window(0, 0, 5, 5), 2.0)
     assert first[0].closed and len(session.handles()) == 1  # the stale handle was closed
     session.close()
+
+
+def test_process_session_keeps_a_few_rasters_per_thread(tmp_path: Path, monkeypatch) -> None:
+    """A worker serving job after job on other rasters keeps only the most recently used
+    few open; reading a closed one again reopens it."""
+    import ntrans.inputs as inputs
+
+    monkeypatch.setattr(inputs, "_process_session", None)
+    monkeypatch.setattr(inputs, "PROCESS_RASTERS_PER_THREAD", 2)
+    infos = [open_dem(write_dem(tmp_path / f"d{k}.tif", np.full((8, 8), float(k))))
+             for k in range(3)]
+    for k in (0, 1, 0, 2):  # d1 is then the least recently used
+        with inputs.rasters_kept_open_by_this_process():
+            np.testing.assert_array_equal(infos[k].read_window(0, 0, 2, 2), float(k))
+    session = inputs._process_session
+    kept = {Path(src.name).name for src in session.handles()}
+    assert kept == {"d0.tif", "d2.tif"}
+    with inputs.rasters_kept_open_by_this_process():
+        np.testing.assert_array_equal(infos[1].read_window(0, 0, 2, 2), 1.0)
+    assert {Path(src.name).name for src in session.handles()} == {"d2.tif", "d1.tif"}
+    session.close()
