@@ -11,6 +11,7 @@
 
 from __future__ import annotations
 
+import itertools
 import json
 import logging
 import os
@@ -482,7 +483,7 @@ def write_geopackage(
         geometry_type, promote = _layer_geometry_type(frame.geometry.to_numpy())
         batches = _geopackage_batches(frame, chunk_rows=max(int(chunk_rows), 1), promote=promote)
         first = next(batches)
-        stream = pa.RecordBatchReader.from_batches(first.schema, _chain_first(first, batches))
+        stream = pa.RecordBatchReader.from_batches(first.schema, itertools.chain([first], batches))
         crs = frame.crs
         epsg = crs.to_epsg() if crs is not None else None
         pyogrio.raw.write_arrow(
@@ -559,11 +560,6 @@ def _promoted(geometry: np.ndarray) -> np.ndarray:
         if pick.size:
             out[pick] = make(geometry[pick][:, None], axis=1)
     return out
-
-
-def _chain_first(first: pa.RecordBatch, rest: Iterator[pa.RecordBatch]) -> Iterator[pa.RecordBatch]:
-    yield first
-    yield from rest
 
 
 # --------------------------------------------------------------------------- units
