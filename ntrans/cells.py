@@ -96,8 +96,11 @@ def _sort_by_item_z(
     zmin = np.minimum.reduceat(zs, starts)
     span = np.maximum.reduceat(zs, starts) - zmin
     levels = float((1 << z_bits) - 1)
-    with np.errstate(invalid="ignore", divide="ignore"):
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
         scale = np.where(span > 0, levels / np.where(span > 0, span, 1.0), 0.0)
+    # a span too small to scale (subnormal) gets one level; the exact repair below
+    # orders its elevations
+    scale[~np.isfinite(scale)] = 0.0
     if n_items <= n:  # look up per item (cheaper than repeating per group)
         zmin_i, scale_i = np.zeros(n_items), np.zeros(n_items)
         zmin_i[it[starts]], scale_i[it[starts]] = zmin, scale

@@ -337,6 +337,23 @@ def test_sort_by_item_z_is_exact_for_any_key_width(n_items):
     np.testing.assert_array_equal(item[order], it)
 
 
+def test_sort_by_item_z_with_subnormal_spans():
+    """Items whose elevations differ by subnormal amounts (levels / span overflows):
+    still sorted exactly, without overflow or invalid-cast warnings."""
+    import warnings
+
+    from ntrans.cells import _sort_by_item_z
+
+    item = np.array([0, 0, 0, 1, 1, 2, 2])
+    z = np.array([5e-324, 0.0, 1e-310, 1.0, 1.0 + 2**-52, 3e-320, 1e-321])
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        order, it, zs = _sort_by_item_z(item, z, 3)
+    ref = np.lexsort((z, item))
+    np.testing.assert_array_equal(zs, z[ref])
+    np.testing.assert_array_equal(it, item[ref])
+
+
 @pytest.mark.parametrize("median", [True, False])
 def test_terrain_summary_median_only_on_request(median):
     s = cell_terrain_summary([0, 0, 0, 1], [3.0, 1.0, 2.0, np.nan], [1.0, 1.0, 2.0, 1.0], 2,
