@@ -588,8 +588,17 @@ def _face_part(task, elevation, transform, settings, flat_z):
 # --------------------------------------------------------------------------- running
 
 
+def _dem_by_path(path: str, open_kwargs: tuple):
+    """The DEM's description for a worker, opened once per file version: a file
+    replaced or rewritten at the same path is described afresh (shape, transform,
+    nodata), as its handle is reopened (:func:`ntrans.inputs.file_stamp`)."""
+    from .inputs import file_stamp
+
+    return _open_cached(path, open_kwargs, file_stamp(path))
+
+
 @functools.lru_cache(maxsize=4)
-def _open_cached(path: str, open_kwargs: tuple):
+def _open_cached(path: str, open_kwargs: tuple, stamp: tuple | None):
     from .inputs import open_dem
 
     return open_dem(path, **dict(open_kwargs))
@@ -633,7 +642,7 @@ def run_task_from_path(
     """
     from .inputs import rasters_kept_open_by_this_process
 
-    dem = _open_cached(str(dem_path), open_kwargs)
+    dem = _dem_by_path(str(dem_path), open_kwargs)
     with rasters_kept_open_by_this_process():  # neighbouring tiles share DEM blocks
         out = run_task_local(dem, task, settings)
     if spill_dir is not None:

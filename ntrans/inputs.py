@@ -184,7 +184,7 @@ class _OpenRasters:
     def get(self, path: str) -> Any:
         thread = threading.get_ident()
         key = (thread, path)
-        stamp = _file_stamp(path)
+        stamp = file_stamp(path)
         with self._lock:
             held = self._by_key.pop(key, None)
             if held is not None and held[1] == stamp:
@@ -213,7 +213,7 @@ class _OpenRasters:
             src.close()
 
 
-def _file_stamp(path: str) -> tuple[int, ...] | None:
+def file_stamp(path: str) -> tuple[int, ...] | None:
     """Identity of the file at ``path`` (device, inode, size, mtime); None if not a file."""
     try:
         st = os.stat(path)

@@ -480,8 +480,10 @@ def write_geopackage(
 
     target = Path(os.fspath(path))
     try:
-        geometry_type, promote = _layer_geometry_type(frame.geometry.to_numpy())
-        batches = _geopackage_batches(frame, chunk_rows=max(int(chunk_rows), 1), promote=promote)
+        geometry = frame.geometry.to_numpy()
+        geometry_type, promote = _layer_geometry_type(geometry)
+        batches = _geopackage_batches(frame, geometry, chunk_rows=max(int(chunk_rows), 1),
+                                      promote=promote)
         first = next(batches)
         stream = pa.RecordBatchReader.from_batches(first.schema, itertools.chain([first], batches))
         crs = frame.crs
@@ -524,13 +526,13 @@ def _layer_geometry_type(geometry: np.ndarray) -> tuple[str, bool]:
     return kind, promote
 
 
-def _geopackage_batches(frame: Any, *, chunk_rows: int, promote: bool) -> Iterator[pa.RecordBatch]:
+def _geopackage_batches(frame: Any, all_geometry: np.ndarray, *, chunk_rows: int,
+                        promote: bool) -> Iterator[pa.RecordBatch]:
     """Arrow record batches of ``frame`` with its geometry as WKB, ``chunk_rows`` at a time."""
     import shapely
 
     geometry_name = frame.geometry.name
     columns = [c for c in frame.columns if c != geometry_name]
-    all_geometry = frame.geometry.to_numpy()
     schema: pa.Schema | None = None
     for start in range(0, max(len(frame), 1), chunk_rows):
         # one batch's attributes at a time (no copy of the whole table)

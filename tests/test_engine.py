@@ -476,3 +476,20 @@ class _ClientConnection:
         from distributed import Client
 
         self.client = Client(cluster)
+
+
+def test_worker_describes_a_replaced_dem_afresh(tmp_path):
+    """Workers cache the DEM's description per file version: a DEM replaced at the same
+    path with another size and origin is described as it is now, not as it was."""
+    import os
+
+    from ntrans.engine import _dem_by_path
+
+    path = write_dem(tmp_path / "dem.tif", np.zeros((10, 12)))
+    first = _dem_by_path(str(path), ())
+    assert _dem_by_path(str(path), ()) is first  # cached while the file is the same
+    write_dem(tmp_path / "new.tif", np.zeros((20, 8)), origin=(100.0, 50.0))
+    os.replace(tmp_path / "new.tif", path)
+    again = _dem_by_path(str(path), ())
+    assert again.shape == (20, 8) and first.shape == (10, 12)
+    assert again.transform != first.transform
