@@ -736,14 +736,62 @@ def _repair(geoms: np.ndarray, ids: np.ndarray) -> np.ndarray:
     return out
 
 
+def _edges_not_shared(geoms: np.ndarray) -> np.ndarray:
+    """Per polygon: True where one of its edges is not shared exactly with one other polygon.
+
+    Rings are oriented (exteriors counter-clockwise, holes clockwise), so in a valid
+    coverage every interior edge appears twice, once in each direction, with the same
+    two end points.  An edge alone (the mesh's outer border, a hanging node, a gap, an
+    overlap), twice in the same direction, or more than twice flags its polygons.  Across
+    an edge shared that way the number of polygons covering a point does not change, so
+    every region covered twice is bordered by edges of flagged polygons.
+    """
+    flagged = np.zeros(geoms.size, dtype=bool)
+    if geoms.size == 0:
+        return flagged
+    kind, coords, offsets = shapely.to_ragged_array(geoms)
+    ring_start = offsets[0]
+    part_rings = offsets[1]
+    geom_parts = offsets[2] if len(offsets) > 2 else np.arange(geoms.size + 1)
+    n_rings = ring_start.size - 1
+    ring_part = np.repeat(np.arange(part_rings.size - 1), np.diff(part_rings))
+    ring_geom = np.repeat(np.arange(geom_parts.size - 1), np.diff(geom_parts))[ring_part]
+    exterior = np.arange(n_rings) == part_rings[ring_part]
+    # one edge per coordinate except each ring's closing one
+    edge_ring = np.repeat(np.arange(n_rings), np.maximum(np.diff(ring_start) - 1, 0))
+    first = np.ones(coords.shape[0], dtype=bool)
+    first[ring_start[1:] - 1] = False
+    start = np.flatnonzero(first[:-1]) if coords.shape[0] else np.empty(0, np.int64)
+    x0, y0 = coords[start, 0] + 0.0, coords[start, 1] + 0.0  # + 0.0: -0.0 becomes 0.0
+    x1, y1 = coords[start + 1, 0] + 0.0, coords[start + 1, 1] + 0.0
+    twice_area = np.bincount(edge_ring, weights=x0 * y1 - x1 * y0, minlength=n_rings)
+    flip = ((twice_area > 0) != exterior)[edge_ring]
+    x0, y0, x1, y1 = (np.where(flip, x1, x0), np.where(flip, y1, y0),
+                      np.where(flip, x0, x1), np.where(flip, y0, y1))
+    # each edge as its two end points in (x, y) order, and whether it runs that way
+    forward = (x0 < x1) | ((x0 == x1) & (y0 <= y1))
+    ax, ay = np.where(forward, x0, x1), np.where(forward, y0, y1)
+    bx, by = np.where(forward, x1, x0), np.where(forward, y1, y0)
+    order = np.lexsort((by, bx, ay, ax))
+    ax, ay, bx, by, forward = ax[order], ay[order], bx[order], by[order], forward[order]
+    new = np.ones(order.size, dtype=bool)
+    new[1:] = (ax[1:] != ax[:-1]) | (ay[1:] != ay[:-1]) | (bx[1:] != bx[:-1]) | (by[1:] != by[:-1])
+    group = np.cumsum(new) - 1
+    size = np.bincount(group)
+    ahead = np.bincount(group, weights=forward)
+    good = (size == 2) & (ahead == 1)
+    flagged[ring_geom[edge_ring[order[~good[group]]]]] = True
+    return flagged
+
+
 def _check_overlaps(geoms: np.ndarray, ids: np.ndarray, tolerance: float) -> None:
     """Raise if two cells share more than ``tolerance`` of the smaller one's area.
 
     Vectorised screens, cheapest first: STRtree pairs with touching bounding boxes; pairs
     whose bounding-box overlap is already within the tolerance cannot overlap beyond it
-    (this clears structured and quadtree meshes); a coverage check flags polygons whose
-    edges are not shared exactly (a valid subset of a coverage stays valid, and only a pair
-    holding a flagged polygon can overlap); then interiors are tested and areas computed.
+    (this clears structured and quadtree meshes); polygons whose edges are all shared
+    exactly with their neighbours (:func:`_edges_not_shared`) are cleared, so only pairs
+    holding a flagged polygon go on; then interiors are tested and areas computed.
     """
     if geoms.size < 2:
         return
@@ -761,12 +809,8 @@ def _check_overlaps(geoms: np.ndarray, ids: np.ndarray, tolerance: float) -> Non
     if i.size == 0:
         return
     involved = np.unique(np.concatenate([i, j]))
-    try:
-        edges = shapely.coverage_invalid_edges(geoms[involved])
-        flagged = np.zeros(geoms.size, dtype=bool)
-        flagged[involved] = ~shapely.is_empty(edges)
-    except Exception:  # older GEOS without coverage validation: test every pair
-        flagged = np.ones(geoms.size, dtype=bool)
+    flagged = np.zeros(geoms.size, dtype=bool)
+    flagged[involved] = _edges_not_shared(geoms[involved])
     keep = flagged[i] | flagged[j]
     i, j = i[keep], j[keep]
     if i.size == 0:

@@ -497,6 +497,44 @@ def test_read_cells_non_conforming_mesh(tmp_path: Path, tmp_dem: Path) -> None:
         read_cells(write_cells(tmp_path / "b.gpkg", polys), dem=dem)
 
 
+def _grid3() -> list:
+    """A 3 x 3 grid of 10 m squares; the centre one (index 4) has only shared edges."""
+    return [shapely.box(10 * c, 10 * r, 10 * c + 10, 10 * r + 10)
+            for r in range(3) for c in range(3)]
+
+
+@pytest.mark.parametrize(
+    "case, flagged",
+    [
+        ("grid", {0, 1, 2, 3, 5, 6, 7, 8}),  # the outer border is not shared
+        ("centre reversed", {0, 1, 2, 3, 5, 6, 7, 8}),  # ring direction does not matter
+        ("centre duplicated", set(range(10))),  # each edge three times
+        ("centre split", set(range(10))),  # hanging nodes: no exact partner
+        ("hole filled", {0}),  # a hole filled by a cell is shared like any edge
+        ("multipart", {0, 1, 2, 3, 5, 6, 7, 8}),  # a one-part MultiPolygon is read the same
+    ],
+)
+def test_edges_not_shared(case: str, flagged: set) -> None:
+    """Geometry identity: in a coverage every interior edge appears twice, once per direction."""
+    from ntrans.inputs import _edges_not_shared
+
+    polys = _grid3()
+    if case == "centre reversed":
+        polys[4] = shapely.reverse(polys[4])
+    elif case == "centre duplicated":
+        polys.append(polys[4])
+    elif case == "centre split":
+        polys[4] = shapely.box(10, 10, 20, 15)
+        polys.append(shapely.box(10, 15, 20, 20))
+    elif case == "hole filled":
+        polys = [shapely.box(0, 0, 30, 30).difference(shapely.box(10, 10, 20, 20)),
+                 shapely.box(10, 10, 20, 20)]
+    elif case == "multipart":
+        polys[4] = shapely.MultiPolygon([polys[4]])
+    got = _edges_not_shared(np.array(polys, dtype=object))
+    assert set(np.flatnonzero(got).tolist()) == flagged
+
+
 def test_read_cells_keeps_cells_off_the_dem(tmp_path: Path, tmp_dem: Path) -> None:
     polys = [shapely.box(0, 0, 10, 10), shapely.box(25, 25, 35, 35), shapely.box(50, 50, 60, 60)]
     cells = read_cells(write_cells(tmp_path / "c.gpkg", polys), dem=open_dem(tmp_dem))
