@@ -83,8 +83,6 @@ def _run_child(job_path: Path) -> None:
     if name == "ntrans_workers":
         import dask.distributed  # noqa: F401
     if name.startswith("ntrans_"):
-        import numba  # noqa: F401  (a library import; loading the kernels is timed)
-
         import ntrans.adjust
         import ntrans.tables  # noqa: F401  (import before the clock starts)
     if name == "exactextract" or name == "rasterstats" or name == "floor":

@@ -7,7 +7,7 @@ task order, so outputs are identical whichever way they were computed.  At most
 so memory stays bounded by the tile size.
 
 :func:`connect_workers` starts the local cluster (or connects to the scheduler) in a
-background thread and warms every worker up (imports, compiled kernels), so a job can
+background thread and warms every worker up (imports of the tile code), so a job can
 read its inputs and build its mesh meanwhile; the job then passes the connection to
 :func:`run_ordered` for each of its passes.
 """
@@ -45,11 +45,8 @@ def check_where(workers: int | None, scheduler: str | None, threads: int | None 
 
 
 def _warm_worker() -> None:
-    """Import the tile code and load the compiled kernels once per worker process."""
-    from . import engine  # noqa: F401
-    from ._kernels import warm_up
-
-    warm_up()
+    """Import the tile code (and its compiled kernels) once per worker process."""
+    from . import _kernels, engine  # noqa: F401
 
 
 def _preload_forkserver() -> None:

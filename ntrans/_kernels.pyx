@@ -1,0 +1,339 @@
+# cython: language_level=3, boundscheck=False, wraparound=False, cdivision=True
+# cython: initializedcheck=False
+"""Compiled kernels (Cython) for the hot loops that numpy cannot express without sorting.
+
+Arrays in, arrays out, no Python objects inside the loops; every loop runs without the
+GIL, so tile threads and the threads of a Dask worker run them in parallel.  The module is
+compiled when the package is installed, so nothing is compiled or loaded at run time.
+
+The public functions that call these kernels (and validate their inputs) live in
+:mod:`ntrans.coverage`, :mod:`ntrans.cells`, :mod:`ntrans.terrain`,
+:mod:`ntrans.closures` and :mod:`ntrans.translate`; the definitions are documented there.
+Each kernel takes any array-like and converts it to the contiguous dtype it needs (no copy
+when it already is one).
+"""
+
+import numpy as np
+
+from libc.math cimport INFINITY, cbrt, ceil, floor, sqrt
+from libc.stdint cimport int64_t
+
+ctypedef Py_ssize_t index_t
+
+
+cdef inline index_t _floor_index(double x) noexcept nogil:
+    return <index_t>floor(x)
+
+
+cdef inline index_t _ceil_index(double x) noexcept nogil:
+    return <index_t>ceil(x)
+
+
+cdef inline void _deposit(double[::1] diff, index_t width, index_t rmin, index_t cmin,
+                          index_t rows, index_t cols, double ua, double va, double ub,
+                          double vb, double sign) noexcept nogil:
+    """Add the row deposits of one piece lying inside one pixel row band."""
+    cdef double dv = (vb - va) * sign
+    cdef double um, local
+    cdef index_t r, c, at
+    if dv == 0.0:
+        return
+    um = 0.5 * (ua + ub)
+    r = _floor_index(0.5 * (va + vb))
+    c = _floor_index(um)
+    if r < 0 or r >= rows or c >= cols:
+        return
+    if c < 0:
+        local = dv
+        c = 0
+    else:
+        local = dv * (c + 1 - um)
+    at = (r - rmin) * width + (c - cmin)
+    diff[at] += local
+    diff[at + 1] += dv - local
+
+
+cdef inline void _deposit_split_rows(double[::1] diff, index_t width, index_t rmin,
+                                     index_t cmin, index_t rows, index_t cols, double ua,
+                                     double va, double ub, double vb,
+                                     double sign) noexcept nogil:
+    """Split a piece (inside one pixel column) at the integer rows it crosses."""
+    cdef double lo = va if va < vb else vb
+    cdef double hi = vb if va < vb else va
+    cdef index_t n_cross = _ceil_index(hi) - _floor_index(lo) - 1
+    cdef double base, step, slope, pu, pv, k, ku
+    cdef index_t j
+    if n_cross <= 0:
+        _deposit(diff, width, rmin, cmin, rows, cols, ua, va, ub, vb, sign)
+        return
+    if vb > va:
+        base, step = floor(va) + 1.0, 1.0
+    else:
+        base, step = ceil(va) - 1.0, -1.0
+    slope = (ub - ua) / (vb - va)
+    pu, pv = ua, va
+    for j in range(n_cross):
+        k = base + step * j
+        ku = ua + (k - va) * slope
+        _deposit(diff, width, rmin, cmin, rows, cols, pu, pv, ku, k, sign)
+        pu, pv = ku, k
+    _deposit(diff, width, rmin, cmin, rows, cols, pu, pv, ub, vb, sign)
+
+
+cdef inline void _deposit_edge(double[::1] diff, index_t width, index_t rmin, index_t cmin,
+                               index_t rows, index_t cols, double u0, double v0, double u1,
+                               double v1, double sign) noexcept nogil:
+    """Split an edge at the integer columns, then rows, it crosses; deposit the pieces."""
+    cdef double lo = u0 if u0 < u1 else u1
+    cdef double hi = u1 if u0 < u1 else u0
+    cdef index_t n_cross = _ceil_index(hi) - _floor_index(lo) - 1
+    cdef double base, step, slope, pu, pv, k, kv
+    cdef index_t j
+    if n_cross <= 0:
+        _deposit_split_rows(diff, width, rmin, cmin, rows, cols, u0, v0, u1, v1, sign)
+        return
+    if u1 > u0:
+        base, step = floor(u0) + 1.0, 1.0
+    else:
+        base, step = ceil(u0) - 1.0, -1.0
+    slope = (v1 - v0) / (u1 - u0)
+    pu, pv = u0, v0
+    for j in range(n_cross):
+        k = base + step * j
+        kv = v0 + (k - u0) * slope
+        _deposit_split_rows(diff, width, rmin, cmin, rows, cols, pu, pv, k, kv, sign)
+        pu, pv = k, kv
+    _deposit_split_rows(diff, width, rmin, cmin, rows, cols, pu, pv, u1, v1, sign)
+
+
+cdef inline index_t _clamp(index_t x, index_t top) noexcept nogil:
+    return 0 if x < 0 else (top if x > top else x)
+
+
+def _f64(a):
+    return np.ascontiguousarray(a, dtype=np.float64)
+
+
+def _i64(a):
+    return np.ascontiguousarray(a, dtype=np.int64)
+
+
+def exact_coverage_runs(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t cols,
+                        double threshold):
+    """Covered fraction of every pixel of every item, one bounding box at a time.
+
+    ``edge_start`` (n_items + 1) delimits each item's edges (pixel units, oriented by
+    ``sign``).  Returns ``(item, row, col, fraction)`` sorted by (item, row, col):
+    fractions above ``threshold`` only, clipped to 1.
+    """
+    cdef const int64_t[::1] es = _i64(edge_start)
+    cdef const double[::1] eu0 = _f64(u0)
+    cdef const double[::1] ev0 = _f64(v0)
+    cdef const double[::1] eu1 = _f64(u1)
+    cdef const double[::1] ev1 = _f64(v1)
+    cdef const double[::1] esign = _f64(sign)
+    cdef index_t n_items = es.shape[0] - 1
+    rmin_a = np.zeros(max(n_items, 0), np.intp)
+    rmax_a = np.zeros(max(n_items, 0), np.intp)
+    cmin_a = np.zeros(max(n_items, 0), np.intp)
+    cmax_a = np.zeros(max(n_items, 0), np.intp)
+    cdef index_t[::1] rmin = rmin_a
+    cdef index_t[::1] rmax = rmax_a
+    cdef index_t[::1] cmin = cmin_a
+    cdef index_t[::1] cmax = cmax_a
+    cdef index_t capacity = 0, largest = 0, i, e, e0, e1, h, w, width, r, c, at, n = 0
+    cdef double vlo, vhi, ulo, uhi, running
+    with nogil:
+        for i in range(n_items):
+            e0, e1 = es[i], es[i + 1]
+            if e0 == e1:
+                continue
+            vlo, vhi, ulo, uhi = INFINITY, -INFINITY, INFINITY, -INFINITY
+            for e in range(e0, e1):
+                vlo = min(vlo, ev0[e], ev1[e])
+                vhi = max(vhi, ev0[e], ev1[e])
+                ulo = min(ulo, eu0[e], eu1[e])
+                uhi = max(uhi, eu0[e], eu1[e])
+            rmin[i] = _clamp(_floor_index(vlo), rows)
+            rmax[i] = _clamp(_ceil_index(vhi), rows)
+            cmin[i] = _clamp(_floor_index(ulo), cols)
+            cmax[i] = _clamp(_ceil_index(uhi), cols)
+            capacity += (rmax[i] - rmin[i]) * (cmax[i] - cmin[i])
+            largest = max(largest, (rmax[i] - rmin[i]) * (cmax[i] - cmin[i] + 2))
+
+    out_item_a = np.empty(capacity, np.int32)
+    out_row_a = np.empty(capacity, np.int32)
+    out_col_a = np.empty(capacity, np.int32)
+    out_frac_a = np.empty(capacity, np.float64)
+    diff_a = np.zeros(largest, np.float64)
+    cdef int[::1] out_item = out_item_a
+    cdef int[::1] out_row = out_row_a
+    cdef int[::1] out_col = out_col_a
+    cdef double[::1] out_frac = out_frac_a
+    cdef double[::1] diff = diff_a
+    with nogil:
+        for i in range(n_items):
+            h = rmax[i] - rmin[i]
+            w = cmax[i] - cmin[i]
+            if h <= 0 or w <= 0:
+                continue
+            width = w + 2
+            for e in range(es[i], es[i + 1]):
+                _deposit_edge(diff, width, rmin[i], cmin[i], rows, cols,
+                              eu0[e], ev0[e], eu1[e], ev1[e], esign[e])
+            for r in range(h):
+                running = 0.0
+                at = r * width
+                for c in range(w):
+                    running += diff[at + c]
+                    if running > threshold:
+                        out_item[n] = <int>i
+                        out_row[n] = <int>(rmin[i] + r)
+                        out_col[n] = <int>(cmin[i] + c)
+                        out_frac[n] = running if running < 1.0 else 1.0
+                        n += 1
+                for c in range(width):
+                    diff[at + c] = 0.0
+    return (out_item_a[:n].astype(np.int64), out_row_a[:n].astype(np.int64),
+            out_col_a[:n].astype(np.int64), out_frac_a[:n].copy())
+
+
+def item_low_high(item, z, index_t n_items):
+    """Per item: lowest and highest ``z`` (NaN for an item without entries)."""
+    cdef const int64_t[::1] it = _i64(item)
+    cdef const double[::1] zz = _f64(z)
+    low_a = np.full(n_items, np.nan)
+    high_a = np.full(n_items, np.nan)
+    cdef double[::1] low = low_a
+    cdef double[::1] high = high_a
+    cdef index_t j, i
+    with nogil:
+        for j in range(it.shape[0]):
+            i = it[j]
+            if not low[i] <= zz[j]:  # also true while low[i] is NaN
+                low[i] = zz[j]
+            if not high[i] >= zz[j]:
+                high[i] = zz[j]
+    return low_a, high_a
+
+
+def item_weighted_sums(item, z, weight, low, index_t n_items):
+    """Per item: sum of ``weight`` and of ``weight * (z - low[item])``."""
+    cdef const int64_t[::1] it = _i64(item)
+    cdef const double[::1] zz = _f64(z)
+    cdef const double[::1] ww = _f64(weight)
+    cdef const double[::1] lo = _f64(low)
+    total_a = np.zeros(n_items)
+    moment_a = np.zeros(n_items)
+    cdef double[::1] total = total_a
+    cdef double[::1] moment = moment_a
+    cdef index_t j, i
+    with nogil:
+        for j in range(it.shape[0]):
+            i = it[j]
+            total[i] += ww[j]
+            moment[i] += ww[j] * (zz[j] - lo[i])
+    return total_a, moment_a
+
+
+def stage_sums(item, z, plan, bed, low, stages_sorted, n_finite):
+    """Per item and stage: wetted plan area, wetted bed area and sum of plan x (z - low).
+
+    ``stages_sorted`` (n_items, n_stages) holds each item's stages in increasing order,
+    its ``n_finite[i]`` finite ones first.  An entry is wet at stage eta when
+    ``z < eta``.  Each entry is added once, to the bin of the first stage that wets it
+    (binary search), and the bins are then summed cumulatively, so no sort of the
+    entries is needed.  Returns three (n_items, n_stages) arrays in the sorted order.
+    """
+    cdef const int64_t[::1] it = _i64(item)
+    cdef const double[::1] zz = _f64(z)
+    cdef const double[::1] pl = _f64(plan)
+    cdef const double[::1] bd = _f64(bed)
+    cdef const double[::1] lw = _f64(low)
+    cdef const double[:, ::1] st = np.ascontiguousarray(stages_sorted, dtype=np.float64)
+    cdef const int64_t[::1] nf = _i64(n_finite)
+    cdef index_t n_items = st.shape[0], n_stages = st.shape[1]
+    wet_a = np.zeros((n_items, n_stages + 1))
+    wet_bed_a = np.zeros((n_items, n_stages + 1))
+    moment_a = np.zeros((n_items, n_stages + 1))
+    cdef double[:, ::1] wet = wet_a
+    cdef double[:, ::1] wet_bed = wet_bed_a
+    cdef double[:, ::1] moment = moment_a
+    cdef index_t j, i, k, lo, hi, mid
+    cdef double zj
+    with nogil:
+        for j in range(it.shape[0]):
+            i = it[j]
+            zj = zz[j]
+            lo, hi = 0, nf[i]
+            while lo < hi:  # first stage with eta > z
+                mid = (lo + hi) >> 1
+                if st[i, mid] > zj:
+                    hi = mid
+                else:
+                    lo = mid + 1
+            wet[i, lo] += pl[j]
+            wet_bed[i, lo] += bd[j]
+            moment[i, lo] += pl[j] * (zj - lw[i])
+        for i in range(n_items):
+            for k in range(1, n_stages):
+                wet[i, k] += wet[i, k - 1]
+                wet_bed[i, k] += wet_bed[i, k - 1]
+                moment[i, k] += moment[i, k - 1]
+    return wet_a[:, :n_stages], wet_bed_a[:, :n_stages], moment_a[:, :n_stages]
+
+
+def horn_surface_factor(zp, double x_scale, double y_scale):
+    """``sqrt(1 + zx^2 + zy^2)`` by Horn's 3x3 stencil on a grid padded by one NaN pixel.
+
+    ``x_scale`` = 1 / (8 dx), ``y_scale`` = 1 / (8 dy).  NaN wherever one of the eight
+    neighbours is NaN (the caller fills those pixels from the neighbours that exist).
+    """
+    cdef const double[:, ::1] g = np.ascontiguousarray(zp, dtype=np.float64)
+    cdef index_t rows = g.shape[0] - 2, cols = g.shape[1] - 2, r, c
+    out_a = np.empty((max(rows, 0), max(cols, 0)))
+    cdef double[:, ::1] out = out_a
+    cdef double a, b, cc, d, f, gg, h, i, zx, zy
+    with nogil:
+        for r in range(rows):
+            for c in range(cols):
+                a, b, cc = g[r, c], g[r, c + 1], g[r, c + 2]
+                d, f = g[r + 1, c], g[r + 1, c + 2]
+                gg, h, i = g[r + 2, c], g[r + 2, c + 1], g[r + 2, c + 2]
+                zx = ((cc + 2.0 * f + i) - (a + 2.0 * d + gg)) * x_scale
+                zy = ((gg + 2.0 * h + i) - (a + 2.0 * b + cc)) * y_scale
+                out[r, c] = sqrt(zx * zx + zy * zy + 1.0)
+    return out_a
+
+
+def strip_station_sums(ev, q_start, wet_end, b, c83, c53, is_level):
+    """Per query i: sum over breakpoints k in [q_start[i], wet_end[i]) of
+    ``c83[k] x^(8/3)`` plus, at level breakpoints, ``c53[k] x^(5/3)``, with
+    ``x = ev[i] - b[k]`` (> 0: the breakpoints are below the query's stage).
+    """
+    cdef const double[::1] e_ = _f64(ev)
+    cdef const int64_t[::1] qs = _i64(q_start)
+    cdef const int64_t[::1] we = _i64(wet_end)
+    cdef const double[::1] bb = _f64(b)
+    cdef const double[::1] k83 = _f64(c83)
+    cdef const double[::1] k53 = _f64(c53)
+    cdef const unsigned char[::1] lvl = np.ascontiguousarray(is_level, dtype=np.bool_).view(
+        np.uint8)
+    total_a = np.zeros(e_.shape[0])
+    cdef double[::1] total = total_a
+    cdef index_t i, k
+    cdef double e, acc, x, x2, root, v
+    with nogil:
+        for i in range(e_.shape[0]):
+            e = e_[i]
+            acc = 0.0
+            for k in range(qs[i], we[i]):
+                x = e - bb[k]
+                x2 = x * x
+                root = cbrt(x2)  # x^(2/3)
+                v = k83[k] * x2 * root
+                if lvl[k]:
+                    v += k53[k] * x * root
+                acc += v
+            total[i] = acc
+    return total_a
