@@ -259,19 +259,21 @@ def stage_sums(item, z, plan, bed, low, stages_sorted, n_finite):
     cdef double[:, ::1] wet = wet_a
     cdef double[:, ::1] wet_bed = wet_bed_a
     cdef double[:, ::1] moment = moment_a
-    cdef index_t j, i, k, lo, hi, mid
+    cdef index_t j, i, k, lo, span, half
     cdef double zj
     with nogil:
         for j in range(it.shape[0]):
             i = it[j]
             zj = zz[j]
-            lo, hi = 0, nf[i]
-            while lo < hi:  # first stage with eta > z
-                mid = (lo + hi) >> 1
-                if st[i, mid] > zj:
-                    hi = mid
-                else:
-                    lo = mid + 1
+            # first stage with eta > z: a binary search whose steps depend only on the
+            # item's stage count, so the compiler can use conditional moves, not branches
+            lo, span = 0, nf[i]
+            if span > 0:
+                while span > 1:
+                    half = span >> 1
+                    lo = lo + half if st[i, lo + half] <= zj else lo
+                    span -= half
+                lo += st[i, lo] <= zj
             wet[i, lo] += pl[j]
             wet_bed[i, lo] += bd[j]
             moment[i, lo] += pl[j] * (zj - lw[i])
