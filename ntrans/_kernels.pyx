@@ -259,21 +259,32 @@ def stage_sums(item, z, plan, bed, low, stages_sorted, n_finite):
     cdef double[:, ::1] wet = wet_a
     cdef double[:, ::1] wet_bed = wet_bed_a
     cdef double[:, ::1] moment = moment_a
-    cdef index_t j, i, k, lo, span, half
-    cdef double zj
+    # per item, a first guess of the bin from its lowest finite stage and mean spacing
+    # (exact for evenly spaced stages up to rounding); a short walk then makes it exact
+    first_a = np.zeros(n_items)
+    per_step_a = np.zeros(n_items)
+    cdef double[::1] first = first_a
+    cdef double[::1] per_step = per_step_a
+    cdef index_t j, i, k, lo, m
+    cdef double zj, guess
     with nogil:
+        for i in range(n_items):
+            m = nf[i]
+            if m > 0:
+                first[i] = st[i, 0]
+            if m > 1 and st[i, m - 1] > st[i, 0]:
+                per_step[i] = (m - 1) / (st[i, m - 1] - st[i, 0])
         for j in range(it.shape[0]):
             i = it[j]
             zj = zz[j]
-            # first stage with eta > z: a binary search whose steps depend only on the
-            # item's stage count, so the compiler can use conditional moves, not branches
-            lo, span = 0, nf[i]
-            if span > 0:
-                while span > 1:
-                    half = span >> 1
-                    lo = lo + half if st[i, lo + half] <= zj else lo
-                    span -= half
-                lo += st[i, lo] <= zj
+            m = nf[i]
+            # the first stage with eta > z
+            guess = (zj - first[i]) * per_step[i] + 1.0
+            lo = 0 if not guess > 0.0 else (m if guess >= m else <index_t>guess)
+            while lo < m and st[i, lo] <= zj:
+                lo += 1
+            while lo > 0 and st[i, lo - 1] > zj:
+                lo -= 1
             wet[i, lo] += pl[j]
             wet_bed[i, lo] += bd[j]
             moment[i, lo] += pl[j] * (zj - lw[i])
