@@ -161,14 +161,15 @@ def exact_coverage_runs(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t 
             capacity += (rmax[i] - rmin[i]) * (cmax[i] - cmin[i])
             largest = max(largest, (rmax[i] - rmin[i]) * (cmax[i] - cmin[i] + 2))
 
-    out_item_a = np.empty(capacity, np.int32)
-    out_row_a = np.empty(capacity, np.int32)
-    out_col_a = np.empty(capacity, np.int32)
+    # sized for every pixel of every bounding box; the results are views of their first n
+    out_item_a = np.empty(capacity, np.int64)
+    out_row_a = np.empty(capacity, np.int64)
+    out_col_a = np.empty(capacity, np.int64)
     out_frac_a = np.empty(capacity, np.float64)
     diff_a = np.zeros(largest, np.float64)
-    cdef int[::1] out_item = out_item_a
-    cdef int[::1] out_row = out_row_a
-    cdef int[::1] out_col = out_col_a
+    cdef int64_t[::1] out_item = out_item_a
+    cdef int64_t[::1] out_row = out_row_a
+    cdef int64_t[::1] out_col = out_col_a
     cdef double[::1] out_frac = out_frac_a
     cdef double[::1] diff = diff_a
     with nogil:
@@ -187,15 +188,14 @@ def exact_coverage_runs(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t 
                 for c in range(w):
                     running += diff[at + c]
                     if running > threshold:
-                        out_item[n] = <int>i
-                        out_row[n] = <int>(rmin[i] + r)
-                        out_col[n] = <int>(cmin[i] + c)
+                        out_item[n] = i
+                        out_row[n] = rmin[i] + r
+                        out_col[n] = cmin[i] + c
                         out_frac[n] = running if running < 1.0 else 1.0
                         n += 1
                 for c in range(width):
                     diff[at + c] = 0.0
-    return (out_item_a[:n].astype(np.int64), out_row_a[:n].astype(np.int64),
-            out_col_a[:n].astype(np.int64), out_frac_a[:n].copy())
+    return out_item_a[:n], out_row_a[:n], out_col_a[:n], out_frac_a[:n]
 
 
 def item_low_high(item, z, index_t n_items):
