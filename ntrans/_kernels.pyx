@@ -198,6 +198,34 @@ def exact_coverage_runs(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t 
     return out_item_a[:n], out_row_a[:n], out_col_a[:n], out_frac_a[:n]
 
 
+def entry_values(row, col, fraction, elevation, surface, double pixel_area):
+    """Per entry (pixel of an item): elevation, plan area and bed area, in one pass.
+
+    ``z = elevation[row, col]``, ``plan = fraction x pixel_area`` and ``bed = plan x
+    surface[row, col]`` (the surface factor), the same products numpy would form.
+    """
+    cdef const int64_t[::1] r = _i64(row)
+    cdef const int64_t[::1] c = _i64(col)
+    cdef const double[::1] f = _f64(fraction)
+    cdef const double[:, ::1] grid = np.ascontiguousarray(elevation, dtype=np.float64)
+    cdef const double[:, ::1] s = np.ascontiguousarray(surface, dtype=np.float64)
+    cdef index_t n = r.shape[0], j
+    z_a = np.empty(n)
+    plan_a = np.empty(n)
+    bed_a = np.empty(n)
+    cdef double[::1] z = z_a
+    cdef double[::1] plan = plan_a
+    cdef double[::1] bed = bed_a
+    cdef double p
+    with nogil:
+        for j in range(n):
+            z[j] = grid[r[j], c[j]]
+            p = f[j] * pixel_area
+            plan[j] = p
+            bed[j] = p * s[r[j], c[j]]
+    return z_a, plan_a, bed_a
+
+
 def item_low_high(item, z, index_t n_items):
     """Per item: lowest and highest ``z`` (NaN for an item without entries)."""
     cdef const int64_t[::1] it = _i64(item)
@@ -242,8 +270,8 @@ def stage_sums(item, z, plan, bed, low, stages_sorted, n_finite):
     ``stages_sorted`` (n_items, n_stages) holds each item's stages in increasing order,
     its ``n_finite[i]`` finite ones first.  An entry is wet at stage eta when
     ``z < eta``.  Each entry is added once, to the bin of the first stage that wets it
-    (binary search), and the bins are then summed cumulatively, so no sort of the
-    entries is needed.  Returns three (n_items, n_stages) arrays in the sorted order.
+    (guessed from the item's mean stage spacing, then walked to exactly), and the bins
+    are then summed cumulatively, so no sort of the entries is needed.  Returns three (n_items, n_stages) arrays in the sorted order.
     """
     cdef const int64_t[::1] it = _i64(item)
     cdef const double[::1] zz = _f64(z)

@@ -406,6 +406,7 @@ def run_tile(
     cell), ``face_rows`` (one row per face and stage, ``face`` = global face index,
     ``cell_a`` / ``cell_b`` global, -1 on the boundary) and ``face_summary``.
     """
+    from ._kernels import entry_values
     from .cells import cell_stage_table, cell_terrain_summary, flat_cell_table, flat_elevation
     from .coverage import PixelWeights, centre_coverage, exact_coverage
     from .terrain import sample_bilinear, surface_factor
@@ -422,17 +423,14 @@ def run_tile(
     # --- pixel weights, surface factor
     if elevation.size == 0:
         w = PixelWeights.empty()
-        s_pix = np.empty(0)
+        z, plan, bed = np.empty(0), np.empty(0), np.empty(0)
     else:
         cover = exact_coverage if settings.coverage == "exact" else centre_coverage
         w = cover(task.polygons, transform, elevation.shape)
         sf = surface_factor(elevation, dx, dy, z_to_xy=settings.z_to_xy)
-        pixel = w.row * elevation.shape[1] + w.col  # flat index: one gather per array
-        s_pix = sf.ravel().take(pixel)
+        # per entry: elevation, plan area = fraction x pixel area, bed area = plan x factor
+        z, plan, bed = entry_values(w.row, w.col, w.fraction, elevation, sf, pixel_area)
     item = np.asarray(w.item, dtype=np.int64)
-    z = elevation.ravel().take(pixel) if elevation.size else np.empty(0)
-    plan = np.asarray(w.fraction, dtype=float) * pixel_area
-    bed = plan * s_pix
 
     summary = cell_terrain_summary(item, z, plan, n_all, median=settings.elevation_rule == "median")
     centroid_z = None

@@ -691,10 +691,16 @@ def ids_at(ids: np.ndarray, index: np.ndarray) -> pa.Array:
     """User ids at global indices; null where the index is -1."""
     index = np.asarray(index, dtype=np.int64)
     missing = index < 0
-    values = ids[np.where(missing, 0, index)] if ids.size else np.empty(0, dtype=ids.dtype)
+    any_missing = bool(missing.any())
+    if not ids.size:
+        values = np.empty(0, dtype=ids.dtype)
+    else:
+        values = ids.take(np.where(missing, 0, index) if any_missing else index)
     kind = id_arrow_type(ids)
     if kind == pa.int64():
-        return pa.array(values.astype(np.int64), type=kind, mask=missing)
+        # no validity bitmap when every index is known (cell rows, most face columns)
+        return pa.array(values.astype(np.int64, copy=False), type=kind,
+                        mask=missing if any_missing else None)
     text = [None if m else str(v) for v, m in zip(values.tolist(), missing.tolist(), strict=True)]
     return pa.array(text, type=kind)
 
