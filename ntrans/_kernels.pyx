@@ -15,7 +15,7 @@ when it already is one).
 
 import numpy as np
 
-from libc.math cimport INFINITY, cbrt, ceil, floor, sqrt
+from libc.math cimport INFINITY, NAN, cbrt, ceil, floor, sqrt
 from libc.stdint cimport int64_t
 
 ctypedef Py_ssize_t index_t
@@ -327,14 +327,18 @@ def stage_sums(item, z, plan, bed, low, stages_sorted, n_finite):
 def horn_surface_factor(zp, double x_scale, double y_scale):
     """``sqrt(1 + zx^2 + zy^2)`` by Horn's 3x3 stencil on a grid padded by one NaN pixel.
 
-    ``x_scale`` = 1 / (8 dx), ``y_scale`` = 1 / (8 dy).  NaN wherever one of the eight
-    neighbours is NaN (the caller fills those pixels from the neighbours that exist).
+    ``x_scale`` = 1 / (8 dx), ``y_scale`` = 1 / (8 dy).  Returns ``(factor, partial)``:
+    ``factor`` is NaN where the centre pixel is NaN (nodata) or one of its eight
+    neighbours is; ``partial`` holds the flat indices (row x cols + col, increasing) of
+    the pixels with a valid centre and a missing neighbour, which the caller fills from
+    the neighbours that exist.
     """
     cdef const double[:, ::1] g = np.ascontiguousarray(zp, dtype=np.float64)
-    cdef index_t rows = g.shape[0] - 2, cols = g.shape[1] - 2, r, c
-    out_a = np.empty((max(rows, 0), max(cols, 0)))
+    cdef index_t rows = max(g.shape[0] - 2, 0), cols = max(g.shape[1] - 2, 0), r, c
+    out_a = np.empty((rows, cols))
     cdef double[:, ::1] out = out_a
     cdef double a, b, cc, d, f, gg, h, i, zx, zy
+    cdef index_t n_partial = 0, k = 0
     with nogil:
         for r in range(rows):
             for c in range(cols):
@@ -344,7 +348,23 @@ def horn_surface_factor(zp, double x_scale, double y_scale):
                 zx = ((cc + 2.0 * f + i) - (a + 2.0 * d + gg)) * x_scale
                 zy = ((gg + 2.0 * h + i) - (a + 2.0 * b + cc)) * y_scale
                 out[r, c] = sqrt(zx * zx + zy * zy + 1.0)
-    return out_a
+        # a separate pass, so the compiler can vectorise the stencil above
+        for r in range(rows):
+            for c in range(cols):
+                if g[r + 1, c + 1] != g[r + 1, c + 1]:  # nodata centre
+                    out[r, c] = NAN
+                elif out[r, c] != out[r, c]:
+                    n_partial += 1
+    partial_a = np.empty(n_partial, np.int64)
+    cdef int64_t[::1] partial = partial_a
+    with nogil:
+        if n_partial:
+            for r in range(rows):
+                for c in range(cols):
+                    if out[r, c] != out[r, c] and g[r + 1, c + 1] == g[r + 1, c + 1]:
+                        partial[k] = r * cols + c
+                        k += 1
+    return out_a, partial_a
 
 
 def strip_station_sums(ev, q_start, wet_end, b, c83, c53, is_level):

@@ -136,6 +136,8 @@ def cell_stage_table(
     plan_area: np.ndarray,
     bed_area: np.ndarray,
     stages: np.ndarray,
+    *,
+    low: np.ndarray | None = None,
 ) -> dict[str, np.ndarray]:
     """Subgrid stage table of every cell.
 
@@ -146,6 +148,9 @@ def cell_stage_table(
     plan_area : (n,) float, covered plan area of the entry (horizontal units squared).
     bed_area : (n,) float, 3-D bed area of the entry (plan area x surface factor).
     stages : (n_items, n_stages) float, water-surface elevations; NaN allowed.
+    low : (n_items,) float, optional: each item's lowest valid ``z`` (NaN for an item
+        without one), when the caller has it already (``z_min`` of
+        :func:`cell_terrain_summary` on the same entries); found here otherwise.
 
     Returns
     -------
@@ -167,7 +172,12 @@ def cell_stage_table(
         )
     n_items, n_stages = stages.shape
     item, z, (a, b) = _entries(item, z, plan_area, bed_area, n_items=n_items)
-    low, _ = item_low_high(item, z, n_items)
+    if low is None:
+        low, _ = item_low_high(item, z, n_items)
+    else:
+        low = np.asarray(low, dtype=np.float64)
+        if low.shape != (n_items,):
+            raise InputError(f"low has shape {low.shape}; give one value per item ({n_items},)")
     # each item's stages in increasing order, NaN last; results go back by `order`
     order = np.argsort(stages, axis=1, kind="stable")
     stages_sorted = np.ascontiguousarray(np.take_along_axis(stages, order, axis=1))

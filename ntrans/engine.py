@@ -453,7 +453,7 @@ def run_tile(
     stages = spec.for_items(z_low)
     ref = reference_stages(spec, settings.reference, z_low)
     stages_ext = np.concatenate([stages, ref[:, None]], axis=1)
-    table = cell_stage_table(item[own], z[own], plan[own], bed[own], stages_ext)
+    table = cell_stage_table(item[own], z[own], plan[own], bed[own], stages_ext, low=z_low)
     covered = np.asarray(summary["covered_area"], dtype=float)[:n_own]
     flat = flat_cell_table(flat_z[:n_own], covered, stages)
 

@@ -99,19 +99,19 @@ def surface_factor(
         raise InputError(f"z_to_xy={z_to_xy!r} is not a positive number; give the vertical-to-horizontal unit factor")
     from ._kernels import horn_surface_factor
 
-    zp = np.pad(z * float(z_to_xy), 1, mode="constant", constant_values=np.nan)
+    z_xy = z if z_to_xy == 1.0 else z * float(z_to_xy)
+    zp = np.pad(z_xy, 1, mode="constant", constant_values=np.nan)
     # Horn (1981): full 3x3 stencil wherever all neighbours exist (NaN elsewhere)
-    s = horn_surface_factor(zp, 0.125 / dx, 0.125 / dy)
+    s, partial = horn_surface_factor(zp, 0.125 / dx, 0.125 / dy)
     # window edges and pixels next to nodata: use the neighbours that exist
-    rr, cc = np.nonzero(np.isnan(s) & ~np.isnan(z))
-    if rr.size:
+    if partial.size:
+        rr, cc = np.divmod(partial, z.shape[1])
         k = np.arange(3)
         nb = zp[rr[:, None, None] + k[None, :, None], cc[:, None, None] + k[None, None, :]]
         gx, gy = _fallback_gradient(nb)
         gx /= dx
         gy /= dy
         s[rr, cc] = np.sqrt(gx * gx + gy * gy + 1.0)
-    s[np.isnan(z)] = np.nan
     return s
 
 

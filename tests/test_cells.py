@@ -217,6 +217,11 @@ def test_invariants_and_brute_force(seed, n_items, n, levels):
         stages[rng.random(stages.shape) < 0.2] = np.nan
     t = cell_stage_table(item, z, a, b, stages)
     ref = brute_table(item, z, a, b, stages)
+    # the low points the tiles hand over from the terrain summary give the same table
+    given_low = cell_stage_table(item, z, a, b, stages,
+                                 low=cell_terrain_summary(item, z, a, n_items)["z_min"])
+    for key in t:
+        np.testing.assert_array_equal(given_low[key], t[key])
     for key in ("wet_area", "volume", "bed_area"):
         # definitions of DESIGN.md section 2, summed directly (round-off only)
         np.testing.assert_allclose(t[key], ref[key], rtol=1e-10, atol=1e-10)
