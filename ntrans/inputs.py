@@ -736,7 +736,11 @@ def _repair(geoms: np.ndarray, ids: np.ndarray) -> np.ndarray:
     return out
 
 
-def _edges_not_shared(geoms: np.ndarray) -> np.ndarray:
+#: polygons whose edges are matched at once; bounds the screen's memory (about 50 MB)
+EDGE_SCREEN_POLYGONS = 65_536
+
+
+def _edges_not_shared(geoms: np.ndarray, block: int = EDGE_SCREEN_POLYGONS) -> np.ndarray:
     """Per polygon: True where one of its edges is not shared exactly with one other polygon.
 
     Rings are oriented (exteriors counter-clockwise, holes clockwise), so in a valid
@@ -745,7 +749,26 @@ def _edges_not_shared(geoms: np.ndarray) -> np.ndarray:
     overlap), twice in the same direction, or more than twice flags its polygons.  Across
     an edge shared that way the number of polygons covering a point does not change, so
     every region covered twice is bordered by edges of flagged polygons.
+
+    More than ``block`` polygons are matched in slabs of ``block`` across the longer side
+    of the layer's extent (bounded memory).  An edge on a slab's border finds no partner
+    and flags its polygons: more pairs get the exact test, none is missed.
     """
+    if geoms.size <= block:
+        return _edges_not_shared_block(geoms)
+    box = shapely.bounds(geoms)
+    along_x = np.nanmax(box[:, 2]) - np.nanmin(box[:, 0]) >= np.nanmax(box[:, 3]) - np.nanmin(box[:, 1])
+    centre = box[:, 0] + box[:, 2] if along_x else box[:, 1] + box[:, 3]
+    order = np.argsort(centre, kind="stable")
+    flagged = np.empty(geoms.size, dtype=bool)
+    for start in range(0, geoms.size, block):
+        part = order[start:start + block]
+        flagged[part] = _edges_not_shared_block(geoms[part])
+    return flagged
+
+
+def _edges_not_shared_block(geoms: np.ndarray) -> np.ndarray:
+    """:func:`_edges_not_shared` of one set of polygons, matched all at once."""
     flagged = np.zeros(geoms.size, dtype=bool)
     if geoms.size == 0:
         return flagged
@@ -810,7 +833,7 @@ def _check_overlaps(geoms: np.ndarray, ids: np.ndarray, tolerance: float) -> Non
         return
     involved = np.unique(np.concatenate([i, j]))
     flagged = np.zeros(geoms.size, dtype=bool)
-    flagged[involved] = _edges_not_shared(geoms[involved])
+    flagged[involved] = _edges_not_shared(geoms[involved], EDGE_SCREEN_POLYGONS)
     keep = flagged[i] | flagged[j]
     i, j = i[keep], j[keep]
     if i.size == 0:

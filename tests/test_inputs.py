@@ -535,6 +535,28 @@ def test_edges_not_shared(case: str, flagged: set) -> None:
     assert set(np.flatnonzero(got).tolist()) == flagged
 
 
+@pytest.mark.parametrize("block", [1, 2, 4, 9])
+def test_edges_not_shared_in_slabs_flags_more_never_less(block: int) -> None:
+    """Slabs of a few polygons only add flags (edges on a slab border find no partner)."""
+    from ntrans.inputs import _edges_not_shared
+
+    polys = np.array(_grid3() + [shapely.box(25, 5, 35, 15)], dtype=object)  # 10 overlaps 5
+    whole = _edges_not_shared(polys)
+    slabs = _edges_not_shared(polys, block=block)
+    assert not (whole & ~slabs).any()
+    assert slabs[[5, 9]].all()  # the overlapping pair is flagged either way
+
+
+def test_overlap_found_across_slab_borders(monkeypatch) -> None:
+    import ntrans.inputs as inputs
+
+    monkeypatch.setattr(inputs, "EDGE_SCREEN_POLYGONS", 2)
+    polys = _grid3()
+    polys[4] = shapely.box(10, 10, 23, 20)  # reaches 3 m into cell 5: 30 m2 of 100 m2
+    with pytest.raises(GeometryError, match="5/6"):
+        inputs._check_overlaps(np.array(polys, dtype=object), np.arange(1, 10), 0.01)
+
+
 def test_read_cells_keeps_cells_off_the_dem(tmp_path: Path, tmp_dem: Path) -> None:
     polys = [shapely.box(0, 0, 10, 10), shapely.box(25, 25, 35, 35), shapely.box(50, 50, 60, 60)]
     cells = read_cells(write_cells(tmp_path / "c.gpkg", polys), dem=open_dem(tmp_dem))
