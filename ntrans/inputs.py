@@ -968,6 +968,7 @@ def read_cells(
         geoms = np.asarray(frame.geometry.array, dtype=object)
     else:
         frame = frame.set_crs(target, allow_override=True)
+    as_read = geoms  # the frame's own geometry, until something below changes it
 
     if shapely.has_z(geoms).any():  # force_2d rebuilds every geometry: only when needed
         geoms = shapely.force_2d(geoms)
@@ -1017,8 +1018,9 @@ def read_cells(
     if outside:
         logger.info("cells %s: %d cells lie wholly outside the DEM and are kept", text, outside)
 
-    frame = gpd.GeoDataFrame(frame.drop(columns=frame.geometry.name),
-                             geometry=gpd.GeoSeries(geoms, crs=target), crs=target)
+    if geoms is not as_read:  # flattened or repaired: the frame takes the new geometry
+        frame = gpd.GeoDataFrame(frame.drop(columns=frame.geometry.name),
+                                 geometry=gpd.GeoSeries(geoms, crs=target), crs=target)
     frame.index = np.arange(len(frame))
     return CellLayer(ids=ids, geometry=geoms, id_field=id_name, frame=frame, path=text,
                      pending_checks=pending)

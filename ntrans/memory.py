@@ -18,6 +18,12 @@ log = logging.getLogger(__name__)
 
 @functools.lru_cache(maxsize=1)
 def _libc():
+    try:  # the C library this process runs on (no search: find_library runs ldconfig)
+        libc = ctypes.CDLL(None)
+        libc.malloc_trim  # noqa: B018  (glibc only)
+        return libc
+    except (OSError, AttributeError, TypeError):
+        pass
     name = ctypes.util.find_library("c")
     if name is None:
         return None
