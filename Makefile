@@ -1,5 +1,6 @@
 # Two entry points: `make demo` and `make test`. The venv is made once and reused;
-# it is refreshed only when pyproject.toml changes.
+# it is refreshed (and the compiled kernels rebuilt) when pyproject.toml, setup.py or
+# ntrans/_kernels.pyx changes.
 PYTHON ?= python3
 VENV   := .venv
 BIN    := $(VENV)/bin
@@ -7,7 +8,7 @@ STAMP  := $(VENV)/.installed
 
 .PHONY: demo test lint bench clean
 
-$(STAMP): pyproject.toml
+$(STAMP): pyproject.toml setup.py ntrans/_kernels.pyx
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip
 	$(BIN)/python -m pip install --quiet -e '.[test]'
