@@ -110,6 +110,34 @@ cdef inline index_t _clamp(index_t x, index_t top) noexcept nogil:
     return 0 if x < 0 else (top if x > top else x)
 
 
+cdef inline double _per_step(const double* eta, index_t m) noexcept nogil:
+    """Stages per unit of elevation across ``m`` increasing stages (0 when they cannot say)."""
+    if m > 1 and eta[m - 1] > eta[0]:
+        return (m - 1) / (eta[m - 1] - eta[0])
+    return 0.0
+
+
+cdef inline index_t _first_above(const double* eta, index_t m, double per_step,
+                                 double z) noexcept nogil:
+    """Index of the first of the ``m`` increasing stages ``eta`` above ``z`` (``m`` if none).
+
+    A first guess from the mean spacing (exact for evenly spaced stages up to rounding),
+    then a walk to the exact bin: real terrain keeps the walk short, and this beat a
+    binary search by about 2x.
+    """
+    cdef double guess
+    cdef index_t lo
+    if m == 0:
+        return 0
+    guess = (z - eta[0]) * per_step + 1.0
+    lo = 0 if not guess > 0.0 else (m if guess >= m else <index_t>guess)
+    while lo < m and eta[lo] <= z:
+        lo += 1
+    while lo > 0 and eta[lo - 1] > z:
+        lo -= 1
+    return lo
+
+
 def _f64(a):
     return np.ascontiguousarray(a, dtype=np.float64)
 
@@ -245,33 +273,14 @@ def item_low_high(item, z, index_t n_items):
     return low_a, high_a
 
 
-def item_weighted_sums(item, z, weight, low, index_t n_items):
-    """Per item: sum of ``weight`` and of ``weight * (z - low[item])``."""
-    cdef const int64_t[::1] it = _i64(item)
-    cdef const double[::1] zz = _f64(z)
-    cdef const double[::1] ww = _f64(weight)
-    cdef const double[::1] lo = _f64(low)
-    total_a = np.zeros(n_items)
-    moment_a = np.zeros(n_items)
-    cdef double[::1] total = total_a
-    cdef double[::1] moment = moment_a
-    cdef index_t j, i
-    with nogil:
-        for j in range(it.shape[0]):
-            i = it[j]
-            total[i] += ww[j]
-            moment[i] += ww[j] * (zz[j] - lo[i])
-    return total_a, moment_a
-
-
 def stage_sums(item, z, plan, bed, low, stages_sorted, n_finite):
     """Per item and stage: wetted plan area, wetted bed area and sum of plan x (z - low).
 
     ``stages_sorted`` (n_items, n_stages) holds each item's stages in increasing order,
     its ``n_finite[i]`` finite ones first.  An entry is wet at stage eta when
     ``z < eta``.  Each entry is added once, to the bin of the first stage that wets it
-    (guessed from the item's mean stage spacing, then walked to exactly), and the bins
-    are then summed cumulatively, so no sort of the entries is needed.  Returns three (n_items, n_stages) arrays in the sorted order.
+    (:func:`_first_above`), and the bins are then summed cumulatively, so no sort of the
+    entries is needed.  Returns three (n_items, n_stages) arrays in the sorted order.
     """
     cdef const int64_t[::1] it = _i64(item)
     cdef const double[::1] zz = _f64(z)
@@ -287,32 +296,17 @@ def stage_sums(item, z, plan, bed, low, stages_sorted, n_finite):
     cdef double[:, ::1] wet = wet_a
     cdef double[:, ::1] wet_bed = wet_bed_a
     cdef double[:, ::1] moment = moment_a
-    # per item, a first guess of the bin from its lowest finite stage and mean spacing
-    # (exact for evenly spaced stages up to rounding); a short walk then makes it exact
-    first_a = np.zeros(n_items)
     per_step_a = np.zeros(n_items)
-    cdef double[::1] first = first_a
     cdef double[::1] per_step = per_step_a
-    cdef index_t j, i, k, lo, m
-    cdef double zj, guess
+    cdef index_t j, i, k, lo
+    cdef double zj
     with nogil:
         for i in range(n_items):
-            m = nf[i]
-            if m > 0:
-                first[i] = st[i, 0]
-            if m > 1 and st[i, m - 1] > st[i, 0]:
-                per_step[i] = (m - 1) / (st[i, m - 1] - st[i, 0])
+            per_step[i] = _per_step(&st[i, 0], nf[i]) if n_stages else 0.0
         for j in range(it.shape[0]):
             i = it[j]
             zj = zz[j]
-            m = nf[i]
-            # the first stage with eta > z
-            guess = (zj - first[i]) * per_step[i] + 1.0
-            lo = 0 if not guess > 0.0 else (m if guess >= m else <index_t>guess)
-            while lo < m and st[i, lo] <= zj:
-                lo += 1
-            while lo > 0 and st[i, lo - 1] > zj:
-                lo -= 1
+            lo = _first_above(&st[i, 0], nf[i], per_step[i], zj) if n_stages else 0
             wet[i, lo] += pl[j]
             wet_bed[i, lo] += bd[j]
             moment[i, lo] += pl[j] * (zj - lw[i])
@@ -322,6 +316,94 @@ def stage_sums(item, z, plan, bed, low, stages_sorted, n_finite):
                 wet_bed[i, k] += wet_bed[i, k - 1]
                 moment[i, k] += moment[i, k - 1]
     return wet_a[:, :n_stages], wet_bed_a[:, :n_stages], moment_a[:, :n_stages]
+
+
+def item_stage_sums(item, z, plan, bed, levels, bint relative, index_t n_items):
+    """Per item, from its entries in one pass: terrain statistics and stage sums.
+
+    The entries of each item must be contiguous (``item`` grouped, as
+    :func:`exact_coverage_runs` returns them); ``ValueError`` otherwise.  ``levels``
+    (n_levels,) are increasing and finite: the stages of every item, or with
+    ``relative`` the depths above each item's low point (stage = levels[k] + low).
+
+    Returns ``low``, ``high`` (lowest and highest ``z``, NaN for an item without entries),
+    ``covered`` (sum of ``plan``), ``moment`` (sum of plan x (z - low)) and three
+    (n_items, n_levels) arrays ``wet``, ``wet_bed``, ``wet_moment``: the sums of
+    ``plan``, ``bed`` and plan x (z - low) over the entries wet at each stage
+    (``z < stage``).  Each entry is added once, to the bin of the first stage that wets
+    it, and the bins are then summed cumulatively.
+    """
+    cdef const int64_t[::1] it = _i64(item)
+    cdef const double[::1] zz = _f64(z)
+    cdef const double[::1] pl = _f64(plan)
+    cdef const double[::1] bd = _f64(bed)
+    cdef const double[::1] lv = _f64(levels)
+    cdef index_t n = it.shape[0], n_lv = lv.shape[0]
+    low_a = np.full(n_items, np.nan)
+    high_a = np.full(n_items, np.nan)
+    covered_a = np.zeros(n_items)
+    moment_a = np.zeros(n_items)
+    wet_a = np.zeros((n_items, n_lv + 1))
+    wet_bed_a = np.zeros((n_items, n_lv + 1))
+    wet_moment_a = np.zeros((n_items, n_lv + 1))
+    seen_a = np.zeros(n_items, np.uint8)
+    eta_a = np.empty(max(n_lv, 1))
+    cdef double[::1] low = low_a
+    cdef double[::1] high = high_a
+    cdef double[::1] covered = covered_a
+    cdef double[::1] moment = moment_a
+    cdef double[:, ::1] wet = wet_a
+    cdef double[:, ::1] wet_bed = wet_bed_a
+    cdef double[:, ::1] wet_moment = wet_moment_a
+    cdef unsigned char[::1] seen = seen_a
+    cdef double[::1] eta = eta_a
+    cdef index_t s = 0, e, i, j, k, b
+    cdef double z_lo, z_hi, total, mom, p, d, per_step
+    cdef bint grouped = True
+    with nogil:
+        while s < n:
+            i = it[s]
+            if seen[i]:
+                grouped = False
+                break
+            seen[i] = 1
+            z_lo = zz[s]
+            z_hi = zz[s]
+            e = s + 1
+            while e < n and it[e] == i:
+                if not z_lo <= zz[e]:
+                    z_lo = zz[e]
+                if not z_hi >= zz[e]:
+                    z_hi = zz[e]
+                e += 1
+            low[i] = z_lo
+            high[i] = z_hi
+            for k in range(n_lv):
+                eta[k] = lv[k] + z_lo if relative else lv[k]
+            per_step = _per_step(&eta[0], n_lv)
+            total = 0.0
+            mom = 0.0
+            for j in range(s, e):
+                p = pl[j]
+                d = zz[j] - z_lo
+                total += p
+                mom += p * d
+                if n_lv:
+                    b = _first_above(&eta[0], n_lv, per_step, zz[j])
+                    wet[i, b] += p
+                    wet_bed[i, b] += bd[j]
+                    wet_moment[i, b] += p * d
+            covered[i] = total
+            moment[i] = mom
+            for k in range(1, n_lv):
+                wet[i, k] += wet[i, k - 1]
+                wet_bed[i, k] += wet_bed[i, k - 1]
+                wet_moment[i, k] += wet_moment[i, k - 1]
+            s = e
+    if not grouped:
+        raise ValueError("the entries of an item are not contiguous; group them by item")
+    return (low_a, high_a, covered_a, moment_a, wet_a[:, :n_lv], wet_bed_a[:, :n_lv],
+            wet_moment_a[:, :n_lv])
 
 
 def horn_surface_factor(zp, double x_scale, double y_scale):

@@ -22,13 +22,14 @@ from typing import Literal, get_args
 
 import numpy as np
 
-from ._kernels import item_low_high, item_weighted_sums, stage_sums
+from ._kernels import item_low_high, item_stage_sums, stage_sums
 from .coverage import _group_cumsum, _sorted_order
 from .errors import InputError
 
 __all__ = [
     "ElevationRule",
     "cell_stage_table",
+    "cell_tables",
     "cell_terrain_summary",
     "flat_cell_table",
     "flat_elevation",
@@ -136,8 +137,6 @@ def cell_stage_table(
     plan_area: np.ndarray,
     bed_area: np.ndarray,
     stages: np.ndarray,
-    *,
-    low: np.ndarray | None = None,
 ) -> dict[str, np.ndarray]:
     """Subgrid stage table of every cell.
 
@@ -148,9 +147,6 @@ def cell_stage_table(
     plan_area : (n,) float, covered plan area of the entry (horizontal units squared).
     bed_area : (n,) float, 3-D bed area of the entry (plan area x surface factor).
     stages : (n_items, n_stages) float, water-surface elevations; NaN allowed.
-    low : (n_items,) float, optional: each item's lowest valid ``z`` (NaN for an item
-        without one), when the caller has it already (``z_min`` of
-        :func:`cell_terrain_summary` on the same entries); found here otherwise.
 
     Returns
     -------
@@ -172,12 +168,7 @@ def cell_stage_table(
         )
     n_items, n_stages = stages.shape
     item, z, (a, b) = _entries(item, z, plan_area, bed_area, n_items=n_items)
-    if low is None:
-        low, _ = item_low_high(item, z, n_items)
-    else:
-        low = np.asarray(low, dtype=np.float64)
-        if low.shape != (n_items,):
-            raise InputError(f"low has shape {low.shape}; give one value per item ({n_items},)")
+    low, _ = item_low_high(item, z, n_items)
     # each item's stages in increasing order, NaN last; results go back by `order`
     order = np.argsort(stages, axis=1, kind="stable")
     stages_sorted = np.ascontiguousarray(np.take_along_axis(stages, order, axis=1))
@@ -186,6 +177,12 @@ def cell_stage_table(
     wet, wet_bed, moment = (np.empty((n_items, n_stages)) for _ in range(3))
     for target, value in zip((wet, wet_bed, moment), sums, strict=True):
         np.put_along_axis(target, order, value, axis=1)
+    return _stage_table(stages, low, wet, wet_bed, moment)
+
+
+def _stage_table(stages: np.ndarray, low: np.ndarray, wet: np.ndarray, wet_bed: np.ndarray,
+                 moment: np.ndarray) -> dict[str, np.ndarray]:
+    """The stage table from the wet sums: volume = (stage - low) x wet area - moment."""
     unknown = np.isnan(stages) | np.isnan(low)[:, None]  # no stage, or no terrain
     with np.errstate(invalid="ignore"):
         volume = np.maximum((stages - low[:, None]) * wet - moment, 0.0)
@@ -199,6 +196,61 @@ def cell_stage_table(
         )
         out["mean_depth"] = np.where(out["wet_area"] > 0, out["volume"] / out["wet_area"], np.nan)
     return out
+
+
+def _grouped(item: np.ndarray, *arrays: np.ndarray) -> tuple[np.ndarray, list[np.ndarray]]:
+    """The entries with each item's contiguous (a stable sort, only when out of order)."""
+    if item.size > 1 and bool(np.any(item[1:] < item[:-1])):
+        order = np.argsort(item, kind="stable")
+        return item[order], [a[order] for a in arrays]
+    return item, list(arrays)
+
+
+def cell_tables(
+    item: np.ndarray,
+    z: np.ndarray,
+    plan_area: np.ndarray,
+    bed_area: np.ndarray,
+    n_items: int,
+    levels: np.ndarray,
+    *,
+    relative: bool = False,
+    median: bool = False,
+) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray]]:
+    """Terrain summary and stage table of every cell, for stages all cells share.
+
+    One pass over each cell's entries instead of one per table (the tiles use this).
+
+    Parameters
+    ----------
+    item, z, plan_area, bed_area : per entry, as for :func:`cell_stage_table`.
+    n_items : number of cells.
+    levels : (n_levels,) finite stages, the same for every cell; with ``relative`` depths
+        above each cell's lowest terrain (stage = z_min + level).
+    median : also the area-weighted median elevation (one sort of the entries).
+
+    Returns
+    -------
+    ``(summary, table)``: what :func:`cell_terrain_summary` and :func:`cell_stage_table`
+    give for the same entries and the stages ``levels`` (or ``z_min + levels``), in the
+    order of ``levels``.
+    """
+    n_items = int(n_items)
+    lv = np.asarray(levels, dtype=np.float64).ravel()
+    if not np.isfinite(lv).all():
+        raise InputError("levels hold NaN or infinite values; give finite stages or depths")
+    item, z, (a, b) = _entries(item, z, plan_area, bed_area, n_items=n_items)
+    as_given = (item, z, a)
+    item, (z, a, b) = _grouped(item, z, a, b)
+    order = np.argsort(lv, kind="stable")
+    low, high, covered, moment, *sums = item_stage_sums(item, z, a, b, lv[order],
+                                                        bool(relative), n_items)
+    summary = _summary(low, high, covered, moment, *as_given, n_items, median)
+    wet, wet_bed, wet_moment = (np.empty((n_items, lv.size)) for _ in range(3))
+    for target, value in zip((wet, wet_bed, wet_moment), sums, strict=True):
+        target[:, order] = value
+    stages = low[:, None] + lv[None, :] if relative else np.broadcast_to(lv, (n_items, lv.size))
+    return summary, _stage_table(stages, low, wet, wet_bed, wet_moment)
 
 
 def cell_terrain_summary(
@@ -222,8 +274,15 @@ def cell_terrain_summary(
     """
     n_items = int(n_items)
     item, z, (a,) = _entries(item, z, plan_area, n_items=n_items)
-    low, high = item_low_high(item, z, n_items)
-    covered, moment = item_weighted_sums(item, z, a, low, n_items)
+    gi, (gz, ga) = _grouped(item, z, a)
+    low, high, covered, moment, *_ = item_stage_sums(gi, gz, ga, ga, np.empty(0), False,
+                                                     n_items)
+    return _summary(low, high, covered, moment, item, z, a, n_items, median)
+
+
+def _summary(low, high, covered, moment, item, z, a, n_items: int,
+             median: bool) -> dict[str, np.ndarray]:
+    """The terrain summary from the per-item sums (and the entries, for the median)."""
     with np.errstate(invalid="ignore", divide="ignore"):
         z_mean = np.where(covered > 0, low + moment / np.where(covered > 0, covered, 1.0), np.nan)
     out = {"covered_area": covered, "z_min": low, "z_max": high, "z_mean": z_mean}

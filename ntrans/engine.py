@@ -407,7 +407,7 @@ def run_tile(
     ``cell_a`` / ``cell_b`` global, -1 on the boundary) and ``face_summary``.
     """
     from ._kernels import entry_values
-    from .cells import cell_stage_table, cell_terrain_summary, flat_cell_table, flat_elevation
+    from .cells import cell_tables, flat_cell_table, flat_elevation
     from .coverage import PixelWeights, centre_coverage, exact_coverage
     from .terrain import sample_bilinear, surface_factor
 
@@ -432,7 +432,12 @@ def run_tile(
         z, plan, bed = entry_values(w.row, w.col, w.fraction, elevation, sf, pixel_area)
     item = np.asarray(w.item, dtype=np.int64)
 
-    summary = cell_terrain_summary(item, z, plan, n_all, median=settings.elevation_rule == "median")
+    # terrain summary of every cell (own and halo) and the stage table, with one extra
+    # column at the reference stage, in one pass over the entries
+    summary, table = cell_tables(
+        item, z, plan, bed, n_all, np.append(spec.values, float(settings.reference)),
+        relative=spec.mode == "depth", median=settings.elevation_rule == "median",
+    )
     centroid_z = None
     if settings.elevation_rule == "centroid":
         cent = shapely.centroid(task.polygons)
@@ -447,13 +452,9 @@ def run_tile(
         dtype=float,
     )
 
-    # --- cell stage rows (own cells only), plus one reference column
-    own = slice(0, int(np.searchsorted(item, n_own)))  # entries come sorted by item: own first
+    # --- cell stage rows (own cells only)
     z_low = np.asarray(summary["z_min"], dtype=float)[:n_own]
     stages = spec.for_items(z_low)
-    ref = reference_stages(spec, settings.reference, z_low)
-    stages_ext = np.concatenate([stages, ref[:, None]], axis=1)
-    table = cell_stage_table(item[own], z[own], plan[own], bed[own], stages_ext, low=z_low)
     covered = np.asarray(summary["covered_area"], dtype=float)[:n_own]
     flat = flat_cell_table(flat_z[:n_own], covered, stages)
 
@@ -463,13 +464,13 @@ def run_tile(
         "depth": (stages - z_low[:, None]).ravel(),
     }
     for name in ("wet_area", "volume", "bed_area", "hydraulic_radius", "mean_depth"):
-        cell_rows[name] = np.asarray(table[name], dtype=float)[:, :n_st].ravel()
+        cell_rows[name] = np.asarray(table[name], dtype=float)[:n_own, :n_st].ravel()
     cell_rows["flat_elevation"] = np.repeat(flat_z[:n_own], n_st)
     for name in ("flat_depth", "flat_wet_area", "flat_volume", "flat_hydraulic_radius"):
         cell_rows[name] = np.asarray(flat[name], dtype=float).ravel()
 
-    wet_ref = np.asarray(table["wet_area"], dtype=float)[:, n_st]
-    bed_ref = np.asarray(table["bed_area"], dtype=float)[:, n_st]
+    wet_ref = np.asarray(table["wet_area"], dtype=float)[:n_own, n_st]
+    bed_ref = np.asarray(table["bed_area"], dtype=float)[:n_own, n_st]
     with np.errstate(invalid="ignore", divide="ignore"):
         bed_factor = np.where(wet_ref > 0, bed_ref / wet_ref, np.nan)
     cell_summary = {

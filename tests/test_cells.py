@@ -12,6 +12,7 @@ from hypothesis import strategies as st
 from ntrans.cells import (
     ELEVATION_RULES,
     cell_stage_table,
+    cell_tables,
     cell_terrain_summary,
     flat_cell_table,
     flat_elevation,
@@ -217,11 +218,6 @@ def test_invariants_and_brute_force(seed, n_items, n, levels):
         stages[rng.random(stages.shape) < 0.2] = np.nan
     t = cell_stage_table(item, z, a, b, stages)
     ref = brute_table(item, z, a, b, stages)
-    # the low points the tiles hand over from the terrain summary give the same table
-    given_low = cell_stage_table(item, z, a, b, stages,
-                                 low=cell_terrain_summary(item, z, a, n_items)["z_min"])
-    for key in t:
-        np.testing.assert_array_equal(given_low[key], t[key])
     for key in ("wet_area", "volume", "bed_area"):
         # definitions of DESIGN.md section 2, summed directly (round-off only)
         np.testing.assert_allclose(t[key], ref[key], rtol=1e-10, atol=1e-10)
@@ -231,6 +227,47 @@ def test_invariants_and_brute_force(seed, n_items, n, levels):
         assert not (t["bed_area"] < t["wet_area"] - 1e-12).any()  # s >= 1 -> A_b >= A_w
         # R = V / A_b <= V / A_w = mean depth because A_b >= A_w
         assert not (t["hydraulic_radius"] > t["mean_depth"] * (1 + 1e-12)).any()
+
+
+@settings(max_examples=30, deadline=None)
+@given(
+    seed=st.integers(0, 2**32 - 1),
+    n_items=st.integers(1, 6),
+    n=st.integers(0, 60),
+    relative=st.booleans(),
+)
+def test_cell_tables_equal_the_two_tables(seed, n_items, n, relative):
+    """One pass gives exactly what the summary and the stage table give separately."""
+    rng = np.random.default_rng(seed)
+    item = rng.integers(0, n_items, n)  # any order: grouped first
+    z = rng.integers(0, 12, n) * 0.25  # ties with the levels
+    z[rng.random(n) < 0.1] = np.nan
+    a = rng.uniform(0.0, 2.0, n)
+    b = a * rng.uniform(1.0, 1.5, n)
+    levels = rng.permutation(rng.integers(-2, 14, 7) * 0.25)  # unsorted, repeats
+    summary, table = cell_tables(item, z, a, b, n_items, levels, relative=relative,
+                                 median=True)
+    ref_summary = cell_terrain_summary(item, z, a, n_items)
+    low = ref_summary["z_min"]
+    stages = (low[:, None] if relative else 0.0) + np.broadcast_to(levels, (n_items, 7))
+    ref_table = cell_stage_table(item, z, a, b, stages)
+    for key in ref_summary:  # same sums in the same order: equal to the last bit
+        np.testing.assert_array_equal(summary[key], ref_summary[key])
+    for key in ref_table:
+        np.testing.assert_array_equal(table[key], ref_table[key])
+
+
+def test_cell_tables_rejects_non_finite_levels():
+    with pytest.raises(InputError, match="levels"):
+        cell_tables([0], [1.0], [1.0], [1.0], 1, [0.5, np.nan])
+
+
+def test_item_stage_sums_needs_grouped_entries():
+    from ntrans._kernels import item_stage_sums
+
+    one = np.ones(3)
+    with pytest.raises(ValueError, match="contiguous"):
+        item_stage_sums(np.array([0, 1, 0]), one, one, one, np.zeros(1), False, 2)
 
 
 def test_unsorted_entries_and_near_ties_are_ordered_exactly():
