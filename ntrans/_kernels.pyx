@@ -53,57 +53,41 @@ cdef inline void _deposit(double[::1] diff, index_t width, index_t rmin, index_t
     diff[at + 1] += dv - local
 
 
-cdef inline void _deposit_split_rows(double[::1] diff, index_t width, index_t rmin,
-                                     index_t cmin, index_t rows, index_t cols, double ua,
-                                     double va, double ub, double vb,
-                                     double sign) noexcept nogil:
-    """Split a piece (inside one pixel column) at the integer rows it crosses."""
-    cdef double lo = va if va < vb else vb
-    cdef double hi = vb if va < vb else va
-    cdef index_t n_cross = _ceil_index(hi) - _floor_index(lo) - 1
-    cdef double base, step, slope, pu, pv, k, ku
-    cdef index_t j
-    if n_cross <= 0:
-        _deposit(diff, width, rmin, cmin, rows, cols, ua, va, ub, vb, sign)
-        return
-    if vb > va:
-        base, step = floor(va) + 1.0, 1.0
-    else:
-        base, step = ceil(va) - 1.0, -1.0
-    slope = (ub - ua) / (vb - va)
-    pu, pv = ua, va
-    for j in range(n_cross):
-        k = base + step * j
-        ku = ua + (k - va) * slope
-        _deposit(diff, width, rmin, cmin, rows, cols, pu, pv, ku, k, sign)
-        pu, pv = ku, k
-    _deposit(diff, width, rmin, cmin, rows, cols, pu, pv, ub, vb, sign)
+cdef void _deposit_split(double[::1] diff, index_t width, index_t rmin, index_t cmin,
+                         index_t rows, index_t cols, double u0, double v0, double u1,
+                         double v1, double sign, bint at_columns) noexcept nogil:
+    """Split a piece at the integer columns (``at_columns``) or rows it crosses.
 
-
-cdef inline void _deposit_edge(double[::1] diff, index_t width, index_t rmin, index_t cmin,
-                               index_t rows, index_t cols, double u0, double v0, double u1,
-                               double v1, double sign) noexcept nogil:
-    """Split an edge at the integer columns, then rows, it crosses; deposit the pieces."""
-    cdef double lo = u0 if u0 < u1 else u1
-    cdef double hi = u1 if u0 < u1 else u0
-    cdef index_t n_cross = _ceil_index(hi) - _floor_index(lo) - 1
-    cdef double base, step, slope, pu, pv, k, kv
+    Each part of a split at columns is split again at rows; each part of a split at rows
+    lies in one pixel and is deposited.  An edge enters with ``at_columns`` true.
+    """
+    # a: the coordinate split at integers, b: the other one
+    cdef double a0 = u0 if at_columns else v0
+    cdef double a1 = u1 if at_columns else v1
+    cdef double b0 = v0 if at_columns else u0
+    cdef double b1 = v1 if at_columns else u1
+    cdef double lo = a0 if a0 < a1 else a1
+    cdef double hi = a1 if a0 < a1 else a0
+    cdef index_t n_cross = max(_ceil_index(hi) - _floor_index(lo) - 1, 0)
+    cdef double base = 0.0, step = 0.0, slope = 0.0, pa = a0, pb = b0, ka, kb
     cdef index_t j
-    if n_cross <= 0:
-        _deposit_split_rows(diff, width, rmin, cmin, rows, cols, u0, v0, u1, v1, sign)
-        return
-    if u1 > u0:
-        base, step = floor(u0) + 1.0, 1.0
-    else:
-        base, step = ceil(u0) - 1.0, -1.0
-    slope = (v1 - v0) / (u1 - u0)
-    pu, pv = u0, v0
-    for j in range(n_cross):
-        k = base + step * j
-        kv = v0 + (k - u0) * slope
-        _deposit_split_rows(diff, width, rmin, cmin, rows, cols, pu, pv, k, kv, sign)
-        pu, pv = k, kv
-    _deposit_split_rows(diff, width, rmin, cmin, rows, cols, pu, pv, u1, v1, sign)
+    if n_cross:
+        if a1 > a0:
+            base, step = floor(a0) + 1.0, 1.0
+        else:
+            base, step = ceil(a0) - 1.0, -1.0
+        slope = (b1 - b0) / (a1 - a0)
+    for j in range(n_cross + 1):  # the parts between crossings, the last one to the end
+        if j < n_cross:
+            ka = base + step * j
+            kb = b0 + (ka - a0) * slope
+        else:
+            ka, kb = a1, b1
+        if at_columns:
+            _deposit_split(diff, width, rmin, cmin, rows, cols, pa, pb, ka, kb, sign, False)
+        else:
+            _deposit(diff, width, rmin, cmin, rows, cols, pb, pa, kb, ka, sign)
+        pa, pb = ka, kb
 
 
 cdef inline index_t _clamp(index_t x, index_t top) noexcept nogil:
@@ -208,8 +192,8 @@ def exact_coverage_runs(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t 
                 continue
             width = w + 2
             for e in range(es[i], es[i + 1]):
-                _deposit_edge(diff, width, rmin[i], cmin[i], rows, cols,
-                              eu0[e], ev0[e], eu1[e], ev1[e], esign[e])
+                _deposit_split(diff, width, rmin[i], cmin[i], rows, cols,
+                               eu0[e], ev0[e], eu1[e], ev1[e], esign[e], True)
             for r in range(h):
                 running = 0.0
                 at = r * width
