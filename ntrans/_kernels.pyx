@@ -238,25 +238,6 @@ def entry_values(row, col, fraction, elevation, surface, double pixel_area):
     return z_a, plan_a, bed_a
 
 
-def item_low_high(item, z, index_t n_items):
-    """Per item: lowest and highest ``z`` (NaN for an item without entries)."""
-    cdef const int64_t[::1] it = _i64(item)
-    cdef const double[::1] zz = _f64(z)
-    low_a = np.full(n_items, np.nan)
-    high_a = np.full(n_items, np.nan)
-    cdef double[::1] low = low_a
-    cdef double[::1] high = high_a
-    cdef index_t j, i
-    with nogil:
-        for j in range(it.shape[0]):
-            i = it[j]
-            if not low[i] <= zz[j]:  # also true while low[i] is NaN
-                low[i] = zz[j]
-            if not high[i] >= zz[j]:
-                high[i] = zz[j]
-    return low_a, high_a
-
-
 def stage_sums(item, z, plan, bed, low, stages_sorted, n_finite):
     """Per item and stage: wetted plan area, wetted bed area and sum of plan x (z - low).
 

@@ -22,7 +22,7 @@ from typing import Literal, get_args
 
 import numpy as np
 
-from ._kernels import item_low_high, item_stage_sums, stage_sums
+from ._kernels import item_stage_sums, stage_sums
 from .coverage import _group_cumsum, _sorted_order
 from .errors import InputError
 
@@ -168,7 +168,8 @@ def cell_stage_table(
         )
     n_items, n_stages = stages.shape
     item, z, (a, b) = _entries(item, z, plan_area, bed_area, n_items=n_items)
-    low, _ = item_low_high(item, z, n_items)
+    gi, (gz,) = _grouped(item, z)  # each item's low point (its sums are not needed here)
+    low = item_stage_sums(gi, gz, gz, gz, np.empty(0), False, n_items)[0]
     # each item's stages in increasing order, NaN last; results go back by `order`
     order = np.argsort(stages, axis=1, kind="stable")
     stages_sorted = np.ascontiguousarray(np.take_along_axis(stages, order, axis=1))
