@@ -138,12 +138,39 @@ def exact_coverage_runs(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t 
     ``sign``).  Returns ``(item, row, col, fraction)`` sorted by (item, row, col):
     fractions above ``threshold`` only, clipped to 1.
     """
+    return _coverage_walk(edge_start, u0, v0, u1, v1, sign, rows, cols, threshold,
+                          None, None, 0.0)
+
+
+def exact_coverage_values(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t cols,
+                          double threshold, elevation, surface, double pixel_area):
+    """:func:`exact_coverage_runs` and :func:`entry_values` in one walk.
+
+    Returns ``(item, z, plan, bed)`` of the covered pixels whose elevation is not NaN,
+    sorted by (item, row, col): the same numbers as the two kernels in turn followed by
+    dropping the NaN elevations, without writing or reading back rows and columns.
+    """
+    return _coverage_walk(edge_start, u0, v0, u1, v1, sign, rows, cols, threshold,
+                          elevation, surface, pixel_area)
+
+
+def _coverage_walk(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t cols,
+                   double threshold, elevation, surface, double pixel_area):
+    """The walk of both coverage kernels; with ``elevation`` it gathers entry values."""
     cdef const int64_t[::1] es = _i64(edge_start)
     cdef const double[::1] eu0 = _f64(u0)
     cdef const double[::1] ev0 = _f64(v0)
     cdef const double[::1] eu1 = _f64(u1)
     cdef const double[::1] ev1 = _f64(v1)
     cdef const double[::1] esign = _f64(sign)
+    cdef bint gather = elevation is not None
+    cdef const double[:, ::1] grid = np.ascontiguousarray(
+        elevation if gather else np.empty((0, 0)), dtype=np.float64)
+    cdef const double[:, ::1] factor = np.ascontiguousarray(
+        surface if gather else np.empty((0, 0)), dtype=np.float64)
+    if gather and (grid.shape[0] != rows or grid.shape[1] != cols
+                   or factor.shape[0] != rows or factor.shape[1] != cols):
+        raise ValueError("elevation and surface must have the window's shape")
     cdef index_t n_items = es.shape[0] - 1
     rmin_a = np.zeros(max(n_items, 0), np.intp)
     rmax_a = np.zeros(max(n_items, 0), np.intp)
@@ -154,7 +181,8 @@ def exact_coverage_runs(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t 
     cdef index_t[::1] cmin = cmin_a
     cdef index_t[::1] cmax = cmax_a
     cdef index_t capacity = 0, largest = 0, i, e, e0, e1, h, w, width, r, c, at, n = 0
-    cdef double vlo, vhi, ulo, uhi, running
+    cdef index_t rr, cc
+    cdef double vlo, vhi, ulo, uhi, running, frac, zz, p
     with nogil:
         for i in range(n_items):
             e0, e1 = es[i], es[i + 1]
@@ -175,14 +203,17 @@ def exact_coverage_runs(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t 
 
     # sized for every pixel of every bounding box; the results are views of their first n
     out_item_a = np.empty(capacity, np.int64)
-    out_row_a = np.empty(capacity, np.int64)
-    out_col_a = np.empty(capacity, np.int64)
-    out_frac_a = np.empty(capacity, np.float64)
+    # runs: row, column (int64) and fraction; values: elevation, plan and bed area
+    out_b_a = np.empty(capacity, np.float64 if gather else np.int64)
+    out_c_a = np.empty(capacity, np.float64 if gather else np.int64)
+    out_d_a = np.empty(capacity, np.float64)
     diff_a = np.zeros(largest, np.float64)
     cdef int64_t[::1] out_item = out_item_a
-    cdef int64_t[::1] out_row = out_row_a
-    cdef int64_t[::1] out_col = out_col_a
-    cdef double[::1] out_frac = out_frac_a
+    cdef int64_t[::1] out_row = out_b_a if not gather else np.empty(0, np.int64)
+    cdef int64_t[::1] out_col = out_c_a if not gather else np.empty(0, np.int64)
+    cdef double[::1] out_z = out_b_a if gather else np.empty(0)
+    cdef double[::1] out_plan = out_c_a if gather else np.empty(0)
+    cdef double[::1] out_d = out_d_a  # fraction, or bed area
     cdef double[::1] diff = diff_a
     with nogil:
         for i in range(n_items):
@@ -197,17 +228,29 @@ def exact_coverage_runs(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t 
             for r in range(h):
                 running = 0.0
                 at = r * width
+                rr = rmin[i] + r
                 for c in range(w):
                     running += diff[at + c]
                     if running > threshold:
+                        frac = running if running < 1.0 else 1.0
+                        cc = cmin[i] + c
+                        if gather:
+                            zz = grid[rr, cc]
+                            if zz != zz:  # nodata: no entry
+                                continue
+                            p = frac * pixel_area
+                            out_z[n] = zz
+                            out_plan[n] = p
+                            out_d[n] = p * factor[rr, cc]
+                        else:
+                            out_row[n] = rr
+                            out_col[n] = cc
+                            out_d[n] = frac
                         out_item[n] = i
-                        out_row[n] = rmin[i] + r
-                        out_col[n] = cmin[i] + c
-                        out_frac[n] = running if running < 1.0 else 1.0
                         n += 1
                 for c in range(width):
                     diff[at + c] = 0.0
-    return out_item_a[:n], out_row_a[:n], out_col_a[:n], out_frac_a[:n]
+    return out_item_a[:n], out_b_a[:n], out_c_a[:n], out_d_a[:n]
 
 
 def entry_values(row, col, fraction, elevation, surface, double pixel_area):

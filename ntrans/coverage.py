@@ -24,7 +24,7 @@ from affine import Affine
 
 from .errors import GeometryError, InputError
 
-__all__ = ["PixelWeights", "centre_coverage", "exact_coverage"]
+__all__ = ["PixelWeights", "centre_coverage", "exact_coverage", "exact_coverage_values"]
 
 _MIN_FRACTION = 1e-12
 
@@ -107,15 +107,9 @@ def _edges(geoms: np.ndarray, transform: Affine, rows: int, cols: int):
         idx = idx[pos]
     keep = (shapely.get_type_id(clipped) == 3) & ~shapely.is_empty(clipped)
     parts, part_item = clipped[keep], idx[keep]
-    # coordinates with ring and polygon offsets, without a Python object per ring
-    if parts.size:
-        _, xy, (ring_offsets, part_offsets) = shapely.to_ragged_array(parts)
-    else:
-        xy, ring_offsets, part_offsets = np.empty((0, 2)), np.zeros(1, np.int64), np.zeros(1, np.int64)
+    # coordinates with ring offsets, without a Python object per ring
+    xy, ring_offsets, ring_part, exterior = polygon_rings(parts)
     n_rings = ring_offsets.size - 1
-    ring_part = np.repeat(np.arange(parts.size), np.diff(part_offsets))
-    exterior = np.zeros(n_rings, dtype=bool)
-    exterior[part_offsets[:-1][np.diff(part_offsets) > 0]] = True
     coord_ring = np.repeat(np.arange(n_rings), np.diff(ring_offsets))
     u = (xy[:, 0] - x0) / transform.a
     v = (xy[:, 1] - y0) / transform.e
@@ -136,6 +130,28 @@ def _edges(geoms: np.ndarray, transform: Affine, rows: int, cols: int):
     sign = ring_sign[e_ring]
     item = part_item[ring_part[e_ring]]
     return item, u0, v0, u1, v1, sign
+
+
+def polygon_rings(geoms: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Ring coordinates of Polygons and MultiPolygons: ``(coords, ring_start, ring_geom, exterior)``.
+
+    ``coords`` (n, 2) holds every ring's points (closing point included), ring ``k`` is
+    ``coords[ring_start[k]:ring_start[k + 1]]``, belongs to polygon ``ring_geom[k]`` and
+    is an exterior ring where ``exterior[k]``.  Polygons without holes (most meshes) take
+    a path that builds no ring objects.
+    """
+    if (shapely.get_type_id(geoms) == 3).all() and not shapely.get_num_interior_rings(geoms).any():
+        coords, owner = shapely.get_coordinates(geoms, return_index=True)
+        ring_start = np.searchsorted(owner, np.arange(geoms.size + 1))
+        return coords, ring_start, np.arange(geoms.size), np.ones(geoms.size, dtype=bool)
+    _, coords, offsets = shapely.to_ragged_array(geoms)
+    ring_start = offsets[0]
+    part_rings = offsets[1]
+    geom_parts = offsets[2] if len(offsets) > 2 else np.arange(geoms.size + 1)
+    ring_part = np.repeat(np.arange(part_rings.size - 1), np.diff(part_rings))
+    ring_geom = np.repeat(np.arange(geom_parts.size - 1), np.diff(geom_parts))[ring_part]
+    exterior = np.arange(ring_start.size - 1) == part_rings[ring_part]
+    return coords, ring_start, ring_geom, exterior
 
 
 def _row_runs(item, row, col, local, carry, rows, cols, *, threshold):
@@ -243,20 +259,67 @@ def exact_coverage(polygons, transform: Affine, shape: tuple[int, int]) -> Pixel
     from ._kernels import exact_coverage_runs
 
     rows, cols = _check_window(transform, shape)
+    edges = _item_edges(polygons, transform, rows, cols)
+    if edges is None:
+        return PixelWeights.empty()
+    # the kernel returns int64 indices and float64 fractions already
+    return PixelWeights(*exact_coverage_runs(*edges, rows, cols, _MIN_FRACTION))
+
+
+def exact_coverage_values(
+    polygons, transform: Affine, elevation: np.ndarray, surface: np.ndarray, pixel_area: float
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Per covered pixel with valid terrain: item, elevation, plan area and bed area.
+
+    The numbers :func:`exact_coverage` gives, turned into per-entry values in the same
+    walk: ``z = elevation[row, col]``, ``plan = fraction x pixel_area`` (CRS units
+    squared), ``bed = plan x surface[row, col]``; pixels whose elevation is NaN are left
+    out.  Sorted by (item, row, col).
+
+    Parameters
+    ----------
+    polygons, transform : as for :func:`exact_coverage`.
+    elevation : (rows, cols) window, NaN for nodata; its shape is the window's.
+    surface : (rows, cols) surface factor of the window (>= 1).
+    pixel_area : area of one pixel, CRS units squared.
+
+    Returns
+    -------
+    ``(item, z, plan, bed)``: int64 and three float64 arrays of equal length.
+    """
+    from ._kernels import exact_coverage_values as walk
+
+    elevation = np.asarray(elevation, dtype=np.float64)
+    if elevation.ndim != 2 or np.shape(surface) != elevation.shape:
+        raise InputError(
+            f"elevation {elevation.shape} and surface {np.shape(surface)} must be 2-D arrays "
+            "of the window's shape"
+        )
+    rows, cols = _check_window(transform, elevation.shape)
+    edges = _item_edges(polygons, transform, rows, cols)
+    if edges is None:
+        empty = np.zeros(0)
+        return np.zeros(0, dtype=np.int64), empty, empty.copy(), empty.copy()
+    return walk(*edges, rows, cols, _MIN_FRACTION, elevation, surface, float(pixel_area))
+
+
+def _item_edges(polygons, transform: Affine, rows: int, cols: int):
+    """Edges of the polygons for the coverage kernels, grouped by item; None if none.
+
+    Returns ``(edge_start, u0, v0, u1, v1, sign)``: ``edge_start`` (n_items + 1) delimits
+    each item's edges, in pixel units, with ``sign`` as float64.
+    """
     geoms = _as_geometry_array(polygons)
     if geoms.size == 0 or rows == 0 or cols == 0:
-        return PixelWeights.empty()
+        return None
     item, u0, v0, u1, v1, sign = _edges(geoms, transform, rows, cols)
     if item.size == 0:
-        return PixelWeights.empty()
+        return None
     if np.any(item[1:] < item[:-1]):
         order = np.argsort(item, kind="stable")
         item, u0, v0, u1, v1, sign = (a[order] for a in (item, u0, v0, u1, v1, sign))
     edge_start = np.searchsorted(item, np.arange(int(item[-1]) + 2)).astype(np.int64)
-    # the kernel returns int64 indices and float64 fractions already
-    return PixelWeights(*exact_coverage_runs(
-        edge_start, u0, v0, u1, v1, sign.astype(np.float64), rows, cols, _MIN_FRACTION
-    ))
+    return edge_start, u0, v0, u1, v1, sign.astype(np.float64)
 
 
 def centre_coverage(polygons, transform: Affine, shape: tuple[int, int]) -> PixelWeights:

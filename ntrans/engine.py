@@ -408,7 +408,7 @@ def run_tile(
     """
     from ._kernels import entry_values
     from .cells import cell_tables, flat_cell_table, flat_elevation
-    from .coverage import PixelWeights, centre_coverage, exact_coverage
+    from .coverage import centre_coverage, exact_coverage_values
     from .terrain import sample_bilinear, surface_factor
 
     tile = task.tile
@@ -422,15 +422,19 @@ def run_tile(
 
     # --- pixel weights, surface factor
     if elevation.size == 0:
-        w = PixelWeights.empty()
+        item = np.zeros(0, dtype=np.int64)
         z, plan, bed = np.empty(0), np.empty(0), np.empty(0)
     else:
-        cover = exact_coverage if settings.coverage == "exact" else centre_coverage
-        w = cover(task.polygons, transform, elevation.shape)
         sf = surface_factor(elevation, dx, dy, z_to_xy=settings.z_to_xy)
         # per entry: elevation, plan area = fraction x pixel area, bed area = plan x factor
-        z, plan, bed = entry_values(w.row, w.col, w.fraction, elevation, sf, pixel_area)
-    item = np.asarray(w.item, dtype=np.int64)
+        if settings.coverage == "exact":  # one walk, no pixel indices written
+            item, z, plan, bed = exact_coverage_values(
+                task.polygons, transform, elevation, sf, pixel_area
+            )
+        else:
+            w = centre_coverage(task.polygons, transform, elevation.shape)
+            item = np.asarray(w.item, dtype=np.int64)
+            z, plan, bed = entry_values(w.row, w.col, w.fraction, elevation, sf, pixel_area)
 
     # terrain summary of every cell (own and halo) and the stage table, with one extra
     # column at the reference stage, in one pass over the entries

@@ -36,6 +36,7 @@ from rasterio.crs import CRS
 from rasterio.enums import MaskFlags
 from rasterio.windows import Window
 
+from .coverage import polygon_rings
 from .errors import (
     CRSError,
     GeometryError,
@@ -772,14 +773,8 @@ def _edges_not_shared_block(geoms: np.ndarray) -> np.ndarray:
     flagged = np.zeros(geoms.size, dtype=bool)
     if geoms.size == 0:
         return flagged
-    kind, coords, offsets = shapely.to_ragged_array(geoms)
-    ring_start = offsets[0]
-    part_rings = offsets[1]
-    geom_parts = offsets[2] if len(offsets) > 2 else np.arange(geoms.size + 1)
+    coords, ring_start, ring_geom, exterior = polygon_rings(geoms)
     n_rings = ring_start.size - 1
-    ring_part = np.repeat(np.arange(part_rings.size - 1), np.diff(part_rings))
-    ring_geom = np.repeat(np.arange(geom_parts.size - 1), np.diff(geom_parts))[ring_part]
-    exterior = np.arange(n_rings) == part_rings[ring_part]
     # one edge per coordinate except each ring's closing one
     edge_ring = np.repeat(np.arange(n_rings), np.maximum(np.diff(ring_start) - 1, 0))
     first = np.ones(coords.shape[0], dtype=bool)
@@ -793,18 +788,57 @@ def _edges_not_shared_block(geoms: np.ndarray) -> np.ndarray:
                       np.where(flip, x0, x1), np.where(flip, y0, y1))
     # each edge as its two end points in (x, y) order, and whether it runs that way
     forward = (x0 < x1) | ((x0 == x1) & (y0 <= y1))
-    ax, ay = np.where(forward, x0, x1), np.where(forward, y0, y1)
-    bx, by = np.where(forward, x1, x0), np.where(forward, y1, y0)
-    order = np.lexsort((by, bx, ay, ax))
-    ax, ay, bx, by, forward = ax[order], ay[order], bx[order], by[order], forward[order]
-    new = np.ones(order.size, dtype=bool)
-    new[1:] = (ax[1:] != ax[:-1]) | (ay[1:] != ay[:-1]) | (bx[1:] != bx[:-1]) | (by[1:] != by[:-1])
+    ends = [np.where(forward, x0, x1), np.where(forward, y0, y1),
+            np.where(forward, x1, x0), np.where(forward, y1, y0)]
+    order, new = _group_equal(ends)
+    forward = forward[order]
     group = np.cumsum(new) - 1
     size = np.bincount(group)
     ahead = np.bincount(group, weights=forward)
     good = (size == 2) & (ahead == 1)
     flagged[ring_geom[edge_ring[order[~good[group]]]]] = True
     return flagged
+
+
+#: odd 64-bit multiplier of the tuple hash (the golden ratio's bits)
+_HASH_MULTIPLIER = np.uint64(0x9E3779B97F4A7C15)
+
+
+def _group_equal(values: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """Bring equal tuples ``(values[0][i], values[1][i], ...)`` (float64) together.
+
+    Returns ``(order, new)``: ``order`` puts equal tuples next to each other and ``new``
+    marks where, in that order, a tuple differs from the one before (the first is new).
+    Sorting one 64-bit hash of each tuple is several times faster than a lexicographic
+    sort on all of them; when two different tuples share a hash (checked) the
+    lexicographic sort is used instead.
+    """
+    n = values[0].size
+    bits = [np.ascontiguousarray(v, dtype=np.float64).view(np.uint64) for v in values]
+    key = np.zeros(n, dtype=np.uint64)
+    with np.errstate(over="ignore"):
+        for b in bits:
+            key ^= b
+            key *= _HASH_MULTIPLIER
+            key ^= key >> np.uint64(29)
+    order = np.argsort(key)
+
+    def starts(order: np.ndarray) -> np.ndarray:
+        new = np.ones(n, dtype=bool)
+        if n > 1:
+            new[1:] = False
+            for b in bits:
+                sorted_b = b[order]
+                new[1:] |= sorted_b[1:] != sorted_b[:-1]
+        return new
+
+    new = starts(order)
+    sorted_key = key[order]
+    if (new[1:] & (sorted_key[1:] == sorted_key[:-1])).any():
+        # two different tuples share a hash (and may be split up): sort exactly
+        order = np.lexsort(values[::-1])
+        new = starts(order)
+    return order, new
 
 
 def _check_overlaps(geoms: np.ndarray, ids: np.ndarray, tolerance: float) -> None:

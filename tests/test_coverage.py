@@ -7,7 +7,7 @@ import pytest
 import shapely
 from affine import Affine
 
-from ntrans.coverage import PixelWeights, centre_coverage, exact_coverage
+from ntrans.coverage import PixelWeights, centre_coverage, exact_coverage, exact_coverage_values
 from ntrans.errors import GeometryError, InputError
 
 # Exact-area checks: fractions are sums of O(100) terms of order 1 -> round-off ~1e-13.
@@ -83,6 +83,39 @@ def test_exact_matches_brute_force(transform, shape, tol, seed):
     w = exact_coverage(polys, transform, shape)
     # geometry identity: fraction = area(polygon & pixel) / pixel area (shapely overlay)
     np.testing.assert_allclose(dense(w, len(polys), shape), brute_force(polys, transform, shape), atol=tol)
+
+
+@pytest.mark.parametrize("transform, shape", WINDOWS + [UTM_LIKE])
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_values_walk_equals_weights_then_gather(transform, shape, seed):
+    """The one-walk entry values are the weights' values, bit for bit, NaN pixels left out."""
+    rng = np.random.default_rng(seed)
+    x0, x1 = sorted([transform.c, transform.c + transform.a * shape[1]])
+    y0, y1 = sorted([transform.f, transform.f + transform.e * shape[0]])
+    polys = random_polygons(rng, 8, (x0 - 2, x1 + 2), (y0 - 2, y1 + 2)) + [None]
+    elevation = rng.normal(100.0, 3.0, shape)
+    elevation[rng.random(shape) < 0.15] = np.nan  # nodata pixels, some inside polygons
+    surface = 1.0 + rng.random(shape)
+    pixel_area = abs(transform.a * transform.e)
+    w = exact_coverage(polys, transform, shape)
+    z = elevation[w.row, w.col]
+    ok = ~np.isnan(z)
+    plan = w.fraction * pixel_area
+    expected = (w.item[ok], z[ok], plan[ok], (plan * surface[w.row, w.col])[ok])
+    got = exact_coverage_values(polys, transform, elevation, surface, pixel_area)
+    assert ok.sum() < ok.size  # the case drops pixels
+    for a, b in zip(got, expected, strict=True):
+        np.testing.assert_array_equal(a, b)  # same products in the same order: exact
+    assert got[0].dtype == np.int64
+
+
+def test_values_walk_empty_and_shape_mismatch():
+    transform = Affine(1.0, 0.0, 0.0, 0.0, -1.0, 4.0)
+    far = [shapely.box(50, 50, 51, 51), None]
+    item, z, plan, bed = exact_coverage_values(far, transform, np.ones((4, 4)), np.ones((4, 4)), 1.0)
+    assert item.size == z.size == plan.size == bed.size == 0
+    with pytest.raises(InputError, match="window's shape"):
+        exact_coverage_values(far, transform, np.ones((4, 4)), np.ones((4, 5)), 1.0)
 
 
 def test_area_identity_with_holes_and_multipolygons():

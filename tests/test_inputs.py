@@ -514,9 +514,14 @@ def _grid3() -> list:
         ("multipart", {0, 1, 2, 3, 5, 6, 7, 8}),  # a one-part MultiPolygon is read the same
     ],
 )
-def test_edges_not_shared(case: str, flagged: set) -> None:
+@pytest.mark.parametrize("hash_path", ["hash", "collisions"])
+def test_edges_not_shared(case: str, flagged: set, hash_path: str, monkeypatch) -> None:
     """Geometry identity: in a coverage every interior edge appears twice, once per direction."""
+    import ntrans.inputs as inputs
     from ntrans.inputs import _edges_not_shared
+
+    if hash_path == "collisions":  # every edge gets hash 0: the exact sort takes over
+        monkeypatch.setattr(inputs, "_HASH_MULTIPLIER", np.uint64(0))
 
     polys = _grid3()
     if case == "centre reversed":
@@ -533,6 +538,24 @@ def test_edges_not_shared(case: str, flagged: set) -> None:
         polys[4] = shapely.MultiPolygon([polys[4]])
     got = _edges_not_shared(np.array(polys, dtype=object))
     assert set(np.flatnonzero(got).tolist()) == flagged
+
+
+@pytest.mark.parametrize("multiplier", [None, 0, 1])  # None: the module's; 0, 1: collisions
+@pytest.mark.parametrize("seed", [0, 1])
+def test_group_equal_matches_unique(multiplier, seed: int, monkeypatch) -> None:
+    """Groups of equal tuples are those np.unique finds, whatever the hash does."""
+    import ntrans.inputs as inputs
+
+    if multiplier is not None:
+        monkeypatch.setattr(inputs, "_HASH_MULTIPLIER", np.uint64(multiplier))
+    rng = np.random.default_rng(seed)
+    values = [rng.integers(0, 3, 500).astype(float) * 0.1 for _ in range(4)]  # many repeats
+    order, new = inputs._group_equal(values)
+    tuples = np.stack(values, axis=1)[order]
+    assert sorted(order.tolist()) == list(range(500))
+    # each group is one tuple, and each tuple one group
+    assert np.array_equal(new[1:], (tuples[1:] != tuples[:-1]).any(axis=1))
+    assert new.sum() == np.unique(tuples, axis=0).shape[0]
 
 
 @pytest.mark.parametrize("block", [1, 2, 4, 9])
