@@ -23,6 +23,7 @@ from concurrent.futures import ThreadPoolExecutor
 from typing import Any
 
 from .errors import InputError
+from .memory import keep_freed_memory
 from .progress import track
 
 log = logging.getLogger(__name__)
@@ -230,6 +231,7 @@ def run_ordered(
     if connection is not None:
         results: Iterator[Any] = _run_dask(fn, shared, tasks, connection.client, max_in_flight)
     elif workers is None and scheduler is None:
+        keep_freed_memory()  # tasks free and allocate arrays of similar sizes
         if threads is not None and int(threads) > 1:
             results = _run_threads(fn, shared, tasks, int(threads), max_in_flight)
         else:

