@@ -2,8 +2,8 @@
 
 Every worker forked from it starts with the libraries and the tile code imported, instead
 of importing them itself, and with the allocator set to reuse freed arrays
-(:func:`ntrans.memory.keep_freed_memory`; a fork inherits the setting).  Added to Dask's own preload list by
-:func:`ntrans.cluster._preload_forkserver`.
+(:func:`ntrans.memory.keep_freed_memory`; a fork inherits the setting).  Added to Dask's
+own preload list by :func:`ntrans.cluster._preload_forkserver`.
 """
 
 from __future__ import annotations

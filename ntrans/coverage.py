@@ -133,7 +133,9 @@ def _edges(geoms: np.ndarray, transform: Affine, rows: int, cols: int):
 
 
 def polygon_rings(geoms: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """Ring coordinates of Polygons and MultiPolygons: ``(coords, ring_start, ring_geom, exterior)``.
+    """Ring coordinates of Polygons and MultiPolygons.
+
+    Returns ``(coords, ring_start, ring_geom, exterior)``.
 
     ``coords`` (n, 2) holds every ring's points (closing point included), ring ``k`` is
     ``coords[ring_start[k]:ring_start[k + 1]]``, belongs to polygon ``ring_geom[k]`` and
