@@ -16,7 +16,8 @@ when it already is one).
 import numpy as np
 
 from libc.math cimport INFINITY, NAN, cbrt, ceil, floor, sqrt
-from libc.stdint cimport int64_t
+from libc.stdint cimport int64_t, uint64_t
+from libc.string cimport memcpy
 
 ctypedef Py_ssize_t index_t
 
@@ -88,6 +89,36 @@ cdef void _deposit_split(double[::1] diff, index_t width, index_t rmin, index_t 
         else:
             _deposit(diff, width, rmin, cmin, rows, cols, pb, pa, kb, ka, sign)
         pa, pb = ka, kb
+
+
+#: first guess of x^(-1/3) from the bits of x: this constant minus a third of the bits
+#: (the exponent divided by -3), at most 3.5 % off for every normal x (fitted by search)
+cdef uint64_t _INVERSE_CUBE_ROOT_BITS = 0x553EF10000000000
+
+
+cdef inline double _pow_two_thirds(double x) noexcept nogil:
+    """x^(2/3) for x >= 0, within 2 units in the last place of the exact value.
+
+    For 1e-290 < x < 1e290: the first guess s of x^(-1/3) from the bits of x, two steps
+    of the fourth-order iteration s <- s (1 + d/3 + 2 d^2/9 + 14 d^3/81) with
+    d = 1 - x s^3 (the series of (1 - d)^(-1/3): 3.5 % -> 1e-5 -> round-off), then x s.
+    Additions and products only, so successive calls overlap in the processor, where
+    ``cbrt(x * x)`` waits on library calls (the face tables of the 10^7-pixel benchmark
+    case, 94 million roots: :func:`strip_station_sums` 1.88 -> 0.85 s).  Other x (zero,
+    tiny, huge, negative, NaN) take ``cbrt(x * x)``.
+    """
+    cdef uint64_t bits
+    cdef double s, d
+    if not (x > 1e-290 and x < 1e290):
+        return cbrt(x * x)
+    memcpy(&bits, &x, sizeof(double))
+    bits = _INVERSE_CUBE_ROOT_BITS - bits // 3
+    memcpy(&s, &bits, sizeof(double))
+    d = 1.0 - x * s * s * s
+    s = s + s * (d * (1.0 / 3.0 + d * (2.0 / 9.0 + d * (14.0 / 81.0))))
+    d = 1.0 - x * s * s * s
+    s = s + s * (d * (1.0 / 3.0 + d * (2.0 / 9.0 + d * (14.0 / 81.0))))
+    return x * s
 
 
 cdef inline index_t _clamp(index_t x, index_t top) noexcept nogil:
@@ -473,7 +504,7 @@ def strip_station_sums(ev, q_start, wet_end, b, c83, c53, is_level):
     total_a = np.zeros(e_.shape[0])
     cdef double[::1] total = total_a
     cdef index_t i, k
-    cdef double e, acc, x, x2, root, v
+    cdef double e, acc, x, x2, root, step
     with nogil:
         for i in range(e_.shape[0]):
             e = e_[i]
@@ -481,10 +512,9 @@ def strip_station_sums(ev, q_start, wet_end, b, c83, c53, is_level):
             for k in range(qs[i], we[i]):
                 x = e - bb[k]
                 x2 = x * x
-                root = cbrt(x2)  # x^(2/3)
-                v = k83[k] * x2 * root
-                if lvl[k]:
-                    v += k53[k] * x * root
-                acc += v
+                root = _pow_two_thirds(x)
+                step = k53[k] * x * root
+                # a select, not a branch: level breakpoints come in no pattern
+                acc += k83[k] * x2 * root + (step if lvl[k] else 0.0)
             total[i] = acc
     return total_a

@@ -46,7 +46,7 @@ from .engine import (
 )
 from .errors import InputError, PartialCoverageWarning, check_choice
 from .inputs import rasters_kept_open
-from .memory import release_free_memory
+from .memory import collection_paused, release_free_memory
 from .stages import StageSpec
 
 log = logging.getLogger(__name__)
@@ -147,6 +147,7 @@ class MeshJob:
     tiles: list
 
 
+@collection_paused()
 def prepare_mesh_job(
     dem: str | os.PathLike[str],
     cells: str | os.PathLike[str],
@@ -169,7 +170,8 @@ def prepare_mesh_job(
 
     Face spacing defaults to half a pixel and the snap tolerance to 1 % of a pixel
     (horizontal CRS units).  With a worker ``connection`` the faces are built block by
-    block on the workers.
+    block on the workers.  Python's cyclic garbage collector is paused meanwhile
+    (:func:`ntrans.memory.collection_paused`).
     """
     from .inputs import elevation_field_values, open_dem, read_cells
     from .mesh import build_faces

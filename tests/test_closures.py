@@ -214,3 +214,49 @@ def test_strip_and_lumped_against_flat(points, rise):
     assert strip >= flat * (1 - 1e-9)  # 1e-9: rounding only
     # derived: equal A and P >= L when wet along the whole face -> A R^(2/3) <= L h^(5/3)
     assert lumped <= flat * (1 + 1e-9)  # 1e-9: rounding only
+
+
+# --------------------------------------------------------------------------- strip kernel
+@pytest.mark.parametrize(
+    "low, high",
+    [(1e-100, 1e-80), (1e-6, 1e-3), (1e-3, 1.0), (1.0, 100.0), (100.0, 1e5), (1e100, 1e115)],
+)
+def test_strip_station_terms_against_extended_precision(low, high):
+    """One breakpoint per query: the kernel's x^(8/3) (ramp) and x^(5/3) (level step)
+    against numpy's cube root in extended precision (80-bit on x86; identical to float64
+    where the platform has none).  Power laws: x^(8/3) = (x^2)^(4/3), x^(5/3) = x (x^2)^(1/3).
+
+    Tolerance 7e-16 relative (3 units in the last place at most 2.2e-16 each): the
+    kernel's own root is within 2 units of the exact x^(2/3) (1.83 at most over 600,000
+    values from 1e-200 to 1e200), and x * x and the last product round once more each."""
+    from ntrans._kernels import strip_station_sums
+
+    rng = np.random.default_rng(7)
+    x = np.exp(rng.uniform(np.log(low), np.log(high), 2000))
+    n = x.size
+    first, end = np.arange(n), np.arange(n) + 1
+    ones, zeros = np.ones(n), np.zeros(n)
+    ramp = strip_station_sums(x, first, end, zeros, ones, zeros, np.zeros(n, dtype=bool))
+    level = strip_station_sums(x, first, end, zeros, zeros, ones, np.ones(n, dtype=bool))
+    xl = x.astype(np.longdouble)
+    root = np.cbrt(xl * xl)  # x^(2/3)
+    tol = 7e-16 if np.finfo(np.longdouble).eps < np.finfo(np.float64).eps else 1e-15
+    np.testing.assert_allclose(ramp, (xl * xl * root).astype(np.float64), rtol=tol, atol=0)
+    np.testing.assert_allclose(level, (xl * root).astype(np.float64), rtol=tol, atol=0)
+
+
+def test_strip_station_terms_edge_values():
+    """Zero depth gives zero; a breakpoint's step counts only where it is level; sums
+    run over ``[first, end)`` only (an empty range gives 0)."""
+    from ntrans._kernels import strip_station_sums
+
+    x = np.array([0.0, 8.0, 8.0, 8.0])
+    b = np.zeros(4)
+    c83 = np.array([1.0, 1.0, 0.0, 2.0])
+    c53 = np.array([5.0, 0.0, 1.0, 1.0])
+    is_level = np.array([True, False, True, False])
+    first = np.array([0, 1, 2, 3])
+    end = np.array([1, 2, 3, 3])
+    out = strip_station_sums(x, first, end, b, c83, c53, is_level)
+    # 8^(8/3) = 256 and 8^(5/3) = 32 exactly; the last query's range is empty
+    np.testing.assert_array_equal(out, [0.0, 256.0, 32.0, 0.0])

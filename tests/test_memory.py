@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import platform
 
 import numpy as np
@@ -66,3 +67,54 @@ def test_keep_freed_memory_leaves_an_environment_setting_alone(monkeypatch):
         assert memory.keep_freed_memory() is False
     finally:
         memory.keep_freed_memory.cache_clear()
+
+
+@pytest.mark.parametrize("enabled_before", [True, False])
+@pytest.mark.parametrize("fail", [False, True])
+def test_collection_paused_restores_the_collector(enabled_before, fail):
+    """Off inside the block, back to its earlier state after it, also after an error."""
+    import gc
+
+    from ntrans.memory import collection_paused
+
+    was = gc.isenabled()
+    try:
+        (gc.enable if enabled_before else gc.disable)()
+        with contextlib.suppress(RuntimeError), collection_paused():
+            assert not gc.isenabled()
+            if fail:
+                raise RuntimeError("inside")
+        assert gc.isenabled() is enabled_before
+    finally:
+        (gc.enable if was else gc.disable)()
+
+
+def test_mesh_job_runs_without_collections(tmp_path, builders):
+    """Reading 3,600 cells and building their faces: over 100 collections unpaused (about
+    113 here), at most one paused (the collector may run once as it is switched back on,
+    inside the call); collection is on again afterwards."""
+    import gc
+
+    from ntrans.tables import prepare_mesh_job
+
+    dem = builders.write_dem(tmp_path / "dem.tif", builders.tilted_plane(120, 120))
+    cells = builders.write_cells(tmp_path / "cells.gpkg", builders.grid_polygons(60, 60, 2.0))
+    options = dict(id_field=None, vertical_units=None, elevation_rule="mean",
+                   elevation_field=None, face_spacing=None, snap_tolerance=None, tile_size=64)
+    seen: list[int] = []
+
+    def watch(phase, info):
+        if phase == "start":
+            seen.append(info["generation"])
+
+    gc.callbacks.append(watch)
+    try:
+        paused = prepare_mesh_job(dem, cells, **options)
+        n_paused = len(seen)
+        prepare_mesh_job.__wrapped__(dem, cells, **options)  # the same work, unpaused
+    finally:
+        gc.callbacks.remove(watch)
+    assert paused.mesh.n_faces > 7000
+    assert n_paused <= 1
+    assert len(seen) - n_paused > 20
+    assert gc.isenabled()
