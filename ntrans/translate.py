@@ -605,24 +605,25 @@ def conveyance(stats: ClassStats, n_class: np.ndarray, *, closure: Closure = "lu
     n_p = np.asarray(n_class, dtype=float)[stats.cls][:, None]
     if closure == "strip":
         return k * stats.total(stats.strip / n_p)
+    # powers 2/3 as squared cube roots: np.cbrt is several times faster than np.power
     if composite == "lotter":
         with np.errstate(invalid="ignore", divide="ignore"):
-            part = np.where(stats.perimeter > 0,
-                            stats.area ** (5.0 / 3.0) / np.where(stats.perimeter > 0, stats.perimeter, 1.0)
-                            ** (2.0 / 3.0), 0.0)
+            # A^(5/3) / P^(2/3) = A (A / P)^(2/3)
+            part = np.where(stats.perimeter > 0, stats.area * np.cbrt(
+                stats.area / np.where(stats.perimeter > 0, stats.perimeter, 1.0)) ** 2, 0.0)
         return k * stats.total(part / n_p)
     area = stats.total(stats.area)
     per = stats.total(stats.perimeter)
-    if composite == "horton_einstein":
-        num = stats.total(stats.perimeter * n_p ** 1.5)
-        power = 2.0 / 3.0
-    else:
-        num = stats.total(stats.perimeter * n_p ** 2)
-        power = 0.5
     wet = (per > 0) & (area > 0)
     safe_per = np.where(wet, per, 1.0)
-    n_e = (np.where(wet, num, 1.0) / safe_per) ** power
-    return np.where(wet, k * area * (area / safe_per) ** (2.0 / 3.0) / n_e, 0.0)
+    if composite == "horton_einstein":
+        # A R^(2/3) / n_e with n_e = (sum P_i n_i^1.5 / P)^(2/3): the P cancels, leaving
+        # A (A / sum P_i n_i^1.5)^(2/3)
+        num = np.where(wet, stats.total(stats.perimeter * n_p ** 1.5), 1.0)
+        return np.where(wet, k * area * np.cbrt(area / num) ** 2, 0.0)
+    num = stats.total(stats.perimeter * n_p ** 2)
+    n_e = np.sqrt(np.where(wet, num, 1.0) / safe_per)
+    return np.where(wet, k * area * np.cbrt(area / safe_per) ** 2 / n_e, 0.0)
 
 
 def composite_n(perimeter: np.ndarray, n: np.ndarray, method: Composite = "horton_einstein",
