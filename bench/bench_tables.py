@@ -338,13 +338,17 @@ def _agreement_lines(case: str, agreement: dict) -> list[str]:
 
 def _median_run(outcomes: list[dict]) -> dict:
     """The run with the median seconds (the lower middle of an even count), with the
-    seconds of every run and the largest peak memory; the last failure if none ran."""
+    seconds of every run, the largest peak memory and the errors of the runs that failed
+    (``failed_runs``); the last failure if none ran."""
     done = sorted((o for o in outcomes if "error" not in o), key=lambda o: o["seconds"])
     if not done:
         return outcomes[-1]
     row = dict(done[(len(done) - 1) // 2])
     row["seconds_runs"] = [o["seconds"] for o in outcomes if "error" not in o]
     row["peak_mb"] = max(o["peak_mb"] for o in done)
+    failed = [o["error"] for o in outcomes if "error" in o]
+    if failed:  # kept, with the log's last lines, so a rare failure can be looked into
+        row["failed_runs"] = failed
     return row
 
 
@@ -387,8 +391,11 @@ def run(sizes: list[float], n_stages: int, workers: int, pipelines: list[str],
                 print(f"  running {name}{which} ...", end=" ", flush=True)
                 outcome = _run_pipeline(name, job, runs / name, timeout)
                 outcome["case"] = label
-                print("failed" if "error" in outcome else f"{outcome['seconds']:.1f} s "
-                      f"(peak {outcome['peak_mb']:.0f} MB)", flush=True)
+                if "error" in outcome:  # the log's last lines: the next run overwrites it
+                    print("failed:\n    " + outcome["error"].replace("\n", "\n    "), flush=True)
+                else:
+                    print(f"{outcome['seconds']:.1f} s (peak {outcome['peak_mb']:.0f} MB)",
+                          flush=True)
                 samples[name].append(outcome)
         rows = [_median_run(samples[name]) for name in names]
         by_name = {r["pipeline"]: r for r in rows if "error" not in r}
