@@ -615,13 +615,13 @@ def conveyance(stats: ClassStats, n_class: np.ndarray, *, closure: Closure = "lu
     area = stats.total(stats.area)
     per = stats.total(stats.perimeter)
     wet = (per > 0) & (area > 0)
-    safe_per = np.where(wet, per, 1.0)
     if composite == "horton_einstein":
         # A R^(2/3) / n_e with n_e = (sum P_i n_i^1.5 / P)^(2/3): the P cancels, leaving
         # A (A / sum P_i n_i^1.5)^(2/3)
         num = np.where(wet, stats.total(stats.perimeter * n_p ** 1.5), 1.0)
         return np.where(wet, k * area * np.cbrt(area / num) ** 2, 0.0)
     num = stats.total(stats.perimeter * n_p ** 2)
+    safe_per = np.where(wet, per, 1.0)
     n_e = np.sqrt(np.where(wet, num, 1.0) / safe_per)
     return np.where(wet, k * area * np.cbrt(area / safe_per) ** 2 / n_e, 0.0)
 
