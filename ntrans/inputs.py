@@ -808,13 +808,15 @@ def _group_equal(values: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
     """Bring equal tuples ``(values[0][i], values[1][i], ...)`` (float64) together.
 
     Returns ``(order, new)``: ``order`` puts equal tuples next to each other and ``new``
-    marks where, in that order, a tuple differs from the one before (the first is new).
+    marks where, in that order, a tuple differs from the one before (the first is new);
+    -0.0 and 0.0 are equal, as they are to ``np.lexsort``.
     Sorting one 64-bit hash of each tuple is several times faster than a lexicographic
     sort on all of them; when two different tuples share a hash (checked) the
     lexicographic sort is used instead.
     """
     n = values[0].size
-    bits = [np.ascontiguousarray(v, dtype=np.float64).view(np.uint64) for v in values]
+    # + 0.0 turns -0.0 into 0.0, so equal numbers have equal bits
+    bits = [(np.asarray(v, dtype=np.float64) + 0.0).view(np.uint64) for v in values]
     key = np.zeros(n, dtype=np.uint64)
     with np.errstate(over="ignore"):
         for b in bits:

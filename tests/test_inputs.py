@@ -543,13 +543,16 @@ def test_edges_not_shared(case: str, flagged: set, hash_path: str, monkeypatch) 
 @pytest.mark.parametrize("multiplier", [None, 0, 1])  # None: the module's; 0, 1: collisions
 @pytest.mark.parametrize("seed", [0, 1])
 def test_group_equal_matches_unique(multiplier, seed: int, monkeypatch) -> None:
-    """Groups of equal tuples are those np.unique finds, whatever the hash does."""
+    """Groups of equal tuples are those np.unique finds, whatever the hash does; -0.0
+    equals 0.0 (a shared vertex at a zero coordinate may carry either sign)."""
     import ntrans.inputs as inputs
 
     if multiplier is not None:
         monkeypatch.setattr(inputs, "_HASH_MULTIPLIER", np.uint64(multiplier))
     rng = np.random.default_rng(seed)
     values = [rng.integers(0, 3, 500).astype(float) * 0.1 for _ in range(4)]  # many repeats
+    for v in values:  # half the zeros negative
+        v[(v == 0) & (rng.random(500) < 0.5)] = -0.0
     order, new = inputs._group_equal(values)
     tuples = np.stack(values, axis=1)[order]
     assert sorted(order.tolist()) == list(range(500))
