@@ -13,6 +13,8 @@ Pipelines:
   ntrans_cells     build_tables(..., faces=False)           cell stage table only
   ntrans_faces     build_tables(..., faces=True)            cells + faces
   ntrans_threads   build_tables(..., faces=True, threads=T) T tiles at once in one process
+                   (--threads, default 1: one at a time; the other ntrans pipelines use
+                   the library default, one tile thread per core up to four)
   ntrans_workers   build_tables(..., faces=True, workers=W) local Dask cluster of W workers
   ntrans_adjust    adjust_roughness(n=0.035, flat -> subgrid, lumped closure, 30 depths)
   exactextract     exactextract pixel lists + numpy per cell (reference_pipelines.py)
@@ -355,7 +357,7 @@ def _median_run(outcomes: list[dict]) -> dict:
 def run(sizes: list[float], n_stages: int, workers: int, pipelines: list[str],
         keep_outputs: bool, timeout: float = 1800.0,
         results_path: Path = CASES_DIR / "results.json",
-        rasterstats_max: float = 1e7, threads: int = 2, repeat: int = 1) -> dict:
+        rasterstats_max: float = 1e7, threads: int = 1, repeat: int = 1) -> dict:
     results: dict = {"started": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
                      "python": sys.version.split()[0], "cpus": os.cpu_count(),
                      "stages": n_stages, "workers": workers, "threads": threads,
@@ -452,8 +454,11 @@ def run(sizes: list[float], n_stages: int, workers: int, pipelines: list[str],
         results_path.parent.mkdir(parents=True, exist_ok=True)
         results_path.write_text(json.dumps(results, indent=2, default=str))
     print("\n" + "=" * 100)
+    from ntrans.cluster import default_threads
+
     print(f"stages per item: {n_stages}; workers for ntrans_workers: {workers}; threads for "
-          f"ntrans_threads: {threads}; cpus: {os.cpu_count()}")
+          f"ntrans_threads: {threads}; default tile threads: {default_threads()}; "
+          f"cpus: {os.cpu_count()}")
     table = print_table(all_rows)
     print("\nagreement (relative difference |a-b|/max(|a|,|b|), cells wholly inside the DEM):")
     print("\n".join(all_agree))
@@ -479,7 +484,8 @@ def main() -> None:
                         help="comma list of pixel counts (default 1e6,1e7; add 1e8 on request)")
     parser.add_argument("--stages", type=int, default=30, help="stages (and depths) per item")
     parser.add_argument("--workers", type=int, default=2, help="Dask workers for ntrans_workers")
-    parser.add_argument("--threads", type=int, default=2, help="threads for ntrans_threads")
+    parser.add_argument("--threads", type=int, default=1,
+                        help="tile threads for ntrans_threads (default 1: one tile at a time)")
     parser.add_argument("--pipelines", default=",".join(ALL_PIPELINES),
                         help=f"comma list out of {','.join(ALL_PIPELINES)}")
     parser.add_argument("--keep-outputs", action="store_true",

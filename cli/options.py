@@ -159,8 +159,9 @@ threads = click.option(
     type=click.IntRange(min=1),
     default=None,
     metavar="N",
-    help="Run N tiles at once in this process (default 1); the same results, faster on "
-    "several cores, and memory grows by one tile's work per thread.",
+    help="Run N tiles at once in this process (default: one per core, up to 4; 1 runs "
+    "them one at a time); the same results, and memory grows by one tile's work per "
+    "thread.",
 )
 
 scheduler = click.option(

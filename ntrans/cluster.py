@@ -17,6 +17,7 @@ from __future__ import annotations
 import functools
 import logging
 import multiprocessing
+import os
 from collections import deque
 from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import ThreadPoolExecutor
@@ -29,6 +30,18 @@ from .progress import track
 log = logging.getLogger(__name__)
 
 SCHEDULER_TIMEOUT = "10s"
+#: most tile threads a job starts by itself (each one adds a tile's working set)
+DEFAULT_THREADS_MAX = 4
+
+
+def default_threads() -> int:
+    """Tile threads when none are asked for: one per core this process may use, up to
+    :data:`DEFAULT_THREADS_MAX`."""
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):  # not on Linux
+        cores = os.cpu_count() or 1
+    return max(1, min(cores, DEFAULT_THREADS_MAX))
 
 
 def check_where(workers: int | None, scheduler: str | None, threads: int | None = None) -> None:
@@ -223,7 +236,9 @@ def run_ordered(
         An open :class:`WorkerConnection` to use instead (left open at the end).
     threads
         In this process: run this many tasks at once in a thread pool (``fn`` must be
-        thread-safe; the tile code is, its kernels release the GIL).  Default 1.
+        thread-safe; the tile code is, its kernels release the GIL).  Default: one per
+        core, up to four (:func:`default_threads`); 1 runs them one after another in
+        the calling thread.
     """
     check_where(workers, scheduler, threads)
     if connection is not None and (workers is not None or scheduler is not None):
@@ -232,8 +247,9 @@ def run_ordered(
         results: Iterator[Any] = _run_dask(fn, shared, tasks, connection.client, max_in_flight)
     elif workers is None and scheduler is None:
         keep_freed_memory()  # tasks free and allocate arrays of similar sizes
-        if threads is not None and int(threads) > 1:
-            results = _run_threads(fn, shared, tasks, int(threads), max_in_flight)
+        n_threads = default_threads() if threads is None else int(threads)
+        if n_threads > 1:
+            results = _run_threads(fn, shared, tasks, n_threads, max_in_flight)
         else:
             results = (fn(shared, task) for task in tasks)
     else:

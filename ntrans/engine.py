@@ -718,10 +718,11 @@ def execute(
     spill_dir : for workers on this machine only: a folder where they leave the row
         tables (read back with :func:`rows_of`), which costs the job far less than
         receiving them over the scheduler's connections.
-    threads : without workers: run this many tiles at once in this process (default 1).
+    threads : without workers: run this many tiles at once in this process (default:
+        one per core, up to four).
 
-    Without ``workers`` or ``scheduler`` everything runs in this process, one tile at a
-    time (or ``threads`` at a time), with no extra service.  In every mode results come
+    Without ``workers`` or ``scheduler`` everything runs in this process, ``threads``
+    tiles at a time, with no extra service.  In every mode results come
     back in the order of ``tasks``, so outputs are identical.
     """
     from .cluster import run_ordered

@@ -21,7 +21,7 @@ import math
 import os
 import threading
 import warnings
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -698,9 +698,25 @@ def _resolve_id_field(frame: Any, id_field: str | None, path: str) -> tuple[str,
     return str(id_field), ids
 
 
+#: polygons per thread below which a geometry test runs in one thread
+THREADED_GEOMETRY_MIN = 16_384
+
+
+def _chunked(fn: Callable[[np.ndarray], np.ndarray], geoms: np.ndarray) -> np.ndarray:
+    """``fn(geoms)`` for a vectorised GEOS function, in chunks on the default tile threads
+    (GEOS releases the GIL); small arrays in one call."""
+    from .cluster import default_threads
+
+    n_chunks = min(default_threads(), geoms.size // THREADED_GEOMETRY_MIN)
+    if n_chunks < 2:
+        return fn(geoms)
+    with ThreadPoolExecutor(n_chunks, thread_name_prefix="ntrans-geometry") as pool:
+        return np.concatenate(list(pool.map(fn, np.array_split(geoms, n_chunks))))
+
+
 def _repair(geoms: np.ndarray, ids: np.ndarray) -> np.ndarray:
     """Make invalid polygons valid, keeping only their polygonal parts (vectorised)."""
-    invalid = ~shapely.is_valid(geoms)
+    invalid = ~_chunked(shapely.is_valid, geoms)
     if not invalid.any():
         return geoms
     bad = np.flatnonzero(invalid)
@@ -846,31 +862,33 @@ def _group_equal(values: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
 def _check_overlaps(geoms: np.ndarray, ids: np.ndarray, tolerance: float) -> None:
     """Raise if two cells share more than ``tolerance`` of the smaller one's area.
 
-    Vectorised screens, cheapest first: STRtree pairs with touching bounding boxes; pairs
-    whose bounding-box overlap is already within the tolerance cannot overlap beyond it
-    (this clears structured and quadtree meshes); polygons whose edges are all shared
-    exactly with their neighbours (:func:`_edges_not_shared`) are cleared, so only pairs
-    holding a flagged polygon go on; then interiors are tested and areas computed.
+    Vectorised screens, cheapest first: polygons whose edges are all shared exactly with
+    their neighbours (:func:`_edges_not_shared`) are cleared, so only pairs holding a
+    flagged polygon go on (on a conforming mesh only the cells along its outer border);
+    their neighbours come from an STRtree queried with the flagged polygons alone; pairs
+    whose bounding-box overlap is already within the tolerance cannot overlap beyond it;
+    then interiors are tested and areas computed.
     """
     if geoms.size < 2:
         return
+    flagged = _edges_not_shared(geoms, EDGE_SCREEN_POLYGONS)
+    if not flagged.any():
+        return
     tree = shapely.STRtree(geoms)
-    i, j = tree.query(geoms)
-    keep = i < j
-    i, j = i[keep], j[keep]
+    picked = np.flatnonzero(flagged)
+    k, j = tree.query(geoms[picked])
+    i = picked[k]
+    # each pair once, smaller index first: two flagged polygons find each other twice
+    keep = (i != j) & ~(flagged[j] & (j < i))
+    i, j = np.minimum(i[keep], j[keep]), np.maximum(i[keep], j[keep])
+    order = np.lexsort((j, i))
+    i, j = i[order], j[order]
     areas = shapely.area(geoms)
     box = shapely.bounds(geoms)
     overlap_w = np.minimum(box[i, 2], box[j, 2]) - np.maximum(box[i, 0], box[j, 0])
     overlap_h = np.minimum(box[i, 3], box[j, 3]) - np.maximum(box[i, 1], box[j, 1])
     box_overlap = np.clip(overlap_w, 0, None) * np.clip(overlap_h, 0, None)
     keep = box_overlap > tolerance * np.minimum(areas[i], areas[j])
-    i, j = i[keep], j[keep]
-    if i.size == 0:
-        return
-    involved = np.unique(np.concatenate([i, j]))
-    flagged = np.zeros(geoms.size, dtype=bool)
-    flagged[involved] = _edges_not_shared(geoms[involved], EDGE_SCREEN_POLYGONS)
-    keep = flagged[i] | flagged[j]
     i, j = i[keep], j[keep]
     if i.size == 0:
         return

@@ -20,6 +20,7 @@ import shutil
 from collections import deque
 from collections.abc import Iterable, Iterator, Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
+from dataclasses import dataclass
 from pathlib import Path
 from types import TracebackType
 from typing import Any
@@ -463,8 +464,29 @@ def write_csv(parquet_path: str | os.PathLike[str], csv_path: str | os.PathLike[
     return target
 
 
+@dataclass(frozen=True)
+class EncodedGeometry:
+    """A geometry array as :func:`write_geopackage` writes it: the layer type and the WKB
+    of every row (single parts promoted to multi where the layer mixes them)."""
+
+    geometry_type: str
+    wkb: np.ndarray
+
+
+def encode_geometry(geometry: np.ndarray) -> EncodedGeometry:
+    """The layer type and WKB of ``geometry`` (shapely releases the GIL: this can run in
+    a thread beside other work, which :func:`write_geopackage` then skips)."""
+    import shapely
+
+    geometry_type, promote = _layer_geometry_type(geometry)
+    if promote:
+        geometry = _promoted(geometry)
+    return EncodedGeometry(geometry_type, shapely.to_wkb(geometry))
+
+
 def write_geopackage(
-    frame: Any, path: str | os.PathLike[str], layer: str, *, chunk_rows: int = 65_536
+    frame: Any, path: str | os.PathLike[str], layer: str, *, chunk_rows: int = 65_536,
+    encoded: EncodedGeometry | None = None,
 ) -> Path:
     """Write a GeoDataFrame as one layer of a GeoPackage (created or appended to).
 
@@ -474,16 +496,23 @@ def write_geopackage(
     is built once (appending batch by batch would update it row by row: about twice the
     time for 500,000 cells).  The layer type is taken from all
     rows: a mix of single and multi parts (``Polygon`` and ``MultiPolygon``) is written
-    as the multi type.
+    as the multi type.  ``encoded``: the frame's geometry already encoded by
+    :func:`encode_geometry` (the same rows, in order).
     """
     import pyogrio.raw
 
     target = Path(os.fspath(path))
     try:
         geometry = frame.geometry.to_numpy()
-        geometry_type, promote = _layer_geometry_type(geometry)
+        if encoded is not None:
+            if len(encoded.wkb) != len(geometry):
+                raise ValueError("the encoded geometry does not have one row per feature")
+            geometry_type, promote = encoded.geometry_type, False
+        else:
+            geometry_type, promote = _layer_geometry_type(geometry)
         batches = _geopackage_batches(frame, geometry, chunk_rows=max(int(chunk_rows), 1),
-                                      promote=promote)
+                                      promote=promote,
+                                      wkb=None if encoded is None else encoded.wkb)
         first = next(batches)
         stream = pa.RecordBatchReader.from_batches(first.schema, itertools.chain([first], batches))
         crs = frame.crs
@@ -527,8 +556,10 @@ def _layer_geometry_type(geometry: np.ndarray) -> tuple[str, bool]:
 
 
 def _geopackage_batches(frame: Any, all_geometry: np.ndarray, *, chunk_rows: int,
-                        promote: bool) -> Iterator[pa.RecordBatch]:
-    """Arrow record batches of ``frame`` with its geometry as WKB, ``chunk_rows`` at a time."""
+                        promote: bool, wkb: np.ndarray | None = None
+                        ) -> Iterator[pa.RecordBatch]:
+    """Arrow record batches of ``frame`` with its geometry as WKB, ``chunk_rows`` at a
+    time (``wkb``: already encoded)."""
     import shapely
 
     geometry_name = frame.geometry.name
@@ -537,12 +568,16 @@ def _geopackage_batches(frame: Any, all_geometry: np.ndarray, *, chunk_rows: int
     for start in range(0, max(len(frame), 1), chunk_rows):
         # one batch's attributes at a time (no copy of the whole table)
         stop = start + chunk_rows
-        geometry = all_geometry[start:stop]
-        if promote:
-            geometry = _promoted(geometry)
+        if wkb is not None:
+            encoded = wkb[start:stop]
+        else:
+            geometry = all_geometry[start:stop]
+            if promote:
+                geometry = _promoted(geometry)
+            encoded = shapely.to_wkb(geometry)
         table = pa.table({**{str(c): pa.Array.from_pandas(frame[c].iloc[start:stop])
                              for c in columns},
-                          geometry_name: pa.array(shapely.to_wkb(geometry), pa.binary())})
+                          geometry_name: pa.array(encoded, pa.binary())})
         if schema is None:
             # GDAL has no null type: a column with no values in the first batch is text
             schema = pa.schema([f.with_type(pa.string()) if pa.types.is_null(f.type) else f

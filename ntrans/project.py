@@ -359,7 +359,7 @@ overwrite = false               # replace an existing bundle folder
 [run]
 coverage = "exact"              # pixel-to-cell weights: exact | centre
 tile_size = 512                 # tile edge in DEM pixels (bounds memory)
-# threads = 2                   # tiles at once in this process (default 1)
+# threads = 2                   # tiles at once in this process (default: one per core, up to 4)
 # workers = 4                   # local worker processes (default: this process)
 """
 

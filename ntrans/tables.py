@@ -24,6 +24,7 @@ import os
 import shutil
 import time
 import warnings
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -72,6 +73,10 @@ FACE_SUMMARY_COLUMNS: tuple[str, ...] = (
 
 #: Fractions below 1 - this count as partly outside the DEM / over nodata (round-off).
 PARTIAL_TOLERANCE = 1e-6
+#: cells whose WKB takes at most this many bytes (about) are encoded for ``cells.gpkg``
+#: beside the tiles instead of after them; larger layers are encoded batch by batch at
+#: the end, so their encoded geometry never sits in memory whole
+EARLY_ENCODE_BYTES = 64 << 20
 
 
 @dataclass
@@ -145,6 +150,21 @@ class MeshJob:
     snap_tolerance: float
     mesh: Any  # ntrans.mesh.Faces, or None without faces
     tiles: list
+
+
+def _encode_early(geoms: np.ndarray) -> Future | None:
+    """Start encoding the cells for ``cells.gpkg`` in a thread, beside the tiles (a
+    future of :func:`ntrans.outputs.encode_geometry`); None for a layer whose WKB would
+    take more than :data:`EARLY_ENCODE_BYTES`."""
+    from .outputs import encode_geometry
+
+    estimate = 16 * int(shapely.get_num_coordinates(geoms).sum()) + 64 * geoms.size
+    if estimate > EARLY_ENCODE_BYTES:
+        return None
+    pool = ThreadPoolExecutor(1, thread_name_prefix="ntrans-encode")
+    future = pool.submit(encode_geometry, geoms)
+    pool.shutdown(wait=False)
+    return future
 
 
 @collection_paused()
@@ -272,8 +292,9 @@ def build_tables(
     csv : also write the stage tables as CSV.
     tile_size : tile edge in DEM pixels.
     workers, scheduler : run tiles on a local Dask cluster / an existing scheduler.
-    threads : without workers: tiles at once in this process (default 1); the same
-        results, faster on several cores, memory grows by one tile's work per thread.
+    threads : without workers: tiles at once in this process (default: one per core, up
+        to four; 1 for one at a time); the same results, memory grows by one tile's work
+        per thread.
     progress : show a progress bar on stderr.
 
     Returns
@@ -320,6 +341,7 @@ def build_tables(
             tile_size=tile_size, faces=faces, connection=connection,
         )
         dem_info, layer, ids, geoms = job.dem, job.layer, job.ids, job.geoms
+        encoded = _encode_early(geoms)
         field_values, spacing, mesh, tiles = job.field_values, job.spacing, job.mesh, job.tiles
         n_cells = geoms.size
         n_faces = mesh.n_faces if mesh is not None else 0
@@ -458,7 +480,8 @@ def build_tables(
             geometry=gpd.GeoSeries(geoms, crs=crs),
             crs=crs,
         )
-        files.append(write_geopackage(cell_frame, tmp / "cells.gpkg", "cells"))
+        files.append(write_geopackage(cell_frame, tmp / "cells.gpkg", "cells",
+                                      encoded=None if encoded is None else encoded.result()))
         del cell_frame
         if mesh is not None:
             columns: dict[str, Any] = {

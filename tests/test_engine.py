@@ -253,7 +253,7 @@ def test_threads_equal_one_thread_to_the_bit(mesh, tmp_path, threads):
     from ntrans.tables import build_tables
 
     dem, cells = mesh
-    build_tables(dem, cells, out=tmp_path / "one", stages="9:12:0.5", tile_size=8)
+    build_tables(dem, cells, out=tmp_path / "one", stages="9:12:0.5", tile_size=8, threads=1)
     res = build_tables(dem, cells, out=tmp_path / "many", stages="9:12:0.5", tile_size=8,
                        threads=threads)
     assert res.n_tiles > threads  # several tiles really run at once
@@ -263,6 +263,31 @@ def test_threads_equal_one_thread_to_the_bit(mesh, tmp_path, threads):
         pd.testing.assert_frame_equal(pd.read_parquet(tmp_path / "one" / name),
                                       pd.read_parquet(tmp_path / "many" / name),
                                       check_exact=True)
+
+
+def test_default_threads_one_per_core_up_to_four(monkeypatch):
+    import os
+
+    from ntrans import cluster
+
+    for cores, expected in [(1, 1), (2, 2), (3, 3), (4, 4), (16, 4)]:
+        monkeypatch.setattr(os, "sched_getaffinity", lambda pid, n=cores: set(range(n)),
+                            raising=False)
+        assert cluster.default_threads() == expected
+
+
+@pytest.mark.parametrize("cores, pooled", [(1, False), (3, True)])
+def test_run_ordered_uses_the_default_threads(monkeypatch, cores, pooled):
+    """Without ``threads`` the tasks run on a pool of one thread per core (none on one)."""
+    import threading
+
+    from ntrans import cluster
+
+    monkeypatch.setattr(cluster, "default_threads", lambda: cores)
+    names = list(cluster.run_ordered(lambda shared, task: threading.current_thread().name,
+                                     None, range(6)))
+    assert all(n.startswith("ntrans-tiles") for n in names) == pooled
+    assert any(n == threading.current_thread().name for n in names) != pooled
 
 
 def test_thread_runner_keeps_order_bounds_work_and_stops_on_error():

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import logging
 import pickle
+import re
 import warnings
 from pathlib import Path
 
@@ -583,6 +584,69 @@ def test_overlap_found_across_slab_borders(monkeypatch) -> None:
         inputs._check_overlaps(np.array(polys, dtype=object), np.arange(1, 10), 0.01)
 
 
+def _voronoi_cells(n: int, seed: int) -> list:
+    """A conforming mesh: the Voronoi cells of ``n`` random points, clipped to 100 x 100."""
+    rng = np.random.default_rng(seed)
+    points = shapely.multipoints(rng.uniform(0, 100, (n, 2)))
+    frame = shapely.box(0, 0, 100, 100)
+    cells = shapely.get_parts(shapely.voronoi_polygons(points, extend_to=frame))
+    return list(shapely.intersection(cells, frame))
+
+
+def _worst_overlap(polys: list, tolerance: float):
+    """Brute force over every pair: (fraction, i, j) of the largest overlap beyond the
+    tolerance (shared area over the smaller cell's area), or None."""
+    worst = None
+    for a in range(len(polys)):
+        for b in range(a + 1, len(polys)):
+            shared = polys[a].intersection(polys[b]).area
+            fraction = shared / min(polys[a].area, polys[b].area)
+            if fraction > tolerance and (worst is None or fraction > worst[0]):
+                worst = (fraction, a, b)
+    return worst
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+@pytest.mark.parametrize("change", ["none", "grown", "duplicate", "inside", "shifted",
+                                    "second mesh"])
+def test_check_overlaps_matches_brute_force(seed: int, change: str) -> None:
+    """The screened check raises exactly when some pair overlaps beyond the tolerance
+    (geometry identity: every pair's shared area, computed by brute force).  It names
+    the worst pair first where a cell along a border that is not shared holds it; two
+    whole meshes over one square are reported by their border cells (every interior
+    edge of each is shared), which overlap too."""
+    import ntrans.inputs as inputs
+
+    polys = _voronoi_cells(40, seed)
+    k = 7
+    if change == "grown":
+        polys[k] = polys[k].buffer(1.5)
+    elif change == "duplicate":
+        polys.append(polys[k])
+    elif change == "inside":
+        polys.append(polys[k].centroid.buffer(0.5))
+    elif change == "shifted":  # a cell slid sideways by 20 % of its width
+        x0, _, x1, _ = polys[k].bounds
+        polys[k] = shapely.affinity.translate(polys[k], 0.2 * (x1 - x0), 0)
+    elif change == "second mesh":  # another conforming mesh over the same square
+        polys += _voronoi_cells(25, seed + 10)
+    ids = np.arange(1, len(polys) + 1)
+    worst = _worst_overlap(polys, 0.01)
+    if worst is None:
+        inputs._check_overlaps(np.array(polys, dtype=object), ids, 0.01)
+        assert change == "none"
+        return
+    _, a, b = worst
+    with pytest.raises(GeometryError, match=r"pairs (\d+)/(\d+) ") as raised:
+        inputs._check_overlaps(np.array(polys, dtype=object), ids, 0.01)
+    named = re.search(r"pairs (\d+)/(\d+) ", str(raised.value)).groups()
+    a_named, b_named = (int(v) - 1 for v in named)
+    shared = polys[a_named].intersection(polys[b_named]).area
+    assert shared / min(polys[a_named].area, polys[b_named].area) > 0.01  # a real overlap
+    if change != "second mesh":
+        assert (a_named, b_named) == (a, b)
+
+
 def test_read_cells_keeps_cells_off_the_dem(tmp_path: Path, tmp_dem: Path) -> None:
     polys = [shapely.box(0, 0, 10, 10), shapely.box(25, 25, 35, 35), shapely.box(50, 50, 60, 60)]
     cells = read_cells(write_cells(tmp_path / "c.gpkg", polys), dem=open_dem(tmp_dem))
@@ -848,3 +912,18 @@ def test_process_session_keeps_a_few_rasters_per_thread(tmp_path: Path, monkeypa
         np.testing.assert_array_equal(infos[1].read_window(0, 0, 2, 2), 1.0)
     assert {Path(src.name).name for src in session.handles()} == {"d2.tif", "d1.tif"}
     session.close()
+
+
+@pytest.mark.parametrize("threads", [1, 2, 3])
+def test_geometry_test_in_chunks_matches_one_call(monkeypatch, threads: int) -> None:
+    """Validity in chunks on threads is the validity of each polygon, in order."""
+    import ntrans.cluster
+    import ntrans.inputs as inputs
+
+    monkeypatch.setattr(ntrans.cluster, "default_threads", lambda: threads)
+    monkeypatch.setattr(inputs, "THREADED_GEOMETRY_MIN", 4)
+    bowtie = shapely.Polygon([(0, 0), (1, 1), (1, 0), (0, 1)])  # self-intersecting
+    polys = np.array([shapely.box(i, 0, i + 1, 1) if i % 5 else bowtie for i in range(23)],
+                     dtype=object)
+    got = inputs._chunked(shapely.is_valid, polys)
+    assert got.tolist() == [bool(i % 5) for i in range(23)]
