@@ -15,7 +15,7 @@ when it already is one).
 
 import numpy as np
 
-from libc.math cimport INFINITY, NAN, cbrt, ceil, floor, sqrt
+from libc.math cimport INFINITY, NAN, cbrt, ceil, floor, isfinite, sqrt
 from libc.stdint cimport int64_t, uint64_t
 from libc.string cimport memcpy
 
@@ -153,6 +153,46 @@ cdef inline index_t _first_above(const double* eta, index_t m, double per_step,
     return lo
 
 
+cdef void _item_bins(const double* z, const double* plan, const double* bed, index_t count,
+                     const double* lv, index_t n_lv, bint relative, double* eta,
+                     double* low, double* high, double* covered, double* moment,
+                     double* wet, double* wet_bed, double* wet_moment) noexcept nogil:
+    """One item's terrain statistics and stage bins from its ``count`` >= 1 entries.
+
+    ``wet``, ``wet_bed`` and ``wet_moment`` point at the item's row (``n_lv + 1`` zeros);
+    each entry is added to the bin of the first stage that wets it, then the bins are
+    summed cumulatively.  ``eta`` is scratch for ``n_lv`` stages.
+    """
+    cdef double z_lo = z[0], z_hi = z[0], total = 0.0, mom = 0.0, p, d, per_step
+    cdef index_t e, j, k, b
+    for e in range(1, count):
+        if not z_lo <= z[e]:
+            z_lo = z[e]
+        if not z_hi >= z[e]:
+            z_hi = z[e]
+    low[0] = z_lo
+    high[0] = z_hi
+    for k in range(n_lv):
+        eta[k] = lv[k] + z_lo if relative else lv[k]
+    per_step = _per_step(eta, n_lv)
+    for j in range(count):
+        p = plan[j]
+        d = z[j] - z_lo
+        total += p
+        mom += p * d
+        if n_lv:
+            b = _first_above(eta, n_lv, per_step, z[j])
+            wet[b] += p
+            wet_bed[b] += bed[j]
+            wet_moment[b] += p * d
+    covered[0] = total
+    moment[0] = mom
+    for k in range(1, n_lv):
+        wet[k] += wet[k - 1]
+        wet_bed[k] += wet_bed[k - 1]
+        wet_moment[k] += wet_moment[k - 1]
+
+
 def _f64(a):
     return np.ascontiguousarray(a, dtype=np.float64)
 
@@ -185,9 +225,29 @@ def exact_coverage_values(edge_start, u0, v0, u1, v1, sign, index_t rows, index_
                           elevation, surface, pixel_area)
 
 
+def exact_coverage_stage_sums(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t cols,
+                              double threshold, elevation, surface, double pixel_area,
+                              levels, bint relative, index_t n_items):
+    """:func:`exact_coverage_values` and :func:`item_stage_sums` in one walk.
+
+    Each item's entries (pixels with a finite elevation) are gathered into a buffer the
+    size of its bounding box and summed there, in the order :func:`item_stage_sums`
+    reads them, so the results are the same to the bit; no per-pixel array is written.
+    ``n_items`` (at least ``len(edge_start) - 1``) rows are returned.  Returns what
+    :func:`item_stage_sums` returns and, last, the number of entries whose bed area is
+    not finite (they are left out; the caller reports them).
+    """
+    if len(edge_start) - 1 > n_items:
+        raise ValueError("n_items is smaller than the number of items with edges")
+    return _coverage_walk(edge_start, u0, v0, u1, v1, sign, rows, cols, threshold,
+                          elevation, surface, pixel_area, levels, relative, n_items)
+
+
 def _coverage_walk(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t cols,
-                   double threshold, elevation, surface, double pixel_area):
-    """The walk of both coverage kernels; with ``elevation`` it gathers entry values."""
+                   double threshold, elevation, surface, double pixel_area,
+                   levels=None, bint relative=False, index_t n_items_out=0):
+    """The walk of the coverage kernels: pixel runs; with ``elevation`` entry values;
+    with ``levels`` too, per-item stage sums (see the public functions)."""
     cdef const int64_t[::1] es = _i64(edge_start)
     cdef const double[::1] eu0 = _f64(u0)
     cdef const double[::1] ev0 = _f64(v0)
@@ -195,6 +255,7 @@ def _coverage_walk(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t cols,
     cdef const double[::1] ev1 = _f64(v1)
     cdef const double[::1] esign = _f64(sign)
     cdef bint gather = elevation is not None
+    cdef bint summing = levels is not None
     cdef const double[:, ::1] grid = np.ascontiguousarray(
         elevation if gather else np.empty((0, 0)), dtype=np.float64)
     cdef const double[:, ::1] factor = np.ascontiguousarray(
@@ -202,6 +263,8 @@ def _coverage_walk(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t cols,
     if gather and (grid.shape[0] != rows or grid.shape[1] != cols
                    or factor.shape[0] != rows or factor.shape[1] != cols):
         raise ValueError("elevation and surface must have the window's shape")
+    if summing and not gather:
+        raise ValueError("stage sums need the elevation and surface")
     cdef index_t n_items = es.shape[0] - 1
     rmin_a = np.zeros(max(n_items, 0), np.intp)
     rmax_a = np.zeros(max(n_items, 0), np.intp)
@@ -212,8 +275,8 @@ def _coverage_walk(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t cols,
     cdef index_t[::1] cmin = cmin_a
     cdef index_t[::1] cmax = cmax_a
     cdef index_t capacity = 0, largest = 0, i, e, e0, e1, h, w, width, r, c, at, n = 0
-    cdef index_t rr, cc
-    cdef double vlo, vhi, ulo, uhi, running, frac, zz, p
+    cdef index_t rr, cc, n_bad = 0
+    cdef double vlo, vhi, ulo, uhi, running, frac, zz, p, bb
     with nogil:
         for i in range(n_items):
             e0, e1 = es[i], es[i + 1]
@@ -232,8 +295,10 @@ def _coverage_walk(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t cols,
             capacity += (rmax[i] - rmin[i]) * (cmax[i] - cmin[i])
             largest = max(largest, (rmax[i] - rmin[i]) * (cmax[i] - cmin[i] + 2))
 
+    if summing:  # one item's entries at a time
+        capacity = largest
     # sized for every pixel of every bounding box; the results are views of their first n
-    out_item_a = np.empty(capacity, np.int64)
+    out_item_a = np.empty(0 if summing else capacity, np.int64)
     # runs: row, column (int64) and fraction; values: elevation, plan and bed area
     out_b_a = np.empty(capacity, np.float64 if gather else np.int64)
     out_c_a = np.empty(capacity, np.float64 if gather else np.int64)
@@ -246,6 +311,26 @@ def _coverage_walk(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t cols,
     cdef double[::1] out_plan = out_c_a if gather else np.empty(0)
     cdef double[::1] out_d = out_d_a  # fraction, or bed area
     cdef double[::1] diff = diff_a
+
+    # per-item stage sums (the outputs of item_stage_sums)
+    cdef const double[::1] lv = _f64(levels if summing else np.empty(0))
+    cdef index_t n_lv = lv.shape[0], n_rows = n_items_out if summing else 0
+    low_a = np.full(n_rows, np.nan)
+    high_a = np.full(n_rows, np.nan)
+    covered_a = np.zeros(n_rows)
+    moment_a = np.zeros(n_rows)
+    wet_a = np.zeros((n_rows, n_lv + 1))
+    wet_bed_a = np.zeros((n_rows, n_lv + 1))
+    wet_moment_a = np.zeros((n_rows, n_lv + 1))
+    eta_a = np.empty(max(n_lv, 1))
+    cdef double[::1] low = low_a
+    cdef double[::1] high = high_a
+    cdef double[::1] covered = covered_a
+    cdef double[::1] moment = moment_a
+    cdef double[:, ::1] wet = wet_a
+    cdef double[:, ::1] wet_bed = wet_bed_a
+    cdef double[:, ::1] wet_moment = wet_moment_a
+    cdef double[::1] eta = eta_a
     with nogil:
         for i in range(n_items):
             h = rmax[i] - rmin[i]
@@ -256,6 +341,8 @@ def _coverage_walk(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t cols,
             for e in range(es[i], es[i + 1]):
                 _deposit_split(diff, width, rmin[i], cmin[i], rows, cols,
                                eu0[e], ev0[e], eu1[e], ev1[e], esign[e], True)
+            if summing:
+                n = 0
             for r in range(h):
                 running = 0.0
                 at = r * width
@@ -265,6 +352,20 @@ def _coverage_walk(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t cols,
                     if running > threshold:
                         frac = running if running < 1.0 else 1.0
                         cc = cmin[i] + c
+                        if summing:
+                            zz = grid[rr, cc]
+                            if not isfinite(zz):  # nodata (or an infinite value): no entry
+                                continue
+                            p = frac * pixel_area
+                            bb = p * factor[rr, cc]
+                            if not isfinite(bb):
+                                n_bad += 1
+                                continue
+                            out_z[n] = zz
+                            out_plan[n] = p
+                            out_d[n] = bb
+                            n += 1
+                            continue
                         if gather:
                             zz = grid[rr, cc]
                             if zz != zz:  # nodata: no entry
@@ -281,6 +382,13 @@ def _coverage_walk(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t cols,
                         n += 1
                 for c in range(width):
                     diff[at + c] = 0.0
+            if summing and n:
+                _item_bins(&out_z[0], &out_plan[0], &out_d[0], n, &lv[0] if n_lv else NULL,
+                           n_lv, relative, &eta[0], &low[i], &high[i], &covered[i],
+                           &moment[i], &wet[i, 0], &wet_bed[i, 0], &wet_moment[i, 0])
+    if summing:
+        return (low_a, high_a, covered_a, moment_a, wet_a[:, :n_lv], wet_bed_a[:, :n_lv],
+                wet_moment_a[:, :n_lv], n_bad)
     return out_item_a[:n], out_b_a[:n], out_c_a[:n], out_d_a[:n]
 
 
@@ -396,8 +504,7 @@ def item_stage_sums(item, z, plan, bed, levels, bint relative, index_t n_items):
     cdef double[:, ::1] wet_moment = wet_moment_a
     cdef unsigned char[::1] seen = seen_a
     cdef double[::1] eta = eta_a
-    cdef index_t s = 0, e, i, j, k, b
-    cdef double z_lo, z_hi, total, mom, p, d, per_step
+    cdef index_t s = 0, e, i
     cdef bint grouped = True
     with nogil:
         while s < n:
@@ -406,38 +513,12 @@ def item_stage_sums(item, z, plan, bed, levels, bint relative, index_t n_items):
                 grouped = False
                 break
             seen[i] = 1
-            z_lo = zz[s]
-            z_hi = zz[s]
             e = s + 1
             while e < n and it[e] == i:
-                if not z_lo <= zz[e]:
-                    z_lo = zz[e]
-                if not z_hi >= zz[e]:
-                    z_hi = zz[e]
                 e += 1
-            low[i] = z_lo
-            high[i] = z_hi
-            for k in range(n_lv):
-                eta[k] = lv[k] + z_lo if relative else lv[k]
-            per_step = _per_step(&eta[0], n_lv)
-            total = 0.0
-            mom = 0.0
-            for j in range(s, e):
-                p = pl[j]
-                d = zz[j] - z_lo
-                total += p
-                mom += p * d
-                if n_lv:
-                    b = _first_above(&eta[0], n_lv, per_step, zz[j])
-                    wet[i, b] += p
-                    wet_bed[i, b] += bd[j]
-                    wet_moment[i, b] += p * d
-            covered[i] = total
-            moment[i] = mom
-            for k in range(1, n_lv):
-                wet[i, k] += wet[i, k - 1]
-                wet_bed[i, k] += wet_bed[i, k - 1]
-                wet_moment[i, k] += wet_moment[i, k - 1]
+            _item_bins(&zz[s], &pl[s], &bd[s], e - s, &lv[0] if n_lv else NULL, n_lv,
+                       relative, &eta[0], &low[i], &high[i], &covered[i], &moment[i],
+                       &wet[i, 0], &wet_bed[i, 0], &wet_moment[i, 0])
             s = e
     if not grouped:
         raise ValueError("the entries of an item are not contiguous; group them by item")

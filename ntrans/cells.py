@@ -31,6 +31,8 @@ __all__ = [
     "cell_stage_table",
     "cell_tables",
     "cell_terrain_summary",
+    "sorted_levels",
+    "tables_from_sums",
     "flat_cell_table",
     "flat_elevation",
 ]
@@ -237,20 +239,46 @@ def cell_tables(
     order of ``levels``.
     """
     n_items = int(n_items)
-    lv = np.asarray(levels, dtype=np.float64).ravel()
-    if not np.isfinite(lv).all():
-        raise InputError("levels hold NaN or infinite values; give finite stages or depths")
+    lv, order = sorted_levels(levels)
     item, z, (a, b) = _entries(item, z, plan_area, bed_area, n_items=n_items)
     as_given = (item, z, a)
     item, (z, a, b) = _grouped(item, z, a, b)
-    order = np.argsort(lv, kind="stable")
-    low, high, covered, moment, *sums = item_stage_sums(item, z, a, b, lv[order],
-                                                        bool(relative), n_items)
-    summary = _summary(low, high, covered, moment, *as_given, n_items, median)
-    wet, wet_bed, wet_moment = (np.empty((n_items, lv.size)) for _ in range(3))
-    for target, value in zip((wet, wet_bed, wet_moment), sums, strict=True):
+    sums = item_stage_sums(item, z, a, b, lv[order], bool(relative), n_items)
+    return tables_from_sums(sums, lv, order, relative=relative,
+                            median_entries=as_given if median else None)
+
+
+def sorted_levels(levels) -> tuple[np.ndarray, np.ndarray]:
+    """``(levels, order)``: the levels as a flat float64 array and the stable order that
+    sorts them (the stage-sum kernels take ``levels[order]``)."""
+    lv = np.asarray(levels, dtype=np.float64).ravel()
+    if not np.isfinite(lv).all():
+        raise InputError("levels hold NaN or infinite values; give finite stages or depths")
+    return lv, np.argsort(lv, kind="stable")
+
+
+def tables_from_sums(
+    sums: tuple, levels: np.ndarray, order: np.ndarray, *, relative: bool = False,
+    median_entries: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
+) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray]]:
+    """What :func:`cell_tables` returns, from the per-item sums at ``levels[order]``.
+
+    ``sums``: ``(low, high, covered, moment, wet, wet_bed, wet_moment)`` as
+    :func:`ntrans._kernels.item_stage_sums` (or
+    :func:`ntrans.coverage.exact_coverage_stage_sums`) returns them; ``median_entries``:
+    ``(item, z, plan_area)`` of the valid entries for the median elevation (None: NaN).
+    """
+    low, high, covered, moment, *bins = sums
+    n_items = low.size
+    if median_entries is None:
+        summary = _summary(low, high, covered, moment, None, None, None, n_items, False)
+    else:
+        summary = _summary(low, high, covered, moment, *median_entries, n_items, True)
+    wet, wet_bed, wet_moment = (np.empty((n_items, levels.size)) for _ in range(3))
+    for target, value in zip((wet, wet_bed, wet_moment), bins, strict=True):
         target[:, order] = value
-    stages = low[:, None] + lv[None, :] if relative else np.broadcast_to(lv, (n_items, lv.size))
+    stages = (low[:, None] + levels[None, :] if relative
+              else np.broadcast_to(levels, (n_items, levels.size)))
     return summary, _stage_table(stages, low, wet, wet_bed, wet_moment)
 
 

@@ -24,7 +24,13 @@ from affine import Affine
 
 from .errors import GeometryError, InputError
 
-__all__ = ["PixelWeights", "centre_coverage", "exact_coverage", "exact_coverage_values"]
+__all__ = [
+    "PixelWeights",
+    "centre_coverage",
+    "exact_coverage",
+    "exact_coverage_stage_sums",
+    "exact_coverage_values",
+]
 
 _MIN_FRACTION = 1e-12
 
@@ -303,6 +309,55 @@ def exact_coverage_values(
         empty = np.zeros(0)
         return np.zeros(0, dtype=np.int64), empty, empty.copy(), empty.copy()
     return walk(*edges, rows, cols, _MIN_FRACTION, elevation, surface, float(pixel_area))
+
+
+def exact_coverage_stage_sums(
+    polygons, transform: Affine, elevation: np.ndarray, surface: np.ndarray,
+    pixel_area: float, levels: np.ndarray, *, relative: bool, n_items: int,
+) -> tuple[np.ndarray, ...]:
+    """Per-item terrain statistics and stage sums of the exact coverage, in one walk.
+
+    The numbers :func:`ntrans._kernels.item_stage_sums` gives for the entries of
+    :func:`exact_coverage_values` (with the non-finite elevations left out), to the bit,
+    without forming the entries: each polygon's pixels are summed while its bounding
+    box is walked.
+
+    Parameters
+    ----------
+    polygons, transform, elevation, surface, pixel_area : as for
+        :func:`exact_coverage_values`.
+    levels : (n_levels,) increasing finite stages, or depths with ``relative``.
+    n_items : rows to return (at least the number of polygons).
+
+    Returns
+    -------
+    ``(low, high, covered, moment, wet, wet_bed, wet_moment)``: (n_items,) and
+    (n_items, n_levels) float64 arrays (see :func:`ntrans.cells.tables_from_sums`).
+    """
+    from ._kernels import exact_coverage_stage_sums as walk
+    from ._kernels import item_stage_sums
+
+    elevation = np.asarray(elevation, dtype=np.float64)
+    if elevation.ndim != 2 or np.shape(surface) != elevation.shape:
+        raise InputError(
+            f"elevation {elevation.shape} and surface {np.shape(surface)} must be 2-D arrays "
+            "of the window's shape"
+        )
+    rows, cols = _check_window(transform, elevation.shape)
+    edges = _item_edges(polygons, transform, rows, cols)
+    if edges is None:
+        empty = np.zeros(0)
+        empty_item = np.zeros(0, dtype=np.int64)
+        return item_stage_sums(empty_item, empty, empty, empty, levels, bool(relative),
+                               int(n_items))
+    *sums, n_bad = walk(*edges, rows, cols, _MIN_FRACTION, elevation, surface,
+                        float(pixel_area), levels, bool(relative), int(n_items))
+    if n_bad:
+        raise InputError(
+            "an area array holds NaN or infinite values at pixels with valid elevation; "
+            "give finite areas (set z to NaN to leave a pixel out)"
+        )
+    return tuple(sums)
 
 
 def _item_edges(polygons, transform: Affine, rows: int, cols: int):

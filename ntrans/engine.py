@@ -407,8 +407,14 @@ def run_tile(
     ``cell_a`` / ``cell_b`` global, -1 on the boundary) and ``face_summary``.
     """
     from ._kernels import entry_values
-    from .cells import cell_tables, flat_cell_table, flat_elevation
-    from .coverage import centre_coverage, exact_coverage_values
+    from .cells import (
+        cell_tables,
+        flat_cell_table,
+        flat_elevation,
+        sorted_levels,
+        tables_from_sums,
+    )
+    from .coverage import centre_coverage, exact_coverage_stage_sums, exact_coverage_values
     from .terrain import sample_bilinear, surface_factor
 
     tile = task.tile
@@ -420,14 +426,25 @@ def run_tile(
     spec = settings.stages
     n_st = spec.values.size
 
-    # --- pixel weights, surface factor
-    if elevation.size == 0:
-        item = np.zeros(0, dtype=np.int64)
-        z, plan, bed = np.empty(0), np.empty(0), np.empty(0)
+    # terrain summary of every cell (own and halo) and the stage table, with one extra
+    # column at the reference stage.  Per entry (a pixel of a cell): elevation, plan
+    # area = fraction x pixel area, bed area = plan x surface factor
+    levels = np.append(spec.values, float(settings.reference))
+    relative = spec.mode == "depth"
+    median = settings.elevation_rule == "median"
+    sf = (surface_factor(elevation, dx, dy, z_to_xy=settings.z_to_xy)
+          if elevation.size else np.empty(elevation.shape))
+    if settings.coverage == "exact" and not median:
+        # one walk sums each cell's pixels where it finds them: no per-pixel arrays
+        lv, order = sorted_levels(levels)
+        sums = exact_coverage_stage_sums(task.polygons, transform, elevation, sf, pixel_area,
+                                         lv[order], relative=relative, n_items=n_all)
+        summary, table = tables_from_sums(sums, lv, order, relative=relative)
     else:
-        sf = surface_factor(elevation, dx, dy, z_to_xy=settings.z_to_xy)
-        # per entry: elevation, plan area = fraction x pixel area, bed area = plan x factor
-        if settings.coverage == "exact":  # one walk, no pixel indices written
+        if elevation.size == 0:
+            item = np.zeros(0, dtype=np.int64)
+            z, plan, bed = np.empty(0), np.empty(0), np.empty(0)
+        elif settings.coverage == "exact":
             item, z, plan, bed = exact_coverage_values(
                 task.polygons, transform, elevation, sf, pixel_area
             )
@@ -435,13 +452,8 @@ def run_tile(
             w = centre_coverage(task.polygons, transform, elevation.shape)
             item = np.asarray(w.item, dtype=np.int64)
             z, plan, bed = entry_values(w.row, w.col, w.fraction, elevation, sf, pixel_area)
-
-    # terrain summary of every cell (own and halo) and the stage table, with one extra
-    # column at the reference stage, in one pass over the entries
-    summary, table = cell_tables(
-        item, z, plan, bed, n_all, np.append(spec.values, float(settings.reference)),
-        relative=spec.mode == "depth", median=settings.elevation_rule == "median",
-    )
+        summary, table = cell_tables(item, z, plan, bed, n_all, levels, relative=relative,
+                                     median=median)
     centroid_z = None
     if settings.elevation_rule == "centroid":
         cent = shapely.centroid(task.polygons)

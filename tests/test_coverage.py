@@ -109,6 +109,59 @@ def test_values_walk_equals_weights_then_gather(transform, shape, seed):
     assert got[0].dtype == np.int64
 
 
+@pytest.mark.parametrize("transform, shape", WINDOWS + [UTM_LIKE])
+@pytest.mark.parametrize("seed", [0, 1, 2])
+@pytest.mark.parametrize("relative", [False, True])
+def test_stage_sums_walk_equals_values_then_item_sums(transform, shape, seed, relative):
+    """The one-walk stage sums are those of the entry values, bit for bit: the same
+    entries (NaN and infinite elevations left out) summed in the same order."""
+    from ntrans._kernels import item_stage_sums
+
+    from ntrans.coverage import exact_coverage_stage_sums
+
+    rng = np.random.default_rng(seed)
+    x0, x1 = sorted([transform.c, transform.c + transform.a * shape[1]])
+    y0, y1 = sorted([transform.f, transform.f + transform.e * shape[0]])
+    polys = random_polygons(rng, 8, (x0 - 2, x1 + 2), (y0 - 2, y1 + 2)) + [None]
+    far = shapely.box(x1 + 50, y1 + 50, x1 + 51, y1 + 51)  # an item without pixels
+    polys.insert(3, far)
+    elevation = rng.normal(100.0, 3.0, shape)
+    elevation[rng.random(shape) < 0.15] = np.nan
+    w = exact_coverage(polys, transform, shape)
+    elevation[w.row[::7], w.col[::7]] = np.inf  # infinite values inside polygons
+    surface = 1.0 + rng.random(shape)
+    pixel_area = abs(transform.a * transform.e)
+    levels = np.array([0.5, 1.0, 2.0, 4.0]) if relative else np.array([96.0, 99.5, 100.0, 104.0])
+    n_items = len(polys) + 2  # rows beyond the last polygon stay empty
+
+    item, z, plan, bed = exact_coverage_values(polys, transform, elevation, surface, pixel_area)
+    finite = np.isfinite(z)
+    expected = item_stage_sums(item[finite], z[finite], plan[finite], bed[finite], levels,
+                               relative, n_items)
+    got = exact_coverage_stage_sums(polys, transform, elevation, surface, pixel_area, levels,
+                                    relative=relative, n_items=n_items)
+    assert (~finite).any()  # the case has infinite elevations inside polygons
+    for a, b in zip(got, expected, strict=True):
+        np.testing.assert_array_equal(a, b)
+    assert np.isnan(got[0][3]) and got[2][3] == 0.0  # the item without pixels
+
+
+def test_stage_sums_walk_reports_bad_areas_and_empty_windows():
+    from ntrans.coverage import exact_coverage_stage_sums
+
+    transform = Affine(1.0, 0.0, 0.0, 0.0, -1.0, 4.0)
+    polys = [shapely.box(0.5, 0.5, 3.5, 3.5)]
+    surface = np.ones((4, 4))
+    surface[2, 2] = np.inf
+    with pytest.raises(InputError, match="finite areas"):
+        exact_coverage_stage_sums(polys, transform, np.ones((4, 4)), surface, 1.0,
+                                  np.array([2.0]), relative=False, n_items=1)
+    low, high, covered, moment, wet, wet_bed, wet_moment = exact_coverage_stage_sums(
+        polys, transform, np.empty((0, 0)), np.empty((0, 0)), 1.0, np.array([2.0]),
+        relative=False, n_items=2)
+    assert np.isnan(low).all() and (covered == 0).all() and wet.shape == (2, 1)
+
+
 def test_values_walk_empty_and_shape_mismatch():
     transform = Affine(1.0, 0.0, 0.0, 0.0, -1.0, 4.0)
     far = [shapely.box(50, 50, 51, 51), None]

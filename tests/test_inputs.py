@@ -893,13 +893,13 @@ def test_process_session_keeps_handles_and_never_reads_a_stale_file(
     session.close()
 
 
-def test_process_session_keeps_a_few_rasters_per_thread(tmp_path: Path, monkeypatch) -> None:
+def test_process_session_keeps_a_few_rasters_open(tmp_path: Path, monkeypatch) -> None:
     """A worker serving job after job on other rasters keeps only the most recently used
     few open; reading a closed one again reopens it."""
     import ntrans.inputs as inputs
 
     monkeypatch.setattr(inputs, "_process_session", None)
-    monkeypatch.setattr(inputs, "PROCESS_RASTERS_PER_THREAD", 2)
+    monkeypatch.setattr(inputs, "PROCESS_RASTERS_OPEN", 2)
     infos = [open_dem(write_dem(tmp_path / f"d{k}.tif", np.full((8, 8), float(k))))
              for k in range(3)]
     for k in (0, 1, 0, 2):  # d1 is then the least recently used
