@@ -193,6 +193,43 @@ cdef void _item_bins(const double* z, const double* plan, const double* bed, ind
         wet_moment[k] += wet_moment[k - 1]
 
 
+cdef class _StageSums:
+    """The per-item outputs of the stage-sum kernels, filled item by item by :meth:`add`."""
+
+    cdef object low_a, high_a, covered_a, moment_a, wet_a, wet_bed_a, wet_moment_a, eta_a
+    cdef double[::1] low, high, covered, moment, eta
+    cdef const double[::1] lv
+    cdef double[:, ::1] wet, wet_bed, wet_moment
+    cdef index_t n_lv
+    cdef bint relative
+
+    def __init__(self, index_t n_rows, levels, bint relative):
+        self.lv = _f64(levels)
+        self.n_lv = self.lv.shape[0]
+        self.relative = relative
+        self.low = self.low_a = np.full(n_rows, np.nan)
+        self.high = self.high_a = np.full(n_rows, np.nan)
+        self.covered = self.covered_a = np.zeros(n_rows)
+        self.moment = self.moment_a = np.zeros(n_rows)
+        self.wet = self.wet_a = np.zeros((n_rows, self.n_lv + 1))
+        self.wet_bed = self.wet_bed_a = np.zeros((n_rows, self.n_lv + 1))
+        self.wet_moment = self.wet_moment_a = np.zeros((n_rows, self.n_lv + 1))
+        self.eta = self.eta_a = np.empty(max(self.n_lv, 1))
+
+    cdef void add(self, index_t i, const double* z, const double* plan, const double* bed,
+                  index_t count) noexcept nogil:
+        """Item ``i`` from its ``count`` >= 1 entries."""
+        _item_bins(z, plan, bed, count, &self.lv[0] if self.n_lv else NULL, self.n_lv,
+                   self.relative, &self.eta[0], &self.low[i], &self.high[i],
+                   &self.covered[i], &self.moment[i], &self.wet[i, 0], &self.wet_bed[i, 0],
+                   &self.wet_moment[i, 0])
+
+    def result(self):
+        n = self.n_lv
+        return (self.low_a, self.high_a, self.covered_a, self.moment_a, self.wet_a[:, :n],
+                self.wet_bed_a[:, :n], self.wet_moment_a[:, :n])
+
+
 def _f64(a):
     return np.ascontiguousarray(a, dtype=np.float64)
 
@@ -313,24 +350,8 @@ def _coverage_walk(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t cols,
     cdef double[::1] diff = diff_a
 
     # per-item stage sums (the outputs of item_stage_sums)
-    cdef const double[::1] lv = _f64(levels if summing else np.empty(0))
-    cdef index_t n_lv = lv.shape[0], n_rows = n_items_out if summing else 0
-    low_a = np.full(n_rows, np.nan)
-    high_a = np.full(n_rows, np.nan)
-    covered_a = np.zeros(n_rows)
-    moment_a = np.zeros(n_rows)
-    wet_a = np.zeros((n_rows, n_lv + 1))
-    wet_bed_a = np.zeros((n_rows, n_lv + 1))
-    wet_moment_a = np.zeros((n_rows, n_lv + 1))
-    eta_a = np.empty(max(n_lv, 1))
-    cdef double[::1] low = low_a
-    cdef double[::1] high = high_a
-    cdef double[::1] covered = covered_a
-    cdef double[::1] moment = moment_a
-    cdef double[:, ::1] wet = wet_a
-    cdef double[:, ::1] wet_bed = wet_bed_a
-    cdef double[:, ::1] wet_moment = wet_moment_a
-    cdef double[::1] eta = eta_a
+    cdef _StageSums sums = _StageSums(n_items_out if summing else 0,
+                                      levels if summing else np.empty(0), relative)
     with nogil:
         for i in range(n_items):
             h = rmax[i] - rmin[i]
@@ -383,12 +404,9 @@ def _coverage_walk(edge_start, u0, v0, u1, v1, sign, index_t rows, index_t cols,
                 for c in range(width):
                     diff[at + c] = 0.0
             if summing and n:
-                _item_bins(&out_z[0], &out_plan[0], &out_d[0], n, &lv[0] if n_lv else NULL,
-                           n_lv, relative, &eta[0], &low[i], &high[i], &covered[i],
-                           &moment[i], &wet[i, 0], &wet_bed[i, 0], &wet_moment[i, 0])
+                sums.add(i, &out_z[0], &out_plan[0], &out_d[0], n)
     if summing:
-        return (low_a, high_a, covered_a, moment_a, wet_a[:, :n_lv], wet_bed_a[:, :n_lv],
-                wet_moment_a[:, :n_lv], n_bad)
+        return (*sums.result(), n_bad)
     return out_item_a[:n], out_b_a[:n], out_c_a[:n], out_d_a[:n]
 
 
@@ -484,26 +502,10 @@ def item_stage_sums(item, z, plan, bed, levels, bint relative, index_t n_items):
     cdef const double[::1] zz = _f64(z)
     cdef const double[::1] pl = _f64(plan)
     cdef const double[::1] bd = _f64(bed)
-    cdef const double[::1] lv = _f64(levels)
-    cdef index_t n = it.shape[0], n_lv = lv.shape[0]
-    low_a = np.full(n_items, np.nan)
-    high_a = np.full(n_items, np.nan)
-    covered_a = np.zeros(n_items)
-    moment_a = np.zeros(n_items)
-    wet_a = np.zeros((n_items, n_lv + 1))
-    wet_bed_a = np.zeros((n_items, n_lv + 1))
-    wet_moment_a = np.zeros((n_items, n_lv + 1))
+    cdef index_t n = it.shape[0]
+    cdef _StageSums sums = _StageSums(n_items, levels, relative)
     seen_a = np.zeros(n_items, np.uint8)
-    eta_a = np.empty(max(n_lv, 1))
-    cdef double[::1] low = low_a
-    cdef double[::1] high = high_a
-    cdef double[::1] covered = covered_a
-    cdef double[::1] moment = moment_a
-    cdef double[:, ::1] wet = wet_a
-    cdef double[:, ::1] wet_bed = wet_bed_a
-    cdef double[:, ::1] wet_moment = wet_moment_a
     cdef unsigned char[::1] seen = seen_a
-    cdef double[::1] eta = eta_a
     cdef index_t s = 0, e, i
     cdef bint grouped = True
     with nogil:
@@ -516,14 +518,11 @@ def item_stage_sums(item, z, plan, bed, levels, bint relative, index_t n_items):
             e = s + 1
             while e < n and it[e] == i:
                 e += 1
-            _item_bins(&zz[s], &pl[s], &bd[s], e - s, &lv[0] if n_lv else NULL, n_lv,
-                       relative, &eta[0], &low[i], &high[i], &covered[i], &moment[i],
-                       &wet[i, 0], &wet_bed[i, 0], &wet_moment[i, 0])
+            sums.add(i, &zz[s], &pl[s], &bd[s], e - s)
             s = e
     if not grouped:
         raise ValueError("the entries of an item are not contiguous; group them by item")
-    return (low_a, high_a, covered_a, moment_a, wet_a[:, :n_lv], wet_bed_a[:, :n_lv],
-            wet_moment_a[:, :n_lv])
+    return sums.result()
 
 
 def horn_surface_factor(zp, double x_scale, double y_scale):

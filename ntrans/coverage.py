@@ -297,6 +297,16 @@ def exact_coverage_values(
     """
     from ._kernels import exact_coverage_values as walk
 
+    elevation, edges = _window_edges(polygons, transform, elevation, surface)
+    if edges is None:
+        empty = np.zeros(0)
+        return np.zeros(0, dtype=np.int64), empty, empty.copy(), empty.copy()
+    return walk(*edges, *elevation.shape, _MIN_FRACTION, elevation, surface, float(pixel_area))
+
+
+def _window_edges(polygons, transform: Affine, elevation, surface):
+    """``(elevation as float64, edges)`` for the walks over a window of values (edges
+    None when no polygon reaches the window); checks the shapes."""
     elevation = np.asarray(elevation, dtype=np.float64)
     if elevation.ndim != 2 or np.shape(surface) != elevation.shape:
         raise InputError(
@@ -304,11 +314,7 @@ def exact_coverage_values(
             "of the window's shape"
         )
     rows, cols = _check_window(transform, elevation.shape)
-    edges = _item_edges(polygons, transform, rows, cols)
-    if edges is None:
-        empty = np.zeros(0)
-        return np.zeros(0, dtype=np.int64), empty, empty.copy(), empty.copy()
-    return walk(*edges, rows, cols, _MIN_FRACTION, elevation, surface, float(pixel_area))
+    return elevation, _item_edges(polygons, transform, rows, cols)
 
 
 def exact_coverage_stage_sums(
@@ -337,20 +343,13 @@ def exact_coverage_stage_sums(
     from ._kernels import exact_coverage_stage_sums as walk
     from ._kernels import item_stage_sums
 
-    elevation = np.asarray(elevation, dtype=np.float64)
-    if elevation.ndim != 2 or np.shape(surface) != elevation.shape:
-        raise InputError(
-            f"elevation {elevation.shape} and surface {np.shape(surface)} must be 2-D arrays "
-            "of the window's shape"
-        )
-    rows, cols = _check_window(transform, elevation.shape)
-    edges = _item_edges(polygons, transform, rows, cols)
+    elevation, edges = _window_edges(polygons, transform, elevation, surface)
     if edges is None:
         empty = np.zeros(0)
         empty_item = np.zeros(0, dtype=np.int64)
         return item_stage_sums(empty_item, empty, empty, empty, levels, bool(relative),
                                int(n_items))
-    *sums, n_bad = walk(*edges, rows, cols, _MIN_FRACTION, elevation, surface,
+    *sums, n_bad = walk(*edges, *elevation.shape, _MIN_FRACTION, elevation, surface,
                         float(pixel_area), levels, bool(relative), int(n_items))
     if n_bad:
         raise InputError(
