@@ -31,10 +31,10 @@ __all__ = [
     "cell_stage_table",
     "cell_tables",
     "cell_terrain_summary",
-    "sorted_levels",
-    "tables_from_sums",
     "flat_cell_table",
     "flat_elevation",
+    "sorted_levels",
+    "tables_from_sums",
 ]
 
 ElevationRule = Literal["mean", "min", "median", "centroid", "field"]

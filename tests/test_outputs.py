@@ -21,6 +21,7 @@ from ntrans.outputs import (
     TableWriter,
     column_descriptions,
     column_units,
+    encode_geometry,
     read_table_metadata,
     write_csv,
     write_geopackage,
@@ -306,7 +307,8 @@ def test_write_geopackage_in_chunks_keeps_every_row(tmp_path: Path, chunk_rows) 
 
 
 @pytest.mark.parametrize("chunk_rows", [2, 100])
-def test_write_geopackage_layer_type_from_all_rows(tmp_path: Path, chunk_rows) -> None:
+@pytest.mark.parametrize("early", [False, True])
+def test_write_geopackage_layer_type_from_all_rows(tmp_path: Path, chunk_rows, early) -> None:
     """Single and multi polygons in one layer: written as multi, whichever batch has them
     (GDAL's layer type is one per layer; pyogrio's own rule promotes a mix to multi)."""
     import geopandas as gpd
@@ -316,7 +318,10 @@ def test_write_geopackage_layer_type_from_all_rows(tmp_path: Path, chunk_rows) -
     geometry = squares[:3] + [shapely.MultiPolygon([squares[3], shapely.box(20, 0, 22, 2)])]
     frame = gpd.GeoDataFrame({"cell_id": np.arange(4), "flags": [None, None, "a", "b"]},
                              geometry=geometry, crs="EPSG:32633")
-    path = write_geopackage(frame, tmp_path / "m.gpkg", "cells", chunk_rows=chunk_rows)
+    # early: the geometry encoded beforehand (as the cell tables do beside their tiles)
+    encoded = encode_geometry(frame.geometry.to_numpy()) if early else None
+    path = write_geopackage(frame, tmp_path / "m.gpkg", "cells", chunk_rows=chunk_rows,
+                            encoded=encoded)
     info = pyogrio.read_info(path, layer="cells")
     assert info["geometry_type"] == "MultiPolygon"
     assert info["features"] == 4
@@ -327,6 +332,15 @@ def test_write_geopackage_layer_type_from_all_rows(tmp_path: Path, chunk_rows) -
     assert back["flags"].isna().tolist()[:2] == [True, True]
     # promotion to one-part multi polygons keeps the shapes
     assert all(shapely.equals(back.geometry.to_numpy(), frame.geometry.to_numpy()))
+
+
+def test_write_geopackage_encoded_rows_must_match(tmp_path: Path) -> None:
+    import geopandas as gpd
+
+    frame = gpd.GeoDataFrame(geometry=list(grid_polygons(3, 1, 2.0)), crs="EPSG:32633")
+    encoded = encode_geometry(frame.geometry.to_numpy()[:2])
+    with pytest.raises(OutputError, match="one row per feature"):
+        write_geopackage(frame, tmp_path / "g.gpkg", "cells", encoded=encoded)
 
 
 def test_write_geopackage_geometry_only(tmp_path: Path) -> None:
