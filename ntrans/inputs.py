@@ -191,7 +191,7 @@ class _OpenRasters:
         stale: list[_Handle] = []
         with self._lock:
             held = self._by_path.pop(path, None)
-            if held is not None and held.stamp == stamp:
+            if held is not None and held.stamp == stamp and not held.closed:
                 self._by_path[path] = held  # most recently used last
                 return held
             if held is not None:
@@ -206,8 +206,13 @@ class _OpenRasters:
         return handle
 
     def read(self, path: str, read: Callable[[Any], Any]) -> Any:
-        """``read(dataset)`` on the shared handle of ``path``, under its lock."""
-        return self._handle(path).read(read)
+        """``read(dataset)`` on the shared handle of ``path``, under its lock (a handle
+        another thread closed meanwhile, as stale or least recently used, is looked up
+        again)."""
+        while True:
+            done, value = self._handle(path).read(read)
+            if done:
+                return value
 
     def handles(self) -> list[Any]:
         with self._lock:
@@ -221,22 +226,26 @@ class _OpenRasters:
 
 
 class _Handle:
-    """One dataset (opened on first use, and again after :meth:`close` if a thread still
-    holds the handle) and the lock its readers take turns on."""
+    """One dataset (opened on first use) and the lock its readers take turns on."""
 
     def __init__(self, path: str, stamp: tuple[int, ...] | None) -> None:
         self.path, self.stamp = path, stamp
         self.src: Any = None
+        self.closed = False
         self.lock = threading.Lock()
 
-    def read(self, read: Callable[[Any], Any]) -> Any:
+    def read(self, read: Callable[[Any], Any]) -> tuple[bool, Any]:
+        """``(True, read(dataset))``, or ``(False, None)`` once the handle is closed."""
         with self.lock:
+            if self.closed:
+                return False, None
             if self.src is None:
                 self.src = rasterio.open(self.path)
-            return read(self.src)
+            return True, read(self.src)
 
     def close(self) -> None:
         with self.lock:
+            self.closed = True
             if self.src is not None:
                 self.src.close()
                 self.src = None

@@ -914,6 +914,22 @@ def test_process_session_keeps_a_few_rasters_open(tmp_path: Path, monkeypatch) -
     session.close()
 
 
+def test_closed_handle_is_looked_up_again(tmp_path: Path) -> None:
+    """A thread holding a handle that another thread closed (stale file, least recently
+    used) reads through a fresh handle the session keeps, not an untracked one."""
+    import ntrans.inputs as inputs
+
+    path = str(write_dem(tmp_path / "d.tif", np.full((8, 8), 3.0)))
+    session = inputs._OpenRasters()
+    held = session._handle(path)
+    held.close()  # as an eviction by another thread would
+    assert held.read(lambda src: 1) == (False, None)
+    value = session.read(path, lambda src: float(src.read(1)[0, 0]))
+    assert value == 3.0
+    assert len(session.handles()) == 1 and session._by_path[path] is not held
+    session.close()
+
+
 @pytest.mark.parametrize("threads", [1, 2, 3])
 def test_geometry_test_in_chunks_matches_one_call(monkeypatch, threads: int) -> None:
     """Validity in chunks on threads is the validity of each polygon, in order."""
