@@ -25,9 +25,12 @@ Seconds are measured inside the subprocess around the pipeline call (imports exc
 Dask cluster start-up included); cpu_s is user + system time of the subprocess and all
 its descendants: the larger of what os.wait4 reports (the subprocess and the children it
 reaped) and the sum of the last sampled CPU time of every process in its tree (psutil,
-every 50 ms), which also counts Dask workers forked by a server process.  Peak memory is the larger of the subprocess's ru_maxrss and
-the largest sampled sum of resident memory over the subprocess and all its descendants
-(psutil, every 50 ms; counts the Dask workers, may double-count shared pages).
+every 50 ms), which also counts Dask workers forked by a server process.  Peak memory is
+the larger of the subprocess's own peak (VmHWM, read by it at the end; ru_maxrss where
+that is missing, which on Linux also carries the memory of this benchmark process at the
+fork, e.g. after it has built a large case) and the largest sampled sum of resident
+memory over the subprocess and all its descendants (psutil, every 50 ms; counts the
+Dask workers, may double-count shared pages).
 """
 
 from __future__ import annotations
@@ -127,7 +130,24 @@ def _run_child(job_path: Path) -> None:
             result["detail"] = detail
         result["seconds"] = time.perf_counter() - t0
     result["warnings"] = sorted({f"{w.category.__name__}: {w.message}"[:200] for w in caught})
+    result["own_peak_mb"] = _own_peak_mb()
     Path(job["result"]).write_text(json.dumps(result, default=str))
+
+
+def _own_peak_mb() -> float | None:
+    """This process's peak resident memory since it started its program (VmHWM), MB.
+
+    Unlike ``ru_maxrss`` it does not carry over the memory of the process it was forked
+    from: Linux keeps the larger of the two across ``exec``, so a benchmark that has just
+    built a 10^8-pixel case in its own process would report that for every pipeline.
+    """
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024.0
+    except OSError:
+        pass
+    return None
 
 
 # --------------------------------------------------------------------------- parent side
@@ -188,6 +208,8 @@ def _run_pipeline(name: str, job: dict, run_dir: Path, timeout: float) -> dict:
         outcome["error"] = f"timed out after {timeout:.0f} s (killed)"
     elif proc.returncode == 0 and result_path.exists():
         outcome.update(json.loads(result_path.read_text()))
+        if outcome.get("own_peak_mb") is not None:  # exact, without ru_maxrss's carry-over
+            outcome["peak_mb"] = max(outcome["own_peak_mb"], outcome["tree_peak_mb"])
     else:
         tail = (run_dir / "log.txt").read_text().splitlines()[-15:]
         outcome["error"] = "\n".join(tail)

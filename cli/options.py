@@ -151,7 +151,9 @@ workers = click.option(
     type=click.IntRange(min=1),
     default=None,
     metavar="N",
-    help="Run tiles on a local Dask cluster of N worker processes (default: this process).",
+    help="Run tiles on a local Dask cluster of N worker processes (default: this process, "
+    "which already uses one tile thread per core up to 4; a local cluster pays off only "
+    "beyond that).",
 )
 
 threads = click.option(

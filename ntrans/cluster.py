@@ -44,6 +44,22 @@ def default_threads() -> int:
     return max(1, min(cores, DEFAULT_THREADS_MAX))
 
 
+def local_cluster_note(workers: int) -> str | None:
+    """A note when a local cluster of ``workers`` is no larger than the tile threads one
+    process runs here by itself (:func:`default_threads`), else None.
+
+    Such a cluster computes on the same cores as one process and adds the workers'
+    start-up and the transfer of every tile's rows, so it is usually the slower choice.
+    """
+    threads = default_threads()
+    if int(workers) > threads:
+        return None
+    return (f"a local cluster of {int(workers)} worker(s) is usually slower than one process "
+            f"here, which runs {threads} tile thread(s) by itself; workers pay off beyond "
+            "the cores one process uses (more cores, or an existing scheduler on several "
+            "machines)")
+
+
 def check_where(workers: int | None, scheduler: str | None, threads: int | None = None) -> None:
     """Raise InputError unless workers / scheduler / threads make one valid choice."""
     if workers is not None and scheduler is not None:
@@ -146,6 +162,9 @@ class WorkerConnection:
     def __init__(self, workers: int | None, scheduler: str | None) -> None:
         check_where(workers, scheduler)
         self.local = scheduler is None  # workers on this machine: they see its files
+        note = local_cluster_note(workers) if workers is not None else None
+        if note is not None:
+            log.info(note)
         self._pool = ThreadPoolExecutor(1, thread_name_prefix="ntrans-workers")
         self._future = self._pool.submit(_connect, workers, scheduler)
         self._closing: Any = None

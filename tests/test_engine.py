@@ -276,6 +276,22 @@ def test_default_threads_one_per_core_up_to_four(monkeypatch):
         assert cluster.default_threads() == expected
 
 
+@pytest.mark.parametrize("cores, workers, noted", [(2, 2, True), (2, 1, True), (1, 1, True),
+                                                   (2, 3, False), (16, 4, True), (16, 5, False)])
+def test_local_cluster_no_larger_than_one_process_is_noted(monkeypatch, cores, workers, noted):
+    """A local cluster with no more workers than one process's tile threads gets a note
+    (it computes on the same cores and adds start-up and transfers)."""
+    from ntrans import cluster
+
+    monkeypatch.setattr(cluster.os, "sched_getaffinity", lambda pid: set(range(cores)),
+                        raising=False)
+    note = cluster.local_cluster_note(workers)
+    assert (note is not None) == noted
+    if noted:
+        assert f"{workers} worker(s)" in note
+        assert f"{min(cores, cluster.DEFAULT_THREADS_MAX)} tile thread(s)" in note
+
+
 @pytest.mark.parametrize("cores, pooled", [(1, False), (3, True)])
 def test_run_ordered_uses_the_default_threads(monkeypatch, cores, pooled):
     """Without ``threads`` the tasks run on a pool of one thread per core (none on one)."""
