@@ -113,6 +113,7 @@ def plan_tiles(
     face_cell_b: np.ndarray | None = None,
     face_lines: np.ndarray | None = None,
     margin: int = MARGIN,
+    band_tiles: int | None = None,
 ) -> list[Tile]:
     """Group cells (and their faces) into tiles with one DEM window each.
 
@@ -124,11 +125,14 @@ def plan_tiles(
     face_cell_a, face_cell_b, face_lines : the mesh faces (``cell_b`` = -1 on the
         boundary); a face belongs to the tile of its ``cell_a``.
     margin : pixels added around the union of the bounds.
+    band_tiles : tile columns per band (see :func:`band_tiles_for_cache`); None: one band
+        as wide as the DEM.
 
     Returns
     -------
-    Tiles in deterministic order (tile row, then tile column); tiles without cells are
-    not returned.
+    Tiles in deterministic order: band of ``band_tiles`` tile columns, then tile row,
+    then tile column (tile row, then tile column without bands); tiles without cells
+    are not returned.
     """
     if int(tile_size) < 1:
         raise InputError(f"tile size {tile_size} is not a positive number of pixels; use e.g. 512")
@@ -154,7 +158,10 @@ def plan_tiles(
     trow = trow.astype(np.int64)
     tcol = tcol.astype(np.int64)
 
-    order = np.lexsort((np.arange(n_cells), tcol, trow))
+    if band_tiles is not None and int(band_tiles) < 1:
+        raise InputError(f"band_tiles {band_tiles} is not a positive number of tile columns")
+    band = np.zeros(n_cells, dtype=np.int64) if band_tiles is None else tcol // int(band_tiles)
+    order = np.lexsort((np.arange(n_cells), tcol, trow, band))
     keys = np.stack([trow[order], tcol[order]], axis=1)
     new = np.ones(n_cells, dtype=bool)
     new[1:] = np.any(keys[1:] != keys[:-1], axis=1)
@@ -216,6 +223,53 @@ def plan_tiles(
         tiles.append(Tile(t, key, cells, halo, faces, window))
     log.debug("planned %d tiles of %d px for %d cells", n_tiles, tile_size, n_cells)
     return tiles
+
+
+def band_tiles_for_cache(
+    block_shape: tuple[int, int] | None,
+    width: int,
+    itemsize: int,
+    tile_size: int,
+    cache_bytes: int,
+) -> int | None:
+    """Tile columns per band, so that neighbouring tiles find their shared DEM blocks in
+    GDAL's block cache; None to go through whole tile rows.
+
+    A tile window overlaps the windows above and below it by its margin, so the blocks
+    along that edge are read again one tile row later.  In row order that is a whole
+    DEM width later: once one tile row of blocks is larger than the cache, every shared
+    block is decoded twice or more (a 10^8-pixel DEM, 10,000 px wide in 256 x 256 float32
+    blocks, through a 32 MB cache: 2.2 s of reading on one thread against 1.3 s with a
+    128 MB cache).  Tiles taken in bands of this many columns keep what one band row
+    touches within half of ``cache_bytes`` (the rest for the tiles in flight), whatever
+    the DEM's width; the blocks along the band borders are decoded twice.  None when the
+    whole tile row fits, or when a block spans the width (a striped file: bands would
+    decode every strip once per band).  Windows are taken as up to 1.5 tile edges high
+    and wide (cells that reach past their tile).
+
+    >>> band_tiles_for_cache((256, 256), 10_000, 4, 512, 32 * 2**20)
+    7
+    >>> band_tiles_for_cache((1, 10_000), 10_000, 4, 512, 32 * 2**20) is None
+    True
+    """
+    if block_shape is None or int(tile_size) < 1:
+        return None
+    block_rows, block_cols = (max(int(b), 1) for b in block_shape)
+    tile, width = int(tile_size), int(width)
+    if block_cols >= width or 2 * tile >= width:
+        return None
+    rows_spanned = -(-3 * tile // (2 * block_rows)) + 1  # ceil(1.5 tile / block) + 1
+
+    def band_bytes(n: int) -> int:
+        cols_spanned = -(-(2 * n + 1) * tile // (2 * block_cols)) + 1
+        return rows_spanned * cols_spanned * block_rows * block_cols * int(itemsize)
+
+    if band_bytes(-(-width // tile)) <= cache_bytes // 2:
+        return None  # a whole tile row fits
+    n = 1
+    while band_bytes(n + 1) <= cache_bytes // 2 and (n + 1) * tile < width:
+        n += 1
+    return n
 
 
 # --------------------------------------------------------------------------- tasks

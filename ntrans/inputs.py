@@ -419,6 +419,8 @@ class DemInfo:
         (left, bottom, right, top) in the CRS.
     xy_metres_per_unit, z_metres_per_unit : float
         Metres per horizontal / vertical unit (0.3048 or 0.3048006 for feet).
+    block_shape : (rows, cols) or None
+        How band 1 is stored: the pixels GDAL decodes at once (None when not known).
     """
 
     path: str
@@ -437,6 +439,7 @@ class DemInfo:
     bounds: rasterio.coords.BoundingBox
     xy_metres_per_unit: float = 1.0
     z_metres_per_unit: float = 1.0
+    block_shape: tuple[int, int] | None = None
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -515,6 +518,7 @@ def open_dem(path: str | os.PathLike[str], *, vertical_units: str | None = None)
             width, height, count = src.width, src.height, src.count
             nodata = src.nodata
             dtype = src.dtypes[0] if count else ""
+            block_shape = tuple(int(b) for b in src.block_shapes[0]) if count else None
     except rasterio.errors.RasterioIOError as exc:
         raise InputFileError(
             f"DEM file '{text}' cannot be read as a raster ({_reason(exc, text)}); give a "
@@ -602,6 +606,7 @@ def open_dem(path: str | os.PathLike[str], *, vertical_units: str | None = None)
         bounds=bounds,
         xy_metres_per_unit=float(xy_factor),
         z_metres_per_unit=float(z_factor),
+        block_shape=block_shape,
     )
     logger.info(
         "DEM %s: %d x %d pixels of %g x %g %s, elevations in %s",

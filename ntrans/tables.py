@@ -10,8 +10,10 @@ Flat face beds need the flat elevation of both adjacent cells; a tile carries th
 neighbouring cells its faces touch (its *halo*) and recomputes their terrain summary,
 so each tile is independent (see :mod:`ntrans.engine`).
 
-Rows are ordered by tile (tile row, tile column), then by cell (face) index within the
-tile, then by stage; the order is the same in-process and on Dask workers.
+Rows are ordered by tile (tile row, tile column; on a DEM wider than GDAL's block cache
+can follow, in bands of tile columns first: :func:`ntrans.engine.band_tiles_for_cache`),
+then by cell (face) index within the tile, then by stage; the order is the same
+in-process and on Dask workers.
 """
 
 from __future__ import annotations
@@ -39,6 +41,7 @@ from .engine import (
     ELEVATION_RULES,
     FACE_RULES,
     TileSettings,
+    band_tiles_for_cache,
     default_reference,
     execute,
     make_tasks,
@@ -46,7 +49,7 @@ from .engine import (
     rows_of,
 )
 from .errors import InputError, PartialCoverageWarning, check_choice
-from .inputs import rasters_kept_open
+from .inputs import RASTER_CACHE_BYTES, rasters_kept_open
 from .memory import collection_paused, release_free_memory
 from .stages import StageSpec
 
@@ -238,6 +241,9 @@ def prepare_mesh_job(
         face_cell_a=None if mesh is None else mesh.cell_a,
         face_cell_b=None if mesh is None else mesh.cell_b,
         face_lines=None if mesh is None else mesh.geometry,
+        band_tiles=band_tiles_for_cache(dem_info.block_shape, dem_info.width,
+                                        np.dtype(dem_info.dtype).itemsize, int(tile_size),
+                                        RASTER_CACHE_BYTES),
     )
     return MeshJob(
         dem_info, layer, np.asarray(layer.ids), geoms, field_values, spacing, snap, mesh, tiles

@@ -10,7 +10,7 @@ import shapely
 from affine import Affine
 from conftest import grid_polygons, write_cells, write_dem
 
-from ntrans.engine import MARGIN, execute, plan_tiles, run_tile
+from ntrans.engine import MARGIN, band_tiles_for_cache, execute, plan_tiles, run_tile
 from ntrans.errors import InputError, PartialCoverageWarning
 
 # 40 x 40 one-metre pixels, lower-left corner (0, 0)
@@ -36,6 +36,42 @@ def test_every_cell_in_exactly_one_tile(tile_size):
     # deterministic order: tile row, then tile column
     keys = [t.key for t in tiles]
     assert keys == sorted(keys)
+
+
+@pytest.mark.parametrize("band_tiles", [1, 2, 3])
+def test_bands_reorder_the_same_tiles(band_tiles):
+    """Bands of tile columns change the order of the tiles, never their content."""
+    polys = np.array(grid_polygons(8, 8, 5.0), dtype=object)
+    rows = plan_tiles(polys, T40, (40, 40), tile_size=10)
+    bands = plan_tiles(polys, T40, (40, 40), tile_size=10, band_tiles=band_tiles)
+    # order: band (tile column // band_tiles), then tile row, then tile column
+    keys = [t.key for t in bands]
+    assert keys == sorted(keys, key=lambda k: (k[1] // band_tiles, k[0], k[1]))
+    assert [t.index for t in bands] == list(range(len(bands)))
+    by_key = {t.key: t for t in rows}
+    assert sorted(by_key) == sorted(keys)
+    for t in bands:
+        same = by_key[t.key]
+        assert np.array_equal(t.cells, same.cells) and np.array_equal(t.halo, same.halo)
+        assert t.window == same.window
+
+
+@pytest.mark.parametrize("block_shape, width, itemsize, cache_mb, expected", [
+    # 256 px blocks, 512 px tiles: a window spans ceil(1.5 * 512 / 256) + 1 = 4 block
+    # rows and 2n + 2 block columns for n tile columns, 256 kB each (float32), so a band
+    # row takes (2n + 2) MB; half of 32 MB holds n = 7 (16 MB), whatever the width
+    ((256, 256), 10_000, 4, 32, 7),
+    ((256, 256), 100_000, 4, 32, 7),
+    ((256, 256), 10_000, 8, 32, 3),    # float64: (2n + 2) * 2 MB <= 16 MB -> n = 3
+    ((256, 256), 10_000, 4, 128, None),  # a whole tile row (40 MB) fits in 64 MB
+    ((256, 256), 3_163, 4, 32, None),  # 7 tile columns: the whole row is the band
+    ((1, 10_000), 10_000, 4, 32, None),  # striped: a block spans the width
+    ((512, 512), 100_000, 4, 32, 3),   # 3 block rows, n + 2 columns of 1 MB: n = 3 (15 MB)
+    (None, 10_000, 4, 32, None),       # layout not known: row order
+])
+def test_band_width_keeps_one_band_row_in_half_the_cache(block_shape, width, itemsize,
+                                                         cache_mb, expected):
+    assert band_tiles_for_cache(block_shape, width, itemsize, 512, cache_mb * 2**20) == expected
 
 
 def test_tile_membership_by_box_centre():
@@ -210,6 +246,26 @@ def test_tiled_equals_untiled(mesh, tmp_path, tile_size):
     c2, f2 = _tables(tmp_path / "many")
     _assert_same(c1, c2)
     _assert_same(f1, f2)
+
+
+def test_bands_give_the_same_rows_in_band_order(mesh, tmp_path, monkeypatch):
+    """Tiles taken in bands of one tile column: the same rows, to the bit (each tile's
+    window does not depend on the order), in band order."""
+    import ntrans.tables
+    from ntrans.tables import build_tables
+
+    dem, cells = mesh
+    build_tables(dem, cells, out=tmp_path / "rows", depths="0:2:0.5", tile_size=8)
+    monkeypatch.setattr(ntrans.tables, "band_tiles_for_cache", lambda *args: 1)
+    build_tables(dem, cells, out=tmp_path / "bands", depths="0:2:0.5", tile_size=8)
+    for name, keys in (("cell_stage.parquet", ["cell_id", "stage"]),
+                       ("face_stage.parquet", ["face_id", "stage"])):
+        a = pd.read_parquet(tmp_path / "rows" / name)
+        b = pd.read_parquet(tmp_path / "bands" / name)
+        assert not a[keys].equals(b[keys])  # another order ...
+        a = a.sort_values(keys, kind="stable").reset_index(drop=True)
+        b = b.sort_values(keys, kind="stable").reset_index(drop=True)
+        pd.testing.assert_frame_equal(a, b, check_exact=True)  # ... of the same rows
 
 
 def test_dask_two_processes_equals_single_process(mesh, tmp_path):
