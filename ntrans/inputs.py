@@ -162,7 +162,8 @@ def _same_crs(a: pyproj.CRS, b: pyproj.CRS) -> bool:
 
 
 RASTER_CACHE_BYTES = 32 * 2**20
-"""GDAL's block cache while ntrans reads windows: neighbouring tiles share blocks."""
+"""GDAL's block cache while ntrans reads windows: neighbouring tiles share blocks (jobs
+take their tiles in bands narrow enough for it: :func:`ntrans.engine.band_tiles_for_cache`)."""
 
 
 class _OpenRasters:
