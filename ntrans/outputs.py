@@ -38,6 +38,9 @@ logger = logging.getLogger(__name__)
 
 UNITS_KEY = "ntrans:units"
 DESCRIPTION_KEY = "ntrans:description"
+#: float columns that say which row is which (readers filter on them): they keep their
+#: Parquet min / max statistics, as integer and text columns do; measured values do not
+KEY_FLOAT_COLUMNS = ("stage", "depth")
 
 
 # --------------------------------------------------------------------------- folder
@@ -342,13 +345,17 @@ class TableWriter:
             assert self.schema is not None
             try:
                 # dictionary encoding pays for repeated ids and labels, not for
-                # measured floats, where it only costs time
+                # measured floats, where it only costs time; so do min / max
+                # statistics, which let readers skip row groups by id or stage but
+                # not by a measured value (every row group holds the whole range):
+                # a fifth of the cell table's encoding time at 10^7 pixels
                 repeated = [
                     f.name for f in self.schema if not pa.types.is_floating(f.type)
                 ]
+                keys = [f.name for f in self.schema if f.name in KEY_FLOAT_COLUMNS]
                 self._writer = pq.ParquetWriter(
                     self.path, self.schema, compression=self._compression,
-                    use_dictionary=repeated,
+                    use_dictionary=repeated, write_statistics=repeated + keys,
                 )
             except OSError as exc:
                 raise OutputError(

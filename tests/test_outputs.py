@@ -168,6 +168,27 @@ def test_table_writer_chunks_and_metadata(tmp_path: Path, string_ids: bool) -> N
     assert json.loads(read["ntrans:options"]) == {"a": 1}
 
 
+@pytest.mark.parametrize("key", ["stage", "depth"])
+def test_table_writer_statistics_on_keys_only(tmp_path: Path, key: str) -> None:
+    """Ids, labels, stages and depths keep Parquet min / max statistics (readers skip row
+    groups by them); measured floats, which span their range in every row group, do not."""
+    path = tmp_path / "t.parquet"
+    values = np.linspace(0.0, 1.0, 10)
+    with TableWriter(path, row_group_rows=4) as w:
+        for lo, hi in ((0, 4), (4, 8), (8, 10)):  # one row group per chunk
+            w.write({"cell_id": np.arange(lo, hi), key: values[lo:hi],
+                     "label": list("abcdefghij"[lo:hi]), "volume": np.arange(lo, hi) * 1.0})
+    meta = pq.ParquetFile(path).metadata
+    assert meta.num_row_groups == 3
+    for g in range(meta.num_row_groups):
+        stats = {meta.row_group(g).column(i).path_in_schema:
+                 meta.row_group(g).column(i).is_stats_set for i in range(4)}
+        assert stats == {"cell_id": True, key: True, "label": True, "volume": False}
+    # a filter on a key reads the right rows (its statistics let readers skip groups)
+    got = pq.read_table(path, filters=[(key, ">", 0.5)]).to_pandas()
+    assert got["cell_id"].tolist() == [5, 6, 7, 8, 9]
+
+
 def test_table_writer_nullable_cell_b(tmp_path: Path) -> None:
     path = tmp_path / "f.parquet"
     schema = {"face_id": "int64", "cell_a": "int64", "cell_b": "int64", "flow_area": "float64"}
