@@ -643,9 +643,10 @@ def adjust_roughness(
                  "%d tiles", source, sc, target, tc, domain, n_cells, n_faces, n_cls, n_win, len(tiles))
 
         def tasks():
-            return make_tasks(tiles, geoms, field_values=field_values, face_lines=mesh.geometry,
-                              face_cell_a=mesh.cell_a, face_cell_b=mesh.cell_b,
-                              face_length=mesh.length, as_wkb=connection is not None)
+            return make_tasks(tiles, geoms, field_values=field_values,
+                              face_lines=setup.face_geometry.wkb, face_cell_a=mesh.cell_a,
+                              face_cell_b=mesh.cell_b, face_length=mesh.length,
+                              as_wkb=connection is not None, face_lines_wkb=True)
 
         job = _Job(dem_info, plan, model, window)
         run = {"connection": connection, "progress": progress, "total": len(tiles),
@@ -783,6 +784,7 @@ def adjust_roughness(
 
             # ---- maps
             import geopandas as gpd
+            import pandas as pd
 
             crs = layer.frame.crs
             cell_bias_med = _nanmedian_rows(cell_bias_un)
@@ -793,15 +795,15 @@ def adjust_roughness(
                  "dominant_class": cls_names[cell_dom].astype(str)},
                 geometry=gpd.GeoSeries(geoms, crs=crs), crs=crs)
             files.append(write_geopackage(cell_frame, tmp / "cells.gpkg", "cells"))
-            face_frame = gpd.GeoDataFrame(
+            face_frame = pd.DataFrame(
                 {"face_id": np.arange(n_faces, dtype=np.int64),
                  "cell_a": ids_series(ids, mesh.cell_a),
                  "cell_b": ids_series(ids, mesh.cell_b),
                  "length": mesh.length, "n_ratio_median": face_ratio_med,
                  "stage_bias_unadjusted_median": face_bias_med,
-                 "dominant_class": cls_names[face_dom].astype(str)},
-                geometry=gpd.GeoSeries(mesh.geometry, crs=crs), crs=crs)
-            files.append(write_geopackage(face_frame, tmp / "faces.gpkg", "faces"))
+                 "dominant_class": cls_names[face_dom].astype(str)})
+            files.append(write_geopackage(face_frame, tmp / "faces.gpkg", "faces",
+                                          encoded=setup.face_geometry, crs=crs))
             if csv:
                 files.append(write_csv(face_path, tmp / "face_adjustment.csv"))
                 files.append(write_csv(cell_path, tmp / "cell_adjustment.csv"))

@@ -306,11 +306,12 @@ class TileTask:
     Geometry travels as WKB, converted for the whole array at once (pickling shapely
     objects one by one costs more than computing the tile), and is decoded only where
     it is used: a Dask scheduler unpickles and re-pickles every task it forwards, which
-    then costs it a copy of bytes instead of a decode and an encode.
+    then costs it a copy of bytes instead of a decode and an encode.  Either part may
+    also be given as WKB in this process (a job keeps its face lines as WKB).
     """
 
     __slots__ = ("tile", "field_values", "face_a", "face_b", "face_length",
-                 "_polygons", "_face_lines", "_wkb")
+                 "_polygons", "_face_lines", "_polygons_wkb", "_face_lines_wkb")
 
     def __init__(
         self,
@@ -332,29 +333,27 @@ class TileTask:
             np.empty(0, dtype=object) if face_lines is None
             else np.asarray(face_lines, dtype=object)
         )
-        self._wkb: tuple[np.ndarray, np.ndarray] | None = None
+        self._polygons_wkb: np.ndarray | None = None
+        self._face_lines_wkb: np.ndarray | None = None
 
     @property
     def polygons(self) -> np.ndarray:
-        self._decode()
-        return self._polygons  # type: ignore[return-value]
+        if self._polygons is None:
+            self._polygons, self._polygons_wkb = shapely.from_wkb(self._polygons_wkb), None
+        return self._polygons
 
     @property
     def face_lines(self) -> np.ndarray:
-        self._decode()
-        return self._face_lines  # type: ignore[return-value]
-
-    def _decode(self) -> None:
-        if self._wkb is not None:
-            polygons, lines = self._wkb
-            self._polygons, self._face_lines = shapely.from_wkb(polygons), shapely.from_wkb(lines)
-            self._wkb = None
+        if self._face_lines is None:
+            self._face_lines, self._face_lines_wkb = shapely.from_wkb(self._face_lines_wkb), None
+        return self._face_lines
 
     def __reduce__(self):
-        if self._wkb is not None:  # forwarded without being used: the same bytes
-            polygons, lines = self._wkb
-        else:
-            polygons, lines = shapely.to_wkb(self._polygons), shapely.to_wkb(self._face_lines)
+        # a part not decoded yet (forwarded without being used) goes as the same bytes
+        polygons = (self._polygons_wkb if self._polygons is None
+                    else shapely.to_wkb(self._polygons))
+        lines = (self._face_lines_wkb if self._face_lines is None
+                 else shapely.to_wkb(self._face_lines))
         return (_task_from_wkb, (self.tile, polygons, self.field_values, lines, self.face_a,
                                  self.face_b, self.face_length))
 
@@ -363,12 +362,14 @@ _NO_INDEX = np.empty(0, dtype=np.int64)
 _NO_LENGTH = np.empty(0)
 
 
-def _task_from_wkb(tile, polygons, field_values, face_lines, face_a, face_b, face_length):
-    task = TileTask.__new__(TileTask)  # geometry stays WKB until it is used
+def _task_from_wkb(tile, polygons, field_values, face_lines, face_a, face_b, face_length,
+                   polygons_wkb: bool = True, lines_wkb: bool = True) -> TileTask:
+    """A :class:`TileTask` whose polygons and / or face lines are WKB (decoded on use)."""
+    task = TileTask.__new__(TileTask)
     task.tile, task.field_values = tile, field_values
     task.face_a, task.face_b, task.face_length = face_a, face_b, face_length
-    task._polygons = task._face_lines = None
-    task._wkb = (polygons, face_lines)
+    task._polygons, task._polygons_wkb = (None, polygons) if polygons_wkb else (polygons, None)
+    task._face_lines, task._face_lines_wkb = (None, face_lines) if lines_wkb else (face_lines, None)
     return task
 
 
@@ -382,21 +383,24 @@ def make_tasks(
     face_cell_b: np.ndarray | None = None,
     face_length: np.ndarray | None = None,
     as_wkb: bool = False,
+    face_lines_wkb: bool = False,
 ) -> Iterator[TileTask]:
     """Yield one :class:`TileTask` per tile (lazily: memory bounded by one tile).
 
     ``as_wkb``: encode all the geometry once, in one vectorised call, and build tasks that
     hold WKB (for tasks sent to other processes, which would otherwise encode each tile's
-    geometry when pickled).
+    geometry when pickled).  ``face_lines_wkb``: ``face_lines`` is WKB already (each
+    task decodes its own lines when it runs).
     """
     polygons = np.asarray(polygons, dtype=object)
     lines_all = None if face_lines is None else np.asarray(face_lines, dtype=object)
-    build: Callable[..., TileTask] = TileTask
     if as_wkb:
         polygons = shapely.to_wkb(polygons)
-        lines_all = None if lines_all is None else shapely.to_wkb(lines_all)
-        build = _task_from_wkb
-    no_lines = polygons[:0]
+        if lines_all is not None and not face_lines_wkb:
+            lines_all = shapely.to_wkb(lines_all)
+    build = functools.partial(_task_from_wkb, polygons_wkb=as_wkb,
+                              lines_wkb=as_wkb or face_lines_wkb)
+    no_lines = np.empty(0, dtype=object)
     for tile in tiles:
         local = np.concatenate([tile.cells, tile.halo])
         fv = None if field_values is None else np.asarray(field_values, dtype=float)[local]

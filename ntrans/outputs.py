@@ -493,7 +493,7 @@ def encode_geometry(geometry: np.ndarray) -> EncodedGeometry:
 
 def write_geopackage(
     frame: Any, path: str | os.PathLike[str], layer: str, *, chunk_rows: int = 65_536,
-    encoded: EncodedGeometry | None = None,
+    encoded: EncodedGeometry | None = None, crs: Any = None, geometry_name: str = "geometry",
 ) -> Path:
     """Write a GeoDataFrame as one layer of a GeoPackage (created or appended to).
 
@@ -504,29 +504,37 @@ def write_geopackage(
     time for 500,000 cells).  The layer type is taken from all
     rows: a mix of single and multi parts (``Polygon`` and ``MultiPolygon``) is written
     as the multi type.  ``encoded``: the frame's geometry already encoded by
-    :func:`encode_geometry` (the same rows, in order).
+    :func:`encode_geometry` (the same rows, in order).  A plain DataFrame (attributes
+    only) is written with ``encoded`` as its geometry, in ``crs`` (a pyproj CRS or None),
+    under ``geometry_name``.
     """
+    import geopandas as gpd
     import pyogrio.raw
 
     target = Path(os.fspath(path))
     try:
-        geometry = frame.geometry.to_numpy()
+        if isinstance(frame, gpd.GeoDataFrame):
+            geometry = frame.geometry.to_numpy()
+            crs, geometry_name = frame.crs, frame.geometry.name
+        elif encoded is None:
+            raise ValueError("a frame without geometry needs its geometry encoded")
+        else:
+            geometry = None
         if encoded is not None:
-            if len(encoded.wkb) != len(geometry):
+            if len(encoded.wkb) != len(frame):
                 raise ValueError("the encoded geometry does not have one row per feature")
             geometry_type, promote = encoded.geometry_type, False
         else:
             geometry_type, promote = _layer_geometry_type(geometry)
         batches = _geopackage_batches(frame, geometry, chunk_rows=max(int(chunk_rows), 1),
-                                      promote=promote,
+                                      promote=promote, geometry_name=geometry_name,
                                       wkb=None if encoded is None else encoded.wkb)
         first = next(batches)
         stream = pa.RecordBatchReader.from_batches(first.schema, itertools.chain([first], batches))
-        crs = frame.crs
         epsg = crs.to_epsg() if crs is not None else None
         pyogrio.raw.write_arrow(
             stream, os.fspath(target), layer=layer, driver="GPKG",
-            geometry_name=frame.geometry.name, geometry_type=geometry_type,
+            geometry_name=geometry_name, geometry_type=geometry_type,
             crs=None if crs is None else (f"EPSG:{epsg}" if epsg else crs.to_wkt("WKT1_GDAL")),
             append=target.exists(),
         )
@@ -562,14 +570,13 @@ def _layer_geometry_type(geometry: np.ndarray) -> tuple[str, bool]:
     return kind, promote
 
 
-def _geopackage_batches(frame: Any, all_geometry: np.ndarray, *, chunk_rows: int,
-                        promote: bool, wkb: np.ndarray | None = None
+def _geopackage_batches(frame: Any, all_geometry: np.ndarray | None, *, chunk_rows: int,
+                        promote: bool, geometry_name: str, wkb: np.ndarray | None = None
                         ) -> Iterator[pa.RecordBatch]:
     """Arrow record batches of ``frame`` with its geometry as WKB, ``chunk_rows`` at a
     time (``wkb``: already encoded)."""
     import shapely
 
-    geometry_name = frame.geometry.name
     columns = [c for c in frame.columns if c != geometry_name]
     schema: pa.Schema | None = None
     for start in range(0, max(len(frame), 1), chunk_rows):

@@ -179,7 +179,7 @@ def test_task_travels_as_wkb_and_comes_back_identical():
     # what a scheduler does: unpickle and pickle again, without using the geometry;
     # the bytes are forwarded as they are, not decoded and encoded again
     forwarded = pickle.loads(wire)
-    assert forwarded._wkb is not None
+    assert forwarded._polygons is None and forwarded._face_lines is None  # not decoded
     assert pickle.dumps(forwarded) == wire
     back = pickle.loads(pickle.dumps(forwarded))
     # WKB stores IEEE doubles: coordinates come back to the bit
@@ -190,6 +190,35 @@ def test_task_travels_as_wkb_and_comes_back_identical():
                                   shapely.get_coordinates(lines))
     assert back.tile.index == task.tile.index and back.tile.window == task.tile.window
     np.testing.assert_array_equal(back.face_b, task.face_b)
+
+
+@pytest.mark.parametrize("as_wkb", [False, True])
+def test_tasks_from_face_lines_kept_as_wkb(as_wkb):
+    """A job keeps its face lines as WKB: each task decodes its own lines, to the bit, and
+    sends them on as the same bytes; the polygons stay objects unless sent as WKB."""
+    import pickle
+
+    from ntrans.engine import make_tasks
+    from ntrans.mesh import build_faces
+
+    polys = np.array(grid_polygons(4, 4, 10.0), dtype=object)
+    mesh = build_faces(polys, snap_tolerance=1e-6)
+    tiles = plan_tiles(polys, T40, (40, 40), tile_size=20, face_cell_a=mesh.cell_a,
+                       face_cell_b=mesh.cell_b, face_lines=mesh.geometry)
+    args = dict(face_cell_a=mesh.cell_a, face_cell_b=mesh.cell_b, face_length=mesh.length,
+                as_wkb=as_wkb)
+    plain = list(make_tasks(tiles, polys, face_lines=mesh.geometry, **args))
+    kept = list(make_tasks(tiles, polys, face_lines=shapely.to_wkb(mesh.geometry),
+                           face_lines_wkb=True, **args))
+    assert len(kept) == len(plain) == 4
+    for a, b in zip(plain, kept, strict=True):
+        assert (b._polygons is None) == as_wkb and b._face_lines is None
+        assert pickle.dumps(a) == pickle.dumps(b)  # the same task on the wire
+        assert shapely.equals_exact(a.face_lines, b.face_lines, tolerance=0).all()
+        np.testing.assert_array_equal(shapely.get_coordinates(a.face_lines),
+                                      shapely.get_coordinates(b.face_lines))
+        assert shapely.equals_exact(a.polygons, b.polygons, tolerance=0).all()
+        np.testing.assert_array_equal(a.face_a, b.face_a)
 
 
 # --------------------------------------------------------------------------- running

@@ -364,6 +364,36 @@ def test_write_geopackage_encoded_rows_must_match(tmp_path: Path) -> None:
         write_geopackage(frame, tmp_path / "g.gpkg", "cells", encoded=encoded)
 
 
+@pytest.mark.parametrize("chunk_rows", [2, 100])
+def test_write_geopackage_attributes_with_encoded_geometry(tmp_path: Path, chunk_rows) -> None:
+    """A plain DataFrame with its geometry given as WKB (the faces of a job) writes the
+    same layer as the GeoDataFrame with shapely geometry."""
+    import geopandas as gpd
+    import pyogrio
+
+    lines = [shapely.LineString([(0, 0), (1, 0)]), shapely.LineString([(1, 0), (1, 1), (2, 1)]),
+             shapely.LineString([(2, 1), (2, 3)])]
+    attributes = pd.DataFrame({"face_id": np.arange(3), "length": shapely.length(lines)})
+    frame = gpd.GeoDataFrame(attributes, geometry=lines, crs="EPSG:32633")
+    a = write_geopackage(frame, tmp_path / "a.gpkg", "faces")
+    b = write_geopackage(attributes, tmp_path / "b.gpkg", "faces", chunk_rows=chunk_rows,
+                         encoded=encode_geometry(np.array(lines, dtype=object)),
+                         crs=frame.crs)
+    assert pyogrio.read_info(b, layer="faces")["geometry_type"] == "LineString"
+    assert pyogrio.read_info(b, layer="faces")["capabilities"]["fast_spatial_filter"]
+    back_a, back_b = gpd.read_file(a, layer="faces"), gpd.read_file(b, layer="faces")
+    assert back_b.crs == back_a.crs == frame.crs
+    pd.testing.assert_frame_equal(back_a.drop(columns="geometry"),
+                                  back_b.drop(columns="geometry"))
+    assert all(shapely.equals_exact(back_a.geometry.to_numpy(), back_b.geometry.to_numpy(),
+                                    tolerance=0))
+
+
+def test_write_geopackage_attributes_need_encoded_geometry(tmp_path: Path) -> None:
+    with pytest.raises(OutputError, match="needs its geometry encoded"):
+        write_geopackage(pd.DataFrame({"face_id": [1]}), tmp_path / "g.gpkg", "faces")
+
+
 def test_write_geopackage_geometry_only(tmp_path: Path) -> None:
     import geopandas as gpd
     import pyogrio
