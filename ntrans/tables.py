@@ -257,8 +257,9 @@ def prepare_mesh_job(
     if mesh is not None:
         from .outputs import encode_geometry
 
-        face_geometry = encode_geometry(mesh.geometry)
-        mesh = dataclasses.replace(mesh, geometry=None)  # the WKB serves from here on
+        # the WKB serves from here on: the lines are freed as they are encoded
+        face_geometry = encode_geometry(mesh.geometry, consume=True)
+        mesh = dataclasses.replace(mesh, geometry=None)
         release_free_memory()
     return MeshJob(
         dem_info, layer, np.asarray(layer.ids), geoms, field_values, spacing, snap, mesh, tiles,
