@@ -114,6 +114,7 @@ def plan_tiles(
     face_lines: np.ndarray | None = None,
     margin: int = MARGIN,
     band_tiles: int | None = None,
+    face_bounds: np.ndarray | None = None,
 ) -> list[Tile]:
     """Group cells (and their faces) into tiles with one DEM window each.
 
@@ -127,6 +128,8 @@ def plan_tiles(
     margin : pixels added around the union of the bounds.
     band_tiles : tile columns per band (see :func:`band_tiles_for_cache`); None: one band
         as wide as the DEM.
+    face_bounds : (n_faces, 4) array, optional
+        ``xmin, ymin, xmax, ymax`` of the faces, instead of ``face_lines``.
 
     Returns
     -------
@@ -178,9 +181,11 @@ def plan_tiles(
         f_tile = tile_of_cell[fa]
         f_order = np.lexsort((np.arange(fa.size), f_tile))
         f_starts = np.searchsorted(f_tile[f_order], np.arange(n_tiles + 1))
+        if face_bounds is None and face_lines is not None:
+            face_bounds = shapely.bounds(np.asarray(face_lines, dtype=object))
         pb_faces = (
-            _pixel_bounds(shapely.bounds(np.asarray(face_lines, dtype=object)), transform)
-            if face_lines is not None
+            _pixel_bounds(np.asarray(face_bounds, dtype=np.float64), transform)
+            if face_bounds is not None
             else np.full((fa.size, 4), np.nan)
         )
         interior = fb >= 0

@@ -480,27 +480,15 @@ class EncodedGeometry:
     wkb: np.ndarray
 
 
-def encode_geometry(geometry: np.ndarray, *, consume: bool = False,
-                    chunk_rows: int = 65_536) -> EncodedGeometry:
+def encode_geometry(geometry: np.ndarray) -> EncodedGeometry:
     """The layer type and WKB of ``geometry`` (shapely releases the GIL: this can run in
-    a thread beside other work, which :func:`write_geopackage` then skips).
-
-    ``consume``: the caller gives the array up; it is encoded ``chunk_rows`` at a time
-    and each encoded chunk set to None, so its geometries are freed while the WKB grows
-    instead of both being held whole.
-    """
+    a thread beside other work, which :func:`write_geopackage` then skips)."""
     import shapely
 
     geometry_type, promote = _layer_geometry_type(geometry)
-    if not consume:
-        return EncodedGeometry(geometry_type,
-                               shapely.to_wkb(_promoted(geometry) if promote else geometry))
-    wkb = np.empty(geometry.size, dtype=object)
-    for start in range(0, geometry.size, max(int(chunk_rows), 1)):
-        part = geometry[start : start + chunk_rows]
-        wkb[start : start + chunk_rows] = shapely.to_wkb(_promoted(part) if promote else part)
-        geometry[start : start + chunk_rows] = None
-    return EncodedGeometry(geometry_type, wkb)
+    if promote:
+        geometry = _promoted(geometry)
+    return EncodedGeometry(geometry_type, shapely.to_wkb(geometry))
 
 
 def write_geopackage(

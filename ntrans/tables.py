@@ -145,10 +145,10 @@ def _descriptions() -> dict[str, str]:
 class MeshJob:
     """What every job reads and builds before its tiles run.
 
-    ``mesh`` is the :class:`ntrans.mesh.Faces` without its shapely lines (``geometry`` is
-    None once the tiles are planned): ``face_geometry`` holds them as WKB, which tiles
-    decode a tile at a time and ``faces.gpkg`` takes as they are (1.5 million faces:
-    about 130 MB of WKB against 380 MB of shapely lines for the whole run).
+    ``mesh`` is the :class:`ntrans.mesh.Faces` without its lines (``geometry`` is None):
+    ``face_geometry`` holds them as WKB, built block by block, which tiles decode a tile
+    at a time and ``faces.gpkg`` takes as it is (1.5 million faces: about 130 MB of WKB
+    against 380 MB of shapely lines, for the whole run).
     """
 
     dem: Any  # ntrans.inputs.DemInfo
@@ -239,7 +239,8 @@ def prepare_mesh_job(
                 left -= 1
                 yield fn(job)
 
-    mesh = build_faces(geoms, snap_tolerance=snap, map_blocks=map_blocks) if faces else None
+    mesh = (build_faces(geoms, snap_tolerance=snap, map_blocks=map_blocks, lines_as_wkb=True)
+            if faces else None)
     release_free_memory()
     tiles = plan_tiles(
         geoms,
@@ -248,19 +249,19 @@ def prepare_mesh_job(
         tile_size=int(tile_size),
         face_cell_a=None if mesh is None else mesh.cell_a,
         face_cell_b=None if mesh is None else mesh.cell_b,
-        face_lines=None if mesh is None else mesh.geometry,
+        face_bounds=None if mesh is None else mesh.bounds,
         band_tiles=band_tiles_for_cache(dem_info.block_shape, dem_info.width,
                                         np.dtype(dem_info.dtype).itemsize, int(tile_size),
                                         RASTER_CACHE_BYTES),
     )
     face_geometry = None
     if mesh is not None:
-        from .outputs import encode_geometry
+        from .outputs import EncodedGeometry
 
-        # the WKB serves from here on: the lines are freed as they are encoded
-        face_geometry = encode_geometry(mesh.geometry, consume=True)
-        mesh = dataclasses.replace(mesh, geometry=None)
-        release_free_memory()
+        # the faces are single lines (ntrans.mesh.Faces), built as WKB block by block
+        face_geometry = EncodedGeometry("LineString Z" if mesh.has_z else "LineString",
+                                        mesh.geometry)
+        mesh = dataclasses.replace(mesh, geometry=None, bounds=None)
     return MeshJob(
         dem_info, layer, np.asarray(layer.ids), geoms, field_values, spacing, snap, mesh, tiles,
         face_geometry,

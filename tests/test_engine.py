@@ -56,6 +56,21 @@ def test_bands_reorder_the_same_tiles(band_tiles):
         assert t.window == same.window
 
 
+def test_face_bounds_plan_the_same_tiles_as_face_lines():
+    from ntrans.mesh import build_faces
+
+    polys = np.array(grid_polygons(8, 8, 5.0), dtype=object)
+    mesh = build_faces(polys, snap_tolerance=1e-6)
+    kw = dict(tile_size=10, face_cell_a=mesh.cell_a, face_cell_b=mesh.cell_b)
+    by_lines = plan_tiles(polys, T40, (40, 40), face_lines=mesh.geometry, **kw)
+    by_bounds = plan_tiles(polys, T40, (40, 40), face_bounds=shapely.bounds(mesh.geometry),
+                           **kw)
+    assert len(by_lines) == len(by_bounds) == 16
+    for a, b in zip(by_lines, by_bounds, strict=True):
+        assert a.key == b.key and a.window == b.window
+        assert np.array_equal(a.faces, b.faces) and np.array_equal(a.halo, b.halo)
+
+
 @pytest.mark.parametrize("block_shape, width, itemsize, cache_mb, expected", [
     # 256 px blocks, 512 px tiles: a window spans ceil(1.5 * 512 / 256) + 1 = 4 block
     # rows and 2n + 2 block columns for n tile columns, 256 kB each (float32), so a band

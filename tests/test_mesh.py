@@ -342,6 +342,32 @@ def test_blocks_mapped_through_pickle_give_identical_faces(mesh):
     assert_identical(whole, mapped)
 
 
+@pytest.mark.parametrize("block_cells", [None, 7])
+@pytest.mark.parametrize("mesh", sorted(MESHES))
+def test_lines_as_wkb_are_the_same_faces(mesh, block_cells):
+    """Face lines built as WKB block by block: the same bytes shapely writes for the
+    shapely lines, with their bounds and lengths to the bit."""
+    make, tol = MESHES[mesh]
+    cells = make()
+    lines = build_faces(cells, snap_tolerance=tol, block_cells=block_cells)
+    wkb = build_faces(cells, snap_tolerance=tol, block_cells=block_cells, lines_as_wkb=True)
+    assert wkb.geometry.tolist() == shapely.to_wkb(lines.geometry).tolist()
+    assert np.array_equal(wkb.bounds, shapely.bounds(lines.geometry))
+    assert np.array_equal(wkb.length, lines.length)
+    assert np.array_equal(wkb.cell_a, lines.cell_a) and np.array_equal(wkb.cell_b, lines.cell_b)
+    assert lines.bounds is None and not lines.has_z and not wkb.has_z
+    assert_identical(lines, Faces(shapely.from_wkb(wkb.geometry), wkb.cell_a, wkb.cell_b,
+                                  wkb.length))
+
+
+def test_has_z_says_whether_face_lines_have_z():
+    cells = [shapely.force_3d(box(0, 0, 1, 1), 5.0), shapely.force_3d(box(1, 0, 2, 1), 5.0)]
+    for as_wkb in (False, True):
+        faces = build_faces(cells, snap_tolerance=1e-6, lines_as_wkb=as_wkb)
+        lines = shapely.from_wkb(faces.geometry) if as_wkb else faces.geometry
+        assert faces.has_z == bool(shapely.has_z(lines).any())
+
+
 def test_patchwork_mesh_faces_are_found():
     # the non-conforming fixture really has its special faces (geometry identity)
     f = build_faces(patchwork_mesh(), snap_tolerance=1e-3, block_cells=5)

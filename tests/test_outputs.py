@@ -389,21 +389,6 @@ def test_write_geopackage_attributes_with_encoded_geometry(tmp_path: Path, chunk
                                     tolerance=0))
 
 
-@pytest.mark.parametrize("chunk_rows", [1, 2, 100])
-def test_encode_geometry_consuming_the_array_gives_the_same_wkb(chunk_rows) -> None:
-    squares = list(grid_polygons(4, 1, 2.0))
-    mixed = squares[:3] + [shapely.MultiPolygon([squares[3], shapely.box(20, 0, 22, 2)])]
-    for rows in (squares, mixed):
-        kept = np.array(rows, dtype=object)
-        given = kept.copy()
-        a = encode_geometry(kept)
-        b = encode_geometry(given, consume=True, chunk_rows=chunk_rows)
-        assert a.geometry_type == b.geometry_type
-        assert a.wkb.tolist() == b.wkb.tolist()
-        assert all(g is None for g in given)  # freed as it went
-        assert all(g is not None for g in kept)
-
-
 def test_write_geopackage_attributes_need_encoded_geometry(tmp_path: Path) -> None:
     with pytest.raises(OutputError, match="needs its geometry encoded"):
         write_geopackage(pd.DataFrame({"face_id": [1]}), tmp_path / "g.gpkg", "faces")
