@@ -245,9 +245,10 @@ def band_tiles_for_cache(
     DEM width later: once one tile row of blocks is larger than the cache, every shared
     block is decoded twice or more (a 10^8-pixel DEM, 10,000 px wide in 256 x 256 float32
     blocks, through a 32 MB cache: 2.3 s of reading on one thread in row order, 1.4 s in
-    bands of seven tile columns, about what a 128 MB cache gives).  Tiles taken in bands of this many columns keep what one band row
-    touches within half of ``cache_bytes`` (the rest for the tiles in flight), whatever
-    the DEM's width; the blocks along the band borders are decoded twice.  None when the
+    bands of seven tile columns, about what a 128 MB cache gives).  Tiles taken in bands
+    of this many columns keep what one band row touches within half of ``cache_bytes``
+    (the rest for the tiles in flight), whatever the DEM's width; the blocks along the
+    band borders are decoded twice.  None when the
     whole tile row fits, or when a block spans the width (a striped file: bands would
     decode every strip once per band).  Windows are taken as up to 1.5 tile edges high
     and wide (cells that reach past their tile).
