@@ -70,7 +70,7 @@ class Faces:
     length : ndarray of float64
         Length of each face (CRS units).
     bounds : (n_faces, 4) ndarray of float64 or None
-        ``xmin, ymin, xmax, ymax`` of each face (set with ``lines_as_wkb=True``).
+        ``xmin, ymin, xmax, ymax`` of each face (:func:`build_faces` sets it).
     has_z : bool
         Whether any face line has z coordinates.
     """
@@ -695,22 +695,40 @@ class _BlockJob:
                             self.eps, self.corner_angle, True))
 
 
-@dataclass
 class _BlockResult:
-    """Faces of one block, global cell indices, with their end points (x0, y0, x1, y1)."""
+    """Faces of one block, global cell indices, their end points (x0, y0, x1, y1),
+    lengths and bounds (taken where the lines were made).
 
-    geometry: np.ndarray
-    cell_a: np.ndarray
-    cell_b: np.ndarray
-    ends: np.ndarray
+    The lines travel as WKB and are decoded only if ``geometry`` is used, so a job that
+    keeps WKB (``build_faces(..., lines_as_wkb=True)``) takes a worker's bytes as they are.
+    """
+
+    def __init__(self, geometry: np.ndarray | None, cell_a: np.ndarray, cell_b: np.ndarray,
+                 ends: np.ndarray, length: np.ndarray, bounds: np.ndarray, has_z: bool,
+                 wkb: np.ndarray | None = None) -> None:
+        self._geometry, self._wkb = geometry, wkb
+        self.cell_a, self.cell_b, self.ends = cell_a, cell_b, ends
+        self.length, self.bounds, self.has_z = length, bounds, has_z
+
+    @property
+    def geometry(self) -> np.ndarray:
+        if self._geometry is None:
+            self._geometry = shapely.from_wkb(self._wkb)
+        return self._geometry
+
+    @property
+    def wkb(self) -> np.ndarray:
+        if self._wkb is None:
+            self._wkb = shapely.to_wkb(self._geometry)
+        return self._wkb
 
     def __reduce__(self):
-        return (_block_result_from_wkb,
-                (shapely.to_wkb(self.geometry), self.cell_a, self.cell_b, self.ends))
+        return (_block_result_from_wkb, (self.wkb, self.cell_a, self.cell_b, self.ends,
+                                         self.length, self.bounds, self.has_z))
 
 
-def _block_result_from_wkb(wkb, *rest) -> _BlockResult:
-    return _BlockResult(shapely.from_wkb(wkb), *rest)
+def _block_result_from_wkb(wkb, cell_a, cell_b, ends, length, bounds, has_z) -> _BlockResult:
+    return _BlockResult(None, cell_a, cell_b, ends, length, bounds, has_z, wkb=wkb)
 
 
 class _Sized:
@@ -737,7 +755,9 @@ def run_block_job(job: _BlockJob) -> _BlockResult:
     n = np.bincount(idx, minlength=geom.size)
     last = np.cumsum(n) - 1
     ends = np.hstack([coords[last - n + 1], coords[last]]) if geom.size else np.zeros((0, 4))
-    return _BlockResult(geom, ctx[a], np.where(b >= 0, ctx[np.maximum(b, 0)], -1), ends)
+    return _BlockResult(geom, ctx[a], np.where(b >= 0, ctx[np.maximum(b, 0)], -1), ends,
+                        shapely.length(geom).astype(np.float64), shapely.bounds(geom),
+                        bool(shapely.has_z(geom).any()))
 
 
 def build_faces(
@@ -844,18 +864,15 @@ def build_faces(
     out_geom, out_a, out_b, out_ends, out_length, out_bounds = [], [], [], [], [], []
     has_z = False
     for res in (map_blocks or map)(run_block_job, _Sized(jobs(), len(blocks))):
-        geometry = res.geometry
-        out_length.append(shapely.length(geometry).astype(np.float64))
-        has_z = has_z or bool(shapely.has_z(geometry).any())
-        if lines_as_wkb:
-            out_bounds.append(shapely.bounds(geometry))
-            geometry = shapely.to_wkb(geometry)
-        out_geom.append(geometry)
+        out_geom.append(res.wkb if lines_as_wkb else res.geometry)
+        out_length.append(res.length)
+        out_bounds.append(res.bounds)
+        has_z = has_z or res.has_z
         out_a.append(res.cell_a)
         out_b.append(res.cell_b)
         out_ends.append(res.ends)
-        logger.debug("faces of a block done (%d faces)", res.geometry.size)
-        del res, geometry
+        logger.debug("faces of a block done (%d faces)", res.cell_a.size)
+        del res
 
     geometry = np.concatenate(out_geom)
     del out_geom
@@ -870,7 +887,7 @@ def build_faces(
         cell_a=cell_a[order],
         cell_b=cell_b[order],
         length=np.concatenate(out_length)[order],
-        bounds=np.concatenate(out_bounds)[order] if lines_as_wkb else None,
+        bounds=np.concatenate(out_bounds)[order],
         has_z=has_z,
     )
     logger.debug(

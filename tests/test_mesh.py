@@ -355,9 +355,33 @@ def test_lines_as_wkb_are_the_same_faces(mesh, block_cells):
     assert np.array_equal(wkb.bounds, shapely.bounds(lines.geometry))
     assert np.array_equal(wkb.length, lines.length)
     assert np.array_equal(wkb.cell_a, lines.cell_a) and np.array_equal(wkb.cell_b, lines.cell_b)
-    assert lines.bounds is None and not lines.has_z and not wkb.has_z
+    assert np.array_equal(lines.bounds, wkb.bounds) and not lines.has_z and not wkb.has_z
     assert_identical(lines, Faces(shapely.from_wkb(wkb.geometry), wkb.cell_a, wkb.cell_b,
                                   wkb.length))
+
+
+def test_blocks_from_workers_stay_wkb():
+    """A block result that crossed a pickle (a Dask worker's) keeps its lines as the
+    bytes it came with: a job that wants WKB never decodes them."""
+    import pickle
+
+    seen = []
+
+    def on_workers(fn, jobs):
+        for job in jobs:
+            res = pickle.loads(pickle.dumps(fn(job)))
+            seen.append(res)
+            yield res
+
+    make, tol = MESHES["patchwork"]
+    cells = make()
+    here = build_faces(cells, snap_tolerance=tol, block_cells=7, lines_as_wkb=True)
+    there = build_faces(cells, snap_tolerance=tol, block_cells=7, lines_as_wkb=True,
+                        map_blocks=on_workers)
+    assert len(seen) > 1 and all(res._geometry is None for res in seen)  # never decoded
+    assert there.geometry.tolist() == here.geometry.tolist()
+    assert np.array_equal(there.bounds, here.bounds)
+    assert np.array_equal(there.length, here.length)
 
 
 def test_has_z_says_whether_face_lines_have_z():
