@@ -145,10 +145,11 @@ def _descriptions() -> dict[str, str]:
 class MeshJob:
     """What every job reads and builds before its tiles run.
 
-    ``mesh`` is the :class:`ntrans.mesh.Faces` without its lines (``geometry`` is None):
-    ``face_geometry`` holds them as WKB, built block by block, which tiles decode a tile
-    at a time and ``faces.gpkg`` takes as it is (1.5 million faces: about 130 MB of WKB
-    against 380 MB of shapely lines, for the whole run).
+    ``mesh`` is the :class:`ntrans.mesh.Faces` built with ``lines_as_wkb=True`` (its
+    ``geometry`` is WKB, built block by block; its bounds dropped once the tiles are
+    planned); ``face_geometry`` is that same WKB with its layer type, which tiles decode a
+    tile at a time and ``faces.gpkg`` takes as it is (1.5 million faces: about 130 MB of
+    WKB against 380 MB of shapely lines, for the whole run).
     """
 
     dem: Any  # ntrans.inputs.DemInfo
@@ -158,7 +159,7 @@ class MeshJob:
     field_values: np.ndarray | None
     spacing: float
     snap_tolerance: float
-    mesh: Any  # ntrans.mesh.Faces without geometry, or None without faces
+    mesh: Any  # ntrans.mesh.Faces with WKB lines, or None without faces
     tiles: list
     face_geometry: Any = None  # ntrans.outputs.EncodedGeometry of the faces, or None
 
@@ -261,7 +262,7 @@ def prepare_mesh_job(
         # the faces are single lines (ntrans.mesh.Faces), built as WKB block by block
         face_geometry = EncodedGeometry("LineString Z" if mesh.has_z else "LineString",
                                         mesh.geometry)
-        mesh = dataclasses.replace(mesh, geometry=None, bounds=None)
+        mesh = dataclasses.replace(mesh, bounds=None)  # planned: not needed any more
     return MeshJob(
         dem_info, layer, np.asarray(layer.ids), geoms, field_values, spacing, snap, mesh, tiles,
         face_geometry,
