@@ -66,10 +66,13 @@ from .translate import (
     CellGeometry,
     ClassStats,
     FaceGeometry,
+    FitTerms,
     FlatGeometry,
+    combine_fit_terms,
     conveyance,
-    fit_class_n,
+    fit_terms,
     n_ratio,
+    solve_class_n,
     solve_stage,
 )
 from .translate import Family as _Family
@@ -349,27 +352,6 @@ def _family_stats(fam: _Family, stages: np.ndarray, cache: dict[int, ClassStats]
     return st
 
 
-def _offset_stats(parts: list[ClassStats], n_items: int, n_classes: int) -> ClassStats:
-    """Concatenate per-tile statistics (items already global) into one."""
-    if not parts:
-        e = np.empty(0, dtype=np.int64)
-        z = np.empty((0, 0))
-        return ClassStats(e, e, n_items, n_classes, np.empty(0), z, z, z, z)
-    cat = np.concatenate
-    wet = cat([p.wet for p in parts])
-    # strip not computed (lumped closures: a read-only NaN view, no memory)
-    no_strip = all(p.strip.size == 0 or (p.strip.strides == (0, 0)) for p in parts)
-    strip = np.broadcast_to(np.nan, wet.shape) if no_strip else cat([p.strip for p in parts])
-    return ClassStats(cat([p.item for p in parts]), cat([p.cls for p in parts]), n_items,
-                      n_classes, cat([p.extent for p in parts]), wet,
-                      cat([p.perimeter for p in parts]), cat([p.area for p in parts]), strip)
-
-
-def _globalise(st: ClassStats, index: np.ndarray, n_items: int) -> ClassStats:
-    return ClassStats(index[st.item], st.cls, n_items, st.n_classes, st.extent, st.wet,
-                      st.perimeter, st.area, st.strip)
-
-
 # --------------------------------------------------------------------------- tile passes
 
 
@@ -396,23 +378,21 @@ def _load_tile(job: _Job, task: Any) -> _TileGeometry:
 
 
 def _pass_statistics(job: _Job, task: Any) -> dict[str, Any]:
-    """Pass 1 of one tile: source conveyance and target statistics of the fit domain."""
+    """Pass 1 of one tile: the class fit's terms from the fit domain's items
+    (:func:`ntrans.translate.fit_terms`; sums where it can, not every item-stage)."""
     plan, model = job.plan, job.model
     tg = _load_tile(job, task)
     fam_s, fam_t = _families_for(tg, plan, plan.domain)
     faces = plan.domain == "faces"
-    idx = tg.faces if faces else tg.cells
     st = tg.face_stages if faces else tg.cell_stages
     cache: dict[int, ClassStats] = {}
     st_s = _family_stats(fam_s, st, cache)
-    return {
-        "index": idx,
-        "k_source": fam_s.conveyance(st, model.n, composite=plan.composite, k=plan.k,  # type: ignore[arg-type]
-                                     stats=st_s),
-        "stats": _family_stats(fam_t, st, cache),
-        "uncovered": tg.uncovered,
-        "covered": tg.covered,
-    }
+    k_source = fam_s.conveyance(st, model.n, composite=plan.composite, k=plan.k,  # type: ignore[arg-type]
+                                stats=st_s)
+    terms = fit_terms(k_source, _family_stats(fam_t, st, cache), model.n,
+                      closure=_domain_closure(plan.target_closure),  # type: ignore[arg-type]
+                      composite=plan.composite, k=plan.k)  # type: ignore[arg-type]
+    return {"terms": terms, "uncovered": tg.uncovered, "covered": tg.covered}
 
 
 def _pass_tables(job: _Job, task: Any, n_fit: np.ndarray) -> dict[str, Any]:
@@ -653,17 +633,15 @@ def adjust_roughness(
                "threads": threads}
 
         # ---- pass 1: sufficient statistics of the fit domain
-        tgt_parts: list[ClassStats] = []
+        parts: list[FitTerms] = []
         uncovered = covered = 0.0
         n_dom = n_faces if domain == "faces" else n_cells
         _warn_if_short_of_memory(n_dom, n_win, domain)
-        k_src_all = np.full((n_dom, n_win), np.nan)
         for res in _run_tiles(_pass_statistics, job, tasks(), desc="fit statistics", **run):
             layer.raise_if_checks_failed()
             uncovered += res["uncovered"]
             covered += res["covered"]
-            k_src_all[res["index"]] = res["k_source"]
-            tgt_parts.append(_globalise(res["stats"], res["index"], n_dom))
+            parts.append(res["terms"])
         layer.finish_checks()
         share = uncovered / covered if covered > 0 else 0.0
         if model.source == "raster" and model.default < 0 and share > AREA_TOLERANCE:
@@ -671,13 +649,14 @@ def adjust_roughness(
                 f"{100 * share:.3g}% of the mesh ground has no class in the class raster; give a "
                 "default class (--default-class) or fill the raster"
             )
-        target_stats = _offset_stats(tgt_parts, n_dom, n_cls)
-        del tgt_parts
-        np.nan_to_num(k_src_all, copy=False, nan=0.0)
-        fit = fit_class_n(k_src_all, target_stats, model.n,
-                          closure=_domain_closure(tc),  # type: ignore[arg-type]
-                          composite=composite, k=k)  # type: ignore[arg-type]
-        del target_stats, k_src_all  # not needed after the fit
+        release_free_memory()  # the tiles' temporaries, before the fit
+        if not parts:  # no tile: nothing to fit
+            none = np.empty(0, dtype=np.int64)
+            dry = np.empty((0, n_win))
+            parts.append(fit_terms(dry, ClassStats(none, none, 0, n_cls, np.empty(0), dry, dry,
+                                                   dry, dry), model.n,
+                                   closure=_domain_closure(tc), composite=composite, k=k))  # type: ignore[arg-type]
+        fit = solve_class_n(combine_fit_terms(parts), model.n)  # empties parts
         out_rng = outside_range(model, fit.n_target)
         flags = [list(f) + (["outside_published_range"] if out_rng[c] else []) for c, f in enumerate(fit.flags)]
         n_fit = fit.n_target
@@ -711,12 +690,14 @@ def adjust_roughness(
             """Class names (empty for -1) as an arrow string column, without Python lists."""
             return cls_arrow.take(pa.array(np.where(index < 0, n_cls, index).astype(np.int64)))
 
-        face_bias_un = np.full((n_faces, n_win), np.nan)
-        face_bias_ad = np.full((n_faces, n_win), np.nan)
+        # every window stage's bias is kept for the fit domain's items only (the per-class
+        # figures); the maps need one median per item
+        bias_un = np.full((n_dom, n_win), np.nan)
+        bias_ad = np.full((n_dom, n_win), np.nan)
+        face_bias_med = np.full(n_faces, np.nan)
+        cell_bias_med = np.full(n_cells, np.nan)
         face_ratio_med = np.full(n_faces, np.nan)
         face_dom = np.full(n_faces, -1, dtype=np.int64)
-        cell_bias_un = np.full((n_cells, n_win), np.nan)
-        cell_bias_ad = np.full((n_cells, n_win), np.nan)
         cell_ratio_med = np.full(n_cells, np.nan)
         cell_bed = np.full(n_cells, np.nan)
         cell_dom = np.full(n_cells, -1, dtype=np.int64)
@@ -735,8 +716,7 @@ def adjust_roughness(
                 for res in _run_tiles(_pass_tables, job, tasks(), n_fit, desc="tables", **run):
                     fc, cc = res["faces"], res["cells"]
                     fr, cr = res["face"], res["cell"]
-                    face_bias_un[fc] = fr["stage_bias_unadjusted"]
-                    face_bias_ad[fc] = fr["stage_bias_adjusted"]
+                    face_bias_med[fc] = _nanmedian_rows(fr["stage_bias_unadjusted"])
                     face_dom[fc] = res["face_dominant"]
                     face_ratio_med[fc] = _nanmedian_rows(fr["n_ratio"])
                     mismatch_faces += res["face_mismatch"]
@@ -749,8 +729,10 @@ def adjust_roughness(
                     chunk["dominant_class"] = class_column(np.repeat(res["face_dominant"], n_win))
                     fw.write(chunk)
 
-                    cell_bias_un[cc] = cr["stage_bias_unadjusted"]
-                    cell_bias_ad[cc] = cr["stage_bias_adjusted"]
+                    cell_bias_med[cc] = _nanmedian_rows(cr["stage_bias_unadjusted"])
+                    own, own_rows = (fc, fr) if domain == "faces" else (cc, cr)
+                    bias_un[own] = own_rows["stage_bias_unadjusted"]
+                    bias_ad[own] = own_rows["stage_bias_adjusted"]
                     cell_dom[cc] = res["cell_dominant"]
                     cell_ratio_med[cc] = _nanmedian_rows(cr["n_ratio"])
                     cell_bed[cc] = res["bed_factor"]
@@ -771,12 +753,10 @@ def adjust_roughness(
             # ---- per class table
             from .translate import bias_summary
 
-            if domain == "faces":
-                b_un, b_ad, dom_all = face_bias_un, face_bias_ad, face_dom
-            else:
-                b_un, b_ad, dom_all = cell_bias_un, cell_bias_ad, cell_dom
-            bias = {"unadjusted": bias_summary(b_un, dom_all, model.classes),
-                    "adjusted": bias_summary(b_ad, dom_all, model.classes)}
+            dom_all = face_dom if domain == "faces" else cell_dom
+            bias = {"unadjusted": bias_summary(bias_un, dom_all, model.classes),
+                    "adjusted": bias_summary(bias_ad, dom_all, model.classes)}
+            del bias_un, bias_ad
             frame = _class_frame(model, fit, flags, bias)
             class_path = tmp / "n_by_class.csv"
             frame.to_csv(class_path, index=False, float_format="%.6g")
@@ -787,8 +767,6 @@ def adjust_roughness(
             import pandas as pd
 
             crs = layer.frame.crs
-            cell_bias_med = _nanmedian_rows(cell_bias_un)
-            face_bias_med = _nanmedian_rows(face_bias_un)
             cell_frame = gpd.GeoDataFrame(
                 {"cell_id": ids, "n_ratio_median": cell_ratio_med,
                  "stage_bias_unadjusted_median": cell_bias_med, "bed_factor": cell_bed,

@@ -710,19 +710,39 @@ def n_ratio(k_source: np.ndarray, k_target_at_source_n: np.ndarray) -> RatioResu
 
 
 def weighted_quantile(values: np.ndarray, weights: np.ndarray, q: np.ndarray | list[float]) -> np.ndarray:
-    """Weighted quantiles (inverse of the weighted ECDF at mid-steps, linear between)."""
+    """Weighted quantiles (inverse of the weighted ECDF at mid-steps, linear between).
+
+    Values with a weight that is not positive and finite, or a value that is not finite,
+    are left out.  Works on an index sort: about 24 bytes per value beside the inputs.
+    """
     v = np.asarray(values, dtype=float)
     w = np.asarray(weights, dtype=float)
     keep = np.isfinite(v) & np.isfinite(w) & (w > 0)
-    v, w = v[keep], w[keep]
+    if not keep.all():
+        v, w = v[keep], w[keep]
+    del keep
     q = np.asarray(q, dtype=float)
     if v.size == 0:
         return np.full(q.shape, np.nan)
     order = np.argsort(v, kind="stable")
-    v, w = v[order], w[order]
-    cum = np.cumsum(w) - 0.5 * w
-    cum /= w.sum()
-    return np.interp(q, cum, v)
+    half = w[order]
+    mid = np.cumsum(half)
+    total = half.sum()
+    half *= 0.5
+    mid -= half  # cumulative weight at each sorted value's mid-step
+    del half
+    mid /= total
+    # np.interp(q, mid, v[order]) without the sorted copy of v: mid rises strictly (every
+    # weight > 0), so each q falls between two neighbours found by bisection
+    upper = np.clip(np.searchsorted(mid, q, side="right"), 1, v.size - 1) if v.size > 1 else None
+    out = np.empty(q.shape)
+    for j, qj in np.ndenumerate(q):
+        if upper is None:
+            out[j] = v[order[0]]
+            continue
+        i = int(upper[j])
+        out[j] = np.interp(qj, mid[i - 1:i + 1], v[order[i - 1:i + 1]])
+    return out
 
 
 @dataclass(frozen=True)
@@ -743,10 +763,28 @@ class ClassFit:
     cost: float
 
 
-def _entry_conveyance(stats: ClassStats, rows: np.ndarray, cols: np.ndarray, *,
-                      closure: Closure, composite: Composite, k: float) -> Any:
-    """``n -> conveyance(stats, n)[rows, cols]`` with everything that does not depend on n
-    computed once: per entry and class sums in a sparse (n_entries, n_classes) matrix."""
+@dataclass(frozen=True)
+class _LumpedSums:
+    """Per entry parts of the lumped closure: K = geo / n_e, n_e = (sums @ n^expo / P)^power
+    where wet, else 0."""
+
+    expo: float
+    power: float
+    geo: np.ndarray       # k A R^(2/3): the conveyance at n = 1
+    wet: np.ndarray
+    safe_p: np.ndarray    # total wetted perimeter (1 where dry)
+
+    def take(self, index: np.ndarray) -> _LumpedSums:
+        return _LumpedSums(self.expo, self.power, self.geo[index], self.wet[index],
+                           self.safe_p[index])
+
+
+def _entry_sums(stats: ClassStats, rows: np.ndarray, cols: np.ndarray, *, closure: Closure,
+                composite: Composite, k: float) -> tuple[sparse.csr_matrix, _LumpedSums | None]:
+    """Per entry and class sums behind ``conveyance(stats, n)[rows, cols]``, everything that
+    does not depend on n: a sparse (n_entries, n_classes) matrix, canonical (classes in
+    order within each entry), and for the lumped closures with a Horton-Einstein or
+    Pavlovskii composite the per entry totals (else None: K = k sums @ (1 / n))."""
     order = np.argsort(stats.item, kind="stable")
     items = stats.item[order]
     first = np.searchsorted(items, rows, side="left")
@@ -785,18 +823,226 @@ def _entry_conveyance(stats: ClassStats, rows: np.ndarray, cols: np.ndarray, *,
     del q, x
     mat.sum_duplicates()  # canonical: classes in order within each entry
     if not lumped_sums:
-        return lambda n: k * (mat @ (1.0 / np.asarray(n, dtype=float)))
+        return mat, None
     expo, power = (1.5, 2.0 / 3.0) if composite == "horton_einstein" else (2.0, 0.5)
     wet = (p_tot > 0) & (a_tot > 0)
     safe_p = np.where(wet, p_tot, 1.0)
     geo = np.where(wet, k * a_tot * (a_tot / safe_p) ** (2.0 / 3.0), 0.0)
+    return mat, _LumpedSums(expo, power, geo, wet, safe_p)
 
-    def kt(n: np.ndarray) -> np.ndarray:
-        num = mat @ (np.asarray(n, dtype=float) ** expo)
-        n_e = (np.where(wet, num, 1.0) / safe_p) ** power
-        return np.where(wet, geo / n_e, 0.0)
 
-    return kt
+def _conveyance_from_sums(mat: sparse.csr_matrix, lumped: _LumpedSums | None, k: float,
+                          n: np.ndarray) -> np.ndarray:
+    """K at every entry of :func:`_entry_sums` for the class n vector ``n``."""
+    n = np.asarray(n, dtype=float)
+    if lumped is None:
+        return k * (mat @ (1.0 / n))
+    num = mat @ (n ** lumped.expo)
+    n_e = (np.where(lumped.wet, num, 1.0) / lumped.safe_p) ** lumped.power
+    return np.where(lumped.wet, lumped.geo / n_e, 0.0)
+
+
+def _entry_conveyance(stats: ClassStats, rows: np.ndarray, cols: np.ndarray, *,
+                      closure: Closure, composite: Composite, k: float) -> Any:
+    """``n -> conveyance(stats, n)[rows, cols]`` with everything that does not depend on n
+    computed once (:func:`_entry_sums`)."""
+    mat, lumped = _entry_sums(stats, rows, cols, closure=closure, composite=composite, k=k)
+    return lambda n: _conveyance_from_sums(mat, lumped, k, n)
+
+
+@dataclass(frozen=True)
+class FitTerms:
+    """What the class fit needs from some items (one tile's, or all of them).
+
+    The fit minimises sum w (ln K_target(n) - ln K_source)^2 over the item-stages wet in
+    both families (:func:`fit_class_n`).  Where only one class is wet at an item-stage,
+    ln K_target(n) = ln K_target(n_source) - ln(n_c / n_source_c) for every closure (each
+    is homogeneous of degree -1 in n and only n_c enters), so those terms reduce exactly
+    to three sums per class and stage column of the carried-over log ratio
+    d = ln(K_target(n_source) / K_source), weighted by K_source:
+    sum w (d - ln(n_c / n_source_c))^2 = W_c (m_c - ln(n_c / n_source_c))^2 + const with
+    W_c = sum w, m_c = sum w d / W_c.  Only item-stages wet in several classes are kept
+    one by one (``mixed_*``).  Weights stay unscaled here (K_source): the column totals
+    that scale them are only known once every item is in (:func:`solve_class_n`).
+
+    ``spread_*`` hold the carried-over ratio of every wet (pair, stage) with its weight
+    K_source x class share of the item's extent (for the weighted quantiles).
+    """
+
+    closure: Closure
+    composite: Composite
+    k: float
+    source_total: np.ndarray        # (n_stages,) sum of K_source over the entries
+    single_weight: np.ndarray       # (n_classes, n_stages) sum K_source
+    single_first: np.ndarray        # (n_classes, n_stages) sum K_source d
+    single_second: np.ndarray       # (n_classes, n_stages) sum K_source d^2
+    mixed_stage: np.ndarray         # (m,) stage column of each entry wet in several classes
+    mixed_source: np.ndarray        # (m,) K_source
+    mixed_sums: sparse.csr_matrix   # (m, n_classes), see _entry_sums
+    mixed_lumped: _LumpedSums | None
+    present: np.ndarray             # (n_classes,) class wet in an entry: its n can move
+    items: np.ndarray               # (n_classes,) items holding the class
+    mismatch: np.ndarray            # (n_classes,) item-stages wet in one family only
+    class_weight: np.ndarray        # (n_classes, n_stages) sum K_source x class share
+    spread_class: np.ndarray        # (s,) class of each wet (pair, stage)
+    spread_stage: np.ndarray        # (s,)
+    spread_ratio: np.ndarray        # (s,) carried-over ratio of the pair's item
+    spread_weight: np.ndarray       # (s,) K_source x class share
+
+    @property
+    def n_classes(self) -> int:
+        return int(self.present.size)
+
+    @property
+    def n_stages(self) -> int:
+        return int(self.source_total.size)
+
+
+def _per_class_stage(cls: np.ndarray, stage: np.ndarray, weights: np.ndarray, n_classes: int,
+                     n_stages: int) -> np.ndarray:
+    """Sum ``weights`` into a (n_classes, n_stages) table."""
+    return np.bincount(cls * n_stages + stage, weights=weights,
+                       minlength=n_classes * n_stages).reshape(n_classes, n_stages)
+
+
+def fit_terms(
+    k_source: np.ndarray,
+    target_stats: ClassStats,
+    n_source: np.ndarray,
+    *,
+    closure: Closure = "lumped",
+    composite: Composite = "horton_einstein",
+    k: float = 1.0,
+) -> FitTerms:
+    """The class fit's terms from these items (see :class:`FitTerms`).
+
+    Parameters
+    ----------
+    k_source : ndarray (n_items, n_stages)
+        Source conveyance at its own n.
+    target_stats : ClassStats
+        Target sufficient statistics at the same stages.
+    n_source : ndarray (n_classes,)
+    """
+    n_source = np.asarray(n_source, dtype=float)
+    st = target_stats
+    n_cls = st.n_classes
+    kt0 = conveyance(st, n_source, closure=closure, composite=composite, k=k)
+    res = n_ratio(k_source, kt0)
+    both = np.isfinite(res.ratio)
+    ks = np.where(both, res.k_source, 0.0)
+    n_st = ks.shape[1]
+    ratio, item_mismatch = res.ratio, res.mismatch.sum(axis=1)
+    del res, kt0
+
+    # which classes can move: present in a wet item-stage of the target
+    present = np.zeros(n_cls, dtype=bool)
+    wet_pair = (st.perimeter > 0).any(axis=1) & both[st.item].any(axis=1)
+    present[np.unique(st.cls[wet_pair])] = True
+    items = np.bincount(st.cls[st.extent > 0], minlength=n_cls)
+    mismatch = np.bincount(st.cls, weights=item_mismatch[st.item], minlength=n_cls).astype(int)
+    del both
+
+    weight_p = ks[st.item] * st.class_share()[:, None]  # (n_pairs, n_stages)
+    pair_row, pair_col = np.nonzero(weight_p > 0)
+    spread_class = st.cls[pair_row].astype(np.int32)
+    spread_ratio = ratio[st.item[pair_row], pair_col]
+    spread_weight = weight_p[pair_row, pair_col]
+    del weight_p, ratio, pair_row
+    class_weight = _per_class_stage(spread_class, pair_col, spread_weight, n_cls, n_st)
+    spread_stage = pair_col.astype(np.int32)
+    del pair_col
+
+    rows, cols = np.nonzero(ks > 0)
+    source = ks[rows, cols]
+    mat, lumped = _entry_sums(st, rows, cols, closure=closure, composite=composite, k=k)
+    del rows
+    mat.eliminate_zeros()  # classes dry at the entry's stage do not enter K
+    one = np.diff(mat.indptr) == 1
+    if lumped is not None:
+        one &= lumped.wet
+    single = np.flatnonzero(one)
+    cls_one = mat.indices[mat.indptr[single]]
+    base = lumped.geo[single] if lumped is not None else k * mat.data[mat.indptr[single]]
+    with np.errstate(divide="ignore"):
+        d = np.log(base) - np.log(n_source[cls_one]) - np.log(source[single])
+    del base
+    ks_one, col_one = source[single], cols[single]
+    single_weight = _per_class_stage(cls_one, col_one, ks_one, n_cls, n_st)
+    single_first = _per_class_stage(cls_one, col_one, ks_one * d, n_cls, n_st)
+    single_second = _per_class_stage(cls_one, col_one, ks_one * d * d, n_cls, n_st)
+    del d, ks_one, col_one, cls_one, single
+    mixed = np.flatnonzero(~one)
+    return FitTerms(
+        closure=closure, composite=composite, k=float(k), source_total=ks.sum(axis=0),
+        single_weight=single_weight, single_first=single_first, single_second=single_second,
+        mixed_stage=cols[mixed].astype(np.int32), mixed_source=source[mixed],
+        mixed_sums=mat[mixed], mixed_lumped=None if lumped is None else lumped.take(mixed),
+        present=present, items=items, mismatch=mismatch, class_weight=class_weight,
+        spread_class=spread_class, spread_stage=spread_stage, spread_ratio=spread_ratio,
+        spread_weight=spread_weight,
+    )
+
+
+def combine_fit_terms(parts: list[FitTerms]) -> FitTerms:
+    """One :class:`FitTerms` from the terms of disjoint sets of items (e.g. tiles).
+
+    The list is emptied as its parts are copied in, so their memory is freed on the way
+    and the combined terms never sit beside a second copy.
+    """
+    if not parts:
+        raise ValueError("no fit terms to combine")
+    if len(parts) == 1:
+        return parts.pop()
+    first = parts[0]
+    if any((p.closure, p.composite, p.k) != (first.closure, first.composite, first.k)
+           or p.present.shape != first.present.shape
+           or p.source_total.shape != first.source_total.shape for p in parts):
+        raise ValueError("fit terms of different closures or shapes cannot be combined")
+
+    def total(name: str) -> np.ndarray:
+        return np.sum([getattr(p, name) for p in parts], axis=0)
+
+    dense = {name: total(name) for name in (
+        "source_total", "single_weight", "single_first", "single_second", "items",
+        "mismatch", "class_weight")}
+    present = np.logical_or.reduce([p.present for p in parts])
+    flat_names = ("spread_class", "spread_stage", "spread_ratio", "spread_weight",
+                  "mixed_stage", "mixed_source")
+    out = {name: np.empty(sum(getattr(p, name).size for p in parts),
+                          dtype=getattr(first, name).dtype) for name in flat_names}
+    lumped = first.mixed_lumped
+    lumped_out = None if lumped is None else {
+        name: np.empty(sum(p.mixed_stage.size for p in parts), dtype=getattr(lumped, name).dtype)
+        for name in ("geo", "wet", "safe_p")}
+    sums: list[sparse.csr_matrix] = []
+    at = dict.fromkeys(flat_names, 0)
+    at_mixed = 0
+    closure, composite, k = first.closure, first.composite, first.k
+    del first
+    parts.reverse()
+    while parts:  # pop in the original order, freeing each part once copied
+        p = parts.pop()
+        for name in flat_names:
+            a = getattr(p, name)
+            out[name][at[name]:at[name] + a.size] = a
+            at[name] += a.size
+        m = p.mixed_stage.size
+        if lumped_out is not None and p.mixed_lumped is not None:
+            for name, arr in lumped_out.items():
+                arr[at_mixed:at_mixed + m] = getattr(p.mixed_lumped, name)
+        at_mixed += m
+        sums.append(p.mixed_sums)
+        del p
+    mixed_sums = sparse.vstack(sums, format="csr")
+    del sums
+    return FitTerms(
+        closure=closure, composite=composite, k=k, **dense, present=present,
+        mixed_sums=mixed_sums,
+        mixed_lumped=None if lumped is None else _LumpedSums(lumped.expo, lumped.power,
+                                                             **lumped_out),
+        **out,
+    )
 
 
 def fit_class_n(
@@ -829,6 +1075,9 @@ def fit_class_n(
     ``not_fitted`` (no wet item: n_target = n_source), ``at_bound`` (the fit stopped
     at a bound).
 
+    The same as :func:`solve_class_n` of :func:`fit_terms`, which a tiled job gathers
+    tile by tile (:func:`combine_fit_terms`) instead of holding every item-stage.
+
     Parameters
     ----------
     k_source : ndarray (n_items, n_stages)
@@ -837,86 +1086,108 @@ def fit_class_n(
         Target sufficient statistics at the same stages.
     n_source : ndarray (n_classes,)
     """
+    terms = fit_terms(k_source, target_stats, n_source, closure=closure, composite=composite,
+                      k=k)
+    return solve_class_n(terms, n_source, outside_range=outside_range,
+                         bound_factor=bound_factor)
+
+
+def solve_class_n(
+    terms: FitTerms,
+    n_source: np.ndarray,
+    *,
+    outside_range: np.ndarray | None = None,
+    bound_factor: float = 10.0,
+) -> ClassFit:
+    """The class fit of :func:`fit_class_n` from its gathered terms (:class:`FitTerms`)."""
     from scipy.optimize import least_squares
 
     n_source = np.asarray(n_source, dtype=float)
     n_cls = n_source.size
-    kt0 = conveyance(target_stats, n_source, closure=closure, composite=composite, k=k)
-    res = n_ratio(k_source, kt0)
-    both = np.isfinite(res.ratio)
-    ks = np.where(both, res.k_source, 0.0)
-    col_tot = ks.sum(axis=0)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        w = np.where(both & (col_tot[None, :] > 0), ks / np.where(col_tot > 0, col_tot, 1.0)[None, :], 0.0)
+    if terms.n_classes != n_cls:
+        raise ValueError(f"fit terms for {terms.n_classes} classes, n for {n_cls}")
+    col_tot = terms.source_total
     n_cols_used = max(int(np.count_nonzero(col_tot > 0)), 1)
-    w = w / n_cols_used
+    # weight of an entry = its K_source over its column's total, every column counting equally
+    scale = np.where(col_tot > 0, 1.0 / np.where(col_tot > 0, col_tot, 1.0), 0.0) / n_cols_used
+    w_one = terms.single_weight @ scale
+    s1 = terms.single_first @ scale
+    s2 = terms.single_second @ scale
+    fitted = np.flatnonzero(w_one > 0)
+    mean_one = s1[fitted] / w_one[fitted]
+    # the part of the single-class sum no n can remove (adds to the reported cost)
+    spread_one = float(np.sum(np.maximum(s2[fitted] - s1[fitted] * mean_one, 0.0)))
+    sqrt_w_one = np.sqrt(w_one[fitted])
+    log_n_source = np.log(n_source)
 
-    # which classes can move: present in a wet item-stage of the target
-    present = np.zeros(n_cls, dtype=bool)
-    wet_pair = (target_stats.perimeter > 0).any(axis=1) & both[target_stats.item].any(axis=1)
-    present[np.unique(target_stats.cls[wet_pair])] = True
-    free = np.flatnonzero(present)
+    w_mixed = terms.mixed_source * scale[terms.mixed_stage]
+    sqrt_w_mixed = np.sqrt(w_mixed)
+    log_ks_mixed = np.log(terms.mixed_source)
 
-    rows, cols = np.nonzero(w > 0)
-    sqrt_w = np.sqrt(w[rows, cols])
-    log_ks = np.log(ks[rows, cols])
-    # restrict to the items used, to keep the residual cheap
+    def k_mixed(n: np.ndarray) -> np.ndarray:
+        return _conveyance_from_sums(terms.mixed_sums, terms.mixed_lumped, terms.k, n)
+
     lo = np.log(np.clip(n_source / bound_factor, N_MIN, N_MAX))
     hi = np.log(np.clip(n_source * bound_factor, N_MIN, N_MAX))
     x0 = np.log(np.clip(n_source, N_MIN, N_MAX))
     # start from the weighted mean ratio: uniform scaling is exact for one class
-    if rows.size:
-        start_ratio = float(np.exp(np.sum(w[rows, cols] * np.log(res.ratio[rows, cols]))
-                                   / np.sum(w[rows, cols])))
+    weight_sum = float(w_one.sum() + w_mixed.sum())
+    if weight_sum > 0:
+        with np.errstate(divide="ignore"):
+            log_ratio_mixed = np.log(k_mixed(n_source)) - log_ks_mixed
+        start_ratio = float(np.exp((s1.sum() + np.sum(w_mixed * log_ratio_mixed)) / weight_sum))
         x0 = np.clip(x0 + np.log(start_ratio), lo + 1e-12, hi - 1e-12)
-    ratio, item_mismatch = res.ratio, res.mismatch.sum(axis=1)
-    del res, kt0, ks
+        del log_ratio_mixed
 
-    # spread per class (at n carried over: it does not depend on the fit), computed
-    # before the fit so that the (item, stage) arrays are freed before the solver's own
-    share = target_stats.class_share()
+    # which classes can move: present in a wet item-stage of the target
+    present = terms.present
+    free = np.flatnonzero(present)
+
+    # spread per class (at n carried over: it does not depend on the fit)
     p10 = np.full(n_cls, np.nan)
     p50 = np.full(n_cls, np.nan)
     p90 = np.full(n_cls, np.nan)
-    items = np.bincount(target_stats.cls[target_stats.extent > 0], minlength=n_cls)
-    weight_p = w[target_stats.item] * share[:, None]  # (n_pairs, n_stages)
-    wsum = np.bincount(target_stats.cls, weights=weight_p.sum(axis=1), minlength=n_cls)
-    total_w = weight_p.sum()
+    wsum = terms.class_weight @ scale
+    total_w = wsum.sum()
     weight_share = wsum / total_w if total_w > 0 else np.zeros(n_cls)
-    mismatch = np.bincount(target_stats.cls, weights=item_mismatch[target_stats.item],
-                           minlength=n_cls).astype(int)
-    order = np.argsort(target_stats.cls, kind="stable")
-    bounds = np.searchsorted(target_stats.cls[order], np.arange(n_cls + 1))
-    for c in range(n_cls):  # loop over classes
-        sel = order[bounds[c]:bounds[c + 1]]
-        if sel.size:
-            p10[c], p50[c], p90[c] = weighted_quantile(
-                ratio[target_stats.item[sel]].ravel(), weight_p[sel].ravel(), [0.1, 0.5, 0.9])
-    del weight_p, ratio, w, both
+    weights = terms.spread_weight * scale[terms.spread_stage]
+    classes = terms.spread_class
+    if classes.size and not np.any(classes != classes[0]):  # one class: no copies
+        p10[classes[0]], p50[classes[0]], p90[classes[0]] = weighted_quantile(
+            terms.spread_ratio, weights, [0.1, 0.5, 0.9])
+    elif classes.size:
+        order = np.argsort(classes, kind="stable")
+        bounds = np.searchsorted(classes[order], np.arange(n_cls + 1))
+        for c in range(n_cls):  # loop over classes
+            sel = order[bounds[c]:bounds[c + 1]]
+            if sel.size:
+                p10[c], p50[c], p90[c] = weighted_quantile(terms.spread_ratio[sel], weights[sel],
+                                                           [0.1, 0.5, 0.9])
+        del order, sel
+    del weights
 
-    def full_n(x_free: np.ndarray) -> np.ndarray:
+    def full_x(x_free: np.ndarray) -> np.ndarray:
         x = x0.copy()
         x[free] = x_free
-        return np.exp(x)
-
-    kt_at = _entry_conveyance(target_stats, rows, cols, closure=closure, composite=composite,
-                              k=k)
-    del rows, cols
+        return x
 
     def residual(x_free: np.ndarray) -> np.ndarray:
-        val = kt_at(full_n(x_free))
+        x = full_x(x_free)
         with np.errstate(divide="ignore"):
-            return sqrt_w * (np.log(np.maximum(val, 1e-300)) - log_ks)
+            mixed = sqrt_w_mixed * (np.log(np.maximum(k_mixed(np.exp(x)), 1e-300)) - log_ks_mixed)
+        one = sqrt_w_one * (mean_one + log_n_source[fitted] - x[fitted])
+        return np.concatenate([mixed, one])
 
     success, cost = True, 0.0
     n_target = n_source.copy()
-    if free.size and sqrt_w.size:
+    if free.size and (fitted.size or w_mixed.size):
         sol = least_squares(residual, x0[free], bounds=(lo[free], hi[free]), method="trf",
                             x_scale=1.0, xtol=1e-12, ftol=1e-12, gtol=1e-12, max_nfev=200)
-        n_target = full_n(sol.x)
+        n_target = np.exp(full_x(sol.x))
         n_target[~present] = n_source[~present]
-        success, cost = bool(sol.success), float(sol.cost)
+        success, cost = bool(sol.success), float(sol.cost) + 0.5 * spread_one
 
+    items, mismatch = terms.items, terms.mismatch
     flags: list[list[str]] = []
     for c in range(n_cls):
         f: list[str] = []

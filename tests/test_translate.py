@@ -14,11 +14,14 @@ from ntrans.translate import (
     FaceGeometry,
     Family,
     FlatGeometry,
+    combine_fit_terms,
     composite_n,
     conveyance,
     fit_class_n,
+    fit_terms,
     n_ratio,
     segment_integrals,
+    solve_class_n,
     stage_bias,
     weighted_quantile,
 )
@@ -420,6 +423,27 @@ def test_weighted_quantile_plain_cases():
     assert weighted_quantile(v, np.array([0, 0, 1.0, 0]), [0.1, 0.9]).tolist() == [3.0, 3.0]
 
 
+@pytest.mark.parametrize("n", [1, 2, 3, 10, 1000])
+def test_weighted_quantile_is_the_interpolated_mid_step_ecdf(n):
+    # the definition written out (sorted copies, np.interp over the mid-step cumulative
+    # weights); the index-sort version must give the same numbers to the bit, ties, zero
+    # weights, NaN values and the ends (q = 0, 1) included
+    rng = np.random.default_rng(n)
+    v, w = rng.normal(size=n), rng.random(n)
+    w[rng.random(n) < 0.2] = 0.0
+    if n > 3:
+        v[:3] = v[3]
+        v[-1] = np.nan
+    q = np.r_[0.0, 0.001, 0.1, 0.5, 0.9, 0.999, 1.0, rng.random(5)]
+    keep = np.isfinite(v) & (w > 0)
+    vs, ws = v[keep], w[keep]
+    order = np.argsort(vs, kind="stable")
+    vs, ws = vs[order], ws[order]
+    expected = (np.interp(q, (np.cumsum(ws) - 0.5 * ws) / ws.sum(), vs) if vs.size
+                else np.full(q.shape, np.nan))
+    np.testing.assert_array_equal(weighted_quantile(v, w, q), expected)
+
+
 def test_fit_flags():
     fg = channel_mesh(n_faces=3)
     stages = np.tile([2.5], (3, 1))
@@ -462,6 +486,96 @@ def test_fit_residual_conveyance_is_the_conveyance_at_the_fit_entries(closure, c
     whole = conveyance(stats, n, closure=closure, composite=composite)[rows, cols]
     at = _entry_conveyance(stats, rows, cols, closure=closure, composite=composite, k=1.0)(n)
     np.testing.assert_allclose(at, whole, rtol=1e-13, atol=0)
+
+
+def random_class_stats(seed: int, n_items: int = 300, n_classes: int = 4, n_stages: int = 5):
+    """Items holding one to three classes in any order, some pairs dry at some stages, and
+    a source conveyance from another n with noise (so the fit has something to do)."""
+    rng = np.random.default_rng(seed)
+    item = np.concatenate([np.full(k, i) for i, k in enumerate(rng.integers(1, 4, n_items))])
+    cls = np.concatenate([rng.choice(n_classes, np.count_nonzero(item == i), replace=False)
+                          for i in range(n_items)])
+    shuffle = rng.permutation(item.size)
+    item, cls = item[shuffle], cls[shuffle]
+
+    def table():
+        t = rng.random((item.size, n_stages))
+        t[rng.random(t.shape) < 0.25] = 0.0  # dry pairs
+        return t
+
+    stats = ClassStats(item, cls, n_items, n_classes, rng.random(item.size), table(), table(),
+                       table(), table())
+    n_source = 0.02 + 0.05 * rng.random(n_classes)
+    ks = conveyance(stats, 0.02 + 0.05 * rng.random(n_classes)) * rng.lognormal(0, 0.2, (n_items, n_stages))
+    ks[rng.random(ks.shape) < 0.1] = 0.0  # source dry where the target may be wet
+    return stats, ks, n_source
+
+
+def items_subset(stats: ClassStats, keep: np.ndarray) -> ClassStats:
+    """The statistics of the items ``keep`` (renumbered from 0), like one tile's."""
+    local = np.full(stats.n_items, -1)
+    local[keep] = np.arange(keep.size)
+    pairs = np.flatnonzero(local[stats.item] >= 0)
+    return ClassStats(local[stats.item[pairs]], stats.cls[pairs], keep.size, stats.n_classes,
+                      stats.extent[pairs], stats.wet[pairs], stats.perimeter[pairs],
+                      stats.area[pairs], stats.strip[pairs])
+
+
+@pytest.mark.parametrize("closure, composite", [
+    ("lumped", "horton_einstein"), ("lumped", "pavlovskii"), ("lumped", "lotter"),
+    ("strip", "horton_einstein"),
+])
+def test_fit_cost_is_the_whole_sum_of_squares(closure, composite):
+    # the fit sums the item-stages wet in one class only into three numbers per class and
+    # stage; sum w (d - x)^2 = W (m - x)^2 + sum w (d - m)^2 (sum-of-squares decomposition,
+    # an algebraic identity), so its cost must equal half the sum of squares over EVERY wet
+    # item-stage, evaluated here one by one at the fitted n (round-off: 1e-10 relative)
+    from ntrans.translate import _entry_conveyance
+
+    stats, ks, n_source = random_class_stats(3)
+    fit = fit_class_n(ks, stats, n_source, closure=closure, composite=composite)
+    assert fit.success
+    kt0 = conveyance(stats, n_source, closure=closure, composite=composite)
+    both = np.isfinite(n_ratio(ks, kt0).ratio)
+    used = np.where(both, ks, 0.0)
+    w = used / used.sum(axis=0) / np.count_nonzero(used.sum(axis=0) > 0)
+    rows, cols = np.nonzero(w > 0)
+    kt = _entry_conveyance(stats, rows, cols, closure=closure, composite=composite, k=1.0)
+    r = np.sqrt(w[rows, cols]) * (np.log(kt(fit.n_target)) - np.log(ks[rows, cols]))
+    assert fit.cost == pytest.approx(0.5 * np.sum(r * r), rel=1e-10)
+    # and the fitted n is where that whole sum is least: no class's n moved by 1e-4
+    # (relative) lowers it (the solver stops within 1e-12 of the cost; a class stopped at
+    # a bound may only move inwards)
+    for c in np.flatnonzero(fit.n_target != n_source):
+        if "at_bound" in fit.flags[c]:
+            continue
+        for step in (1e-4, -1e-4):
+            n = fit.n_target.copy()
+            n[c] *= 1 + step
+            moved = np.sqrt(w[rows, cols]) * (np.log(kt(n)) - np.log(ks[rows, cols]))
+            assert 0.5 * np.sum(moved * moved) >= fit.cost * (1 - 1e-12)
+
+
+@pytest.mark.parametrize("closure", ["lumped", "strip"])
+def test_fit_terms_gathered_tile_by_tile_give_the_whole_fit(closure):
+    # a tiled job gathers the terms of disjoint sets of items; the sums are the same sums
+    # in another order and the spread the same values (round-off; the solver then stops
+    # within its tolerance of the same n)
+    stats, ks, n_source = random_class_stats(11)
+    whole = fit_class_n(ks, stats, n_source, closure=closure)
+    groups = np.array_split(np.random.default_rng(0).permutation(stats.n_items), 3)
+    parts = [fit_terms(ks[g], items_subset(stats, g), n_source, closure=closure) for g in groups]
+    parts.insert(1, fit_terms(ks[:0], items_subset(stats, groups[0][:0]), n_source,
+                              closure=closure))  # a tile without items
+    tiled = solve_class_n(combine_fit_terms(parts), n_source)
+    assert parts == []  # gathered terms free the tiles' as they go
+    np.testing.assert_allclose(tiled.n_target, whole.n_target, rtol=1e-7)
+    for name in ("ratio_p10", "ratio_p50", "ratio_p90", "weight_share"):
+        np.testing.assert_allclose(getattr(tiled, name), getattr(whole, name), rtol=1e-12)
+    assert tiled.items.tolist() == whole.items.tolist()
+    assert tiled.mismatch.tolist() == whole.mismatch.tolist()
+    assert tiled.flags == whole.flags
+    assert tiled.cost == pytest.approx(whole.cost, rel=1e-9)
 
 
 def test_cell_strip_sums_are_the_per_pixel_sums():
