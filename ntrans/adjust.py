@@ -35,7 +35,7 @@ import shapely
 
 from . import __version__
 from .cautions import CAUTIONS
-from .cluster import check_where, connect_workers
+from .cluster import check_where, connect_workers, default_threads
 from .engine import (
     COVERAGE_MODES,
     ELEVATION_RULES,
@@ -51,6 +51,7 @@ from .errors import (
 )
 from .inputs import rasters_kept_open
 from .memory import available_memory, release_free_memory
+from .quantiles import SpilledQuantiles
 from .roughness import (
     AREA_TOLERANCE,
     OVERLAP_RULES,
@@ -68,6 +69,7 @@ from .translate import (
     FaceGeometry,
     FitTerms,
     FlatGeometry,
+    bias_summary_spilled,
     combine_fit_terms,
     conveyance,
     fit_terms,
@@ -78,6 +80,10 @@ from .translate import (
 from .translate import Family as _Family
 
 log = logging.getLogger(__name__)
+
+#: bins of the stage bias's spill files are uniform in asinh(bias / this), in the DEM's
+#: vertical unit: fine near zero, relative further out (they never change the figures)
+BIAS_BIN_UNIT = 0.001
 
 FAMILIES: tuple[str, ...] = ("flat", "subgrid")
 SUBGRID_CLOSURES: tuple[str, ...] = ("lumped", "strip", "cell")
@@ -597,6 +603,9 @@ def adjust_roughness(
     # workers start (and warm up) in the background while the mesh is read and built
     with (
         connect_workers(workers, scheduler) or contextlib.nullcontext() as connection,
+        OutputFolder(out, overwrite=overwrite, inputs=[dem, cells, classes, n_table, class_raster,
+                                                       *(water_surface or [])]) as folder,
+        contextlib.ExitStack() as spills,  # closed (files removed) before the folder is kept
         rasters_kept_open(),  # tiles share DEM blocks: decode each once
     ):
         setup = prepare_mesh_job(
@@ -632,16 +641,27 @@ def adjust_roughness(
         run = {"connection": connection, "progress": progress, "total": len(tiles),
                "threads": threads}
 
-        # ---- pass 1: sufficient statistics of the fit domain
+        # values for quantiles go to spill files in the output's temporary folder, so
+        # memory does not grow with items x window stages (ntrans.quantiles)
+        tmp = folder.path
+        spread = spills.enter_context(SpilledQuantiles(tmp / "_spread.spill", n_cls))
+
+        # ---- pass 1: the class fit's terms from the fit domain, tile by tile
         parts: list[FitTerms] = []
         uncovered = covered = 0.0
-        n_dom = n_faces if domain == "faces" else n_cells
-        _warn_if_short_of_memory(n_dom, n_win, domain)
+        _warn_if_short_of_memory(n_cells, n_faces, n_win,
+                                 1 if connection is not None else
+                                 (default_threads() if threads is None else int(threads)),
+                                 int(tile_size))
         for res in _run_tiles(_pass_statistics, job, tasks(), desc="fit statistics", **run):
             layer.raise_if_checks_failed()
             uncovered += res["uncovered"]
             covered += res["covered"]
-            parts.append(res["terms"])
+            terms = res["terms"]
+            spread.add(terms.spread_class, terms.spread_ratio, terms.spread_weight,
+                       terms.spread_stage)
+            parts.append(terms.without_spread())
+            del res, terms
         layer.finish_checks()
         share = uncovered / covered if covered > 0 else 0.0
         if model.source == "raster" and model.default < 0 and share > AREA_TOLERANCE:
@@ -656,7 +676,10 @@ def adjust_roughness(
             parts.append(fit_terms(dry, ClassStats(none, none, 0, n_cls, np.empty(0), dry, dry,
                                                    dry, dry), model.n,
                                    closure=_domain_closure(tc), composite=composite, k=k))  # type: ignore[arg-type]
-        fit = solve_class_n(combine_fit_terms(parts), model.n)  # empties parts
+        log.debug("fit statistics gathered; solving the class fit")
+        fit = solve_class_n(combine_fit_terms(parts), model.n, spread=spread)  # empties parts
+        spread.close()
+        log.debug("class fit: n %s (cost %.6g)", np.round(fit.n_target, 6).tolist(), fit.cost)
         out_rng = outside_range(model, fit.n_target)
         flags = [list(f) + (["outside_published_range"] if out_rng[c] else []) for c, f in enumerate(fit.flags)]
         n_fit = fit.n_target
@@ -690,10 +713,13 @@ def adjust_roughness(
             """Class names (empty for -1) as an arrow string column, without Python lists."""
             return cls_arrow.take(pa.array(np.where(index < 0, n_cls, index).astype(np.int64)))
 
-        # every window stage's bias is kept for the fit domain's items only (the per-class
-        # figures); the maps need one median per item
-        bias_un = np.full((n_dom, n_win), np.nan)
-        bias_ad = np.full((n_dom, n_win), np.nan)
+        # the fit domain's bias at every window stage goes to spill files for the per-class
+        # figures (group: the item's dominant class, then one for items of no class); the
+        # maps need one median per item
+        bias_spills = {name: spills.enter_context(SpilledQuantiles(
+            tmp / f"_bias_{name}.spill", n_cls + 1, scale="asinh", unit=BIAS_BIN_UNIT,
+            weighted=False)) for name in ("unadjusted", "adjusted")}
+        bias_max = {name: np.full(n_cls + 1, np.nan) for name in bias_spills}
         face_bias_med = np.full(n_faces, np.nan)
         cell_bias_med = np.full(n_cells, np.nan)
         face_ratio_med = np.full(n_faces, np.nan)
@@ -704,128 +730,129 @@ def adjust_roughness(
         mismatch_faces = mismatch_cells = 0
 
         files: list[Path] = []
-        with OutputFolder(out, overwrite=overwrite,
-                          inputs=[dem, cells, classes, n_table, class_raster, *(water_surface or [])]) as folder:
-            tmp = folder.path
-            face_path, cell_path = tmp / "face_adjustment.parquet", tmp / "cell_adjustment.parquet"
-            fw = TableWriter(face_path, schema=face_schema, units=units, descriptions=descriptions,
-                             metadata=meta)
-            cw = TableWriter(cell_path, schema=cell_schema, units=units, descriptions=descriptions,
-                             metadata=meta)
-            try:
-                for res in _run_tiles(_pass_tables, job, tasks(), n_fit, desc="tables", **run):
-                    fc, cc = res["faces"], res["cells"]
-                    fr, cr = res["face"], res["cell"]
-                    face_bias_med[fc] = _nanmedian_rows(fr["stage_bias_unadjusted"])
-                    face_dom[fc] = res["face_dominant"]
-                    face_ratio_med[fc] = _nanmedian_rows(fr["n_ratio"])
-                    mismatch_faces += res["face_mismatch"]
-                    chunk: dict[str, Any] = {
-                        "face_id": np.repeat(fc, n_win).astype(np.int64),
-                        "cell_a": ids_at(ids, np.repeat(res["face_a"], n_win)),
-                        "cell_b": ids_at(ids, np.repeat(res["face_b"], n_win)),
-                    }
-                    chunk.update({c: np.asarray(fr[c], dtype=float).ravel() for c in FACE_COLUMNS[3:-1]})
-                    chunk["dominant_class"] = class_column(np.repeat(res["face_dominant"], n_win))
-                    fw.write(chunk)
+        face_path, cell_path = tmp / "face_adjustment.parquet", tmp / "cell_adjustment.parquet"
+        fw = TableWriter(face_path, schema=face_schema, units=units, descriptions=descriptions,
+                         metadata=meta)
+        cw = TableWriter(cell_path, schema=cell_schema, units=units, descriptions=descriptions,
+                         metadata=meta)
+        try:
+            for res in _run_tiles(_pass_tables, job, tasks(), n_fit, desc="tables", **run):
+                fc, cc = res["faces"], res["cells"]
+                fr, cr = res["face"], res["cell"]
+                face_bias_med[fc] = _nanmedian_rows(fr["stage_bias_unadjusted"])
+                face_dom[fc] = res["face_dominant"]
+                face_ratio_med[fc] = _nanmedian_rows(fr["n_ratio"])
+                mismatch_faces += res["face_mismatch"]
+                chunk: dict[str, Any] = {
+                    "face_id": np.repeat(fc, n_win).astype(np.int64),
+                    "cell_a": ids_at(ids, np.repeat(res["face_a"], n_win)),
+                    "cell_b": ids_at(ids, np.repeat(res["face_b"], n_win)),
+                }
+                chunk.update({c: np.asarray(fr[c], dtype=float).ravel() for c in FACE_COLUMNS[3:-1]})
+                chunk["dominant_class"] = class_column(np.repeat(res["face_dominant"], n_win))
+                fw.write(chunk)
 
-                    cell_bias_med[cc] = _nanmedian_rows(cr["stage_bias_unadjusted"])
-                    own, own_rows = (fc, fr) if domain == "faces" else (cc, cr)
-                    bias_un[own] = own_rows["stage_bias_unadjusted"]
-                    bias_ad[own] = own_rows["stage_bias_adjusted"]
-                    cell_dom[cc] = res["cell_dominant"]
-                    cell_ratio_med[cc] = _nanmedian_rows(cr["n_ratio"])
-                    cell_bed[cc] = res["bed_factor"]
-                    mismatch_cells += res["cell_mismatch"]
-                    chunk = {"cell_id": ids_at(ids, np.repeat(cc, n_win))}
-                    chunk.update({c: np.asarray(cr[c], dtype=float).ravel() for c in CELL_COLUMNS[1:-1]})
-                    chunk["dominant_class"] = class_column(np.repeat(res["cell_dominant"], n_win))
-                    cw.write(chunk)
-                if connection is not None:
-                    connection.release()  # workers shut down while the last files are written
-                release_free_memory()  # the tiles' temporaries, before the summaries
-                files += [fw.close(), cw.close()]
-            except BaseException:
-                fw.abort()
-                cw.abort()
-                raise
+                cell_bias_med[cc] = _nanmedian_rows(cr["stage_bias_unadjusted"])
+                own_rows, own_dom = ((fr, res["face_dominant"]) if domain == "faces"
+                                     else (cr, res["cell_dominant"]))
+                group = np.where(own_dom < 0, n_cls, own_dom)[:, None]
+                for name, spill in bias_spills.items():
+                    values = own_rows[f"stage_bias_{name}"]
+                    spill.add(group, values)
+                    np.fmax.at(bias_max[name], np.broadcast_to(group, values.shape).ravel(),
+                               np.abs(values).ravel())
+                cell_dom[cc] = res["cell_dominant"]
+                cell_ratio_med[cc] = _nanmedian_rows(cr["n_ratio"])
+                cell_bed[cc] = res["bed_factor"]
+                mismatch_cells += res["cell_mismatch"]
+                chunk = {"cell_id": ids_at(ids, np.repeat(cc, n_win))}
+                chunk.update({c: np.asarray(cr[c], dtype=float).ravel() for c in CELL_COLUMNS[1:-1]})
+                chunk["dominant_class"] = class_column(np.repeat(res["cell_dominant"], n_win))
+                cw.write(chunk)
+            if connection is not None:
+                connection.release()  # workers shut down while the last files are written
+            release_free_memory()  # the tiles' temporaries, before the summaries
+            files += [fw.close(), cw.close()]
+        except BaseException:
+            fw.abort()
+            cw.abort()
+            raise
 
-            # ---- per class table
-            from .translate import bias_summary
+        # ---- per class table
+        log.debug("tables written; stage bias figures per class")
+        bias = {name: bias_summary_spilled(spill, bias_max[name], model.classes)
+                for name, spill in bias_spills.items()}
+        spills.close()
+        log.debug("writing the cell and face layers")
+        frame = _class_frame(model, fit, flags, bias)
+        class_path = tmp / "n_by_class.csv"
+        frame.to_csv(class_path, index=False, float_format="%.6g")
+        files.append(class_path)
 
-            dom_all = face_dom if domain == "faces" else cell_dom
-            bias = {"unadjusted": bias_summary(bias_un, dom_all, model.classes),
-                    "adjusted": bias_summary(bias_ad, dom_all, model.classes)}
-            del bias_un, bias_ad
-            frame = _class_frame(model, fit, flags, bias)
-            class_path = tmp / "n_by_class.csv"
-            frame.to_csv(class_path, index=False, float_format="%.6g")
-            files.append(class_path)
+        # ---- maps
+        import geopandas as gpd
+        import pandas as pd
 
-            # ---- maps
-            import geopandas as gpd
-            import pandas as pd
+        crs = layer.frame.crs
+        cell_frame = gpd.GeoDataFrame(
+            {"cell_id": ids, "n_ratio_median": cell_ratio_med,
+             "stage_bias_unadjusted_median": cell_bias_med, "bed_factor": cell_bed,
+             "dominant_class": cls_names[cell_dom].astype(str)},
+            geometry=gpd.GeoSeries(geoms, crs=crs), crs=crs)
+        files.append(write_geopackage(cell_frame, tmp / "cells.gpkg", "cells"))
+        face_frame = pd.DataFrame(
+            {"face_id": np.arange(n_faces, dtype=np.int64),
+             "cell_a": ids_series(ids, mesh.cell_a),
+             "cell_b": ids_series(ids, mesh.cell_b),
+             "length": mesh.length, "n_ratio_median": face_ratio_med,
+             "stage_bias_unadjusted_median": face_bias_med,
+             "dominant_class": cls_names[face_dom].astype(str)})
+        files.append(write_geopackage(face_frame, tmp / "faces.gpkg", "faces",
+                                      encoded=setup.face_geometry, crs=crs))
+        if csv:
+            files.append(write_csv(face_path, tmp / "face_adjustment.csv"))
+            files.append(write_csv(cell_path, tmp / "cell_adjustment.csv"))
 
-            crs = layer.frame.crs
-            cell_frame = gpd.GeoDataFrame(
-                {"cell_id": ids, "n_ratio_median": cell_ratio_med,
-                 "stage_bias_unadjusted_median": cell_bias_med, "bed_factor": cell_bed,
-                 "dominant_class": cls_names[cell_dom].astype(str)},
-                geometry=gpd.GeoSeries(geoms, crs=crs), crs=crs)
-            files.append(write_geopackage(cell_frame, tmp / "cells.gpkg", "cells"))
-            face_frame = pd.DataFrame(
-                {"face_id": np.arange(n_faces, dtype=np.int64),
-                 "cell_a": ids_series(ids, mesh.cell_a),
-                 "cell_b": ids_series(ids, mesh.cell_b),
-                 "length": mesh.length, "n_ratio_median": face_ratio_med,
-                 "stage_bias_unadjusted_median": face_bias_med,
-                 "dominant_class": cls_names[face_dom].astype(str)})
-            files.append(write_geopackage(face_frame, tmp / "faces.gpkg", "faces",
-                                          encoded=setup.face_geometry, crs=crs))
-            if csv:
-                files.append(write_csv(face_path, tmp / "face_adjustment.csv"))
-                files.append(write_csv(cell_path, tmp / "cell_adjustment.csv"))
-
-            seconds = time.perf_counter() - started
-            summary = {
-                "ntrans_version": __version__,
-                "dem": os.fspath(dem),
-                "cells": os.fspath(cells),
-                "source": {"family": source, "closure": sc},
-                "target": {"family": target, "closure": tc},
-                "fit_domain": domain,
-                "composite": composite,
-                "manning_k": k,
-                "roughness": {"input": model.source, "classes": list(model.classes),
-                              "default_class": (model.classes[model.default] if model.default >= 0
-                                                else None),
-                              "overlap_rule": overlap_rule},
-                "window": ({"mode": spec.mode, "values": spec.values.tolist()} if spec is not None
-                           else {"mode": "water_surface", "rasters": [s.name for s in surfaces]}),
-                "elevation_rule": elevation_rule,
-                "face_rule": face_rule,
-                "coverage": coverage,
-                "cells_count": int(n_cells),
-                "faces_count": int(n_faces),
-                "tiles": len(tiles),
-                "horizontal_unit": dem_info.horizontal_unit,
-                "vertical_unit": dem_info.vertical_unit,
-                "classes": json.loads(frame.to_json(orient="records")),
-                "stage_bias": {"unadjusted": bias["unadjusted"]["overall"],
-                               "adjusted": bias["adjusted"]["overall"]},
-                "flagged": {"face_stage_dry_wet_mismatch": mismatch_faces,
-                            "cell_stage_dry_wet_mismatch": mismatch_cells,
-                            "classes_flagged": int(sum(1 for f in flags if f))},
-                "fit": {"success": fit.success, "cost": fit.cost},
-                "weighting": "source conveyance share per window stage; spread = weighted "
-                             "quantiles with weight x class share of the item's extent",
-                "cautions": list(CAUTIONS),
-                "seconds": round(seconds, 3),
-                "units": {c: units.get(c, "") for c in (*FACE_COLUMNS, *CELL_COLUMNS)},
-            }
-            (tmp / "adjust_summary.json").write_text(json.dumps(summary, indent=2, default=_json_default))
-            files.append(tmp / "adjust_summary.json")
-            rel = [p.name for p in files]
+        seconds = time.perf_counter() - started
+        summary = {
+            "ntrans_version": __version__,
+            "dem": os.fspath(dem),
+            "cells": os.fspath(cells),
+            "source": {"family": source, "closure": sc},
+            "target": {"family": target, "closure": tc},
+            "fit_domain": domain,
+            "composite": composite,
+            "manning_k": k,
+            "roughness": {"input": model.source, "classes": list(model.classes),
+                          "default_class": (model.classes[model.default] if model.default >= 0
+                                            else None),
+                          "overlap_rule": overlap_rule},
+            "window": ({"mode": spec.mode, "values": spec.values.tolist()} if spec is not None
+                       else {"mode": "water_surface", "rasters": [s.name for s in surfaces]}),
+            "elevation_rule": elevation_rule,
+            "face_rule": face_rule,
+            "coverage": coverage,
+            "cells_count": int(n_cells),
+            "faces_count": int(n_faces),
+            "tiles": len(tiles),
+            "horizontal_unit": dem_info.horizontal_unit,
+            "vertical_unit": dem_info.vertical_unit,
+            "classes": json.loads(frame.to_json(orient="records")),
+            "stage_bias": {"unadjusted": bias["unadjusted"]["overall"],
+                           "adjusted": bias["adjusted"]["overall"]},
+            "flagged": {"face_stage_dry_wet_mismatch": mismatch_faces,
+                        "cell_stage_dry_wet_mismatch": mismatch_cells,
+                        "classes_flagged": int(sum(1 for f in flags if f))},
+            "fit": {"success": fit.success, "cost": fit.cost},
+            "weighting": "source conveyance share per window stage; spread = weighted "
+                         "quantiles with weight x class share of the item's extent",
+            "cautions": list(CAUTIONS),
+            "seconds": round(seconds, 3),
+            "units": {c: units.get(c, "") for c in (*FACE_COLUMNS, *CELL_COLUMNS)},
+        }
+        (tmp / "adjust_summary.json").write_text(json.dumps(summary, indent=2, default=_json_default))
+        files.append(tmp / "adjust_summary.json")
+        rel = [p.name for p in files]
 
     final = Path(os.fspath(out)).expanduser().absolute()
     mism = mismatch_faces if domain == "faces" else mismatch_cells
@@ -840,29 +867,41 @@ def adjust_roughness(
                         text=text, seconds=seconds, units=units)
 
 
-#: Peak memory of a job: a base plus this much per fit item (face or cell) and window
-#: stage.  Fitted to the benchmark's faces-domain runs with 30 stages: 1.34 GB for
-#: 150,342 faces, 9.9 GB for 1.5 million (the class fit holds every item-stage at once).
+#: Peak memory of a job: a base, the mesh (per cell and per face: polygons, lines as WKB,
+#: ids and per item figures) and one tile's working set per tile thread, which grows
+#: with the window stages and the tile's area.  Nothing grows with items x window stages:
+#: the fit gathers sums tile by tile and the quantiles come from spill files.  Fitted to
+#: the benchmark's runs with 30 window stages and two tile threads: 0.88 GB for 50,176
+#: cells and 150,342 faces, 1.4 GB for 499,849 cells and 1.5 million faces.
 ADJUST_BASE_BYTES = 400e6
-ADJUST_BYTES_PER_ITEM_STAGE = 211.0
+ADJUST_BYTES_PER_CELL = 1000.0
+ADJUST_BYTES_PER_FACE = 250.0
+#: one 512 px tile's working set per window stage
+ADJUST_TILE_BYTES_PER_STAGE = 6.5e6
 
 
-def estimated_peak_bytes(n_items: int, n_window: int) -> float:
-    """Rough peak memory (bytes) of ``adjust_roughness`` for ``n_items`` fit items (faces
-    or cells) and ``n_window`` window stages."""
-    return ADJUST_BASE_BYTES + ADJUST_BYTES_PER_ITEM_STAGE * float(n_items) * float(n_window)
+def estimated_peak_bytes(n_cells: int, n_faces: int, n_window: int, *, threads: int = 1,
+                         tile_size: int = 512) -> float:
+    """Rough peak memory (bytes) of ``adjust_roughness`` for a mesh of ``n_cells`` cells
+    and ``n_faces`` faces, ``n_window`` window stages and ``threads`` tile threads of
+    ``tile_size`` pixels."""
+    tile = ADJUST_TILE_BYTES_PER_STAGE * float(n_window) * (float(tile_size) / 512.0) ** 2
+    return (ADJUST_BASE_BYTES + ADJUST_BYTES_PER_CELL * float(n_cells)
+            + ADJUST_BYTES_PER_FACE * float(n_faces) + max(int(threads), 1) * tile)
 
 
-def _warn_if_short_of_memory(n_items: int, n_window: int, domain: str) -> None:
+def _warn_if_short_of_memory(n_cells: int, n_faces: int, n_window: int, threads: int,
+                             tile_size: int) -> None:
     """Warn before the long passes when the job will likely not fit in available memory."""
-    need = estimated_peak_bytes(n_items, n_window)
+    need = estimated_peak_bytes(n_cells, n_faces, n_window, threads=threads, tile_size=tile_size)
     have = available_memory()
     if have is not None and need > 0.9 * have:
         warnings.warn(
             f"this adjustment will need about {need / 1e9:.1f} GB of memory at its peak "
-            f"({n_items} {domain} x {n_window} window stages) and {have / 1e9:.1f} GB is "
-            "available; give fewer window stages (--depths / --stages) or run it on a machine "
-            "with more memory",
+            f"({n_cells} cells, {n_faces} faces, {n_window} window stages, {threads} tile "
+            f"thread(s) of {tile_size} px) and {have / 1e9:.1f} GB is available; run one tile "
+            "at a time (--threads 1) with a smaller --tile-size, or on a machine with more "
+            "memory",
             MemoryEstimateWarning, stacklevel=3)
 
 

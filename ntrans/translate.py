@@ -37,7 +37,8 @@ n_ratio = K_target(n_source) / K_source(n_source).
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+import warnings
+from dataclasses import dataclass, field, replace
 from typing import Any, Literal, Protocol
 
 import numpy as np
@@ -897,6 +898,13 @@ class FitTerms:
     def n_stages(self) -> int:
         return int(self.source_total.size)
 
+    def without_spread(self) -> FitTerms:
+        """The same terms without the spread's values (once they are kept elsewhere, e.g.
+        in a :class:`ntrans.quantiles.SpilledQuantiles`)."""
+        none = np.empty(0, dtype=np.int32)
+        return replace(self, spread_class=none, spread_stage=none, spread_ratio=np.empty(0),
+                       spread_weight=np.empty(0))
+
 
 def _per_class_stage(cls: np.ndarray, stage: np.ndarray, weights: np.ndarray, n_classes: int,
                      n_stages: int) -> np.ndarray:
@@ -1045,6 +1053,24 @@ def combine_fit_terms(parts: list[FitTerms]) -> FitTerms:
     )
 
 
+def _spread_in_memory(terms: FitTerms, scale: np.ndarray, p10: np.ndarray, p50: np.ndarray,
+                      p90: np.ndarray) -> None:
+    """Weighted p10 / p50 / p90 of the carried-over ratio per class, into the arrays."""
+    weights = terms.spread_weight * scale[terms.spread_stage]
+    classes = terms.spread_class
+    if classes.size and not np.any(classes != classes[0]):  # one class: no copies
+        p10[classes[0]], p50[classes[0]], p90[classes[0]] = weighted_quantile(
+            terms.spread_ratio, weights, [0.1, 0.5, 0.9])
+    elif classes.size:
+        order = np.argsort(classes, kind="stable")
+        bounds = np.searchsorted(classes[order], np.arange(p10.size + 1))
+        for c in range(p10.size):  # loop over classes
+            sel = order[bounds[c]:bounds[c + 1]]
+            if sel.size:
+                p10[c], p50[c], p90[c] = weighted_quantile(terms.spread_ratio[sel], weights[sel],
+                                                           [0.1, 0.5, 0.9])
+
+
 def fit_class_n(
     k_source: np.ndarray,
     target_stats: ClassStats,
@@ -1098,8 +1124,14 @@ def solve_class_n(
     *,
     outside_range: np.ndarray | None = None,
     bound_factor: float = 10.0,
+    spread: Any = None,
 ) -> ClassFit:
-    """The class fit of :func:`fit_class_n` from its gathered terms (:class:`FitTerms`)."""
+    """The class fit of :func:`fit_class_n` from its gathered terms (:class:`FitTerms`).
+
+    ``spread``: a weighted :class:`ntrans.quantiles.SpilledQuantiles` by class holding the
+    terms' spread values (added with their weights and stage columns) instead of the
+    terms themselves; the quantiles are then read from it, in bounded memory.
+    """
     from scipy.optimize import least_squares
 
     n_source = np.asarray(n_source, dtype=float)
@@ -1150,21 +1182,10 @@ def solve_class_n(
     wsum = terms.class_weight @ scale
     total_w = wsum.sum()
     weight_share = wsum / total_w if total_w > 0 else np.zeros(n_cls)
-    weights = terms.spread_weight * scale[terms.spread_stage]
-    classes = terms.spread_class
-    if classes.size and not np.any(classes != classes[0]):  # one class: no copies
-        p10[classes[0]], p50[classes[0]], p90[classes[0]] = weighted_quantile(
-            terms.spread_ratio, weights, [0.1, 0.5, 0.9])
-    elif classes.size:
-        order = np.argsort(classes, kind="stable")
-        bounds = np.searchsorted(classes[order], np.arange(n_cls + 1))
-        for c in range(n_cls):  # loop over classes
-            sel = order[bounds[c]:bounds[c + 1]]
-            if sel.size:
-                p10[c], p50[c], p90[c] = weighted_quantile(terms.spread_ratio[sel], weights[sel],
-                                                           [0.1, 0.5, 0.9])
-        del order, sel
-    del weights
+    if spread is not None:
+        p10[:], p50[:], p90[:] = spread.quantiles([0.1, 0.5, 0.9], column_factor=scale)[:n_cls].T
+    else:
+        _spread_in_memory(terms, scale, p10, p50, p90)
 
     def full_x(x_free: np.ndarray) -> np.ndarray:
         x = x0.copy()
@@ -1395,6 +1416,32 @@ def bias_summary(bias: np.ndarray, item_class: np.ndarray, classes: list[str] | 
     out = {"overall": figures(bias.ravel())}
     for c, name in enumerate(classes):
         out[str(name)] = figures(bias[item_class == c].ravel())
+    return out
+
+
+def bias_summary_spilled(spill: Any, max_abs: np.ndarray,
+                         classes: list[str] | tuple[str, ...]) -> dict[str, dict[str, float]]:
+    """:func:`bias_summary` from bias values gathered tile by tile: ``spill`` a plain
+    :class:`ntrans.quantiles.SpilledQuantiles` with one group per class and one more for
+    items of no class (counted in ``overall`` only), ``max_abs`` the largest |bias| per
+    group (NaN where none)."""
+    counts = spill.counts()
+    signed = spill.quantiles([0.5])[:, 0]
+    absolute = spill.quantiles([0.9], absolute=True)[:, 0]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN: no bias at all
+        largest = np.append(max_abs, np.nanmax(max_abs) if max_abs.size else np.nan)
+
+    def figures(row: int) -> dict[str, float]:
+        if counts[row] == 0:
+            return {"median": float("nan"), "p90_abs": float("nan"), "max_abs": float("nan"),
+                    "count": 0}
+        return {"median": float(signed[row]), "p90_abs": float(absolute[row]),
+                "max_abs": float(largest[row]), "count": int(counts[row])}
+
+    out = {"overall": figures(counts.size - 1)}
+    for c, name in enumerate(classes):
+        out[str(name)] = figures(c)
     return out
 
 

@@ -276,7 +276,7 @@ def test_warns_up_front_when_memory_looks_short(flat_case, tmp_path, monkeypatch
     assert len(memory) == int(warns)
     if warns:
         # one sentence saying what to change; the job still runs (an estimate, not a limit)
-        assert "window stages (--depths / --stages)" in str(memory[0].message)
+        assert "(--threads 1) with a smaller --tile-size" in str(memory[0].message)
         assert (tmp_path / "out" / "n_by_class.csv").exists()
 
 

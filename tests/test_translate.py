@@ -7,6 +7,7 @@ import warnings
 import numpy as np
 import pytest
 
+from ntrans.quantiles import SpilledQuantiles
 from ntrans.translate import (
     COMPOSITES,
     CellGeometry,
@@ -14,6 +15,8 @@ from ntrans.translate import (
     FaceGeometry,
     Family,
     FlatGeometry,
+    bias_summary,
+    bias_summary_spilled,
     combine_fit_terms,
     composite_n,
     conveyance,
@@ -442,6 +445,34 @@ def test_weighted_quantile_is_the_interpolated_mid_step_ecdf(n):
     expected = (np.interp(q, (np.cumsum(ws) - 0.5 * ws) / ws.sum(), vs) if vs.size
                 else np.full(q.shape, np.nan))
     np.testing.assert_array_equal(weighted_quantile(v, w, q), expected)
+
+
+def test_bias_summary_gathered_tile_by_tile_is_the_whole_arrays(tmp_path):
+    # the adjustment gathers the bias tile by tile in a spill file (ntrans.quantiles); its
+    # figures must be bias_summary's on the whole array (numpy median / quantile / max of
+    # the same values; round-off: 1e-12 relative), items of no class in "overall" only
+    rng = np.random.default_rng(4)
+    n_items, n_stages, classes = 500, 6, ["a", "b", "c"]
+    bias = rng.normal(0.0, 0.3, (n_items, n_stages))
+    bias[rng.random(bias.shape) < 0.2] = np.nan  # dry
+    dominant = rng.integers(-1, 3, n_items)
+    dominant[dominant == 2] = 0  # class "c" holds no item: NaN figures, count 0
+    whole = bias_summary(bias, dominant, classes)
+    largest = np.full(len(classes) + 1, np.nan)
+    with SpilledQuantiles(tmp_path / "bias", len(classes) + 1, scale="asinh", unit=0.001,
+                          weighted=False) as spill:
+        for tile in np.array_split(np.arange(n_items), 7):
+            group = np.where(dominant[tile] < 0, len(classes), dominant[tile])[:, None]
+            spill.add(group, bias[tile])
+            np.fmax.at(largest, np.broadcast_to(group, bias[tile].shape).ravel(),
+                       np.abs(bias[tile]).ravel())
+        gathered = bias_summary_spilled(spill, largest, classes)
+    assert gathered.keys() == whole.keys()
+    for name, figures in whole.items():
+        assert gathered[name]["count"] == figures["count"]
+        for key in ("median", "p90_abs", "max_abs"):
+            np.testing.assert_allclose(gathered[name][key], figures[key], rtol=1e-12)
+    assert gathered["c"]["count"] == 0 and np.isnan(gathered["c"]["median"])
 
 
 def test_fit_flags():
