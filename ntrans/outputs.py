@@ -11,6 +11,7 @@
 
 from __future__ import annotations
 
+import errno
 import itertools
 import json
 import logging
@@ -44,6 +45,19 @@ KEY_FLOAT_COLUMNS = ("stage", "depth")
 
 
 # --------------------------------------------------------------------------- folder
+
+
+def _is_disk_full(exc: BaseException | None) -> bool:
+    """True for an error that says the disk (or the user's quota) is full, also when a
+    library wrapped it (its message, its cause)."""
+    seen = 0
+    while exc is not None and seen < 5:
+        if isinstance(exc, OSError) and exc.errno in (errno.ENOSPC, errno.EDQUOT):
+            return True
+        if "No space left on device" in str(exc) or "Disk quota exceeded" in str(exc):
+            return True
+        exc, seen = exc.__cause__ or exc.__context__, seen + 1
+    return False
 
 
 class OutputFolder:
@@ -131,6 +145,11 @@ class OutputFolder:
         if exc_type is not None:
             shutil.rmtree(tmp, ignore_errors=True)
             logger.debug("removed temporary folder %s after an error", tmp)
+            if _is_disk_full(exc):
+                raise OutputError(
+                    f"the disk of output folder '{self.final}' ran out of space while writing "
+                    "(nothing was written); free some space or choose a folder on another disk"
+                ) from exc
             return False
         try:
             self._commit(tmp)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import errno
 import json
 from pathlib import Path
 
@@ -53,6 +54,23 @@ def test_output_folder_exception_leaves_nothing(tmp_path: Path, error: type) -> 
     with pytest.raises(error), OutputFolder(target) as folder:
         (folder.path / "half.parquet").write_bytes(b"PAR1")
         raise error("stop")
+    assert _entries(tmp_path) == []
+
+
+@pytest.mark.parametrize("raised", [
+    OSError(errno.ENOSPC, "No space left on device"),
+    OSError(errno.EDQUOT, "Disk quota exceeded"),
+    RuntimeError("IOError: No space left on device"),  # a library's own error, message only
+])
+def test_output_folder_full_disk_is_one_clear_error(tmp_path: Path, raised: Exception) -> None:
+    # a full disk (or quota) while writing: one sentence saying what to do, nothing left
+    # behind, the original error kept as the cause (for --debug)
+    target = tmp_path / "out"
+    with pytest.raises(OutputError, match="ran out of space") as info, \
+            OutputFolder(target) as folder:
+        (folder.path / "half.parquet").write_bytes(b"PAR1")
+        raise raised
+    assert info.value.__cause__ is raised
     assert _entries(tmp_path) == []
 
 
