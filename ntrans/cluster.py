@@ -138,13 +138,20 @@ def _connect(workers: int | None, scheduler: str | None) -> tuple[Any, Any]:
         with dask.config.set(config):
             if dask.config.get("distributed.worker.multiprocessing-method") == "forkserver":
                 _preload_forkserver()
-            cluster = LocalCluster(
-                n_workers=int(workers),
-                threads_per_worker=1,
-                processes=True,
-                dashboard_address=":0",
-                silence_logs=logging.WARNING,
-            )
+            try:
+                cluster = LocalCluster(
+                    n_workers=int(workers),
+                    threads_per_worker=1,
+                    processes=True,
+                    dashboard_address=":0",
+                    silence_logs=logging.WARNING,
+                )
+            except RuntimeError as exc:  # a worker process did not start
+                raise InputError(
+                    f"the local Dask workers did not start ({exc}); from a Python script, "
+                    "call ntrans under if __name__ == '__main__': (new worker processes "
+                    "import the script), or drop the workers"
+                ) from exc
         client = Client(cluster)
     try:
         client.run(_warm_worker)

@@ -348,6 +348,27 @@ def test_local_workers_start_loaded_and_without_the_profiler():
     assert list(profiling.values()) == [False, False]
 
 
+def test_script_without_main_guard_gets_one_clear_error(tmp_path):
+    # local workers start from a fresh process that imports the calling script; a script
+    # that calls ntrans at import time (no main guard) makes them fail to start.  The
+    # script must get an InputError that says what to change, not Dask's own error
+    import subprocess
+    import sys
+
+    script = tmp_path / "no_guard.py"
+    script.write_text(
+        "import ntrans.cluster as c\n"
+        "from ntrans.errors import InputError\n"
+        "try:\n"
+        "    list(c.run_ordered(c.call, abs, [-1, -2], workers=1))\n"
+        "except InputError as exc:\n"
+        "    print('INPUT ERROR:', exc)\n")
+    done = subprocess.run([sys.executable, str(script)], capture_output=True, text=True,
+                          timeout=180, cwd=tmp_path)
+    lines = [line for line in done.stdout.splitlines() if line.startswith("INPUT ERROR:")]
+    assert lines and "if __name__ == '__main__':" in lines[0]
+
+
 @pytest.mark.parametrize("threads", [2, 3])
 def test_threads_equal_one_thread_to_the_bit(mesh, tmp_path, threads):
     from ntrans.tables import build_tables
