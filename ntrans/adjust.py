@@ -719,7 +719,6 @@ def adjust_roughness(
         bias_spills = {name: spills.enter_context(SpilledQuantiles(
             tmp / f"_bias_{name}.spill", n_cls + 1, scale="asinh", unit=BIAS_BIN_UNIT,
             weighted=False)) for name in ("unadjusted", "adjusted")}
-        bias_max = {name: np.full(n_cls + 1, np.nan) for name in bias_spills}
         face_bias_med = np.full(n_faces, np.nan)
         cell_bias_med = np.full(n_cells, np.nan)
         face_ratio_med = np.full(n_faces, np.nan)
@@ -757,10 +756,7 @@ def adjust_roughness(
                                      else (cr, res["cell_dominant"]))
                 group = np.where(own_dom < 0, n_cls, own_dom)[:, None]
                 for name, spill in bias_spills.items():
-                    values = own_rows[f"stage_bias_{name}"]
-                    spill.add(group, values)
-                    np.fmax.at(bias_max[name], np.broadcast_to(group, values.shape).ravel(),
-                               np.abs(values).ravel())
+                    spill.add(group, own_rows[f"stage_bias_{name}"])
                 cell_dom[cc] = res["cell_dominant"]
                 cell_ratio_med[cc] = _nanmedian_rows(cr["n_ratio"])
                 cell_bed[cc] = res["bed_factor"]
@@ -780,7 +776,7 @@ def adjust_roughness(
 
         # ---- per class table
         log.debug("tables written; stage bias figures per class")
-        bias = {name: bias_summary_spilled(spill, bias_max[name], model.classes)
+        bias = {name: bias_summary_spilled(spill, model.classes)
                 for name, spill in bias_spills.items()}
         spills.close()
         log.debug("writing the cell and face layers")

@@ -37,7 +37,6 @@ n_ratio = K_target(n_source) / K_source(n_source).
 
 from __future__ import annotations
 
-import warnings
 from dataclasses import dataclass, field, replace
 from typing import Any, Literal, Protocol
 
@@ -1419,25 +1418,20 @@ def bias_summary(bias: np.ndarray, item_class: np.ndarray, classes: list[str] | 
     return out
 
 
-def bias_summary_spilled(spill: Any, max_abs: np.ndarray,
-                         classes: list[str] | tuple[str, ...]) -> dict[str, dict[str, float]]:
+def bias_summary_spilled(spill: Any, classes: list[str] | tuple[str, ...]) -> dict[str, dict[str, float]]:
     """:func:`bias_summary` from bias values gathered tile by tile: ``spill`` a plain
     :class:`ntrans.quantiles.SpilledQuantiles` with one group per class and one more for
-    items of no class (counted in ``overall`` only), ``max_abs`` the largest |bias| per
-    group (NaN where none)."""
+    items of no class (counted in ``overall`` only).  The largest |bias| is its 1-quantile."""
     counts = spill.counts()
     signed = spill.quantiles([0.5])[:, 0]
-    absolute = spill.quantiles([0.9], absolute=True)[:, 0]
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN: no bias at all
-        largest = np.append(max_abs, np.nanmax(max_abs) if max_abs.size else np.nan)
+    p90_abs, max_abs = spill.quantiles([0.9, 1.0], absolute=True).T
 
     def figures(row: int) -> dict[str, float]:
         if counts[row] == 0:
             return {"median": float("nan"), "p90_abs": float("nan"), "max_abs": float("nan"),
                     "count": 0}
-        return {"median": float(signed[row]), "p90_abs": float(absolute[row]),
-                "max_abs": float(largest[row]), "count": int(counts[row])}
+        return {"median": float(signed[row]), "p90_abs": float(p90_abs[row]),
+                "max_abs": float(max_abs[row]), "count": int(counts[row])}
 
     out = {"overall": figures(counts.size - 1)}
     for c, name in enumerate(classes):
