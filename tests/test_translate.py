@@ -482,6 +482,36 @@ def test_fit_flags():
     assert "outside_published_range" not in fit.flags[1]
 
 
+def random_pair_stats(rng: np.random.Generator, n_items: int, n_classes: int, n_stages: int,
+                      dry: float) -> ClassStats:
+    """Items holding one to three classes in any order, a share ``dry`` of the pair-stages
+    dry (zero) in every table."""
+    item = np.concatenate([np.full(k, i) for i, k in enumerate(rng.integers(1, 4, n_items))])
+    cls = np.concatenate([rng.choice(n_classes, np.count_nonzero(item == i), replace=False)
+                          for i in range(n_items)])
+    shuffle = rng.permutation(item.size)
+    item, cls = item[shuffle], cls[shuffle]
+
+    def table():
+        t = rng.random((item.size, n_stages))
+        t[rng.random(t.shape) < dry] = 0.0
+        return t
+
+    return ClassStats(item, cls, n_items, n_classes, rng.random(item.size), table(), table(),
+                      table(), table())
+
+
+def random_class_stats(seed: int, n_items: int = 300, n_classes: int = 4, n_stages: int = 5):
+    """Random pair statistics and a source conveyance from another n with noise (so the
+    fit has something to do)."""
+    rng = np.random.default_rng(seed)
+    stats = random_pair_stats(rng, n_items, n_classes, n_stages, dry=0.25)
+    n_source = 0.02 + 0.05 * rng.random(n_classes)
+    ks = conveyance(stats, 0.02 + 0.05 * rng.random(n_classes)) * rng.lognormal(0, 0.2, (n_items, n_stages))
+    ks[rng.random(ks.shape) < 0.1] = 0.0  # source dry where the target may be wet
+    return stats, ks, n_source
+
+
 @pytest.mark.parametrize("closure, composite", [
     ("lumped", "horton_einstein"), ("lumped", "pavlovskii"), ("lumped", "lotter"),
     ("strip", "horton_einstein"),
@@ -494,49 +524,13 @@ def test_fit_residual_conveyance_is_the_conveyance_at_the_fit_entries(closure, c
 
     rng = np.random.default_rng(7)
     n_items, n_classes, n_stages = 400, 4, 5
-    item = np.concatenate([np.full(k, i) for i, k in
-                           enumerate(rng.integers(1, 4, n_items))])
-    cls = np.concatenate([rng.choice(n_classes, np.count_nonzero(item == i), replace=False)
-                          for i in range(n_items)])
-    shuffle = rng.permutation(item.size)
-    item, cls = item[shuffle], cls[shuffle]
-
-    def table():
-        t = rng.random((item.size, n_stages))
-        t[rng.random(t.shape) < 0.2] = 0.0  # dry pairs
-        return t
-
-    stats = ClassStats(item, cls, n_items, n_classes, rng.random(item.size), table(),
-                       table(), table(), table())
+    stats = random_pair_stats(rng, n_items, n_classes, n_stages, dry=0.2)
     rows = np.sort(rng.choice(n_items, 300))  # repeated items allowed
     cols = rng.integers(0, n_stages, rows.size)
     n = 0.02 + 0.05 * rng.random(n_classes)
     whole = conveyance(stats, n, closure=closure, composite=composite)[rows, cols]
     at = _entry_conveyance(stats, rows, cols, closure=closure, composite=composite, k=1.0)(n)
     np.testing.assert_allclose(at, whole, rtol=1e-13, atol=0)
-
-
-def random_class_stats(seed: int, n_items: int = 300, n_classes: int = 4, n_stages: int = 5):
-    """Items holding one to three classes in any order, some pairs dry at some stages, and
-    a source conveyance from another n with noise (so the fit has something to do)."""
-    rng = np.random.default_rng(seed)
-    item = np.concatenate([np.full(k, i) for i, k in enumerate(rng.integers(1, 4, n_items))])
-    cls = np.concatenate([rng.choice(n_classes, np.count_nonzero(item == i), replace=False)
-                          for i in range(n_items)])
-    shuffle = rng.permutation(item.size)
-    item, cls = item[shuffle], cls[shuffle]
-
-    def table():
-        t = rng.random((item.size, n_stages))
-        t[rng.random(t.shape) < 0.25] = 0.0  # dry pairs
-        return t
-
-    stats = ClassStats(item, cls, n_items, n_classes, rng.random(item.size), table(), table(),
-                       table(), table())
-    n_source = 0.02 + 0.05 * rng.random(n_classes)
-    ks = conveyance(stats, 0.02 + 0.05 * rng.random(n_classes)) * rng.lognormal(0, 0.2, (n_items, n_stages))
-    ks[rng.random(ks.shape) < 0.1] = 0.0  # source dry where the target may be wet
-    return stats, ks, n_source
 
 
 def items_subset(stats: ClassStats, keep: np.ndarray) -> ClassStats:
