@@ -16,7 +16,9 @@ the factors are given when the quantiles are asked for.
 Bins are uniform on a monotone scale of the values (``log`` for positive ratios,
 ``asinh`` around a length unit for signed differences), with one bin below and one above
 the range, so every value has a bin; the bins only decide how many values are read
-back, never the answer.
+back, never the answer.  With 65,536 bins a bin of ratios spans 0.04 %; values crowded
+into a few bins (many exactly equal, say) are read back whole, so memory then grows with
+their number.
 """
 
 from __future__ import annotations
