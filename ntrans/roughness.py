@@ -26,7 +26,7 @@ from __future__ import annotations
 import logging
 import threading
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Literal
 
@@ -85,7 +85,8 @@ class RoughnessModel:
     polygon_class : ndarray of int or None
         Class index of each polygon.
     raster, raster_transform, raster_crs
-        Class-index raster (-1 where unknown), its affine transform and CRS.
+        Class-index raster (-1 where unknown) as an array, or a :class:`RasterClasses`
+        file read window by window; its affine transform and CRS.
     """
 
     classes: tuple[str, ...]
@@ -94,7 +95,7 @@ class RoughnessModel:
     default: int = -1
     polygons: np.ndarray | None = None
     polygon_class: np.ndarray | None = None
-    raster: np.ndarray | None = None
+    raster: np.ndarray | RasterClasses | None = None
     raster_transform: Any = None
     raster_crs: Any = None
     source: str = "uniform"
@@ -111,6 +112,42 @@ class RoughnessModel:
             return None
         low, _, high = PUBLISHED_N_RANGES[key]
         return low, high
+
+
+@dataclass(frozen=True)
+class RasterClasses:
+    """A class raster file, read window by window (never whole).
+
+    ``codes`` are the raster's class codes (sorted) and ``code_class`` the class index of
+    each; pixels with another value, nodata or outside the raster are -1 (unknown).
+    """
+
+    path: str
+    transform: Any
+    crs: Any
+    width: int
+    height: int
+    codes: np.ndarray
+    code_class: np.ndarray
+
+    def index_window(self, row_off: int, col_off: int, height: int, width: int) -> np.ndarray:
+        """Class index (int32, -1 unknown) of a window of the raster's own grid."""
+        from .inputs import _read_band1
+
+        values = _read_band1(self.path, int(row_off), int(col_off), int(height), int(width),
+                             (self.height, self.width))
+        return _code_index(values, self.codes, self.code_class)
+
+
+def _code_index(values: np.ndarray, codes: np.ndarray, code_class: np.ndarray) -> np.ndarray:
+    """Class index of each value by its code (-1 for NaN and codes not listed)."""
+    out = np.full(values.shape, -1, dtype=np.int32)
+    ok = np.isfinite(values)
+    if codes.size and ok.any():
+        v = values[ok]
+        pos = np.minimum(np.searchsorted(codes, v), codes.size - 1)
+        out[ok] = np.where(codes[pos] == v, code_class[pos], -1)
+    return out
 
 
 # ---------------------------------------------------------------------------------------
@@ -149,24 +186,7 @@ def class_index_on_window(model: RoughnessModel, transform: Any, shape: tuple[in
             return rasterize(shapes, out_shape=(rows, cols), transform=transform,
                              fill=model.default, dtype="int32", out=out)
     if model.raster is not None:
-        from rasterio.enums import Resampling
-        from rasterio.warp import reproject
-
-        out = np.full((rows, cols), -1, dtype=np.int32)
-        if rows == 0 or cols == 0:
-            return out
-        with _IN_MEMORY_RASTER_LOCK:
-            reproject(
-                source=np.asarray(model.raster, dtype=np.int32),  # no copy: int32 already
-                destination=out,
-                src_transform=model.raster_transform,
-                src_crs=model.raster_crs if model.raster_crs is not None else crs,
-                dst_transform=transform,
-                dst_crs=crs if crs is not None else model.raster_crs,
-                src_nodata=-1,
-                dst_nodata=-1,
-                resampling=Resampling.nearest,
-            )
+        out = _raster_on_window(model, transform, rows, cols, crs)
         if model.default >= 0:
             out[out < 0] = model.default
         return out
@@ -470,6 +490,78 @@ def polygon_model(
     return model
 
 
+def _raster_on_window(model: RoughnessModel, transform: Any, rows: int, cols: int,
+                      crs: Any) -> np.ndarray:
+    """The class raster's index (-1 unknown) on a DEM window, nearest pixel."""
+    from affine import Affine
+    from rasterio.enums import Resampling
+    from rasterio.warp import reproject
+
+    out = np.full((rows, cols), -1, dtype=np.int32)
+    if rows == 0 or cols == 0:
+        return out
+    source, src_transform = model.raster, model.raster_transform
+    src_crs = model.raster_crs if model.raster_crs is not None else crs
+    dst_crs = crs if crs is not None else model.raster_crs
+    if isinstance(source, RasterClasses):
+        offset = _aligned_offset(source.transform, transform, src_crs, dst_crs)
+        if offset is not None:  # the same grid: the window itself, nothing to resample
+            return source.index_window(offset[0], offset[1], rows, cols)
+        # the part of the file under the window (2 pixels more each side), then nearest
+        # resampling from it as from the whole raster
+        r0, c0, r1, c1 = _source_window(source, transform, rows, cols, src_crs, dst_crs)
+        src_transform = source.transform @ Affine.translation(c0, r0)
+        source = source.index_window(r0, c0, r1 - r0, c1 - c0)
+    with _IN_MEMORY_RASTER_LOCK:
+        reproject(
+            source=np.asarray(source, dtype=np.int32),  # no copy: int32 already
+            destination=out,
+            src_transform=src_transform,
+            src_crs=src_crs,
+            dst_transform=transform,
+            dst_crs=dst_crs,
+            src_nodata=-1,
+            dst_nodata=-1,
+            resampling=Resampling.nearest,
+        )
+    return out
+
+
+def _aligned_offset(src: Any, dst: Any, src_crs: Any, dst_crs: Any) -> tuple[int, int] | None:
+    """(row, col) of the window's first pixel in the raster's grid when both grids are the
+    same (CRS, pixel size, north-up, whole-pixel offset), else None."""
+    if src_crs is not None and dst_crs is not None and src_crs != dst_crs:
+        return None
+    if src.b != 0 or src.d != 0 or dst.b != 0 or dst.d != 0:
+        return None
+    if not (np.isclose(src.a, dst.a, rtol=1e-9, atol=0) and np.isclose(src.e, dst.e, rtol=1e-9, atol=0)):
+        return None
+    col = (dst.c - src.c) / src.a
+    row = (dst.f - src.f) / src.e
+    if abs(col - round(col)) > 1e-6 or abs(row - round(row)) > 1e-6:
+        return None
+    return int(round(row)), int(round(col))
+
+
+def _source_window(source: RasterClasses, transform: Any, rows: int, cols: int, src_crs: Any,
+                   dst_crs: Any) -> tuple[int, int, int, int]:
+    """(row0, col0, row1, col1) of the raster pixels under a DEM window, 2 more each side."""
+    from rasterio.transform import array_bounds
+
+    west, south, east, north = array_bounds(rows, cols, transform)
+    if src_crs is not None and dst_crs is not None and src_crs != dst_crs:
+        from rasterio.warp import transform_bounds
+
+        west, south, east, north = transform_bounds(dst_crs, src_crs, west, south, east, north,
+                                                    densify_pts=21)
+    inverse = ~source.transform
+    xs = np.array([west, east, west, east])
+    ys = np.array([south, south, north, north])
+    c, r = inverse @ (xs, ys)
+    return (int(np.floor(np.min(r))) - 2, int(np.floor(np.min(c))) - 2,
+            int(np.ceil(np.max(r))) + 2, int(np.ceil(np.max(c))) + 2)
+
+
 def raster_model(
     raster: np.ndarray,
     transform: Any,
@@ -480,7 +572,7 @@ def raster_model(
     default_class: str | None = None,
     mesh_bounds: tuple[float, float, float, float] | None = None,
 ) -> RoughnessModel:
-    """Build a model from an integer class raster and the n table.
+    """Build a model from an integer class raster (an array) and the n table.
 
     Raster values are matched to the table's ``class`` column as text (``3`` matches
     ``"3"``).  Pixels equal to ``nodata`` (or NaN) are unknown (the default class).
@@ -489,15 +581,60 @@ def raster_model(
     valid = np.isfinite(values) if values.dtype.kind == "f" else np.ones(values.shape, bool)
     if nodata is not None and np.isfinite(nodata):
         valid &= values != nodata
-    if values.dtype.kind == "f":
-        if np.any(valid & (values != np.round(values))):
-            raise RoughnessError("the class raster holds non-integer values; give integer class codes")
-    codes = np.unique(values[valid]).astype(np.int64)
+    codes = _integer_codes(values[valid])
+    model = _raster_classes_model(codes, transform, values.shape, crs, table,
+                                  default_class=default_class, mesh_bounds=mesh_bounds)
+    index = np.full(values.shape, -1, dtype=np.int32)
+    index[valid] = _code_index(values[valid].astype(float), model.raster.codes,
+                               model.raster.code_class)
+    return replace(model, raster=index)
+
+
+def raster_file_model(
+    path: str | Path,
+    table: tuple[list[str], list[Any], list[str | None]],
+    *,
+    default_class: str | None = None,
+    mesh_bounds: tuple[float, float, float, float] | None = None,
+) -> RoughnessModel:
+    """Build a model from an integer class raster file and the n table, as
+    :func:`raster_model` does from an array, without holding the raster: its codes are
+    gathered strip by strip and tiles read their own windows (:class:`RasterClasses`)."""
+    import rasterio
+
+    from .inputs import _read_band1
+
+    path = str(path)
+    with rasterio.open(path) as src:
+        transform, crs, width, height = src.transform, src.crs, src.width, src.height
+    codes = np.empty(0)
+    rows_per_strip = max(1, (1 << 22) // max(width, 1))  # strips of about 4 million pixels
+    for row in range(0, height, rows_per_strip):
+        values = _read_band1(path, row, 0, min(rows_per_strip, height - row), width,
+                             (height, width))
+        codes = np.union1d(codes, _integer_codes(values[np.isfinite(values)]))
+    return _raster_classes_model(codes, transform, (height, width), crs, table,
+                                 default_class=default_class, mesh_bounds=mesh_bounds,
+                                 path=path)
+
+
+def _integer_codes(values: np.ndarray) -> np.ndarray:
+    """Sorted distinct values (float64); RoughnessError if any is not an integer."""
+    values = np.asarray(values)
+    if values.dtype.kind == "f" and np.any(values != np.round(values)):
+        raise RoughnessError("the class raster holds non-integer values; give integer class codes")
+    return np.unique(values).astype(np.float64)
+
+
+def _raster_classes_model(codes: np.ndarray, transform: Any, shape: tuple[int, int], crs: Any,
+                          table: tuple[list[str], list[Any], list[str | None]], *,
+                          default_class: str | None, mesh_bounds: tuple | None,
+                          path: str = "") -> RoughnessModel:
+    """The model of a class raster with these codes (its ``raster`` a RasterClasses)."""
     if mesh_bounds is not None:
         from rasterio.transform import array_bounds
 
-        b = array_bounds(values.shape[0], values.shape[1], transform)
-        west, south, east, north = b
+        west, south, east, north = array_bounds(shape[0], shape[1], transform)
         mx0, my0, mx1, my1 = mesh_bounds
         if east <= mx0 or west >= mx1 or north <= my0 or south >= my1 or codes.size == 0:
             raise RoughnessError(
@@ -508,13 +645,12 @@ def raster_model(
         names, table, what="the class raster",
         default_class=None if default_class is None else str(default_class))
     lookup = {c: i for i, c in enumerate(classes)}
-    index = np.full(values.shape, -1, dtype=np.int32)
-    if codes.size:
-        pos = np.searchsorted(codes, values[valid].astype(np.int64))
-        index[valid] = np.array([lookup[s] for s in names], dtype=np.int32)[pos]
+    code_class = np.array([lookup[name] for name in names], dtype=np.int32)
     model = RoughnessModel(
         classes=tuple(classes), n=n, surface=tuple(surf), default=default_index,
-        raster=index, raster_transform=transform, raster_crs=crs, source="raster",
+        raster=RasterClasses(path, transform, crs, int(shape[1]), int(shape[0]),
+                             np.asarray(codes, dtype=np.float64), code_class),
+        raster_transform=transform, raster_crs=crs, source="raster",
     )
     check_ranges(model)
     return model
@@ -596,8 +732,7 @@ def load_roughness(
         raise InputFileError(f"class raster {str(path)!r} does not exist; give an existing file")
     try:
         with rasterio.open(path) as src:
-            data = src.read(1)
-            transform, rcrs, nodata = src.transform, src.crs, src.nodata
+            rcrs = src.crs
     except rasterio.errors.RasterioIOError as exc:
         raise RoughnessError(f"class raster {str(path)!r} cannot be read ({exc})") from exc
     if crs is not None and rcrs is not None and rcrs != crs:
@@ -609,5 +744,5 @@ def load_roughness(
             from rasterio.warp import transform_bounds
 
             mesh_bounds = transform_bounds(crs, rcrs, *mesh_bounds)
-    return raster_model(data, transform, rcrs, nodata, read_n_table(n_table),
-                        default_class=default_class, mesh_bounds=mesh_bounds)
+    return raster_file_model(path, read_n_table(n_table), default_class=default_class,
+                             mesh_bounds=mesh_bounds)

@@ -159,6 +159,51 @@ def test_raster_model_resampled_nearest():
         raster_model(data, tr, "EPSG:32633", 0, tab, mesh_bounds=(100, 100, 110, 110))
 
 
+@pytest.mark.parametrize("grid", ["same", "coarser_offset", "other_crs"])
+def test_class_raster_file_read_by_window_is_the_whole_raster(tmp_path, grid):
+    # a class raster file is never read whole: each window reads the pixels under it
+    # (the window itself on the same grid; otherwise the part under it, then the same
+    # nearest resampling).  Every window must get the class map the whole raster gives
+    # (identity: the same pixels, the same resampling)
+    import rasterio
+
+    from ntrans.roughness import raster_file_model
+
+    rng = np.random.default_rng(1)
+    crs = "EPSG:32633"
+    if grid == "same":
+        tr, shape, file_crs = Affine(1.0, 0, 500_000.0, 0, -1.0, 5_100_000.0), (120, 150), crs
+    elif grid == "coarser_offset":
+        tr, shape, file_crs = Affine(2.5, 0, 499_990.3, 0, -2.5, 5_100_010.7), (60, 70), crs
+    else:  # the neighbouring UTM zone: every window is resampled across a projection
+        tr, shape, file_crs = Affine(2.0, 0, 1_102_000.0, 0, -2.0, 5_115_000.0), (150, 150), \
+            "EPSG:32632"
+        with rasterio.Env():
+            from rasterio.warp import transform as warp
+
+            x, y = warp(crs, file_crs, [500_000.0], [5_100_000.0])
+        tr = Affine(2.0, 0, round(x[0]) - 60, 0, -2.0, round(y[0]) + 100)
+    # patches of codes 3 / 5 / 8 and some nodata (0)
+    codes = rng.choice([0, 3, 5, 8], size=(shape[0] // 5 + 1, shape[1] // 5 + 1),
+                       p=[0.1, 0.3, 0.3, 0.3])
+    data = np.kron(codes, np.ones((5, 5), dtype=np.int16))[:shape[0], :shape[1]].astype(np.int16)
+    path = tmp_path / "classes.tif"
+    with rasterio.open(path, "w", driver="GTiff", width=shape[1], height=shape[0], count=1,
+                       dtype="int16", crs=file_crs, transform=tr, nodata=0) as dst:
+        dst.write(data, 1)
+    tab = table([("3", "0.03"), ("5", "0.05"), ("8", "0.08"), ("9", "0.1")])
+    whole = raster_model(data, tr, file_crs, 0, tab, default_class="9")
+    windowed = raster_file_model(path, tab, default_class="9")
+    assert windowed.classes == whole.classes and windowed.default == whole.default
+    dem = Affine(1.0, 0, 500_000.0, 0, -1.0, 5_100_000.0)
+    for row, col, rows, cols in [(0, 0, 40, 50), (33, 71, 64, 48), (90, 120, 70, 70),
+                                 (-10, -10, 30, 30), (0, 0, 0, 5)]:
+        wt = dem @ Affine.translation(col, row)
+        np.testing.assert_array_equal(
+            class_index_on_window(windowed, wt, (rows, cols), crs=crs),
+            class_index_on_window(whole, wt, (rows, cols), crs=crs))
+
+
 def test_load_roughness_files(tmp_path):
     import geopandas as gpd
 
