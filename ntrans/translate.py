@@ -1198,11 +1198,41 @@ def solve_class_n(
         one = sqrt_w_one * (mean_one + log_n_source[fitted] - x[fitted])
         return np.concatenate([mixed, one])
 
+    # the Jacobian, exact and sparse: every closure gives d ln K / d ln n_c = minus the
+    # share of class c in the entry's sum (sum_c M_c n_c^expo for the lumped composites,
+    # sum_c M_c / n_c for the strip sums), so an entry has one nonzero per class it holds
+    # (a dense matrix would cost entries x classes; finite differences one more residual
+    # per class and step)
+    column = np.full(n_cls, -1)
+    column[free] = np.arange(free.size)
+    lumped = terms.mixed_lumped
+    mixed_sums = terms.mixed_sums.tocoo()
+    keep = column[mixed_sums.col] >= 0
+    entry, entry_class = mixed_sums.row[keep], mixed_sums.col[keep]
+    entry_sum = mixed_sums.data[keep]
+    del mixed_sums, keep
+    one_rows = w_mixed.size + np.arange(fitted.size)
+    one_jac = sparse.csr_matrix((-sqrt_w_one, (one_rows, column[fitted])),
+                                shape=(w_mixed.size + fitted.size, free.size))
+
+    def jacobian(x_free: np.ndarray) -> sparse.csr_matrix:
+        n = np.exp(full_x(x_free))
+        part = entry_sum * (n[entry_class] ** lumped.expo if lumped is not None
+                            else 1.0 / n[entry_class])
+        total = np.bincount(entry, weights=part, minlength=w_mixed.size)
+        alive = total > 0 if lumped is None else (total > 0) & lumped.wet
+        factor = np.where(alive, -sqrt_w_mixed / np.where(alive, total, 1.0), 0.0)
+        mixed = sparse.csr_matrix((part * factor[entry], (entry, column[entry_class])),
+                                  shape=one_jac.shape)
+        return mixed + one_jac
+
     success, cost = True, 0.0
     n_target = n_source.copy()
     if free.size and (fitted.size or w_mixed.size):
-        sol = least_squares(residual, x0[free], bounds=(lo[free], hi[free]), method="trf",
-                            x_scale=1.0, xtol=1e-12, ftol=1e-12, gtol=1e-12, max_nfev=200)
+        sol = least_squares(residual, x0[free], jac=jacobian, bounds=(lo[free], hi[free]),
+                            method="trf", tr_solver="lsmr",
+                            tr_options={"atol": 1e-14, "btol": 1e-14}, x_scale=1.0,
+                            xtol=1e-12, ftol=1e-12, gtol=1e-12, max_nfev=200)
         n_target = np.exp(full_x(sol.x))
         n_target[~present] = n_source[~present]
         success, cost = bool(sol.success), float(sol.cost) + 0.5 * spread_one
