@@ -1206,14 +1206,17 @@ def solve_class_n(
     column = np.full(n_cls, -1)
     column[free] = np.arange(free.size)
     lumped = terms.mixed_lumped
-    mixed_sums = terms.mixed_sums.tocoo()
-    keep = column[mixed_sums.col] >= 0
-    entry, entry_class = mixed_sums.row[keep], mixed_sums.col[keep]
-    entry_sum = mixed_sums.data[keep]
-    del mixed_sums, keep
-    one_rows = w_mixed.size + np.arange(fitted.size)
-    one_jac = sparse.csr_matrix((-sqrt_w_one, (one_rows, column[fitted])),
-                                shape=(w_mixed.size + fitted.size, free.size))
+    sums = terms.mixed_sums
+    keep = column[sums.indices] >= 0
+    entry = np.repeat(np.arange(w_mixed.size), np.diff(sums.indptr))[keep]
+    entry_class, entry_sum = sums.indices[keep], sums.data[keep]
+    del keep
+    # one CSR layout for every call (the mixed entries' rows, then one row per class of
+    # single-class sums); each call only fills in the values
+    indptr = np.concatenate([[0], np.cumsum(np.bincount(entry, minlength=w_mixed.size)),
+                             entry.size + np.arange(1, fitted.size + 1)])
+    indices = np.concatenate([column[entry_class], column[fitted]]).astype(np.int32)
+    shape = (w_mixed.size + fitted.size, free.size)
 
     def jacobian(x_free: np.ndarray) -> sparse.csr_matrix:
         n = np.exp(full_x(x_free))
@@ -1222,9 +1225,9 @@ def solve_class_n(
         total = np.bincount(entry, weights=part, minlength=w_mixed.size)
         alive = total > 0 if lumped is None else (total > 0) & lumped.wet
         factor = np.where(alive, -sqrt_w_mixed / np.where(alive, total, 1.0), 0.0)
-        mixed = sparse.csr_matrix((part * factor[entry], (entry, column[entry_class])),
-                                  shape=one_jac.shape)
-        return mixed + one_jac
+        part *= factor[entry]
+        return sparse.csr_matrix((np.concatenate([part, -sqrt_w_one]), indices, indptr),
+                                 shape=shape)
 
     success, cost = True, 0.0
     n_target = n_source.copy()
