@@ -677,7 +677,10 @@ def adjust_roughness(
                                                    dry, dry), model.n,
                                    closure=_domain_closure(tc), composite=composite, k=k))  # type: ignore[arg-type]
         log.debug("fit statistics gathered; solving the class fit")
-        fit = solve_class_n(combine_fit_terms(parts), model.n, spread=spread)  # empties parts
+        terms = combine_fit_terms(parts)  # empties parts
+        _warn_if_fit_short_of_memory(terms.mixed_stage.size, domain)
+        fit = solve_class_n(terms, model.n, spread=spread)
+        del terms
         spread.close()
         log.debug("class fit: n %s (cost %.6g)", np.round(fit.n_target, 6).tolist(), fit.cost)
         out_rng = outside_range(model, fit.n_target)
@@ -898,6 +901,25 @@ def _warn_if_short_of_memory(n_cells: int, n_faces: int, n_window: int, threads:
             f"thread(s) of {tile_size} px) and {have / 1e9:.1f} GB is available; run one tile "
             "at a time (--threads 1) with a smaller --tile-size, or on a machine with more "
             "memory",
+            MemoryEstimateWarning, stacklevel=3)
+
+
+#: the class fit's memory per item-stage wet in several classes (kept one by one; most of
+#: it the least-squares solver's arrays): measured about 280 bytes at 10^8 pixels
+FIT_BYTES_PER_MIXED_ENTRY = 300.0
+
+
+def _warn_if_fit_short_of_memory(n_mixed: int, domain: str) -> None:
+    """Warn before the class fit when its item-stages of several classes will likely not
+    fit in the memory still available."""
+    need = FIT_BYTES_PER_MIXED_ENTRY * float(n_mixed)
+    have = available_memory()
+    if have is not None and need > 0.9 * have:
+        warnings.warn(
+            f"the class fit will need about {need / 1e9:.1f} GB more memory for {n_mixed} "
+            f"{domain[:-1]}-stages wet in several classes and {have / 1e9:.1f} GB is "
+            "available; give fewer window stages (--depths / --stages), merge small classes, "
+            "or run it on a machine with more memory",
             MemoryEstimateWarning, stacklevel=3)
 
 

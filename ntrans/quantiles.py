@@ -31,8 +31,8 @@ import numpy as np
 
 Scale = Literal["log", "asinh"]
 
-#: rows read back at a time from a spill file
-READ_ROWS = 1 << 20
+#: rows read back at a time from a spill file (a chunk's arrays: about 60 bytes a row)
+READ_ROWS = 1 << 18
 
 
 def _order_position(n: int, q: float) -> float:

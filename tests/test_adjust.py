@@ -280,6 +280,28 @@ def test_warns_up_front_when_memory_looks_short(flat_case, tmp_path, monkeypatch
         assert (tmp_path / "out" / "n_by_class.csv").exists()
 
 
+def test_warns_before_the_fit_when_its_mixed_entries_look_short(flat_case, tmp_path,
+                                                                 monkeypatch):
+    # item-stages wet in several classes are kept one by one for the fit: their number is
+    # known once the statistics are in, and a second warning says so before the fit
+    import ntrans.adjust as adjust_module
+    from ntrans.errors import MemoryEstimateWarning
+
+    dem, cells = flat_case
+    codes = 1 + (np.add.outer(np.arange(20), np.arange(20)) // 3) % 2  # diagonal stripes
+    raster = write_dem(tmp_path / "codes.tif", codes, nodata=0, dtype="int16")
+    table = tmp_path / "n.csv"
+    table.write_text("class,n\n1,0.03\n2,0.06\n")
+    monkeypatch.setattr(adjust_module, "available_memory", lambda: 1_000)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        adjust_roughness(dem, cells, out=tmp_path / "out", class_raster=raster, n_table=table,
+                         depths="0.5,1", source="flat", target="subgrid", closure="lumped")
+    memory = [str(w.message) for w in caught if issubclass(w.category, MemoryEstimateWarning)]
+    assert len(memory) == 2 and "wet in several classes" in memory[1]
+    assert (tmp_path / "out" / "n_by_class.csv").exists()  # an estimate, not a limit
+
+
 def test_available_memory_is_a_positive_byte_count_or_unknown():
     from ntrans.memory import available_memory
 
