@@ -3,7 +3,10 @@
 Every raster shares the DEM's grid exactly (transform, shape, CRS).  A pixel takes the
 value of the cell whose polygon contains the pixel centre (``rasterio.features.rasterize``
 of the cell index, then one array lookup), so painting costs one rasterisation however
-many maps are written.  Rasters are float32, DEFLATE-compressed, tiled 256 x 256, with
+many maps are written.  The rasters are painted and written window by window
+(:data:`MAP_WINDOW`), each window rasterising only the cells over it, and the
+quick-looks drawn from a grid of at most :data:`QUICKLOOK_MAX` pixels a side, so memory
+stays bounded whatever the DEM's size.  Rasters are float32, DEFLATE-compressed, tiled 256 x 256, with
 nodata :data:`NODATA`, and carry no time stamps: the same values give the same bytes.
 
 The quick-looks draw the values over a hillshade of the DEM (Horn 1981 gradient), with a
@@ -28,11 +31,18 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+from affine import Affine
 
 logger = logging.getLogger(__name__)
 
 NODATA = -9999.0
 BLOCK = 256
+#: maps are painted and written in windows of this many pixels a side (a multiple of
+#: BLOCK), so memory does not grow with the DEM
+MAP_WINDOW = 2048
+#: longer side of a quick-look's grid, in pixels: a larger DEM is drawn from every k-th
+#: pixel (decimated as it is read, nearest), the cells painted on that coarser grid
+QUICKLOOK_MAX = 1600
 PNG_DPI = 110
 PNG_METADATA: dict[str, Any] = {"Software": None}
 """Fixed PNG metadata: no software version and no time stamp, so reruns are identical."""
@@ -162,21 +172,7 @@ def write_geotiff(
 
     data = np.asarray(array, dtype=np.float32)
     data = np.where(np.isfinite(data), data, np.float32(NODATA)).astype(np.float32)
-    profile = {
-        "driver": "GTiff",
-        "width": data.shape[1],
-        "height": data.shape[0],
-        "count": 1,
-        "dtype": "float32",
-        "crs": crs,
-        "transform": transform,
-        "nodata": NODATA,
-        "tiled": True,
-        "blockxsize": BLOCK,
-        "blockysize": BLOCK,
-        "compress": "deflate",
-        "predictor": 3,
-    }
+    profile = _map_profile(data.shape[0], data.shape[1], transform, crs)
     p = Path(path)
     p.parent.mkdir(parents=True, exist_ok=True)
     with rasterio.open(p, "w", **profile) as dst:
@@ -381,7 +377,7 @@ def write_maps(
     *,
     cell_values: pd.DataFrame,
     cell_geometry: Sequence[Any] | np.ndarray,
-    elevation: np.ndarray,
+    elevation: np.ndarray | str | os.PathLike[str],
     transform: Any,
     crs: Any,
     length_unit: str = "m",
@@ -400,7 +396,8 @@ def write_maps(
     cell_geometry
         Cell polygons in the DEM's CRS.
     elevation, transform, crs
-        The DEM (NaN for nodata) and its grid; every raster is written on this grid.
+        The DEM as an array (NaN for nodata) or as the path of its file (read only for
+        the quick-looks, decimated), and its grid; every raster is written on this grid.
     faces, face_values
         Optional face lines (GeoDataFrame with ``face_id``) and per-face values
         (indexed by face id) for ``faces.gpkg``.
@@ -414,25 +411,95 @@ def write_maps(
     """
     out = Path(folder)
     out.mkdir(parents=True, exist_ok=True)
-    shape = elevation.shape
-    index = cell_index_grid(cell_geometry, transform=transform, shape=shape)
-    shade = hillshade(elevation, dx=abs(transform.a), dy=abs(transform.e)) if quicklooks else None
+    geoms = np.asarray(list(cell_geometry), dtype=object)
+    if isinstance(elevation, str | os.PathLike):
+        import rasterio
+
+        with rasterio.open(elevation) as src:
+            shape = src.shape
+    else:
+        shape = np.shape(elevation)
+    names = [name for name in MAP_SPECS if name in cell_values.columns]
+    values = {name: cell_values[name].to_numpy(dtype=float) for name in names}
+    _write_map_rasters(out, names, values, geoms, transform=transform, crs=crs, shape=shape,
+                       vertical_unit=vertical_unit)
     written: dict[str, Path] = {}
-    for name, (title, label, diverging, description) in MAP_SPECS.items():
-        if name not in cell_values.columns:
-            continue
-        unit_label = label.format(unit=vertical_unit)
-        units = vertical_unit if name == "stage_bias" else "1"
-        grid = paint(index, cell_values[name].to_numpy(dtype=float))
-        write_geotiff(out / f"{name}.tif", grid, transform=transform, crs=crs,
-                      description=description, units=units)
-        if not quicklooks:
-            continue
-        written[name] = quicklook_png(
-            out / f"{name}.png", grid, elevation=elevation, transform=transform,
-            title=title, label=unit_label, length_unit=length_unit, diverging=diverging,
-            shade=shade,
-        )
+    if quicklooks and names:
+        step = max(1, -(-max(shape) // QUICKLOOK_MAX))  # ceil
+        look_transform = transform @ Affine.scale(step)
+        look_shape = (-(-shape[0] // step), -(-shape[1] // step))
+        look_z = _decimated(elevation, step, look_shape)
+        shade = hillshade(look_z, dx=abs(look_transform.a), dy=abs(look_transform.e))
+        index = cell_index_grid(geoms, transform=look_transform, shape=look_shape)
+        for name in names:
+            title, label, diverging, _ = MAP_SPECS[name]
+            written[name] = quicklook_png(
+                out / f"{name}.png", paint(index, values[name]), elevation=look_z,
+                transform=look_transform, title=title, label=label.format(unit=vertical_unit),
+                length_unit=length_unit, diverging=diverging, shade=shade,
+            )
     if faces is not None and face_values is not None:
         written["faces"] = write_face_layer(out / "faces.gpkg", faces, face_values)
     return written
+
+
+def _write_map_rasters(out: Path, names: list[str], values: dict[str, np.ndarray],
+                       geoms: np.ndarray, *, transform: Any, crs: Any, shape: tuple[int, int],
+                       vertical_unit: str) -> None:
+    """Every map's GeoTIFF, painted window by window from the cells over each window."""
+    import contextlib
+
+    import rasterio
+    import shapely
+    from rasterio.windows import Window
+
+    if not names:
+        return
+    tree = shapely.STRtree(geoms)
+    rows, cols = int(shape[0]), int(shape[1])
+    with contextlib.ExitStack() as stack:
+        targets = {}
+        for name in names:
+            _, _, _, description = MAP_SPECS[name]
+            dst = stack.enter_context(rasterio.open(
+                out / f"{name}.tif", "w", **_map_profile(rows, cols, transform, crs)))
+            dst.set_band_description(1, description)
+            dst.set_band_unit(1, vertical_unit if name == "stage_bias" else "1")
+            targets[name] = dst
+        for row0 in range(0, rows, MAP_WINDOW):
+            for col0 in range(0, cols, MAP_WINDOW):
+                height, width = min(MAP_WINDOW, rows - row0), min(MAP_WINDOW, cols - col0)
+                window_transform = transform @ Affine.translation(col0, row0)
+                x0, y0 = window_transform @ (0, 0)
+                x1, y1 = window_transform @ (width, height)
+                near = tree.query(shapely.box(min(x0, x1), min(y0, y1), max(x0, x1), max(y0, y1)))
+                near.sort()
+                local = cell_index_grid(geoms[near], transform=window_transform,
+                                        shape=(height, width))
+                index = np.where(local >= 0, near[np.maximum(local, 0)], -1)
+                for name, dst in targets.items():
+                    grid = paint(index, values[name])
+                    grid[~np.isfinite(grid)] = np.float32(NODATA)
+                    dst.write(grid, 1, window=Window(col0, row0, width, height))
+
+
+def _map_profile(rows: int, cols: int, transform: Any, crs: Any) -> dict[str, Any]:
+    """GeoTIFF profile of a map: float32, DEFLATE, tiled 256, nodata NODATA."""
+    return {
+        "driver": "GTiff", "width": cols, "height": rows, "count": 1, "dtype": "float32",
+        "crs": crs, "transform": transform, "nodata": NODATA, "tiled": True,
+        "blockxsize": BLOCK, "blockysize": BLOCK, "compress": "deflate", "predictor": 3,
+    }
+
+
+def _decimated(elevation: np.ndarray | str | os.PathLike[str], step: int,
+               shape: tuple[int, int]) -> np.ndarray:
+    """Every ``step``-th pixel of the DEM (NaN for nodata), on a grid of ``shape``."""
+    if not isinstance(elevation, str | os.PathLike):
+        return np.asarray(elevation, dtype=float)[::step, ::step]
+    import rasterio
+    from rasterio.enums import Resampling
+
+    with rasterio.open(elevation) as src:
+        data = src.read(1, out_shape=shape, resampling=Resampling.nearest, masked=True)
+    return data.astype(float).filled(np.nan)

@@ -824,14 +824,12 @@ def _unit_symbol(unit: str) -> str:
 
 
 def _write_maps(data: dict[str, Any], folder: Path) -> dict[str, Path]:
-    import numpy as np
     import rasterio
 
     from .maps import write_maps
 
     dem_path = data["tables_summary"].get("dem")
-    with rasterio.open(dem_path) as src:
-        elevation = src.read(1, masked=True).astype(float).filled(np.nan)
+    with rasterio.open(dem_path) as src:  # the maps read it window by window themselves
         transform, crs = src.transform, src.crs
     units = data["summary"]["units"]
     faces = data["faces"]
@@ -839,7 +837,7 @@ def _write_maps(data: dict[str, Any], folder: Path) -> dict[str, Path]:
         folder,
         cell_values=data["cell_values"],
         cell_geometry=data["cells"].geometry.to_numpy(),
-        elevation=elevation,
+        elevation=dem_path,
         transform=transform,
         crs=crs,
         length_unit=_unit_symbol(units["horizontal"]),

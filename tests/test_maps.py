@@ -204,3 +204,43 @@ def test_plots_write_deterministic_pngs(tmp_path):
     for first, second in zip(outputs["a"], outputs["b"], strict=True):
         assert first.read_bytes() == second.read_bytes()
         assert first.read_bytes()[:4] == b"\x89PNG"
+
+
+def test_maps_painted_window_by_window_are_the_whole_grid_painted(tmp_path, monkeypatch):
+    # the GeoTIFFs are painted in windows, each window rasterising only the cells over
+    # it; every pixel must get the cell one rasterisation of the whole grid gives it (the
+    # same pixel-centre rule on the same grid: identity), across window edges that cut
+    # cells, and the DEM is read (decimated) only for the quick-looks
+    rows, cols = 530, 610
+    z = tilted_plane(rows, cols)
+    dem = write_dem(tmp_path / "dem.tif", z)
+    rng = np.random.default_rng(3)
+    points = shapely.points(rng.uniform(0, cols, 400), rng.uniform(0, rows, 400))
+    cells = list(shapely.voronoi_polygons(shapely.multipoints(points),
+                                          extend_to=shapely.box(0, 0, cols, rows)).geoms)
+    cells = [shapely.intersection(c, shapely.box(0, 0, cols, rows)) for c in cells]
+    values = pd.DataFrame({"n_ratio": rng.uniform(0.7, 1.3, len(cells)),
+                           "stage_bias": rng.normal(0.0, 0.2, len(cells))})
+    with rasterio.open(dem) as src:
+        transform, crs, shape = src.transform, src.crs, src.shape
+    monkeypatch.setattr(maps, "MAP_WINDOW", 256)  # 3 x 3 windows
+    monkeypatch.setattr(maps, "QUICKLOOK_MAX", 200)  # quick-looks from every 4th pixel
+    drawn = {}
+    original = maps.quicklook_png
+
+    def spy(path, values, *, elevation, transform, **kwargs):
+        drawn[path.stem] = (values.shape, elevation.shape, transform.a)
+        return original(path, values, elevation=elevation, transform=transform, **kwargs)
+
+    monkeypatch.setattr(maps, "quicklook_png", spy)
+    written = maps.write_maps(tmp_path / "maps", cell_values=values, cell_geometry=cells,
+                              elevation=dem, transform=transform, crs=crs)
+    whole = maps.cell_index_grid(cells, transform=transform, shape=shape)
+    assert (whole >= 0).all()  # every pixel centre in one cell
+    for name in ("n_ratio", "stage_bias"):
+        with rasterio.open(tmp_path / "maps" / f"{name}.tif") as out:
+            data = out.read(1)
+        np.testing.assert_array_equal(data, maps.paint(whole, values[name].to_numpy()))
+        assert written[name].exists()
+        # the quick-look's grid: every 4th pixel, ceil(530 / 4) x ceil(610 / 4)
+        assert drawn[name] == ((133, 153), (133, 153), 4.0)
