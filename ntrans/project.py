@@ -708,7 +708,6 @@ def _gather(project: Project, folder: Path) -> dict[str, Any]:
     tables, adjust = folder / "tables", folder / "adjust"
     tsum = _read_json(tables / "tables_summary.json")
     asum = _read_json(adjust / "adjust_summary.json")
-    cell_stage = pd.read_parquet(tables / "cell_stage.parquet")
     cells = gpd.read_file(tables / "cells.gpkg")
     faces = gpd.read_file(tables / "faces.gpkg") if (tables / "faces.gpkg").is_file() else None
     domain = asum.get("fit_domain", "faces")
@@ -725,8 +724,10 @@ def _gather(project: Project, folder: Path) -> dict[str, Any]:
     if "bed_factor" in cells.columns:
         factor = pd.Series(cells["bed_factor"].to_numpy(dtype=float), index=ids)
     else:
+        cell_stage = pd.read_parquet(tables / "cell_stage.parquet")  # tables without it
         per_cell = max(len(cell_stage) // max(len(cells), 1), 1)
         factor = cell_friction_factor(cell_stage, reference_index=per_cell // 2)
+        del cell_stage
     cell_values = pd.DataFrame({"friction_factor": factor.reindex(ids).to_numpy()})
     if domain == "cells" and cell_adj is not None:
         # friction per cell: each cell's own ratio and bias
@@ -778,7 +779,7 @@ def _gather(project: Project, folder: Path) -> dict[str, Any]:
     return {
         "tables_summary": tsum,
         "adjust_summary": asum,
-        "cell_stage": cell_stage,
+        "cell_stage_path": tables / "cell_stage.parquet",
         "cells": cells,
         "faces": faces,
         "fit_rows": fit_rows,
@@ -878,7 +879,7 @@ def _write_plots(data: dict[str, Any], folder: Path) -> dict[str, Path]:
             unit=z,
         )
     picks = representative_cells(data["friction_factor"])
-    cell_stage = data["cell_stage"]
+    cell_stage = _rows_of_cells(data["cell_stage_path"], list(picks.values()))
     curves = {}
     for label, cell in picks.items():
         rows = cell_stage[cell_stage["cell_id"] == cell].copy()
@@ -889,6 +890,15 @@ def _write_plots(data: dict[str, Any], folder: Path) -> dict[str, Path]:
     images["cell_curves"] = plot_cell_curves(folder / "representative_cells.png", curves,
                                              length_unit=xy, vertical_unit=z)
     return images
+
+
+def _rows_of_cells(path: Path, cells: list[Any]) -> Any:
+    """The stage table's rows of these cells only (in file order), not the whole table."""
+    import pyarrow.parquet as pq
+
+    wanted = [c.item() if hasattr(c, "item") else c for c in cells]
+    return pq.read_table(path, filters=[("cell_id", "in", wanted)] if wanted else None
+                         ).to_pandas()
 
 
 def _window_text(project: Project) -> str:
