@@ -26,7 +26,8 @@ from __future__ import annotations
 import logging
 import threading
 import warnings
-from dataclasses import dataclass, field, replace
+from collections.abc import Callable
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
 
@@ -581,13 +582,16 @@ def raster_model(
     valid = np.isfinite(values) if values.dtype.kind == "f" else np.ones(values.shape, bool)
     if nodata is not None and np.isfinite(nodata):
         valid &= values != nodata
-    codes = _integer_codes(values[valid])
-    model = _raster_classes_model(codes, transform, values.shape, crs, table,
-                                  default_class=default_class, mesh_bounds=mesh_bounds)
-    index = np.full(values.shape, -1, dtype=np.int32)
-    index[valid] = _code_index(values[valid].astype(float), model.raster.codes,
-                               model.raster.code_class)
-    return replace(model, raster=index)
+    known = values[valid]
+
+    def index_array(codes: np.ndarray, code_class: np.ndarray) -> np.ndarray:
+        index = np.full(values.shape, -1, dtype=np.int32)
+        index[valid] = _code_index(known.astype(float), codes, code_class)
+        return index
+
+    return _raster_classes_model(_integer_codes(known), transform, values.shape, crs, table,
+                                 default_class=default_class, mesh_bounds=mesh_bounds,
+                                 raster=index_array)
 
 
 def raster_file_model(
@@ -613,9 +617,11 @@ def raster_file_model(
         values = _read_band1(path, row, 0, min(rows_per_strip, height - row), width,
                              (height, width))
         codes = np.union1d(codes, _integer_codes(values[np.isfinite(values)]))
-    return _raster_classes_model(codes, transform, (height, width), crs, table,
-                                 default_class=default_class, mesh_bounds=mesh_bounds,
-                                 path=path)
+    return _raster_classes_model(
+        codes, transform, (height, width), crs, table, default_class=default_class,
+        mesh_bounds=mesh_bounds,
+        raster=lambda codes, code_class: RasterClasses(path, transform, crs, width, height,
+                                                       codes, code_class))
 
 
 def _integer_codes(values: np.ndarray) -> np.ndarray:
@@ -629,8 +635,9 @@ def _integer_codes(values: np.ndarray) -> np.ndarray:
 def _raster_classes_model(codes: np.ndarray, transform: Any, shape: tuple[int, int], crs: Any,
                           table: tuple[list[str], list[Any], list[str | None]], *,
                           default_class: str | None, mesh_bounds: tuple | None,
-                          path: str = "") -> RoughnessModel:
-    """The model of a class raster with these codes (its ``raster`` a RasterClasses)."""
+                          raster: Callable[[np.ndarray, np.ndarray], Any]) -> RoughnessModel:
+    """The model of a class raster with these codes (sorted, float64); its ``raster`` is
+    ``raster(codes, code_class)`` (an index array, or a :class:`RasterClasses`)."""
     if mesh_bounds is not None:
         from rasterio.transform import array_bounds
 
@@ -648,8 +655,7 @@ def _raster_classes_model(codes: np.ndarray, transform: Any, shape: tuple[int, i
     code_class = np.array([lookup[name] for name in names], dtype=np.int32)
     model = RoughnessModel(
         classes=tuple(classes), n=n, surface=tuple(surf), default=default_index,
-        raster=RasterClasses(path, transform, crs, int(shape[1]), int(shape[0]),
-                             np.asarray(codes, dtype=np.float64), code_class),
+        raster=raster(np.asarray(codes, dtype=np.float64), code_class),
         raster_transform=transform, raster_crs=crs, source="raster",
     )
     check_ranges(model)
