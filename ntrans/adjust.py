@@ -24,7 +24,6 @@ import json
 import logging
 import os
 import time
-import warnings
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
@@ -48,6 +47,7 @@ from .errors import (
     MemoryEstimateWarning,
     RoughnessError,
     check_choice,
+    warn,
 )
 from .inputs import rasters_kept_open
 from .memory import available_memory, release_free_memory
@@ -856,7 +856,7 @@ def adjust_roughness(
     final = Path(os.fspath(out)).expanduser().absolute()
     mism = mismatch_faces if domain == "faces" else mismatch_cells
     if mism:
-        warnings.warn(
+        warn(
             f"{mism} {domain[:-1]}-stages are wet in one family and dry in the other; they were "
             "left out of the fit (see the flags in n_by_class.csv)",
             DryWetMismatchWarning, stacklevel=2)
@@ -895,7 +895,7 @@ def _warn_if_short_of_memory(n_cells: int, n_faces: int, n_window: int, threads:
     need = estimated_peak_bytes(n_cells, n_faces, n_window, threads=threads, tile_size=tile_size)
     have = available_memory()
     if have is not None and need > 0.9 * have:
-        warnings.warn(
+        warn(
             f"this adjustment will need about {need / 1e9:.1f} GB of memory at its peak "
             f"({n_cells} cells, {n_faces} faces, {n_window} window stages, {threads} tile "
             f"thread(s) of {tile_size} px) and {have / 1e9:.1f} GB is available; run one tile "
@@ -915,7 +915,7 @@ def _warn_if_fit_short_of_memory(n_mixed: int, domain: str) -> None:
     need = FIT_BYTES_PER_MIXED_ENTRY * float(n_mixed)
     have = available_memory()
     if have is not None and need > 0.9 * have:
-        warnings.warn(
+        warn(
             f"the class fit will need about {need / 1e9:.1f} GB more memory for {n_mixed} "
             f"{domain[:-1]}-stages wet in several classes and {have / 1e9:.1f} GB is "
             "available; give fewer window stages (--depths / --stages), merge small classes, "

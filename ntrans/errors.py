@@ -11,6 +11,11 @@ and tests can assert them.
 
 from __future__ import annotations
 
+import contextlib
+import threading
+import warnings
+from collections.abc import Iterator
+
 
 class NtransError(Exception):
     """Base class of every error ntrans raises on purpose."""
@@ -86,3 +91,39 @@ class DryWetMismatchWarning(NtransWarning):
 
 class MemoryEstimateWarning(NtransWarning):
     """A job is expected to need more memory than the machine has available."""
+
+
+# one list per open collect_warnings(), newest last
+_collectors: list[list[tuple[type[NtransWarning], str]]] = []
+_collectors_lock = threading.Lock()
+
+
+def warn(message: str, category: type[NtransWarning], *, stacklevel: int = 2) -> None:
+    """Emit an ntrans warning: through :func:`warnings.warn` and into every open
+    :func:`collect_warnings` list.
+
+    The lists do not depend on the process's warning filters.  Those are one state shared
+    by every thread, and libraries change it from several threads at once
+    (``warnings.catch_warnings`` is not thread-safe), which can leave warnings ignored;
+    a job's cautions reach its report all the same.
+    """
+    with _collectors_lock:
+        for sink in _collectors:
+            sink.append((category, str(message)))
+    warnings.warn(message, category, stacklevel=stacklevel + 1)
+
+
+@contextlib.contextmanager
+def collect_warnings() -> Iterator[list[tuple[type[NtransWarning], str]]]:
+    """A list of (category, message) of the ntrans warnings emitted while it is open."""
+    sink: list[tuple[type[NtransWarning], str]] = []
+    with _collectors_lock:
+        _collectors.append(sink)
+    try:
+        yield sink
+    finally:
+        with _collectors_lock:
+            for i, other in enumerate(_collectors):
+                if other is sink:
+                    del _collectors[i]
+                    break

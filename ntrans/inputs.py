@@ -20,7 +20,6 @@ import logging
 import math
 import os
 import threading
-import warnings
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
@@ -44,7 +43,9 @@ from .errors import (
     InputError,
     InputFileError,
     OutputError,
+    warn,
 )
+from .mesh import is_valid
 
 logger = logging.getLogger(__name__)
 
@@ -765,7 +766,7 @@ def _chunked(fn: Callable[[np.ndarray], np.ndarray], geoms: np.ndarray) -> np.nd
 
 def _repair(geoms: np.ndarray, ids: np.ndarray) -> np.ndarray:
     """Make invalid polygons valid, keeping only their polygonal parts (vectorised)."""
-    invalid = ~_chunked(shapely.is_valid, geoms)
+    invalid = ~_chunked(is_valid, geoms)
     if not invalid.any():
         return geoms
     bad = np.flatnonzero(invalid)
@@ -791,7 +792,7 @@ def _repair(geoms: np.ndarray, ids: np.ndarray) -> np.ndarray:
             f"cell polygons {_name_list(ids[lost])} are invalid and have no area left after "
             "repair; fix or remove them"
         )
-    warnings.warn(
+    warn(
         f"cell polygons {_name_list(ids[bad])} were invalid and have been repaired "
         "(polygonal parts kept); check them in the source mesh",
         GeometryRepairedWarning,

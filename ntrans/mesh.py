@@ -106,6 +106,16 @@ def _empty_faces() -> Faces:
     )
 
 
+def is_valid(geoms: np.ndarray) -> np.ndarray:
+    """``shapely.is_valid`` without the warnings filter shapely sets around it.
+
+    shapely silences GEOS's messages with ``warnings.catch_warnings()``, which is not
+    thread-safe: two threads testing at once can leave every warning of the process
+    ignored (the job's cautions among them).  The GEOS test itself warns of nothing.
+    """
+    return shapely.lib.is_valid(geoms)
+
+
 def _check_polygons(polygons: object) -> np.ndarray:
     geoms = np.asarray(polygons, dtype=object).ravel()
     if geoms.size == 0:
@@ -118,7 +128,7 @@ def _check_polygons(polygons: object) -> np.ndarray:
             f"{int(bad.sum())} cell geometries are empty or not polygons (first at position "
             f"{first}); give one non-empty Polygon or MultiPolygon per cell"
         )
-    invalid = ~shapely.is_valid(geoms)
+    invalid = ~is_valid(geoms)
     if np.any(invalid):
         first = int(np.flatnonzero(invalid)[0])
         raise GeometryError(

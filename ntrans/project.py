@@ -37,13 +37,12 @@ import os
 import shutil
 import time
 import tomllib
-import warnings
 from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from .errors import NtransWarning, OutputError, OutputExistsError, ProjectFileError
+from .errors import OutputError, OutputExistsError, ProjectFileError, collect_warnings
 
 logger = logging.getLogger(__name__)
 
@@ -515,8 +514,8 @@ def run_project(
         tmp = Path(folder.path)
         with _step("inputs checksums", timings):
             inputs = _describe_inputs(project)
-        with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always", NtransWarning)
+        # the steps' warnings reach the caller as they happen and the report from here
+        with collect_warnings() as caught:
             with _step("stage tables", timings):
                 kw = _call_kwargs(build_tables, options)
                 kw.update(out=str(tmp / "tables"), overwrite=True, progress=progress)
@@ -530,7 +529,7 @@ def run_project(
                 kw.update(out=str(tmp / "adjust"), overwrite=True, progress=progress)
                 effective["adjust_roughness"] = _effective(adjust_roughness, kw)
                 adjust_roughness(dem, cells, **kw)
-        notes = _replay(caught)
+        notes = list(dict.fromkeys(text for _, text in caught))  # each once, in order
         step_seconds = _strip_timings(tmp)
         with _step("maps, plots and report", timings):
             summary = _products(project, tmp, inputs=inputs, notes=notes, progress=progress)
@@ -577,19 +576,6 @@ def _effective(func: Callable[..., Any], kwargs: Mapping[str, Any]) -> dict[str,
         default = None if param.default is inspect.Parameter.empty else param.default
         values[name] = kwargs.get(name, default)
     return values
-
-
-def _replay(caught: list[warnings.WarningMessage]) -> list[str]:
-    """Re-emit recorded warnings (once each) and return their texts for the report."""
-    notes: list[str] = []
-    for item in caught:
-        text = str(item.message)
-        if text in notes:
-            continue
-        if issubclass(item.category, NtransWarning):
-            notes.append(text)
-        warnings.warn(item.message, item.category, stacklevel=3)
-    return notes
 
 
 #: Keys of the step summaries that hold run times (they vary from run to run): moved

@@ -25,7 +25,6 @@ from __future__ import annotations
 
 import logging
 import threading
-import warnings
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -33,7 +32,7 @@ from typing import Any, Literal
 
 import numpy as np
 
-from .errors import InputFileError, RoughnessError, RoughnessRangeWarning
+from .errors import InputFileError, RoughnessError, RoughnessRangeWarning, warn
 
 log = logging.getLogger(__name__)
 
@@ -256,7 +255,7 @@ def check_ranges(model: RoughnessModel, n: np.ndarray | None = None, *, what: st
             continue
         rng = model.published_range(i)
         if rng is not None and not (rng[0] <= value <= rng[1]):
-            warnings.warn(
+            warn(
                 f"{what} {value:g} of class {name!r} lies outside the published range "
                 f"{rng[0]:g}-{rng[1]:g} for {model.surface[i]} (Chow 1959, Table 5-6); "
                 "check the value",
@@ -265,7 +264,7 @@ def check_ranges(model: RoughnessModel, n: np.ndarray | None = None, *, what: st
             )
             warned.append(name)
         elif value > N_HIGH:
-            warnings.warn(
+            warn(
                 f"{what} {value:g} of class {name!r} is above {N_HIGH:g}, unusual for any "
                 "natural surface; check the value",
                 RoughnessRangeWarning,

@@ -26,7 +26,6 @@ import logging
 import os
 import shutil
 import time
-import warnings
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -49,7 +48,7 @@ from .engine import (
     plan_tiles,
     rows_of,
 )
-from .errors import InputError, PartialCoverageWarning, check_choice
+from .errors import InputError, PartialCoverageWarning, check_choice, warn
 from .inputs import RASTER_CACHE_BYTES, rasters_kept_open
 from .memory import collection_paused, release_free_memory
 from .stages import StageSpec
@@ -564,7 +563,7 @@ def build_tables(
     final = Path(os.fspath(out)).expanduser().absolute()
     n_partial = int(partial.sum())
     if n_partial:
-        warnings.warn(
+        warn(
             f"{n_partial} cells lie partly outside the DEM or over nodata (first: "
             f"{', '.join(map(str, partial_ids))}); their covered_fraction is in cells.gpkg",
             PartialCoverageWarning,

@@ -447,3 +447,21 @@ def test_trimmed_ends_do_not_depend_on_the_other_lines():
     for i in [0, 17, 39]:
         alone, _ = _trim_open_ends(lines[i : i + 1], tol, 3 * tol)
         assert np.array_equal(shapely.get_coordinates(alone), shapely.get_coordinates(together[i]))
+
+
+def test_validity_test_leaves_the_warning_filters_alone(monkeypatch):
+    # shapely.is_valid wraps GEOS in warnings.catch_warnings(), which is not thread-safe;
+    # the job's own test must not touch the process's filters (it runs on tile threads)
+    import warnings
+
+    from ntrans.mesh import is_valid
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("the validity test changed the warning filters")
+
+    geoms = np.array([box(0, 0, 1, 1), Polygon([(0, 0), (1, 1), (1, 0), (0, 1)]), None])
+    expected = shapely.is_valid(geoms)
+    monkeypatch.setattr(warnings, "catch_warnings", refuse)
+    monkeypatch.setattr(warnings, "simplefilter", refuse)
+    np.testing.assert_array_equal(is_valid(geoms), expected)
+    assert expected.tolist() == [True, False, False]
