@@ -7,7 +7,9 @@
 - :func:`plot_cell_curves`: for a few representative cells, stage-volume and
   hydraulic-radius curves of the subgrid terrain against the flat bed.
 
-Each function takes DataFrames, writes one PNG and returns its path.  Colours come from
+Each function takes the figures to draw (summaries, not the rows: those are computed in
+memory by :func:`ratio_bands` / :func:`stage_bias_histogram`, or in passes over a table
+by :mod:`ntrans.summaries`), writes one PNG and returns its path.  Colours come from
 the Okabe-Ito palette, which stays distinguishable for the common colour-vision
 deficiencies.
 """
@@ -17,6 +19,7 @@ from __future__ import annotations
 import math
 import os
 from collections.abc import Mapping
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -92,23 +95,23 @@ def ratio_bands(
 
 def plot_class_ratios(
     path: str | os.PathLike[str],
-    frame: pd.DataFrame,
+    bands: pd.DataFrame,
     *,
     x: str = "depth",
     x_label: str = "depth above the face's low point (m)",
-    value: str = "n_ratio",
     by: str = "class",
+    item: str = "face",
 ) -> Path:
     """Per class, n ratio against depth (or stage): median line and 10-90 % band.
 
     Parameters
     ----------
-    frame
-        Rows per face and stage with columns ``by`` (class), ``x`` (depth or stage, in
-        vertical units) and ``value`` (dimensionless ratio; NaN where one family is dry).
+    bands
+        Columns ``by`` (class), ``x`` (depth or stage, in vertical units), ``p10, p50,
+        p90`` (dimensionless ratios), sorted by (``by``, ``x``): :func:`ratio_bands` of the
+        rows, or :func:`ntrans.summaries.class_ratio_bands` of a table too large to read.
     """
     plt = _pyplot()
-    bands = ratio_bands(frame, x=x, value=value, by=by)
     classes = list(dict.fromkeys(bands[by].tolist()))[:MAX_CLASS_PANELS] or ["(none)"]
     ncols = min(3, len(classes))
     nrows = math.ceil(len(classes) / ncols)
@@ -123,7 +126,7 @@ def plot_class_ratios(
         colour = PALETTE[i % len(PALETTE)]
         if not part.empty:
             ax.fill_between(part[x], part["p10"], part["p90"], color=colour, alpha=0.25,
-                            linewidth=0, label="10-90 % of faces")
+                            linewidth=0, label=f"10-90 % of {item}s")
             ax.plot(part[x], part["p50"], color=colour, linewidth=2, label="median")
         ax.axhline(1.0, color="0.4", linewidth=0.8, linestyle="--")
         ax.set_title(str(name), fontsize=9)
@@ -143,20 +146,26 @@ def plot_class_ratios(
     return _save(fig, path)
 
 
-def plot_stage_bias(
-    path: str | os.PathLike[str],
-    before: np.ndarray,
-    after: np.ndarray,
-    *,
-    unit: str = "m",
-    bins: int = 40,
-) -> Path:
-    """Histograms of the stage bias (target minus source stage, vertical units).
+@dataclass(frozen=True)
+class StageBiasHistogram:
+    """Histograms of the stage bias on shared bins (vertical units): ``before`` with n
+    carried over unchanged, ``after`` with the adjusted n; counts per bin (values
+    outside the edges in the end bins), medians and counts of the finite values."""
 
-    ``before``: with n carried over unchanged; ``after``: with the adjusted n.  Both share
-    one set of bins so their spreads compare directly.
-    """
-    plt = _pyplot()
+    edges: np.ndarray
+    before: np.ndarray
+    after: np.ndarray
+    median_before: float
+    median_after: float
+    count_before: int
+    count_after: int
+
+
+def stage_bias_histogram(before: np.ndarray, after: np.ndarray, *, bins: int = 40,
+                         ) -> StageBiasHistogram:
+    """:class:`StageBiasHistogram` of two arrays (NaN ignored): ``bins`` equal bins
+    symmetric about 0, out to the larger |value| of the 0.5 and 99.5 % quantiles of
+    both together (at least 1e-6)."""
     b = np.asarray(before, dtype=float)
     a = np.asarray(after, dtype=float)
     b, a = b[np.isfinite(b)], a[np.isfinite(a)]
@@ -167,17 +176,41 @@ def plot_stage_bias(
         edges = np.linspace(-bound, bound, bins + 1)
     else:
         edges = np.linspace(-1.0, 1.0, bins + 1)
+
+    def counts(data: np.ndarray) -> np.ndarray:
+        return np.histogram(np.clip(data, edges[0], edges[-1]), bins=edges)[0]
+
+    def median(data: np.ndarray) -> float:
+        return float(np.median(data)) if data.size else float("nan")
+
+    return StageBiasHistogram(edges, counts(b), counts(a), median(b), median(a),
+                              int(b.size), int(a.size))
+
+
+def plot_stage_bias(
+    path: str | os.PathLike[str],
+    histogram: StageBiasHistogram,
+    *,
+    unit: str = "m",
+    item: str = "face",
+) -> Path:
+    """Histograms of the stage bias (target minus source stage, vertical units), with n
+    carried over unchanged and with the adjusted n, on one set of bins so their spreads
+    compare directly (:func:`stage_bias_histogram`, or
+    :func:`ntrans.summaries.stage_bias_figures` of a table too large to read)."""
+    plt = _pyplot()
+    h = histogram
     fig, axes = plt.subplots(2, 1, figsize=(7.0, 5.2), dpi=PNG_DPI, sharex=True)
-    for ax, data, colour, name in (
-        (axes[0], b, PALETTE[1], "n carried over unchanged"),
-        (axes[1], a, PALETTE[0], "adjusted n"),
+    for ax, counts, median, size, colour, name in (
+        (axes[0], h.before, h.median_before, h.count_before, PALETTE[1],
+         "n carried over unchanged"),
+        (axes[1], h.after, h.median_after, h.count_after, PALETTE[0], "adjusted n"),
     ):
-        clipped = np.clip(data, edges[0], edges[-1])
-        ax.hist(clipped, bins=edges, color=colour, alpha=0.85)
+        ax.hist(h.edges[:-1], bins=h.edges, weights=np.asarray(counts, dtype=float),
+                color=colour, alpha=0.85)
         ax.axvline(0.0, color="black", linewidth=0.8)
-        median = float(np.median(data)) if data.size else float("nan")
-        ax.set_title(f"{name}: median {median:+.3f} {unit}, {data.size} face-stages", fontsize=9)
-        ax.set_ylabel("face-stages")
+        ax.set_title(f"{name}: median {median:+.3f} {unit}, {size} {item}-stages", fontsize=9)
+        ax.set_ylabel(f"{item}-stages")
         ax.grid(True, linewidth=0.3, alpha=0.6)
     axes[1].set_xlabel(f"stage in the target minus stage in the source ({unit})")
     fig.suptitle("Stage error at equal conveyance, before and after adjustment", fontsize=11)

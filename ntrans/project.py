@@ -685,11 +685,17 @@ def _read_json(path: Path) -> dict[str, Any]:
 
 
 def _gather(project: Project, folder: Path) -> dict[str, Any]:
-    """Read the tables written by the tables and adjust steps into one dict."""
+    """The figures of the maps, plots and report from the tables and adjust steps' files.
+
+    The layers (one row per cell or face) are read whole; the adjustment tables (one row
+    per item and window stage) only in passes of a row group at a time
+    (:mod:`ntrans.summaries`), so memory does not grow with the number of stages.
+    """
     import geopandas as gpd
+    import numpy as np
     import pandas as pd
 
-    from .maps import cell_friction_factor, cell_median_of_faces
+    from . import summaries
 
     tables, adjust = folder / "tables", folder / "adjust"
     tsum = _read_json(tables / "tables_summary.json")
@@ -697,9 +703,9 @@ def _gather(project: Project, folder: Path) -> dict[str, Any]:
     cells = gpd.read_file(tables / "cells.gpkg")
     faces = gpd.read_file(tables / "faces.gpkg") if (tables / "faces.gpkg").is_file() else None
     domain = asum.get("fit_domain", "faces")
-    face_adj = pd.read_parquet(adjust / "face_adjustment.parquet")
-    cell_adj_path = adjust / "cell_adjustment.parquet"
-    cell_adj = pd.read_parquet(cell_adj_path) if cell_adj_path.is_file() else None
+    face_path = adjust / "face_adjustment.parquet"
+    cell_path = adjust / "cell_adjustment.parquet"
+    by_cells = domain == "cells" and cell_path.is_file()
     n_by_class = pd.read_csv(adjust / "n_by_class.csv", keep_default_na=False,
                              na_values=["", "nan", "NaN"])
     if "flags" in n_by_class.columns:
@@ -707,39 +713,34 @@ def _gather(project: Project, folder: Path) -> dict[str, Any]:
     ids = cells["cell_id"].to_numpy()
 
     # per-cell map values, in the order of cells.gpkg
-    if "bed_factor" in cells.columns:
-        factor = pd.Series(cells["bed_factor"].to_numpy(dtype=float), index=ids)
-    else:
-        cell_stage = pd.read_parquet(tables / "cell_stage.parquet")  # tables without it
-        per_cell = max(len(cell_stage) // max(len(cells), 1), 1)
-        factor = cell_friction_factor(cell_stage, reference_index=per_cell // 2)
-        del cell_stage
-    cell_values = pd.DataFrame({"friction_factor": factor.reindex(ids).to_numpy()})
-    if domain == "cells" and cell_adj is not None:
-        # friction per cell: each cell's own ratio and bias
-        for column, name in (("n_ratio", "n_ratio"), ("stage_bias_unadjusted", "stage_bias")):
-            med = cell_adj.groupby("cell_id", sort=True)[column].median()
-            cell_values[name] = med.reindex(ids).to_numpy()
-    else:
-        link = faces if faces is not None else face_adj.drop_duplicates("face_id")
-        for column, name in (("n_ratio", "n_ratio"), ("stage_bias_unadjusted", "stage_bias")):
-            med = cell_median_of_faces(face_adj, link, value=column)
-            cell_values[name] = med.reindex(ids).to_numpy()
-    cols = [c for c in ("n_ratio", "stage_bias_unadjusted", "stage_bias_adjusted")
-            if c in face_adj.columns]
-    face_values = face_adj.groupby("face_id", sort=True)[cols].median()
-    face_values.columns = [f"{c}_median" for c in cols]
-    if "dominant_class" in face_adj.columns:
-        face_values["dominant_class"] = face_adj.groupby("face_id", sort=True)[
-            "dominant_class"
-        ].first()
+    factor = pd.Series(cells["bed_factor"].to_numpy(dtype=float), index=ids)
+    cell_values = pd.DataFrame({"friction_factor": factor.to_numpy()})
+    per_cell = {"n_ratio": "n_ratio", "stage_bias_unadjusted": "stage_bias"}
+    if by_cells:  # friction per cell: each cell's own ratio and bias
+        med = summaries.item_medians(cell_path, key="cell_id", values=list(per_cell))
+        for column, name in per_cell.items():
+            cell_values[name] = (med[column].reindex(ids).to_numpy(dtype=float)
+                                 if column in med.columns else np.nan)
+    else:  # over every face of the cell
+        present = [c for c in per_cell if c in summaries.table_columns(face_path)]
+        med = summaries.cell_medians_over_faces(face_path, cell_ids=ids, values=present,
+                                                work_dir=folder)
+        for column, name in per_cell.items():
+            cell_values[name] = med[column].to_numpy() if column in present else np.nan
+    cols = ["n_ratio", "stage_bias_unadjusted", "stage_bias_adjusted"]
+    face_values = summaries.item_medians(face_path, key="face_id", values=cols,
+                                         first=["dominant_class"])
+    face_values = face_values.rename(columns={c: f"{c}_median" for c in cols})
 
     # the rows the class fit used: per face-stage, or per cell-stage with cell friction
-    fit_rows = cell_adj if (domain == "cells" and cell_adj is not None) else face_adj
-    fit_rows = fit_rows.rename(columns={"dominant_class": "class"})
-    if "class" not in fit_rows.columns:
-        fit_rows = fit_rows.assign(**{"class": "all"})
-    fit_rows = fit_rows.assign(depth=fit_rows["depth"].round(6))
+    fit_path = cell_path if by_cells else face_path
+    item = "cell" if by_cells else "face"
+    bands, bands_x = None, None
+    if "n_ratio" in summaries.table_columns(fit_path):
+        bands_x = "depth" if summaries.any_finite(fit_path, "depth") else "stage"
+        bands = summaries.class_ratio_bands(fit_path, x=bands_x,
+                                            round_x=6 if bands_x == "depth" else None)
+    bias_stats, bias_histogram = summaries.stage_bias_figures(fit_path)
 
     mode = tsum.get("stage_mode", "depth" if "depths" in project.window else "stage")
     units = {
@@ -750,60 +751,30 @@ def _gather(project: Project, folder: Path) -> dict[str, Any]:
     summary = {
         "units": units,
         "cells": int(len(cells)),
-        "faces": int(len(faces)) if faces is not None else int(face_adj["face_id"].nunique()),
+        "faces": int(len(faces)) if faces is not None else int(len(face_values)),
         "stages": len(tsum.get("stage_values", [])) or None,
         "classes": int(len(n_by_class)),
         "reference": tsum.get("reference"),
         "stage_mode": mode,
         "fit_domain": domain,
+        **bias_stats,
     }
-    weights = (fit_rows["conveyance_source"].to_numpy(dtype=float)
-               if "conveyance_source" in fit_rows.columns else None)
-    for key in ("stage_bias_unadjusted", "stage_bias_adjusted"):
-        if key in fit_rows.columns:
-            summary[key] = _stats(fit_rows[key].to_numpy(dtype=float), weights)
     return {
         "tables_summary": tsum,
         "adjust_summary": asum,
         "cell_stage_path": tables / "cell_stage.parquet",
         "cells": cells,
         "faces": faces,
-        "fit_rows": fit_rows,
+        "item": item,
+        "class_bands": bands,
+        "class_bands_x": bands_x,
+        "stage_bias_histogram": bias_histogram,
         "n_by_class": n_by_class,
         "cell_values": cell_values,
         "face_values": face_values,
         "friction_factor": factor,
         "summary": summary,
     }
-
-
-def _stats(values: Any, weights: Any = None) -> dict[str, Any]:
-    """Median, 10/90 % and mean |value|; with ``weights`` (the source conveyance, the
-    weight of the class fit) also the weighted median and weighted mean |value|."""
-    import numpy as np
-
-    v = np.asarray(values, dtype=float)
-    w = np.ones_like(v) if weights is None else np.asarray(weights, dtype=float)
-    keep = np.isfinite(v) & np.isfinite(w) & (w >= 0)
-    v, w = v[keep], w[keep]
-    out: dict[str, Any] = {"count": 0, "median": None, "p10": None, "p90": None,
-                           "mean_abs": None, "weighted_median": None,
-                           "weighted_mean_abs": None}
-    if not v.size:
-        return out
-    out.update(
-        count=int(v.size),
-        median=float(np.median(v)),
-        p10=float(np.percentile(v, 10)),
-        p90=float(np.percentile(v, 90)),
-        mean_abs=float(np.mean(np.abs(v))),
-    )
-    if weights is not None and w.sum() > 0:
-        order = np.argsort(v, kind="stable")
-        cum = np.cumsum(w[order])
-        out["weighted_median"] = float(v[order][np.searchsorted(cum, 0.5 * cum[-1])])
-        out["weighted_mean_abs"] = float(np.sum(w * np.abs(v)) / w.sum())
-    return out
 
 
 def _unit_symbol(unit: str) -> str:
@@ -837,33 +808,24 @@ def _write_maps(data: dict[str, Any], folder: Path) -> dict[str, Path]:
 
 
 def _write_plots(data: dict[str, Any], folder: Path) -> dict[str, Path]:
-    import numpy as np
-
     from .plots import plot_cell_curves, plot_class_ratios, plot_stage_bias, representative_cells
 
     units = data["summary"]["units"]
     z = _unit_symbol(units["vertical"])
     xy = _unit_symbol(units["horizontal"])
-    frame = data["fit_rows"]
-    item = "cell" if data["summary"].get("fit_domain") == "cells" else "face"
+    item = data["item"]
     images: dict[str, Path] = {}
-    if "n_ratio" in frame.columns:
-        if np.isfinite(frame["depth"].to_numpy(dtype=float)).any():
-            images["class_ratios"] = plot_class_ratios(
-                folder / "n_ratio_by_class.png", frame, x="depth",
-                x_label=f"depth above the {item}'s low point ({z})",
-            )
-        else:
-            images["class_ratios"] = plot_class_ratios(
-                folder / "n_ratio_by_class.png", frame, x="stage", x_label=f"stage ({z})",
-            )
-    if {"stage_bias_unadjusted", "stage_bias_adjusted"} <= set(frame.columns):
+    if data["class_bands"] is not None:
+        x = data["class_bands_x"]
+        label = (f"depth above the {item}'s low point ({z})" if x == "depth"
+                 else f"stage ({z})")
+        images["class_ratios"] = plot_class_ratios(
+            folder / "n_ratio_by_class.png", data["class_bands"], x=x, x_label=label,
+            item=item)
+    if data["stage_bias_histogram"] is not None:
         images["stage_bias_hist"] = plot_stage_bias(
-            folder / "stage_bias_histograms.png",
-            frame["stage_bias_unadjusted"].to_numpy(dtype=float),
-            frame["stage_bias_adjusted"].to_numpy(dtype=float),
-            unit=z,
-        )
+            folder / "stage_bias_histograms.png", data["stage_bias_histogram"], unit=z,
+            item=item)
     picks = representative_cells(data["friction_factor"])
     cell_stage = _rows_of_cells(data["cell_stage_path"], list(picks.values()))
     curves = {}

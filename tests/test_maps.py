@@ -192,13 +192,13 @@ def test_plots_write_deterministic_pngs(tmp_path):
     curve = pd.DataFrame({"stage": [0.0, 1.0, 2.0], "volume": [0.0, 1.0, 4.0],
                           "flat_volume": [0.0, 2.0, 4.0], "hydraulic_radius": [0.0, 0.8, 1.7],
                           "flat_hydraulic_radius": [0.0, 1.0, 2.0]})
-    single = plots.plot_class_ratios(tmp_path / "c.png", frame)
+    single = plots.plot_class_ratios(tmp_path / "c.png", plots.ratio_bands(frame, x="depth"))
     assert single.read_bytes()[:4] == b"\x89PNG"
     outputs = {}
     for name in ("a", "b"):
         outputs[name] = [
-            plots.plot_stage_bias(tmp_path / name / "h.png", rng.normal(0.2, 0.1, 50) * 0 + 0.1,
-                                  np.zeros(50)),
+            plots.plot_stage_bias(tmp_path / name / "h.png", plots.stage_bias_histogram(
+                rng.normal(0.2, 0.1, 50) * 0 + 0.1, np.zeros(50))),
             plots.plot_cell_curves(tmp_path / name / "k.png", {"one": curve}),
         ]
     for first, second in zip(outputs["a"], outputs["b"], strict=True):

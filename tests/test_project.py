@@ -317,17 +317,3 @@ def test_demo_project_is_valid_and_names_the_demo_files():
     assert names == set(DEMO_FILES)
     assert (project.families["source"], project.families["target"]) == ("flat", "subgrid")
     assert project.inputs["class_field"] == "landcover"
-
-
-def test_stage_error_summary_weighted_by_conveyance():
-    from ntrans.project import _stats
-
-    # by hand: values 1, 2, 10 with weights 1, 1, 8 -> weighted median 10 (cumulative
-    # weight passes half of 10 at the third value), weighted mean |e| = (1 + 2 + 80) / 10
-    stats = _stats([1.0, -2.0, 10.0, float("nan")], [1.0, 1.0, 8.0, 5.0])
-    assert stats["count"] == 3
-    assert stats["median"] == 1.0
-    assert stats["weighted_median"] == 10.0
-    assert stats["weighted_mean_abs"] == pytest.approx(8.3, rel=1e-12)  # exact arithmetic
-    unweighted = _stats([1.0, -2.0, 10.0])
-    assert unweighted["weighted_median"] is None  # no weights, no weighted figures

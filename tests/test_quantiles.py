@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 import ntrans.quantiles as quantiles
-from ntrans.quantiles import SpilledQuantiles
+from ntrans.quantiles import SourceQuantiles, SpilledQuantiles
 from ntrans.translate import weighted_quantile
 
 QS = [0.0, 0.1, 0.37, 0.5, 0.9, 1.0]
@@ -75,6 +75,65 @@ def test_spilled_quantiles_are_the_whole_arrays_quantiles(tmp_path, monkeypatch,
                                    atol=0)
 
 
+@pytest.mark.parametrize("kind", ["spread", "ties", "equal"])
+@pytest.mark.parametrize("weighted", [True, False])
+def test_source_quantiles_read_twice_are_the_whole_arrays_quantiles(kind, weighted):
+    # the same references as the spill file's (numpy.quantile, the weighted mid-step
+    # ECDF), from values a source gives again on every pass, in chunks of 37
+    rng = np.random.default_rng(7)
+    n, n_groups = 3000, 4
+    values = sample(kind, n, rng)
+    groups = rng.integers(0, n_groups, n)
+    weights = rng.random(n)
+    weights[rng.random(n) < 0.1] = 0.0
+    passes = []
+
+    def read():
+        passes.append(1)
+        for a in range(0, n, 37):
+            yield groups[a:a + 37], values[a:a + 37], weights[a:a + 37] if weighted else None
+
+    source = SourceQuantiles(read, n_groups, weighted=weighted)
+    got = source.quantiles(QS)
+    assert len(passes) == 2  # histograms, then the values of the deciding bins
+    kept = np.isfinite(values) & ((weights > 0) if weighted else True)
+    for row in range(n_groups + 1):
+        sel = kept & ((groups == row) if row < n_groups else True)
+        expected = (weighted_quantile(values[sel], weights[sel], QS) if weighted
+                    else np.quantile(values[sel], QS))
+        np.testing.assert_allclose(got[row], expected, rtol=1e-12, atol=0)
+        assert source.last_counts[row] == np.count_nonzero(sel)
+    np.testing.assert_array_equal(source.counts(), source.last_counts)
+
+
+@pytest.mark.parametrize("kind", ["spread", "ties", "equal"])
+@pytest.mark.parametrize("q", [0.0, 0.25, 0.5, 0.9, 1.0])
+def test_lower_weighted_quantile_is_the_first_value_reaching_q(tmp_path, kind, q):
+    # definition: the smallest value whose cumulative weight, values ascending, reaches
+    # q x the total (the lower weighted quantile); ties of the cumulative weight with q x
+    # total are avoided by random weights, so round-off cannot move the answer
+    rng = np.random.default_rng(11)
+    n = 4000
+    values = sample(kind, n, rng)
+    weights = rng.random(n)
+    with SpilledQuantiles(tmp_path / "spill", 1) as spill:
+        spill.add(np.zeros(n, dtype=int), values, weights)
+        got = spill.quantiles([q], lower=True)[0, 0]
+    keep = np.isfinite(values)
+    v, w = values[keep], weights[keep]
+    order = np.argsort(v, kind="stable")
+    cum = np.cumsum(w[order])
+    at = min(int(np.searchsorted(cum, q * cum[-1], side="left")), v.size - 1)
+    assert got == v[order][at]
+
+
+def test_lower_quantile_needs_weights(tmp_path):
+    with SpilledQuantiles(tmp_path / "spill", 1, weighted=False) as spill, \
+            pytest.raises(ValueError, match="weighted"):
+        spill.add(np.zeros(3, dtype=int), np.ones(3))
+        spill.quantiles([0.5], lower=True)
+
+
 def test_spilled_quantiles_read_back_only_a_few_bins(tmp_path, monkeypatch):
     # what makes the memory bounded: the values read back are those of the bins around
     # each quantile, not all of them
@@ -82,9 +141,9 @@ def test_spilled_quantiles_read_back_only_a_few_bins(tmp_path, monkeypatch):
     seen = []
     original = quantiles._answer
 
-    def spy(values, *args):
+    def spy(values, *args, **kwargs):
         seen.append(values.size)
-        return original(values, *args)
+        return original(values, *args, **kwargs)
 
     monkeypatch.setattr(quantiles, "_answer", spy)
     with SpilledQuantiles(tmp_path / "spill", 1) as spill:
