@@ -40,6 +40,11 @@ BLOCK = 256
 #: maps are painted and written in windows of this many pixels a side (a multiple of
 #: BLOCK), so memory does not grow with the DEM
 MAP_WINDOW = 2048
+#: cells rasterised at a time (rasterio makes a GeoJSON-like mapping of each first: 500,000
+#: cells at once took about 400 MB)
+RASTERIZE_BATCH = 16_384
+#: GDAL block cache while the maps are written (written blocks wait there to be flushed)
+MAP_CACHE_BYTES = 64 * 2**20
 #: longer side of a quick-look's grid, in pixels: a larger DEM is drawn from every k-th
 #: pixel (decimated as it is read, nearest), the cells painted on that coarser grid
 QUICKLOOK_MAX = 1600
@@ -136,17 +141,22 @@ def face_median(face_values: pd.DataFrame, *, value: str, face_id: str = "face_i
 
 
 def cell_index_grid(geometries: Sequence[Any] | np.ndarray, *, transform: Any, shape: tuple[int, int]) -> np.ndarray:
-    """Index (0..n-1) of the cell whose polygon holds each pixel centre; -1 elsewhere."""
+    """Index (0..n-1) of the cell whose polygon holds each pixel centre; -1 elsewhere.
+
+    The cells are burnt :data:`RASTERIZE_BATCH` at a time, in order, into one grid (the
+    same pixels as one call: a later cell wins a pixel either way), since rasterio holds
+    every polygon of a call as a GeoJSON-like mapping.
+    """
     from rasterio import features
 
     geoms = list(geometries)
-    if not geoms:
-        return np.full(shape, -1, dtype=np.int32)
-    shapes = ((g, i + 1) for i, g in enumerate(geoms) if g is not None and not g.is_empty)
-    burnt = features.rasterize(
-        shapes, out_shape=shape, transform=transform, fill=0, dtype="int32", all_touched=False
-    )
-    return burnt.astype(np.int32) - 1
+    burnt = np.zeros(shape, dtype=np.int32)
+    for start in range(0, len(geoms), RASTERIZE_BATCH):
+        shapes = [(g, start + i + 1) for i, g in enumerate(geoms[start:start + RASTERIZE_BATCH])
+                  if g is not None and not g.is_empty]
+        if shapes:
+            features.rasterize(shapes, out=burnt, transform=transform, all_touched=False)
+    return burnt - 1
 
 
 def paint(index_grid: np.ndarray, values: np.ndarray) -> np.ndarray:
@@ -185,19 +195,30 @@ def write_geotiff(
 
 
 def write_face_layer(path: str | os.PathLike[str], faces: Any, values: pd.DataFrame, *, face_id: str = "face_id") -> Path:
-    """Write ``faces`` (a GeoDataFrame of lines with ``face_id``) joined to ``values``.
+    """Write ``faces`` joined to ``values`` (indexed by face id; its columns become
+    attributes), in face id order.
 
-    ``values`` is indexed by face id; its columns become attributes.
+    ``faces``: a GeoDataFrame of lines with ``face_id``, or the same layer as an
+    :class:`ntrans.outputs.EncodedLayer` (attributes and WKB: no geometry objects made).
     """
+    from .outputs import EncodedGeometry, EncodedLayer, write_geopackage
+
     p = Path(path)
     p.parent.mkdir(parents=True, exist_ok=True)
-    keep = [c for c in (face_id, "cell_a", "cell_b", "length") if c in faces.columns]
-    layer = faces[[*keep, "geometry"]].merge(values, left_on=face_id, right_index=True, how="left")
+    frame = faces.frame if isinstance(faces, EncodedLayer) else faces
+    keep = [c for c in (face_id, "cell_a", "cell_b", "length") if c in frame.columns]
+    if isinstance(faces, EncodedLayer):
+        layer = frame[keep].merge(values, left_on=face_id, right_index=True, how="left")
+        order = np.argsort(layer[face_id].to_numpy(), kind="mergesort")
+        layer = layer.iloc[order].reset_index(drop=True)
+        encoded = EncodedGeometry(faces.geometry.geometry_type, faces.geometry.wkb[order])
+        if p.exists():
+            p.unlink()
+        return write_geopackage(layer, p, "faces", encoded=encoded, crs=faces.crs)
+    layer = frame[[*keep, "geometry"]].merge(values, left_on=face_id, right_index=True, how="left")
     layer = layer.sort_values(face_id, kind="mergesort").reset_index(drop=True)
     if p.exists():
         p.unlink()
-    from .outputs import write_geopackage
-
     return write_geopackage(layer, p, "faces")
 
 
@@ -458,6 +479,9 @@ def _write_map_rasters(out: Path, names: list[str], values: dict[str, np.ndarray
     tree = shapely.STRtree(geoms)
     rows, cols = int(shape[0]), int(shape[1])
     with contextlib.ExitStack() as stack:
+        # GDAL keeps written blocks in its cache (by default 5 % of the machine's memory)
+        # until it is full: bounded, each block is compressed and written soon after
+        stack.enter_context(rasterio.Env(GDAL_CACHEMAX=MAP_CACHE_BYTES))
         targets = {}
         for name in names:
             _, _, _, description = MAP_SPECS[name]

@@ -510,6 +510,32 @@ def encode_geometry(geometry: np.ndarray) -> EncodedGeometry:
     return EncodedGeometry(geometry_type, shapely.to_wkb(geometry))
 
 
+@dataclass(frozen=True)
+class EncodedLayer:
+    """A GeoPackage layer read without making geometry objects: the attributes as
+    geopandas reads them, the geometry as :class:`EncodedGeometry` and the CRS (a pyproj
+    CRS or None)."""
+
+    frame: pd.DataFrame
+    geometry: EncodedGeometry
+    crs: Any
+
+
+def read_encoded_layer(path: str | os.PathLike[str], columns: list[str] | None = None,
+                       ) -> EncodedLayer:
+    """The attributes (``columns``, default all) and the WKB geometry of a GeoPackage's
+    first layer: 1.5 million face lines take about 110 MB as WKB against about 500 MB as
+    shapely objects, and :func:`write_geopackage` writes them back as they are."""
+    import pyogrio
+    import pyogrio.raw
+    import pyproj
+
+    frame = pyogrio.read_dataframe(path, columns=columns, read_geometry=False)
+    meta, _, wkb, _ = pyogrio.raw.read(path, columns=[])
+    crs = pyproj.CRS(meta["crs"]) if meta.get("crs") else None
+    return EncodedLayer(frame, EncodedGeometry(str(meta["geometry_type"]), wkb), crs)
+
+
 def write_geopackage(
     frame: Any, path: str | os.PathLike[str], layer: str, *, chunk_rows: int = 65_536,
     encoded: EncodedGeometry | None = None, crs: Any = None, geometry_name: str = "geometry",

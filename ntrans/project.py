@@ -43,6 +43,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import OutputError, OutputExistsError, ProjectFileError, collect_warnings
+from .memory import release_free_memory
 
 logger = logging.getLogger(__name__)
 
@@ -456,6 +457,7 @@ def _step(name: str, timings: dict[str, float]) -> Iterator[None]:
     yield
     timings[name] = time.perf_counter() - start
     logger.info("%s done in %.1f s", name, timings[name])
+    release_free_memory()  # what the step freed goes back before the next one
 
 
 def run_project(
@@ -696,12 +698,15 @@ def _gather(project: Project, folder: Path) -> dict[str, Any]:
     import pandas as pd
 
     from . import summaries
+    from .outputs import read_encoded_layer
 
     tables, adjust = folder / "tables", folder / "adjust"
     tsum = _read_json(tables / "tables_summary.json")
     asum = _read_json(adjust / "adjust_summary.json")
     cells = gpd.read_file(tables / "cells.gpkg")
-    faces = gpd.read_file(tables / "faces.gpkg") if (tables / "faces.gpkg").is_file() else None
+    faces = None  # the face lines as WKB: they are only written back, with the face values
+    if (tables / "faces.gpkg").is_file():
+        faces = read_encoded_layer(tables / "faces.gpkg", ["face_id", "cell_a", "cell_b", "length"])
     domain = asum.get("fit_domain", "faces")
     face_path = adjust / "face_adjustment.parquet"
     cell_path = adjust / "cell_adjustment.parquet"
@@ -751,7 +756,7 @@ def _gather(project: Project, folder: Path) -> dict[str, Any]:
     summary = {
         "units": units,
         "cells": int(len(cells)),
-        "faces": int(len(faces)) if faces is not None else int(len(face_values)),
+        "faces": int(len(faces.frame)) if faces is not None else int(len(face_values)),
         "stages": len(tsum.get("stage_values", [])) or None,
         "classes": int(len(n_by_class)),
         "reference": tsum.get("reference"),
@@ -841,12 +846,11 @@ def _write_plots(data: dict[str, Any], folder: Path) -> dict[str, Path]:
 
 
 def _rows_of_cells(path: Path, cells: list[Any]) -> Any:
-    """The stage table's rows of these cells only (in file order), not the whole table."""
-    import pyarrow.parquet as pq
+    """The stage table's rows of these cells only (in file order), one row group read at
+    a time, not the whole table."""
+    from .summaries import rows_with
 
-    wanted = [c.item() if hasattr(c, "item") else c for c in cells]
-    return pq.read_table(path, filters=[("cell_id", "in", wanted)] if wanted else None
-                         ).to_pandas()
+    return rows_with(path, "cell_id", [c.item() if hasattr(c, "item") else c for c in cells])
 
 
 def _window_text(project: Project) -> str:

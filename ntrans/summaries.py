@@ -64,6 +64,32 @@ def table_columns(path: str | os.PathLike[str]) -> list[str]:
     return list(pq.ParquetFile(path).schema_arrow.names)
 
 
+def rows_with(path: str | os.PathLike[str], column: str, wanted: Sequence[Any]) -> pd.DataFrame:
+    """The rows of a Parquet table whose ``column`` is one of ``wanted``, in file order,
+    reading one row group at a time (those whose min / max statistics rule every wanted
+    value out are skipped)."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+    import pyarrow.parquet as pq
+
+    file = pq.ParquetFile(path)
+    index = file.schema_arrow.get_field_index(column)
+    keys = pa.array(list(wanted), type=file.schema_arrow.field(index).type)
+    parts = []
+    for i in range(file.num_row_groups):
+        stats = file.metadata.row_group(i).column(index).statistics
+        if stats is not None and stats.has_min_max and len(keys):
+            inside = pc.and_(pc.greater_equal(keys, pa.scalar(stats.min, keys.type)),
+                             pc.less_equal(keys, pa.scalar(stats.max, keys.type)))
+            if not pc.any(inside).as_py():
+                continue
+        group = file.read_row_group(i)
+        parts.append(group.filter(pc.is_in(group.column(column), value_set=keys)))
+    if not parts:
+        return file.schema_arrow.empty_table().to_pandas()
+    return pa.concat_tables(parts).to_pandas()
+
+
 def whole_items(frames: Iterator[pd.DataFrame], key: str) -> Iterator[pd.DataFrame]:
     """The frames again, the rows of each frame's last ``key`` value held back and put in
     front of the next frame, so no item's contiguous rows are split between two."""

@@ -244,3 +244,25 @@ def test_maps_painted_window_by_window_are_the_whole_grid_painted(tmp_path, monk
         assert written[name].exists()
         # the quick-look's grid: every 4th pixel, ceil(530 / 4) x ceil(610 / 4)
         assert drawn[name] == ((133, 153), (133, 153), 4.0)
+
+
+@pytest.mark.parametrize("batch", [1, 7, 16_384])
+def test_cells_burnt_in_batches_are_one_rasterisation(monkeypatch, batch):
+    # reference: rasterio's rasterize of every cell in one call (a later cell wins a
+    # pixel); overlapping squares make the order matter, a None and an empty polygon
+    # are skipped without shifting the indexes
+    from affine import Affine
+    from rasterio import features
+
+    rng = np.random.default_rng(5)
+    corners = rng.uniform(0, 40, (60, 2))
+    cells = [shapely.box(x, y, x + rng.uniform(2, 9), y + rng.uniform(2, 9)) for x, y in corners]
+    cells[3], cells[10] = None, shapely.Polygon()
+    transform, shape = Affine(1.0, 0.0, 0.0, 0.0, -1.0, 50.0), (50, 50)  # 1 m pixels
+    monkeypatch.setattr(maps, "RASTERIZE_BATCH", batch)
+    got = maps.cell_index_grid(cells, transform=transform, shape=shape)
+    shapes = [(g, i + 1) for i, g in enumerate(cells) if g is not None and not g.is_empty]
+    want = features.rasterize(shapes, out_shape=shape, transform=transform, fill=0,
+                              dtype="int32") - 1
+    np.testing.assert_array_equal(got, want)
+    assert (got == 59).any() and not (got == 3).any()
