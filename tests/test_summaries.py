@@ -21,6 +21,12 @@ from ntrans import maps, plots, summaries
 CLASSES = ("grass", "trees", "")  # "" is the adjustment table's "no class"
 
 
+@pytest.fixture(autouse=True)
+def one_row_group_per_read(monkeypatch):
+    """Every read one row group (of a few rows): the carry-over paths run."""
+    monkeypatch.setattr(summaries, "READ_ROWS", 1)
+
+
 def face_table(seed: int, *, n_faces: int = 80, n_cells: int = 30, text_ids: bool = False,
                many_levels: bool = False) -> pd.DataFrame:
     """A face adjustment table: runs of 1-5 rows per face, boundary faces, NaN and
