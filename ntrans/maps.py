@@ -209,17 +209,18 @@ def write_face_layer(path: str | os.PathLike[str], faces: Any, values: pd.DataFr
     keep = [c for c in (face_id, "cell_a", "cell_b", "length") if c in frame.columns]
     if isinstance(faces, EncodedLayer):
         layer = frame[keep].merge(values, left_on=face_id, right_index=True, how="left")
-        order = np.argsort(layer[face_id].to_numpy(), kind="mergesort")
-        layer = layer.iloc[order].reset_index(drop=True)
+    else:
+        layer = frame[[*keep, "geometry"]].merge(values, left_on=face_id, right_index=True,
+                                                 how="left")
+    order = np.argsort(layer[face_id].to_numpy(), kind="mergesort")
+    layer = layer.iloc[order].reset_index(drop=True)
+    encoded, crs = None, None
+    if isinstance(faces, EncodedLayer):
         encoded = EncodedGeometry(faces.geometry.geometry_type, faces.geometry.wkb[order])
-        if p.exists():
-            p.unlink()
-        return write_geopackage(layer, p, "faces", encoded=encoded, crs=faces.crs)
-    layer = frame[[*keep, "geometry"]].merge(values, left_on=face_id, right_index=True, how="left")
-    layer = layer.sort_values(face_id, kind="mergesort").reset_index(drop=True)
+        crs = faces.crs
     if p.exists():
         p.unlink()
-    return write_geopackage(layer, p, "faces")
+    return write_geopackage(layer, p, "faces", encoded=encoded, crs=crs)
 
 
 # --------------------------------------------------------------------------- quick-looks

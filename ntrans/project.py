@@ -727,7 +727,8 @@ def _gather(project: Project, folder: Path) -> dict[str, Any]:
             cell_values[name] = (med[column].reindex(ids).to_numpy(dtype=float)
                                  if column in med.columns else np.nan)
     else:  # over every face of the cell
-        present = [c for c in per_cell if c in summaries.table_columns(face_path)]
+        columns = set(summaries.table_columns(face_path))
+        present = [c for c in per_cell if c in columns]
         med = summaries.cell_medians_over_faces(face_path, cell_ids=ids, values=present,
                                                 work_dir=folder)
         for column, name in per_cell.items():

@@ -1,7 +1,9 @@
 """Exact quantiles of more values than a job should hold in memory, by group.
 
-A job adds values chunk by chunk (one tile's at a time) and they go to a spill file on
-disk.  The quantiles take two passes over the file: one makes a histogram per group on
+The values are read chunk by chunk, twice: from a spill file on disk that a job fills
+one tile at a time (:class:`SpilledQuantiles`), or from a source that gives them again
+on every call, such as a few columns of a Parquet table (:class:`SourceQuantiles`).  The
+quantiles take two passes over the values: one makes a histogram per group on
 fixed bins, which says which bins hold the values each quantile needs (the value where
 the cumulative weight or count crosses it and its neighbours); the other reads back only
 those bins' values, which are sorted and interpolated.  Memory: the histograms (two
@@ -72,6 +74,8 @@ class BinnedQuantiles:
         self.lo, self.hi = float(span[0]), float(span[1])
         self.n_bins = int(n_bins)
         self.weighted = bool(weighted)
+        #: values counted by the last :meth:`quantiles` call, per group and in all
+        self.last_counts: np.ndarray | None = None
 
     def _source(self) -> Iterator[Chunk]:
         """(groups, values, weights or None, columns or None) chunk by chunk, from the

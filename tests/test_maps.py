@@ -266,3 +266,29 @@ def test_cells_burnt_in_batches_are_one_rasterisation(monkeypatch, batch):
                               dtype="int32") - 1
     np.testing.assert_array_equal(got, want)
     assert (got == 59).any() and not (got == 3).any()
+
+
+def test_face_layer_from_wkb_is_the_face_layer_from_geometry(tmp_path):
+    # the run reads the face lines as WKB (no geometry objects) and writes them back with
+    # their values: the same layer as from the GeoDataFrame, read back
+    import geopandas as gpd
+
+    from ntrans.outputs import read_encoded_layer, write_geopackage
+
+    lines = [shapely.LineString([(i, 0), (i, 1 + i % 3)]) for i in range(12)]
+    order = np.random.default_rng(2).permutation(12)  # a layer not in face id order
+    faces = gpd.GeoDataFrame({"face_id": order, "cell_a": order + 100,
+                              "cell_b": np.where(order % 4 == 0, np.nan, order + 200),
+                              "length": 1.0 + order},
+                             geometry=[lines[i] for i in order], crs="EPSG:32633")
+    write_geopackage(faces, tmp_path / "faces.gpkg", "faces")
+    values = pd.DataFrame({"n_ratio_median": np.linspace(0.8, 1.2, 10)},
+                          index=pd.Index(np.arange(10), name="face_id"))  # two faces without
+    maps.write_face_layer(tmp_path / "a.gpkg", faces, values)
+    maps.write_face_layer(tmp_path / "b.gpkg", read_encoded_layer(tmp_path / "faces.gpkg"),
+                          values)
+    a, b = gpd.read_file(tmp_path / "a.gpkg"), gpd.read_file(tmp_path / "b.gpkg")
+    assert b["face_id"].tolist() == list(range(12))
+    pd.testing.assert_frame_equal(a.drop(columns="geometry"), b.drop(columns="geometry"))
+    assert a.crs == b.crs
+    assert shapely.equals_exact(a.geometry.to_numpy(), b.geometry.to_numpy(), 0.0).all()
