@@ -20,7 +20,6 @@ linear quantiles), to round-off; memory is a row group, a partition and per-item
 
 from __future__ import annotations
 
-import contextlib
 import math
 import os
 import tempfile
@@ -171,10 +170,10 @@ def cell_medians_over_faces(path: str | os.PathLike[str], *, cell_ids: np.ndarra
     per_part = max(math.ceil(n_cells / n_parts), 1)
     index = pd.Index(cell_ids)
     dtype = np.dtype([("cell", "<i8"), *((f"v{i}", "<f8") for i in range(len(values)))])
-    with tempfile.TemporaryDirectory(dir=work_dir, prefix="_cell_medians-") as tmp, \
-            contextlib.ExitStack() as files:
+    with tempfile.TemporaryDirectory(dir=work_dir, prefix="_cell_medians-") as tmp:
         paths = [Path(tmp) / f"part-{p:05d}.bin" for p in range(n_parts)]
-        sinks = [files.enter_context(open(p, "wb")) for p in paths]
+        for p in paths:
+            p.touch()
         for frame in read_row_groups(path, ["face_id", "cell_a", "cell_b", *values]):
             v = np.array(frame[values].to_numpy(dtype=float))  # a copy: may be read-only
             v[~np.isfinite(v)] = np.nan
@@ -202,9 +201,10 @@ def cell_medians_over_faces(path: str | os.PathLike[str], *, cell_ids: np.ndarra
                 rows, part = rows[order], part[order]
                 bounds = np.searchsorted(part, np.arange(n_parts + 1))
                 for p in np.flatnonzero(np.diff(bounds)):
-                    rows[bounds[p]:bounds[p + 1]].tofile(sinks[p])
-        for sink in sinks:
-            sink.close()
+                    # opened for each write: hundreds of partitions must not hold as many
+                    # open files (the limit is 256 on some systems)
+                    with open(paths[p], "ab") as sink:
+                        rows[bounds[p]:bounds[p + 1]].tofile(sink)
         for p in paths:
             rows = np.fromfile(p, dtype=dtype)
             p.unlink()
