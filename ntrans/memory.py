@@ -41,12 +41,21 @@ def _libc():
 
 
 def release_free_memory() -> bool:
-    """Return freed heap memory to the OS (glibc); True if anything could be done."""
+    """Return freed heap memory to the OS: glibc's heap and, when pyarrow is loaded, its
+    own memory pool (mimalloc or jemalloc, which keep freed Parquet buffers); True if
+    anything could be done."""
+    import sys
+
+    done = False
+    arrow = sys.modules.get("pyarrow")
+    if arrow is not None:
+        arrow.default_memory_pool().release_unused()
+        done = True
     libc = _libc()
-    if libc is None:
-        return False
-    libc.malloc_trim(0)
-    return True
+    if libc is not None:
+        libc.malloc_trim(0)
+        done = True
+    return done
 
 
 #: glibc ``mallopt`` parameters

@@ -638,6 +638,7 @@ def _products(
 ) -> dict[str, Any]:
     """Maps, plots and the report from the tables in ``folder``; returns the summary."""
     data = _gather(project, folder)
+    release_free_memory()  # the table reads' buffers, before the maps
     data["notes"] = list(notes)
     steps = ["maps", "plots", "report"]
     images: dict[str, Any] = {}
