@@ -905,7 +905,9 @@ def _warn_if_short_of_memory(n_cells: int, n_faces: int, n_window: int, threads:
 
 
 #: the class fit's memory per item-stage wet in several classes (kept one by one; most of
-#: it the least-squares solver's arrays): measured about 280 bytes at 10^8 pixels
+#: it the least-squares solver's arrays): about 280 bytes at 10^8 pixels with a sparse
+#: matrix Jacobian, less with the operator (a synthetic fit: 358 -> 275 at its peak); kept
+#: as the bound
 FIT_BYTES_PER_MIXED_ENTRY = 300.0
 
 

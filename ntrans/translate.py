@@ -1132,6 +1132,7 @@ def solve_class_n(
     terms themselves; the quantiles are then read from it, in bounded memory.
     """
     from scipy.optimize import least_squares
+    from scipy.sparse.linalg import LinearOperator
 
     n_source = np.asarray(n_source, dtype=float)
     n_cls = n_source.size
@@ -1202,7 +1203,8 @@ def solve_class_n(
     # share of class c in the entry's sum (sum_c M_c n_c^expo for the lumped composites,
     # sum_c M_c / n_c for the strip sums), so an entry has one nonzero per class it holds
     # (a dense matrix would cost entries x classes; finite differences one more residual
-    # per class and step)
+    # per class and step).  It goes to the solver as an operator: a sparse matrix would be
+    # kept by it with a scaled copy, about a quarter more memory at the fit
     column = np.full(n_cls, -1)
     column[free] = np.arange(free.size)
     lumped = terms.mixed_lumped
@@ -1211,23 +1213,34 @@ def solve_class_n(
     entry = np.repeat(np.arange(w_mixed.size), np.diff(sums.indptr))[keep]
     entry_class, entry_sum = sums.indices[keep], sums.data[keep]
     del keep
-    # one CSR layout for every call (the mixed entries' rows, then one row per class of
-    # single-class sums); each call only fills in the values
-    indptr = np.concatenate([[0], np.cumsum(np.bincount(entry, minlength=w_mixed.size)),
-                             entry.size + np.arange(1, fitted.size + 1)])
-    indices = np.concatenate([column[entry_class], column[fitted]]).astype(np.int32)
     shape = (w_mixed.size + fitted.size, free.size)
 
-    def jacobian(x_free: np.ndarray) -> sparse.csr_matrix:
+    entry_column = column[entry_class]
+    one_column = column[fitted]
+    n_mixed = w_mixed.size
+
+    def jacobian(x_free: np.ndarray) -> LinearOperator:
         n = np.exp(full_x(x_free))
         part = entry_sum * (n[entry_class] ** lumped.expo if lumped is not None
                             else 1.0 / n[entry_class])
-        total = np.bincount(entry, weights=part, minlength=w_mixed.size)
+        total = np.bincount(entry, weights=part, minlength=n_mixed)
         alive = total > 0 if lumped is None else (total > 0) & lumped.wet
         factor = np.where(alive, -sqrt_w_mixed / np.where(alive, total, 1.0), 0.0)
         part *= factor[entry]
-        return sparse.csr_matrix((np.concatenate([part, -sqrt_w_one]), indices, indptr),
-                                 shape=shape)
+
+        def matvec(v: np.ndarray) -> np.ndarray:
+            v = np.ravel(v)
+            return np.concatenate([np.bincount(entry, weights=part * v[entry_column],
+                                               minlength=n_mixed),
+                                   -sqrt_w_one * v[one_column]])
+
+        def rmatvec(u: np.ndarray) -> np.ndarray:
+            u = np.ravel(u)
+            g = np.bincount(entry_column, weights=part * u[entry], minlength=free.size)
+            np.add.at(g, one_column, -sqrt_w_one * u[n_mixed:])
+            return g
+
+        return LinearOperator(shape, matvec=matvec, rmatvec=rmatvec, dtype=float)
 
     success, cost = True, 0.0
     n_target = n_source.copy()
