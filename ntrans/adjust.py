@@ -612,7 +612,7 @@ def adjust_roughness(
             dem, cells, id_field=id_field, vertical_units=vertical_units,
             elevation_rule=elevation_rule, elevation_field=elevation_field,
             face_spacing=face_spacing, snap_tolerance=snap_tolerance, tile_size=tile_size,
-            connection=connection,
+            connection=connection, threads=threads,
         )
         dem_info, layer, geoms, ids = setup.dem, setup.layer, setup.geoms, setup.ids
         field_values, mesh, tiles = setup.field_values, setup.mesh, setup.tiles

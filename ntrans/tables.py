@@ -26,6 +26,7 @@ import logging
 import os
 import shutil
 import time
+from collections.abc import Callable
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -178,6 +179,13 @@ def _encode_early(geoms: np.ndarray) -> Future | None:
     return future
 
 
+def _block_as_wkb(fn: Callable[[Any], Any], job: Any) -> Any:
+    """``fn(job)`` for a block of faces, with its lines encoded as WKB on this thread."""
+    result = fn(job)
+    result.wkb  # noqa: B018 - encoded and kept by the result
+    return result
+
+
 @collection_paused()
 def prepare_mesh_job(
     dem: str | os.PathLike[str],
@@ -192,6 +200,7 @@ def prepare_mesh_job(
     tile_size: int,
     faces: bool = True,
     connection: Any = None,
+    threads: int | None = None,
 ) -> MeshJob:
     """Open the DEM, read and check the cells, build the faces and plan the tiles.
 
@@ -201,7 +210,8 @@ def prepare_mesh_job(
 
     Face spacing defaults to half a pixel and the snap tolerance to 1 % of a pixel
     (horizontal CRS units).  With a worker ``connection`` the faces are built block by
-    block on the workers.  Python's cyclic garbage collector is paused meanwhile
+    block on the workers; without one, ``threads`` blocks at a time in this process
+    (default: the tile threads, :func:`ntrans.cluster.default_threads`).  Python's cyclic garbage collector is paused meanwhile
     (:func:`ntrans.memory.collection_paused`).
     """
     from .inputs import elevation_field_values, open_dem, read_cells
@@ -238,6 +248,13 @@ def prepare_mesh_job(
                     return
                 left -= 1
                 yield fn(job)
+    else:
+        from .cluster import call, run_ordered
+
+        def map_blocks(fn, jobs):
+            # GEOS does the block's work with the GIL released; the blocks only read the
+            # shared cell polygons, and come back in order (the same faces to the bit)
+            return run_ordered(_block_as_wkb, fn, jobs, threads=threads, desc="face blocks")
 
     mesh = (build_faces(geoms, snap_tolerance=snap, map_blocks=map_blocks, lines_as_wkb=True)
             if faces else None)
@@ -362,7 +379,7 @@ def build_tables(
             dem, cells, id_field=id_field, vertical_units=vertical_units,
             elevation_rule=elevation_rule, elevation_field=elevation_field,
             face_spacing=face_spacing, snap_tolerance=snap_tolerance,
-            tile_size=tile_size, faces=faces, connection=connection,
+            tile_size=tile_size, faces=faces, connection=connection, threads=threads,
         )
         dem_info, layer, ids, geoms = job.dem, job.layer, job.ids, job.geoms
         encoded = _encode_early(geoms)

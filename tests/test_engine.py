@@ -5,6 +5,7 @@ from __future__ import annotations
 import distributed  # noqa: F401  (loads its config defaults)
 import numpy as np
 import pandas as pd
+import pyogrio.raw
 import pytest
 import shapely
 from affine import Affine
@@ -370,20 +371,44 @@ def test_script_without_main_guard_gets_one_clear_error(tmp_path):
 
 
 @pytest.mark.parametrize("threads", [2, 3])
-def test_threads_equal_one_thread_to_the_bit(mesh, tmp_path, threads):
+def test_threads_equal_one_thread_to_the_bit(mesh, tmp_path, monkeypatch, threads):
+    import functools
+    import threading
+
+    import ntrans.mesh
     from ntrans.tables import build_tables
 
+    # face blocks of 3 cells, so that the mesh too is built several blocks at a time
+    ran_on: dict[str, set] = {"one": set(), "many": set()}
+    run_block_job = ntrans.mesh.run_block_job
+
+    def recorded(job, *, into):
+        into.add(threading.current_thread().name)
+        return run_block_job(job)
+
+    monkeypatch.setattr(ntrans.mesh, "build_faces",
+                        functools.partial(ntrans.mesh.build_faces, block_cells=3))
     dem, cells = mesh
-    build_tables(dem, cells, out=tmp_path / "one", stages="9:12:0.5", tile_size=8, threads=1)
-    res = build_tables(dem, cells, out=tmp_path / "many", stages="9:12:0.5", tile_size=8,
-                       threads=threads)
-    assert res.n_tiles > threads  # several tiles really run at once
+    results = {}
+    for name, n in (("one", 1), ("many", threads)):
+        monkeypatch.setattr(ntrans.mesh, "run_block_job",
+                            functools.partial(recorded, into=ran_on[name]))
+        results[name] = build_tables(dem, cells, out=tmp_path / name, stages="9:12:0.5",
+                                     tile_size=8, threads=n)
+    assert results["many"].n_tiles > threads  # several tiles really run at once
+    assert ran_on["one"] == {threading.current_thread().name}
+    assert ran_on["many"] and threading.current_thread().name not in ran_on["many"]
     for name in ("cell_stage.parquet", "face_stage.parquet"):
         # same tiles, same functions, results taken in tile order: identical, row order
         # included
         pd.testing.assert_frame_equal(pd.read_parquet(tmp_path / "one" / name),
                                       pd.read_parquet(tmp_path / "many" / name),
                                       check_exact=True)
+    for name in ("cells.gpkg", "faces.gpkg"):
+        one, many = (pyogrio.raw.read(tmp_path / run / name) for run in ("one", "many"))
+        assert one[2].tolist() == many[2].tolist()  # the same geometry, byte for byte
+        for a, b in zip(one[3], many[3], strict=True):
+            np.testing.assert_array_equal(a, b)
 
 
 def test_default_threads_one_per_core_up_to_four(monkeypatch):
