@@ -126,9 +126,17 @@ class ClassStats:
 
 def _pairs(item: np.ndarray, cls: np.ndarray, n_classes: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Unique (item, class) pairs sorted by item then class, and the inverse index."""
-    key = item.astype(np.int64) * max(n_classes, 1) + cls.astype(np.int64)
-    uniq, inv = np.unique(key, return_inverse=True)
-    return uniq // max(n_classes, 1), uniq % max(n_classes, 1), inv
+    width = max(n_classes, 1)
+    key = item.astype(np.int64) * width + cls.astype(np.int64)
+    span = int(key.max()) + 1 if key.size else 0
+    if key.size and int(key.min()) >= 0 and span <= 4 * key.size + 4096:
+        # a tile's keys span a small range: counted instead of sorted (same result)
+        seen = np.bincount(key, minlength=span) > 0
+        uniq = np.flatnonzero(seen)
+        inv = (np.cumsum(seen) - 1)[key]
+    else:
+        uniq, inv = np.unique(key, return_inverse=True)
+    return uniq // width, uniq % width, inv
 
 
 def _aggregator(inv: np.ndarray, n_pairs: int) -> sparse.csr_matrix:

@@ -15,6 +15,7 @@ from ntrans.translate import (
     FaceGeometry,
     Family,
     FlatGeometry,
+    _pairs,
     bias_summary,
     bias_summary_spilled,
     combine_fit_terms,
@@ -626,3 +627,22 @@ def test_cell_strip_sums_are_the_per_pixel_sums():
             expected[pair, j] = np.sum(area[sel] * h ** (5.0 / 3.0))
     np.testing.assert_allclose(st.strip, expected, rtol=1e-12, atol=1e-12)
     assert st.strip[st.item == 0][:, 1].tolist() == [0.0] * int(np.sum(st.item == 0))
+
+
+@pytest.mark.parametrize("n_items, n_classes, size, seed", [
+    (1, 1, 1, 0), (7, 3, 50, 1), (1000, 4, 200_000, 2),  # a tile: keys span a small range
+    (500_000, 50, 300, 3),  # few keys over a wide range
+    (0, 2, 0, 4),
+])
+def test_pairs_are_numpy_unique(n_items, n_classes, size, seed):
+    """(item, class) pairs and the inverse index: exactly what ``np.unique`` of the
+    combined key gives, whichever way the keys are grouped (counted or sorted)."""
+    rng = np.random.default_rng(seed)
+    item = rng.integers(0, max(n_items, 1), size)
+    cls = rng.integers(0, n_classes, size)
+    pair_item, pair_cls, inv = _pairs(item, cls, n_classes)
+    uniq, ref_inv = np.unique(item * n_classes + cls, return_inverse=True)
+    np.testing.assert_array_equal(pair_item, uniq // n_classes)
+    np.testing.assert_array_equal(pair_cls, uniq % n_classes)
+    np.testing.assert_array_equal(inv, ref_inv)
+    assert inv.dtype == ref_inv.dtype and pair_item.dtype == np.int64
