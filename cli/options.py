@@ -161,9 +161,9 @@ threads = click.option(
     type=click.IntRange(min=1),
     default=None,
     metavar="N",
-    help="Run N tiles at once in this process (default: one per core, up to 4; 1 runs "
-    "them one at a time); the same results, and memory grows by one tile's work per "
-    "thread.",
+    help="Run N tiles (and blocks of the face build) at once in this process (default: "
+    "one per core, up to 4; 1 runs them one at a time); the same results, and memory "
+    "grows by one tile's work per thread.",
 )
 
 scheduler = click.option(

@@ -560,8 +560,8 @@ def adjust_roughness(
     csv : also write the face and cell tables as CSV.
     workers, scheduler : run the tiles on a local Dask cluster of ``workers`` processes or
         on an existing scheduler (both passes); results are the same as in-process.
-    threads : without workers: tiles at once in this process (default: one per core, up
-        to four; 1 for one at a time); same results.
+    threads : without workers: tiles (and face blocks) at once in this process
+        (default: one per core, up to four; 1 for one at a time); same results.
     progress : progress bar on stderr.
 
     Returns

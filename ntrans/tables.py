@@ -211,7 +211,8 @@ def prepare_mesh_job(
     Face spacing defaults to half a pixel and the snap tolerance to 1 % of a pixel
     (horizontal CRS units).  With a worker ``connection`` the faces are built block by
     block on the workers; without one, ``threads`` blocks at a time in this process
-    (default: the tile threads, :func:`ntrans.cluster.default_threads`).  Python's cyclic garbage collector is paused meanwhile
+    (default: the tile threads, :func:`ntrans.cluster.default_threads`).  Python's
+    cyclic garbage collector is paused meanwhile
     (:func:`ntrans.memory.collection_paused`).
     """
     from .inputs import elevation_field_values, open_dem, read_cells
@@ -333,9 +334,9 @@ def build_tables(
     csv : also write the stage tables as CSV.
     tile_size : tile edge in DEM pixels.
     workers, scheduler : run tiles on a local Dask cluster / an existing scheduler.
-    threads : without workers: tiles at once in this process (default: one per core, up
-        to four; 1 for one at a time); the same results, memory grows by one tile's work
-        per thread.
+    threads : without workers: tiles (and face blocks) at once in this process
+        (default: one per core, up to four; 1 for one at a time); the same results,
+        memory grows by one tile's work per thread.
     progress : show a progress bar on stderr.
 
     Returns
