@@ -145,18 +145,63 @@ def cell_index_grid(geometries: Sequence[Any] | np.ndarray, *, transform: Any, s
 
     The cells are burnt :data:`RASTERIZE_BATCH` at a time, in order, into one grid (the
     same pixels as one call: a later cell wins a pixel either way), since rasterio holds
-    every polygon of a call as a GeoJSON-like mapping.
+    every polygon of a call as a GeoJSON-like mapping.  The mappings are built from one
+    coordinate array per batch (:func:`polygon_mappings`), not polygon by polygon.
     """
     from rasterio import features
 
-    geoms = list(geometries)
+    from .memory import collection_paused
+
+    geoms = np.asarray(list(geometries), dtype=object)
     burnt = np.zeros(shape, dtype=np.int32)
-    for start in range(0, len(geoms), RASTERIZE_BATCH):
-        shapes = [(g, start + i + 1) for i, g in enumerate(geoms[start:start + RASTERIZE_BATCH])
-                  if g is not None and not g.is_empty]
-        if shapes:
-            features.rasterize(shapes, out=burnt, transform=transform, all_touched=False)
+    for start in range(0, geoms.size, RASTERIZE_BATCH):
+        with collection_paused():  # many small lists, none of them cyclic
+            mappings = polygon_mappings(geoms[start:start + RASTERIZE_BATCH])
+            shapes = [(m, start + i + 1) for i, m in enumerate(mappings) if m is not None]
+            if shapes:
+                features.rasterize(shapes, out=burnt, transform=transform, all_touched=False)
+            del shapes, mappings
     return burnt - 1
+
+
+def polygon_mappings(geometries: np.ndarray) -> list[Any]:
+    """GeoJSON-like mappings (``{"type", "coordinates"}``, x / y only) of polygons and
+    multipolygons, None for missing or empty ones; other geometries are returned as they
+    are.
+
+    The coordinates of all of them are taken out in one array and cut into rings by their
+    counts: about a tenth of the time of each geometry's ``__geo_interface__`` (the same
+    coordinates, so the same pixels when burnt).
+    """
+    import shapely
+
+    geoms = np.asarray(geometries, dtype=object)
+    out: list[Any] = [None] * geoms.size
+    if geoms.size == 0:
+        return out
+    kind = shapely.get_type_id(geoms)
+    empty = shapely.is_missing(geoms) | shapely.is_empty(geoms)
+    areal = np.flatnonzero(~empty & ((kind == 3) | (kind == 6)))
+    for i in np.flatnonzero(~empty & (kind != 3) & (kind != 6)).tolist():
+        out[i] = geoms[i]
+    if areal.size == 0:
+        return out
+    parts, part_of = shapely.get_parts(geoms[areal], return_index=True)
+    rings, ring_of = shapely.get_rings(parts, return_index=True)
+    coords, coord_of = shapely.get_coordinates(rings, return_index=True)
+    points = coords.tolist()
+    ring_end = np.cumsum(np.bincount(coord_of, minlength=rings.size)).tolist()
+    ring_list = [points[a:b] for a, b in zip([0, *ring_end[:-1]], ring_end, strict=True)]
+    part_end = np.cumsum(np.bincount(ring_of, minlength=parts.size)).tolist()
+    part_rings = [ring_list[a:b] for a, b in zip([0, *part_end[:-1]], part_end, strict=True)]
+    geom_end = np.cumsum(np.bincount(part_of, minlength=areal.size)).tolist()
+    for i, a, b, multi in zip(areal.tolist(), [0, *geom_end[:-1]], geom_end,
+                              (kind[areal] == 6).tolist(), strict=True):
+        if multi:
+            out[i] = {"type": "MultiPolygon", "coordinates": part_rings[a:b]}
+        else:
+            out[i] = {"type": "Polygon", "coordinates": part_rings[a]}
+    return out
 
 
 def paint(index_grid: np.ndarray, values: np.ndarray) -> np.ndarray:

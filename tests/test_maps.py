@@ -246,6 +246,34 @@ def test_maps_painted_window_by_window_are_the_whole_grid_painted(tmp_path, monk
         assert drawn[name] == ((133, 153), (133, 153), 4.0)
 
 
+#: a polygon with two holes, one of them a triangle
+HOLED = shapely.Polygon([(5, 5), (25, 5), (25, 25), (5, 25)],
+                        [[(8, 8), (14, 8), (14, 14), (8, 14)], [(17.5, 17.5), (22, 17.5), (22, 22)]])
+
+
+def test_polygon_mappings_are_the_geo_interface():
+    # reference: each geometry's own __geo_interface__ (the GeoJSON-like mapping rasterio
+    # makes of it), compared as JSON (tuples and lists write the same)
+    import json
+
+    line = shapely.LineString([(0, 0), (3, 4)])
+    geoms = np.array([shapely.box(0, 0, 1, 2), None, shapely.Polygon(), HOLED,
+                      shapely.MultiPolygon([shapely.box(30, 0, 31, 1), HOLED]), line,
+                      shapely.MultiPolygon(), shapely.box(2, 2, 3, 3)], dtype=object)
+    got = maps.polygon_mappings(geoms)
+    assert len(got) == geoms.size
+    for geom, mapping in zip(geoms, got, strict=True):
+        if geom is None or geom.is_empty:
+            assert mapping is None
+        elif geom is line:
+            assert mapping is line  # not a polygon: left to rasterio as it is
+        else:
+            want = geom.__geo_interface__
+            assert mapping["type"] == want["type"]
+            assert json.dumps(mapping["coordinates"]) == json.dumps(want["coordinates"])
+    assert maps.polygon_mappings(np.array([], dtype=object)) == []
+
+
 @pytest.mark.parametrize("batch", [1, 7, 16_384])
 def test_cells_burnt_in_batches_are_one_rasterisation(monkeypatch, batch):
     # reference: rasterio's rasterize of every cell in one call (a later cell wins a
@@ -258,6 +286,7 @@ def test_cells_burnt_in_batches_are_one_rasterisation(monkeypatch, batch):
     corners = rng.uniform(0, 40, (60, 2))
     cells = [shapely.box(x, y, x + rng.uniform(2, 9), y + rng.uniform(2, 9)) for x, y in corners]
     cells[3], cells[10] = None, shapely.Polygon()
+    cells[20], cells[30] = HOLED, shapely.MultiPolygon([shapely.box(41, 41, 46, 44), HOLED])
     transform, shape = Affine(1.0, 0.0, 0.0, 0.0, -1.0, 50.0), (50, 50)  # 1 m pixels
     monkeypatch.setattr(maps, "RASTERIZE_BATCH", batch)
     got = maps.cell_index_grid(cells, transform=transform, shape=shape)
