@@ -170,8 +170,8 @@ def polygon_mappings(geometries: np.ndarray) -> list[Any]:
     are.
 
     The coordinates of all of them are taken out in one array and cut into rings by their
-    counts: about a tenth of the time of each geometry's ``__geo_interface__`` (the same
-    coordinates, so the same pixels when burnt).
+    counts: about a quarter of the time of each geometry's ``__geo_interface__`` (the
+    same coordinates, so the same pixels when burnt).
     """
     import shapely
 

@@ -250,7 +250,7 @@ def prepare_mesh_job(
                 left -= 1
                 yield fn(job)
     else:
-        from .cluster import call, run_ordered
+        from .cluster import run_ordered
 
         def map_blocks(fn, jobs):
             # GEOS does the block's work with the GIL released; the blocks only read the
