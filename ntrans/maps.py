@@ -186,21 +186,21 @@ def polygon_mappings(geometries: np.ndarray) -> list[Any]:
         out[i] = geoms[i]
     if areal.size == 0:
         return out
+    def spans(owner: np.ndarray, n: int) -> list[tuple[int, int]]:
+        # (start, end) of each owner's run in an array sorted by owner
+        ends = np.cumsum(np.bincount(owner, minlength=n)).tolist()
+        return list(zip([0, *ends[:-1]], ends, strict=True))
+
     parts, part_of = shapely.get_parts(geoms[areal], return_index=True)
     rings, ring_of = shapely.get_rings(parts, return_index=True)
     coords, coord_of = shapely.get_coordinates(rings, return_index=True)
     points = coords.tolist()
-    ring_end = np.cumsum(np.bincount(coord_of, minlength=rings.size)).tolist()
-    ring_list = [points[a:b] for a, b in zip([0, *ring_end[:-1]], ring_end, strict=True)]
-    part_end = np.cumsum(np.bincount(ring_of, minlength=parts.size)).tolist()
-    part_rings = [ring_list[a:b] for a, b in zip([0, *part_end[:-1]], part_end, strict=True)]
-    geom_end = np.cumsum(np.bincount(part_of, minlength=areal.size)).tolist()
-    for i, a, b, multi in zip(areal.tolist(), [0, *geom_end[:-1]], geom_end,
-                              (kind[areal] == 6).tolist(), strict=True):
-        if multi:
-            out[i] = {"type": "MultiPolygon", "coordinates": part_rings[a:b]}
-        else:
-            out[i] = {"type": "Polygon", "coordinates": part_rings[a]}
+    ring_list = [points[a:b] for a, b in spans(coord_of, rings.size)]
+    part_rings = [ring_list[a:b] for a, b in spans(ring_of, parts.size)]
+    multi = (kind[areal] == 6).tolist()
+    for k, (i, (a, b)) in enumerate(zip(areal.tolist(), spans(part_of, areal.size), strict=True)):
+        out[i] = ({"type": "MultiPolygon", "coordinates": part_rings[a:b]} if multi[k]
+                  else {"type": "Polygon", "coordinates": part_rings[a]})
     return out
 
 
