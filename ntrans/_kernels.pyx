@@ -598,3 +598,82 @@ def strip_station_sums(ev, q_start, wet_end, b, c83, c53, is_level):
                 acc += k83[k] * x2 * root + (step if lvl[k] else 0.0)
             total[i] = acc
     return total_a
+
+
+def first_at_least(b, lo, hi, e):
+    """Per query i: the first index k in [lo[i], hi[i]) with ``b[k] >= e[i]``, else hi[i].
+
+    ``b`` is sorted (ascending) within every range; a bisection of the query's own range
+    only, so the search touches a few neighbouring values instead of the whole array.
+    """
+    cdef const double[::1] bb = _f64(b)
+    cdef const int64_t[::1] lo_ = _i64(lo)
+    cdef const int64_t[::1] hi_ = _i64(hi)
+    cdef const double[::1] e_ = _f64(e)
+    pos_a = np.empty(e_.shape[0], dtype=np.int64)
+    cdef int64_t[::1] pos = pos_a
+    cdef index_t i
+    cdef int64_t a, z, mid
+    cdef double x
+    with nogil:
+        for i in range(e_.shape[0]):
+            a = lo_[i]
+            z = hi_[i]
+            x = e_[i]
+            while a < z:
+                mid = a + (z - a) // 2
+                if bb[mid] < x:
+                    a = mid + 1
+                else:
+                    z = mid
+            pos[i] = a
+    return pos_a
+
+
+cdef inline double _at_least_zero(double x) noexcept nogil:
+    """``np.maximum(x, 0.0)``: NaN stays NaN, -0.0 stays -0.0."""
+    return x if (x >= 0.0 or x != x) else 0.0
+
+
+def ramp_table_values(pref, pair0, row, p, e, dry):
+    """Per query i: (wet length, wetted perimeter, flow area) of a face's ramp table.
+
+    ``s = pref[row[i]] - pair0[p[i]]`` (eight prefix sums: c_ds, c_ds b, c_ds b^2, c_dl,
+    c_dl b, d_ds, d_ds b, d_dl) and, at the stage ``x = e[i]`` above the pair's base,
+    W = x s0 - s1 + s5, P = x s3 - s4 + s7, A = (x^2 s0 - 2 x s1 + s2) / 2 + x s5 - s6,
+    each at least 0; 0 where ``dry[i]``.  The operations are those of the numpy form, in
+    its order, so the results are the same to the bit.
+    """
+    cdef const double[:, ::1] pr = np.ascontiguousarray(pref, dtype=np.float64)
+    cdef const double[:, ::1] p0 = np.ascontiguousarray(pair0, dtype=np.float64)
+    cdef const int64_t[::1] row_ = _i64(row)
+    cdef const int64_t[::1] p_ = _i64(p)
+    cdef const double[::1] e_ = _f64(e)
+    cdef const unsigned char[::1] dry_ = np.ascontiguousarray(dry, dtype=np.bool_).view(
+        np.uint8)
+    cdef index_t n = e_.shape[0]
+    wet_a, per_a, area_a = np.zeros(n), np.zeros(n), np.zeros(n)
+    cdef double[::1] wet = wet_a
+    cdef double[::1] per = per_a
+    cdef double[::1] area = area_a
+    cdef index_t i, r, q
+    cdef double x, s0, s1, s2, s3, s4, s5, s6, s7
+    with nogil:
+        for i in range(n):
+            if dry_[i]:
+                continue
+            r = row_[i]
+            q = p_[i]
+            x = e_[i]
+            s0 = pr[r, 0] - p0[q, 0]
+            s1 = pr[r, 1] - p0[q, 1]
+            s2 = pr[r, 2] - p0[q, 2]
+            s3 = pr[r, 3] - p0[q, 3]
+            s4 = pr[r, 4] - p0[q, 4]
+            s5 = pr[r, 5] - p0[q, 5]
+            s6 = pr[r, 6] - p0[q, 6]
+            s7 = pr[r, 7] - p0[q, 7]
+            wet[i] = _at_least_zero(x * s0 - s1 + s5)
+            per[i] = _at_least_zero(x * s3 - s4 + s7)
+            area[i] = _at_least_zero(0.5 * (x * x * s0 - 2.0 * x * s1 + s2) + x * s5 - s6)
+    return wet_a, per_a, area_a

@@ -242,29 +242,17 @@ def _restarted_prefix(columns: list[Any], pair: np.ndarray, start: np.ndarray,
 
 
 class _SortedKeys:
-    """Breakpoints ``b`` (>= 0) sorted per pair, located by one searchsorted of a combined
-    key ``pair * scale + b`` plus an exact fix-up (rounding of the key never decides)."""
+    """Breakpoints ``b`` sorted per pair (ascending within each pair's rows), located by a
+    bisection of the query's own pair only (:func:`ntrans._kernels.first_at_least`)."""
 
-    def __init__(self, pair_sorted: np.ndarray, b: np.ndarray) -> None:
-        self.b = b
-        self.scale = 2.0 * (float(b.max()) if b.size else 0.0) + 4.0
-        self.key = pair_sorted * self.scale + b
-        self.top = 0.5 * self.scale - 1.0  # above every b, still inside the pair's slot
+    def __init__(self, b: np.ndarray) -> None:
+        self.b = np.ascontiguousarray(b, dtype=float)
 
-    def count_below(self, p: np.ndarray, lo: np.ndarray, hi: np.ndarray,
-                    e: np.ndarray) -> np.ndarray:
-        """First index in [lo, hi) with b >= e (e finite)."""
-        b = self.b
-        pos = np.searchsorted(self.key, p * self.scale + np.clip(e, -1.0, self.top), side="left")
-        pos = np.clip(pos, lo, hi)
-        last = max(b.size - 1, 0)
-        for _ in range(64):
-            down = (pos > lo) & (b[np.clip(pos - 1, 0, last)] >= e)
-            up = (pos < hi) & (b[np.minimum(pos, last)] < e)
-            if not (down.any() or up.any()):
-                break
-            pos = pos - down + up
-        return pos
+    def count_below(self, lo: np.ndarray, hi: np.ndarray, e: np.ndarray) -> np.ndarray:
+        """First index in [lo, hi) with b >= e (hi where there is none)."""
+        from ._kernels import first_at_least
+
+        return first_at_least(self.b, lo, hi, e)
 
 
 class _StepTable:
@@ -292,7 +280,7 @@ class _StepTable:
         self.shift, self.pref = _restarted_prefix([a_s, bed[order], a_s * b], pair, self.start,
                                                   self.end)
         self.pair0 = self.pref[self.start + self.shift]  # prefix before each pair's rows
-        self.keys = _SortedKeys(pair, b)
+        self.keys = _SortedKeys(b)
 
     def query(self, pair: np.ndarray, eta: np.ndarray, *,
               strip: bool = False) -> tuple[np.ndarray, ...]:
@@ -315,7 +303,7 @@ class _StepTable:
             p = pair[idx]
             e = eta[idx] - self.base[p]
             first = self.start[p]
-            pos = self.keys.count_below(p, first, self.end[p], e)
+            pos = self.keys.count_below(first, self.end[p], e)
             s = self.pref[pos + self.shift[p]] - self.pair0[p]
             dry = pos == first
             wet[idx] = np.where(dry, 0.0, s[:, 0])
@@ -369,7 +357,7 @@ class _RampTable:
                    lambda: d_ds * b, d_dl]
         self.shift, self.pref = _restarted_prefix(columns, ev_pair, self.start, self.end)
         self.pair0 = self.pref[self.start + self.shift]  # prefix before each pair's rows
-        self.keys = _SortedKeys(ev_pair, b)
+        self.keys = _SortedKeys(b)
         self.n_pairs = n_pairs
 
     def query(self, pair: np.ndarray, eta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -377,6 +365,8 @@ class _RampTable:
 
         Stages that are not finite give 0.
         """
+        from ._kernels import ramp_table_values
+
         wet, per, area = (np.zeros(eta.size) for _ in range(3))
         ok = np.flatnonzero(np.isfinite(eta))
         for i0 in range(0, ok.size, _QUERY_CHUNK):
@@ -384,15 +374,11 @@ class _RampTable:
             p = pair[idx]
             e = eta[idx] - self.base[p]
             first = self.start[p]
-            lo = self.keys.count_below(p, first, self.end[p], e)
-            s = self.pref[lo + self.shift[p]] - self.pair0[p]
-            w = e * s[:, 0] - s[:, 1] + s[:, 5]
-            pm = e * s[:, 3] - s[:, 4] + s[:, 7]
-            a = 0.5 * (e * e * s[:, 0] - 2.0 * e * s[:, 1] + s[:, 2]) + e * s[:, 5] - s[:, 6]
-            dry = lo == first
-            wet[idx] = np.where(dry, 0.0, np.maximum(w, 0.0))
-            per[idx] = np.where(dry, 0.0, np.maximum(pm, 0.0))
-            area[idx] = np.where(dry, 0.0, np.maximum(a, 0.0))
+            lo = self.keys.count_below(first, self.end[p], e)
+            # W = e s0 - s1 + s5, P = e s3 - s4 + s7, A = (e^2 s0 - 2 e s1 + s2) / 2
+            # + e s5 - s6 from the pair's prefix sums s (compiled; 0 where dry)
+            wet[idx], per[idx], area[idx] = ramp_table_values(
+                self.pref, self.pair0, lo + self.shift[p], p, e, lo == first)
         return wet, per, area
 
 

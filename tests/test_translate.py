@@ -646,3 +646,56 @@ def test_pairs_are_numpy_unique(n_items, n_classes, size, seed):
     np.testing.assert_array_equal(pair_cls, uniq % n_classes)
     np.testing.assert_array_equal(inv, ref_inv)
     assert inv.dtype == ref_inv.dtype and pair_item.dtype == np.int64
+
+
+@pytest.mark.parametrize("n_ranges, size, seed", [(1, 1, 0), (5, 40, 1), (300, 20_000, 2),
+                                                   (4, 0, 3)])
+def test_first_at_least_is_searchsorted_per_range(n_ranges, size, seed):
+    """Breakpoint lookup of the stage tables: per query, the first index of its own sorted
+    range whose value is >= the stage, exactly ``lo + np.searchsorted(b[lo:hi], e,
+    side="left")`` (numpy's definition).  Ties (stages equal to breakpoints), repeated
+    breakpoints, stages below and above a range, and empty ranges."""
+    from ntrans._kernels import first_at_least
+
+    rng = np.random.default_rng(seed)
+    pair = np.sort(rng.integers(0, n_ranges, size))
+    b = np.round(rng.uniform(0.0, 3.0, size), 1)  # rounded: many repeated values
+    b = b[np.lexsort((b, pair))]
+    start = np.searchsorted(pair, np.arange(n_ranges), side="left")
+    end = np.searchsorted(pair, np.arange(n_ranges), side="right")
+    q_pair = rng.integers(0, n_ranges, 500)
+    e = rng.uniform(-0.5, 3.5, q_pair.size)
+    e[::3] = np.round(e[::3], 1)  # on a breakpoint value
+    lo, hi = start[q_pair], end[q_pair]
+    expected = np.array([lo_ + np.searchsorted(b[lo_:hi_], x, side="left")
+                         for lo_, hi_, x in zip(lo, hi, e, strict=True)], dtype=np.int64)
+    got = first_at_least(b, lo, hi, e)
+    np.testing.assert_array_equal(got, expected)
+    assert got.dtype == np.int64
+
+
+def test_ramp_table_values_are_the_numpy_form_to_the_bit():
+    """The compiled evaluation of a face's ramp table (wet length, perimeter, area from the
+    pair's eight prefix sums) gives the numpy expressions' values bit for bit: the same
+    operations in the same order, including NaN sums, negative results clipped to 0 and
+    dry queries set to 0."""
+    from ntrans._kernels import ramp_table_values
+
+    rng = np.random.default_rng(5)
+    pref = rng.normal(0.0, 10.0, (60, 8))
+    pref[7, 2] = np.nan
+    pair0 = rng.normal(0.0, 10.0, (9, 8))
+    row = rng.integers(0, 60, 400)
+    row[:5] = 7  # the NaN sum
+    p = rng.integers(0, 9, 400)
+    e = rng.uniform(0.0, 4.0, 400)
+    dry = rng.random(400) < 0.2
+    s = pref[row] - pair0[p]
+    w = e * s[:, 0] - s[:, 1] + s[:, 5]
+    pm = e * s[:, 3] - s[:, 4] + s[:, 7]
+    a = 0.5 * (e * e * s[:, 0] - 2.0 * e * s[:, 1] + s[:, 2]) + e * s[:, 5] - s[:, 6]
+    expected = [np.where(dry, 0.0, np.maximum(v, 0.0)) for v in (w, pm, a)]
+    got = ramp_table_values(pref, pair0, row, p, e, dry)
+    for g, x in zip(got, expected, strict=True):
+        assert g.tobytes() == x.tobytes()
+    assert np.isnan(got[2][:5][~dry[:5]]).all() and (got[0] >= 0).all()
