@@ -554,11 +554,16 @@ def _write_map_rasters(out: Path, names: list[str], values: dict[str, np.ndarray
 
 
 def _map_profile(rows: int, cols: int, transform: Any, crs: Any) -> dict[str, Any]:
-    """GeoTIFF profile of a map: float32, DEFLATE, tiled 256, nodata NODATA."""
+    """GeoTIFF profile of a map: float32, DEFLATE, tiled 256, nodata NODATA.
+
+    GDAL compresses the blocks on every core (``NUM_THREADS``): the same file to the byte
+    as on one thread, in about half the time on two cores.
+    """
     return {
         "driver": "GTiff", "width": cols, "height": rows, "count": 1, "dtype": "float32",
         "crs": crs, "transform": transform, "nodata": NODATA, "tiled": True,
         "blockxsize": BLOCK, "blockysize": BLOCK, "compress": "deflate", "predictor": 3,
+        "num_threads": "ALL_CPUS",
     }
 
 

@@ -321,3 +321,31 @@ def test_face_layer_from_wkb_is_the_face_layer_from_geometry(tmp_path):
     pd.testing.assert_frame_equal(a.drop(columns="geometry"), b.drop(columns="geometry"))
     assert a.crs == b.crs
     assert shapely.equals_exact(a.geometry.to_numpy(), b.geometry.to_numpy(), 0.0).all()
+
+
+def test_map_compressed_on_every_core_is_the_one_thread_file(tmp_path, monkeypatch):
+    """GDAL's multi-threaded block compression writes the same GeoTIFF, byte for byte, as
+    one thread (file reproducibility: the manifest hashes every map)."""
+    from affine import Affine
+
+    rng = np.random.default_rng(0)
+    cells = rng.uniform(0.5, 2.0, 2000).astype(np.float32)
+    rows, cols = 700, 900  # several 256-pixel blocks, partial ones at the edges
+    index = (np.arange(rows)[:, None] // 20) * 50 + np.arange(cols)[None, :] // 20
+    grid = cells[index % cells.size]
+    grid[:, :30] = np.nan
+    transform = Affine(1.0, 0.0, 500000.0, 0.0, -1.0, 6000000.0)
+    many = maps.write_geotiff(tmp_path / "many.tif", grid, transform=transform,
+                              crs="EPSG:32633")
+    assert maps._map_profile(rows, cols, transform, None)["num_threads"] == "ALL_CPUS"
+    one_thread = maps._map_profile
+
+    def profile(*args):
+        p = one_thread(*args)
+        p.pop("num_threads")
+        return p
+
+    monkeypatch.setattr(maps, "_map_profile", profile)
+    one = maps.write_geotiff(tmp_path / "one.tif", grid, transform=transform,
+                             crs="EPSG:32633")
+    assert many.read_bytes() == one.read_bytes()
