@@ -241,20 +241,6 @@ def _restarted_prefix(columns: list[Any], pair: np.ndarray, start: np.ndarray,
     return shift, pref
 
 
-class _SortedKeys:
-    """Breakpoints ``b`` sorted per pair (ascending within each pair's rows), located by a
-    bisection of the query's own pair only (:func:`ntrans._kernels.first_at_least`)."""
-
-    def __init__(self, b: np.ndarray) -> None:
-        self.b = np.ascontiguousarray(b, dtype=float)
-
-    def count_below(self, lo: np.ndarray, hi: np.ndarray, e: np.ndarray) -> np.ndarray:
-        """First index in [lo, hi) with b >= e (hi where there is none)."""
-        from ._kernels import first_at_least
-
-        return first_at_least(self.b, lo, hi, e)
-
-
 class _StepTable:
     """Wet plan area, wet bed area and volume per (cell, class) pair at any stage.
 
@@ -280,7 +266,7 @@ class _StepTable:
         self.shift, self.pref = _restarted_prefix([a_s, bed[order], a_s * b], pair, self.start,
                                                   self.end)
         self.pair0 = self.pref[self.start + self.shift]  # prefix before each pair's rows
-        self.keys = _SortedKeys(b)
+        self.breakpoints = np.ascontiguousarray(b, dtype=float)  # sorted per pair
 
     def query(self, pair: np.ndarray, eta: np.ndarray, *,
               strip: bool = False) -> tuple[np.ndarray, ...]:
@@ -290,7 +276,7 @@ class _StepTable:
         (h = eta - z).  It has no closed form, so it is summed pixel by pixel, but over the
         wet pixels only: they are a prefix of the pair's sorted pixels.
         """
-        from ._kernels import strip_station_sums
+        from ._kernels import first_at_least, strip_station_sums
 
         wet, bed, vol = (np.zeros(eta.size) for _ in range(3))
         h53 = np.zeros(eta.size) if strip else None
@@ -303,7 +289,7 @@ class _StepTable:
             p = pair[idx]
             e = eta[idx] - self.base[p]
             first = self.start[p]
-            pos = self.keys.count_below(first, self.end[p], e)
+            pos = first_at_least(self.breakpoints, first, self.end[p], e)  # b >= e
             s = self.pref[pos + self.shift[p]] - self.pair0[p]
             dry = pos == first
             wet[idx] = np.where(dry, 0.0, s[:, 0])
@@ -311,7 +297,7 @@ class _StepTable:
             vol[idx] = np.where(dry, 0.0, np.maximum(e * s[:, 0] - s[:, 2], 0.0))
             if h53 is not None:
                 # the kernel's level term: a x^(5/3) at every breakpoint, no ramp term
-                h53[idx] = strip_station_sums(np.ascontiguousarray(e), first, pos, self.keys.b,
+                h53[idx] = strip_station_sums(np.ascontiguousarray(e), first, pos, self.breakpoints,
                                               no_ramp, self.a_sorted, every)
         return (wet, bed, vol) if h53 is None else (wet, bed, vol, h53)
 
@@ -357,7 +343,7 @@ class _RampTable:
                    lambda: d_ds * b, d_dl]
         self.shift, self.pref = _restarted_prefix(columns, ev_pair, self.start, self.end)
         self.pair0 = self.pref[self.start + self.shift]  # prefix before each pair's rows
-        self.keys = _SortedKeys(b)
+        self.breakpoints = np.ascontiguousarray(b, dtype=float)  # sorted per pair
         self.n_pairs = n_pairs
 
     def query(self, pair: np.ndarray, eta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -365,7 +351,7 @@ class _RampTable:
 
         Stages that are not finite give 0.
         """
-        from ._kernels import ramp_table_values
+        from ._kernels import first_at_least, ramp_table_values
 
         wet, per, area = (np.zeros(eta.size) for _ in range(3))
         ok = np.flatnonzero(np.isfinite(eta))
@@ -374,7 +360,7 @@ class _RampTable:
             p = pair[idx]
             e = eta[idx] - self.base[p]
             first = self.start[p]
-            lo = self.keys.count_below(first, self.end[p], e)
+            lo = first_at_least(self.breakpoints, first, self.end[p], e)  # b >= e
             # W = e s0 - s1 + s5, P = e s3 - s4 + s7, A = (e^2 s0 - 2 e s1 + s2) / 2
             # + e s5 - s6 from the pair's prefix sums s (compiled; 0 where dry)
             wet[idx], per[idx], area[idx] = ramp_table_values(
