@@ -14,6 +14,7 @@ import sys
 import warnings
 
 import click
+from tqdm.contrib.logging import logging_redirect_tqdm
 
 from ntrans.errors import NtransError
 
@@ -72,6 +73,9 @@ def cli(ctx: click.Context, verbose: int, quiet: bool, debug: bool) -> None:
     level = logging.WARNING if quiet else (logging.INFO if verbose == 0 else logging.DEBUG)
     logging.basicConfig(level=level, format="%(levelname)s %(name)s: %(message)s", force=True)
     logging.captureWarnings(True)
+    # log lines written while a progress bar is up: clear the bar, print the line, redraw
+    # the bar below it (else the line is appended to the bar's and the bar is left behind)
+    ctx.with_resource(logging_redirect_tqdm())
     warnings.formatwarning = _one_line_warning if not debug else _located_warning
 
 

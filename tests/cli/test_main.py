@@ -1,5 +1,7 @@
 """The command group: help, version, error handling."""
 
+import logging
+
 import click
 import pytest
 from click.testing import CliRunner
@@ -62,3 +64,33 @@ def test_debug_shows_traceback(runner, failing_command):
 def test_cautions_are_three_sentences():
     assert len(CAUTIONS) == 3
     assert all(sentence.endswith(".") for sentence in CAUTIONS)
+
+
+@pytest.fixture
+def logging_command(monkeypatch):
+    """A command that logs while its progress bar is up, as the long steps do."""
+
+    @click.command("busy")
+    def busy():
+        from ntrans.progress import track
+
+        for step in track(range(3), total=3, desc="steps", enabled=True):
+            logging.getLogger("ntrans.busy").info("step %d done", step)
+
+    monkeypatch.setitem(main_module.COMMANDS, "busy", "cli.main")
+    monkeypatch.setattr(main_module, "command", busy, raising=False)
+    return busy
+
+
+def test_log_lines_do_not_land_on_a_progress_bar(runner, logging_command):
+    # A terminal shows what follows the last carriage return of a line (over what came
+    # before it); each log line must start a line of its own, not follow a bar's text.
+    result = runner.invoke(main_module.cli, ["busy"])
+    assert result.exit_code == 0, result.output
+    logged = [line for line in result.output.split("\n") if "step " in line and "done" in line]
+    assert len(logged) == 3
+    for line in logged:
+        assert line.split("\r")[-1].startswith("INFO ntrans.busy: step"), repr(line)
+    # the console handler is restored when the command ends
+    handlers = logging.getLogger().handlers
+    assert not any(type(h).__name__ == "_TqdmLoggingHandler" for h in handlers)
