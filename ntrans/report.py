@@ -187,6 +187,23 @@ def _class_table(classes: Sequence[Mapping[str, Any]], unit: str = "m") -> str:
     return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
 
 
+def _flag_legend(classes: Sequence[Mapping[str, Any]]) -> str:
+    """What the flags shown in the class table mean (only those that appear)."""
+    from .translate import FLAG_MEANINGS
+
+    shown: set[str] = set()
+    for row in classes:
+        value = row.get("flags")
+        if isinstance(value, str):
+            shown.update(part.split(":", 1)[0].strip() for part in value.split(";"))
+    rows = "".join(
+        f"<dt><code>{esc(name)}{':N' if name == 'dry_wet_mismatch' else ''}</code></dt>"
+        f"<dd>{esc(meaning)}</dd>"
+        for name, meaning in FLAG_MEANINGS.items() if name in shown
+    )
+    return f'<dl class="kv flags">{rows}</dl>' if rows else ""
+
+
 def _bias_table(bias: Mapping[str, Mapping[str, Any]], unit: str) -> str:
     if not bias:
         return ""
@@ -264,7 +281,9 @@ Cell conveyance form: Volp, van Prooijen &amp; Stelling (2013), <i>Water Resour.
 <p>For a face at source stage &eta;<sub>s</sub>, the target stage &eta;<sub>t</sub> solves
 K<sub>target</sub>(&eta;<sub>t</sub>) = K<sub>source</sub>(&eta;<sub>s</sub>) (K rises with &eta;,
 so a bracketed root search finds it). &eta;<sub>t</sub> &minus; &eta;<sub>s</sub> with n carried
-over unchanged is the bias the adjustment removes; with the fitted n it should be near zero.</p>
+over unchanged is the bias the adjustment removes; with the fitted n it should be near zero
+where one n suits the class's faces (a class flagged <code>wide_spread</code> keeps errors at
+some of them).</p>
 """
 
 LIMITATIONS = (
@@ -363,6 +382,7 @@ def render_report(context: Mapping[str, Any], images: Mapping[str, Any]) -> str:
         "conveyance weights of the fit. Stage errors are medians over the class's faces and "
         "stages.</p>",
         _class_table(context.get("classes") or [], vertical),
+        _flag_legend(context.get("classes") or []),
         "<h2>Stage error before and after</h2>",
         _bias_table(context.get("bias") or {}, vertical),
         _figures("bias", images),

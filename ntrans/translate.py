@@ -43,14 +43,38 @@ from typing import Any, Literal, Protocol
 import numpy as np
 from scipy import sparse
 
+from .roughness import N_HIGH
+
 Closure = Literal["lumped", "strip"]
 Composite = Literal["horton_einstein", "pavlovskii", "lotter"]
 CLOSURES: tuple[str, ...] = ("lumped", "strip")
 COMPOSITES: tuple[str, ...] = ("horton_einstein", "pavlovskii", "lotter")
 
 N_MIN, N_MAX = 0.005, 1.0  # absolute bounds of a fitted n
+BOUND_FACTOR = 10.0  # a fitted n stays within n source / BOUND_FACTOR .. x BOUND_FACTOR
 FEW_FACES = 10
 WIDE_SPREAD = 1.5
+
+#: what each flag of a class fit (``ClassFit.flags``, ``n_by_class.csv``) tells a
+#: reviewer; ``dry_wet_mismatch`` is written with its count, ``dry_wet_mismatch:N``
+FLAG_MEANINGS: dict[str, str] = {
+    "not_fitted": "the class is under water in no face (or cell, with cell friction) that "
+                  "is wet in both families within the window, so n target is n source, "
+                  "unchanged.",
+    "few_faces": f"fewer than {FEW_FACES} faces (or cells) hold the class, so its n rests on "
+                 "little terrain.",
+    "wide_spread": f"the ratio's 90 % is more than {WIDE_SPREAD:g} times its 10 %: one n cannot "
+                   "suit every face of the class, and stage errors remain at some of them "
+                   "(see the stage error columns and maps).",
+    "outside_published_range": "n target lies outside the published range of the class's "
+                               "surface (the n table's surface column), or above "
+                               f"{N_HIGH:g}.",
+    "dry_wet_mismatch": "N face-stages (or cell-stages) are wet in one family and dry in the "
+                        "other; they have no finite ratio and were left out of the fit.",
+    "at_bound": "the fit stopped at the edge of its search range (n source divided or "
+                f"multiplied by {BOUND_FACTOR:g}, within {N_MIN:g} to {N_MAX:g}), so the "
+                "terrain does not settle this class's n.",
+}
 
 _TINY = 1e-12
 
@@ -1059,7 +1083,7 @@ def fit_class_n(
     composite: Composite = "horton_einstein",
     k: float = 1.0,
     outside_range: np.ndarray | None = None,
-    bound_factor: float = 10.0,
+    bound_factor: float = BOUND_FACTOR,
 ) -> ClassFit:
     """Fit one target n per class: equal conveyance over the window, least squares.
 
@@ -1102,7 +1126,7 @@ def solve_class_n(
     n_source: np.ndarray,
     *,
     outside_range: np.ndarray | None = None,
-    bound_factor: float = 10.0,
+    bound_factor: float = BOUND_FACTOR,
     spread: Any = None,
 ) -> ClassFit:
     """The class fit of :func:`fit_class_n` from its gathered terms (:class:`FitTerms`).

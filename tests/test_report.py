@@ -5,12 +5,14 @@ from __future__ import annotations
 import base64
 import html
 from html.parser import HTMLParser
+from pathlib import Path
 
 import numpy as np
 import pytest
 
 from ntrans import report
 from ntrans.cautions import CAUTIONS
+from ntrans.translate import FLAG_MEANINGS
 
 # Smallest valid PNG: 1 x 1 pixel (bytes written out by hand, not from a plotting library).
 PNG_1PX = base64.b64decode(
@@ -128,6 +130,37 @@ def test_report_holds_class_table_and_sources(rendered):
     assert "75 %" in body  # weight share shown as a percentage
     for source in ("Chow (1959)", "Horn 1981", "Horton", "Pavlovskii", "Lotter"):
         assert source in body
+
+
+@pytest.mark.parametrize(
+    ("flags", "explained", "not_explained"),
+    [
+        ("wide_spread;dry_wet_mismatch:12", ["wide_spread", "dry_wet_mismatch:N"],
+         ["at_bound", "not_fitted"]),
+        ("not_fitted;few_faces", ["not_fitted", "few_faces"], ["wide_spread"]),
+        ("", [], list(FLAG_MEANINGS)),
+    ],
+)
+def test_report_explains_the_flags_it_shows(flags, explained, not_explained):
+    row = {"class": "grass", "n_source": 0.03, "n_target": 0.03, "ratio": 1.0, "flags": flags}
+    text = report.render_report(_context(classes=[row]), {})
+    parser = _Collector()
+    parser.feed(text)
+    assert parser.errors == []
+    for name in explained:
+        assert f"<dt><code>{name}</code></dt>" in text
+        assert html.escape(FLAG_MEANINGS[name.split(":")[0]]) in text
+    for name in not_explained:
+        assert f"<dt><code>{name}" not in text
+
+
+def test_every_flag_of_the_fit_is_explained_in_the_readme():
+    # the flags the class fit writes (ntrans.translate.fit_class_n) against the README's list
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    assert set(FLAG_MEANINGS) == {"not_fitted", "few_faces", "wide_spread",
+                                  "outside_published_range", "dry_wet_mismatch", "at_bound"}
+    for name in FLAG_MEANINGS:
+        assert f"- `{name}" in readme, name
 
 
 def test_report_skips_missing_images_and_empty_classes():

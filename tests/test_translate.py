@@ -10,6 +10,7 @@ import pytest
 from ntrans.quantiles import SpilledQuantiles
 from ntrans.translate import (
     COMPOSITES,
+    FLAG_MEANINGS,
     CellGeometry,
     ClassStats,
     FaceGeometry,
@@ -481,6 +482,9 @@ def test_fit_flags():
     fit = fit_class_n(ks, st, np.array([0.03, 0.04]), outside_range=np.array([True, False]))
     assert "few_faces" in fit.flags[0] and "outside_published_range" in fit.flags[0]
     assert "outside_published_range" not in fit.flags[1]
+    # every flag has its explanation for the report and the README
+    for flags in fit.flags:
+        assert all(name.split(":")[0] in FLAG_MEANINGS for name in flags), flags
 
 
 def random_pair_stats(rng: np.random.Generator, n_items: int, n_classes: int, n_stages: int,
