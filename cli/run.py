@@ -7,6 +7,7 @@ from typing import Any
 import click
 
 from ntrans.cautions import CAUTIONS
+from ntrans.translate import flag_lines
 
 
 def echo_summary(result: Any, *, extra: tuple[str, ...] = ()) -> None:
@@ -20,6 +21,10 @@ def echo_summary(result: Any, *, extra: tuple[str, ...] = ()) -> None:
     if cols:
         click.echo("")
         click.echo(frame[cols].to_string(index=False, na_rep="-", float_format=lambda v: f"{v:.4g}"))
+    explained = flag_lines(frame["flags"]) if "flags" in frame.columns else []
+    if explained:
+        click.echo("")
+        click.echo("\n".join(explained))
     bias = result.summary.get("stage_bias_unadjusted") or {}
     after = result.summary.get("stage_bias_adjusted") or {}
     if bias.get("median") is not None and after.get("median") is not None:

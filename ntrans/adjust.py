@@ -73,6 +73,7 @@ from .translate import (
     combine_fit_terms,
     conveyance,
     fit_terms,
+    flag_lines,
     n_ratio,
     solve_class_n,
     solve_stage,
@@ -1003,6 +1004,9 @@ def _text_summary(summary: dict[str, Any], frame: Any, out: Path, z_unit: str) -
         spread = f"{row.ratio_p10:.2f}-{row.ratio_p90:.2f}" if np.isfinite(row.ratio_p10) else "-"
         lines.append(f"{str(row[0])[:20]:<20} {row.n_source:>8.4f} {row.n_target:>8.4f} "
                      f"{row.ratio:>6.3f} {spread:>11} {row.faces:>6}  {row.flags}")
+    explained = flag_lines(frame["flags"]) if "flags" in frame.columns else []
+    if explained:
+        lines += ["", *explained]
     bu, ba = summary["stage_bias"]["unadjusted"], summary["stage_bias"]["adjusted"]
     lines += [
         "",

@@ -189,18 +189,10 @@ def _class_table(classes: Sequence[Mapping[str, Any]], unit: str = "m") -> str:
 
 def _flag_legend(classes: Sequence[Mapping[str, Any]]) -> str:
     """What the flags shown in the class table mean (only those that appear)."""
-    from .translate import FLAG_MEANINGS
+    from .translate import flags_explained
 
-    shown: set[str] = set()
-    for row in classes:
-        value = row.get("flags")
-        if isinstance(value, str):
-            shown.update(part.split(":", 1)[0].strip() for part in value.split(";"))
-    rows = "".join(
-        f"<dt><code>{esc(name)}{':N' if name == 'dry_wet_mismatch' else ''}</code></dt>"
-        f"<dd>{esc(meaning)}</dd>"
-        for name, meaning in FLAG_MEANINGS.items() if name in shown
-    )
+    rows = "".join(f"<dt><code>{esc(name)}</code></dt><dd>{esc(meaning)}</dd>"
+                   for name, meaning in flags_explained(row.get("flags") for row in classes))
     return f'<dl class="kv flags">{rows}</dl>' if rows else ""
 
 

@@ -79,6 +79,30 @@ FLAG_MEANINGS: dict[str, str] = {
 _TINY = 1e-12
 
 
+def flags_explained(flag_texts: Any) -> list[tuple[str, str]]:
+    """(flag, meaning) for every flag in ``flag_texts`` (the ``;``-separated texts of a
+    ``flags`` column), in the order of :data:`FLAG_MEANINGS`; ``dry_wet_mismatch`` is
+    shown as ``dry_wet_mismatch:N``.  Unknown names are left out."""
+    shown: set[str] = set()
+    for text in flag_texts:
+        if isinstance(text, str):
+            shown.update(part.split(":", 1)[0].strip() for part in text.split(";"))
+    return [(name + (":N" if name == "dry_wet_mismatch" else ""), meaning)
+            for name, meaning in FLAG_MEANINGS.items() if name in shown]
+
+
+def flag_lines(flag_texts: Any, width: int = 88) -> list[str]:
+    """:func:`flags_explained` as text lines for a terminal: a ``flags:`` heading, then
+    each flag with its meaning, wrapped at ``width`` characters; no lines without flags."""
+    import textwrap
+
+    lines: list[str] = []
+    for name, meaning in flags_explained(flag_texts):
+        lines += textwrap.wrap(f"{name}: {meaning}", width=width, initial_indent="  ",
+                               subsequent_indent="    ", break_on_hyphens=False)
+    return ["flags:", *lines] if lines else []
+
+
 # ---------------------------------------------------------------------------------------
 # sufficient statistics
 

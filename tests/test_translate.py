@@ -24,6 +24,8 @@ from ntrans.translate import (
     conveyance,
     fit_class_n,
     fit_terms,
+    flag_lines,
+    flags_explained,
     n_ratio,
     segment_integrals,
     solve_class_n,
@@ -485,6 +487,37 @@ def test_fit_flags():
     # every flag has its explanation for the report and the README
     for flags in fit.flags:
         assert all(name.split(":")[0] in FLAG_MEANINGS for name in flags), flags
+
+
+@pytest.mark.parametrize(
+    ("texts", "names"),
+    [
+        (["wide_spread;dry_wet_mismatch:12", "", None, float("nan")],
+         ["wide_spread", "dry_wet_mismatch:N"]),
+        (["at_bound", "few_faces;not_fitted"], ["not_fitted", "few_faces", "at_bound"]),
+        (["dry_in_target", ""], []),  # names the fit does not write are left out
+        ([], []),
+    ],
+)
+def test_flags_explained_in_their_table_order(texts, names):
+    explained = flags_explained(texts)
+    assert [name for name, _ in explained] == names
+    for name, meaning in explained:
+        assert meaning == FLAG_MEANINGS[name.split(":")[0]]
+
+
+def test_flag_lines_wrap_under_a_heading():
+    lines = flag_lines(["wide_spread;outside_published_range"], width=60)
+    assert lines[0] == "flags:"
+    assert lines[1].startswith("  wide_spread: ")
+    assert all(len(line) <= 60 for line in lines)
+    # each flag starts a line two spaces in; its meaning wraps four spaces in
+    starts = [line for line in lines[1:] if not line.startswith("    ")]
+    assert [line.split(":")[0] for line in starts] == ["  wide_spread", "  outside_published_range"]
+    assert " ".join(" ".join(lines[1:]).split()) == (
+        f"wide_spread: {FLAG_MEANINGS['wide_spread']} "
+        f"outside_published_range: {FLAG_MEANINGS['outside_published_range']}")
+    assert flag_lines(["", None]) == []
 
 
 def random_pair_stats(rng: np.random.Generator, n_items: int, n_classes: int, n_stages: int,

@@ -12,6 +12,7 @@ from click.testing import CliRunner
 
 from cli.main import cli
 from ntrans.cautions import CAUTIONS
+from ntrans.translate import FLAG_MEANINGS
 
 OPTIONS = ["--dem", "--cells", "--n", "--classes", "--class-field", "--n-table", "--n-field",
            "--class-raster", "--default-class", "--overlap-rule", "--from", "--to", "--closure",
@@ -62,6 +63,12 @@ def test_uniform_n_run_prints_summary(runner, inputs, tmp_path):
     assert CAUTIONS[0] in result.output
     table = pd.read_csv(out / "n_by_class.csv")
     assert table["n_target"].iloc[0] == pytest.approx(0.03, rel=1e-6)  # geometry identity, flat DEM
+    # the flags printed are explained right below the table (four cells: too few faces)
+    assert "few_faces" in table["flags"].iloc[0]
+    assert "flags:" in result.output
+    printed = " ".join(result.output.split())
+    assert f"few_faces: {FLAG_MEANINGS['few_faces']}" in printed
+    assert "at_bound:" not in printed
 
 
 def test_class_polygons_run(runner, inputs, tmp_path, builders):

@@ -2,12 +2,14 @@
 
 from __future__ import annotations
 
+import pandas as pd
 import pytest
 from click.testing import CliRunner
 
 from cli.main import cli
 from ntrans import bundle
 from ntrans.cautions import CAUTIONS
+from ntrans.translate import FLAG_MEANINGS
 
 BASE = """
 [inputs]
@@ -117,6 +119,13 @@ def test_run_writes_the_bundle_and_ends_with_the_cautions(runner, tmp_path):
     out = [line for line in result.stdout.splitlines() if line.strip()]
     assert out[-len(CAUTIONS):] == [f"Caution: {c}" for c in CAUTIONS]
     assert f"report: {tmp_path / 'job' / 'bundle' / 'report.html'}" in result.stdout
+    # every flag of the class table is explained in the summary, none that is not there
+    table = pd.read_csv(tmp_path / "job" / "bundle" / "n_by_class.csv", keep_default_na=False)
+    shown = {part.split(":")[0] for text in table["flags"] for part in text.split(";") if part}
+    printed = " ".join(result.stdout.split())
+    for name, meaning in FLAG_MEANINGS.items():
+        assert (f": {meaning}" in printed) == (name in shown), name
+    assert ("flags:" in printed) == bool(shown)
     again = runner.invoke(cli, ["-q", "run", str(project)])
     assert again.exit_code == 2  # the bundle exists and --overwrite was not given
     _one_error_line(again)
