@@ -71,12 +71,28 @@ def cli(ctx: click.Context, verbose: int, quiet: bool, debug: bool) -> None:
     ctx.meta["ntrans.debug"] = debug
     ctx.meta["ntrans.quiet"] = quiet
     level = logging.WARNING if quiet else (logging.INFO if verbose == 0 else logging.DEBUG)
-    logging.basicConfig(level=level, format="%(levelname)s %(name)s: %(message)s", force=True)
+    console = logging.StreamHandler()
+    console.setFormatter(_ConsoleFormatter())
+    logging.basicConfig(level=level, handlers=[console], force=True)
     logging.captureWarnings(True)
     # log lines written while a progress bar is up: clear the bar, print the line, redraw
     # the bar below it (else the line is appended to the bar's and the bar is left behind)
     ctx.with_resource(logging_redirect_tqdm())
     warnings.formatwarning = _one_line_warning if not debug else _located_warning
+
+
+class _ConsoleFormatter(logging.Formatter):
+    """``LEVEL logger: message``; a Python warning (logger ``py.warnings``) as ``LEVEL
+    Category: message``, its category saying what it is about."""
+
+    def __init__(self) -> None:
+        super().__init__("%(levelname)s %(name)s: %(message)s")
+        self._warning = logging.Formatter("%(levelname)s %(message)s")
+
+    def format(self, record: logging.LogRecord) -> str:
+        if record.name == "py.warnings":
+            return self._warning.format(record)
+        return super().format(record)
 
 
 def _one_line_warning(message, category, filename, lineno, line=None) -> str:

@@ -94,3 +94,24 @@ def test_log_lines_do_not_land_on_a_progress_bar(runner, logging_command):
     # the console handler is restored when the command ends
     handlers = logging.getLogger().handlers
     assert not any(type(h).__name__ == "_TqdmLoggingHandler" for h in handlers)
+
+
+def test_warnings_show_their_category_not_the_logger(runner, monkeypatch):
+    from ntrans.errors import PartialCoverageWarning, warn
+
+    @click.command("warns")
+    def warns():
+        warn("2 cells lie partly outside the DEM", PartialCoverageWarning)
+        logging.getLogger("ntrans.tables").info("tables written")
+
+    monkeypatch.setitem(main_module.COMMANDS, "warns", "cli.main")
+    monkeypatch.setattr(main_module, "command", warns, raising=False)
+    # as in a fresh process, where the command group turns the capture on: pytest restores
+    # Python's warning hook after each test while logging still counts it as captured
+    logging.captureWarnings(False)
+    result = runner.invoke(main_module.cli, ["warns"])
+    assert result.exit_code == 0, result.output
+    lines = [line for line in result.output.splitlines() if line.strip()]
+    assert "WARNING PartialCoverageWarning: 2 cells lie partly outside the DEM" in lines
+    assert "INFO ntrans.tables: tables written" in lines
+    assert "py.warnings" not in result.output
