@@ -283,7 +283,7 @@ def parse_project(data: Mapping[str, Any], *, base: str | os.PathLike[str], path
             from .stages import parse_spec
 
             try:
-                parse_spec(window[key])
+                parse_spec(window[key], key[:-1])
             except StageSpecError as exc:
                 raise ProjectFileError(f"key window.{key}: {exc}") from exc
     return Project(Path(path).resolve(), **tables)

@@ -18,8 +18,9 @@ from .errors import StageSpecError
 StageMode = Literal["stage", "depth"]
 
 
-def parse_spec(spec: str | float | list[float] | np.ndarray) -> np.ndarray:
-    """Parse a SPEC into a sorted float64 array of unique values.
+def parse_spec(spec: str | float | list[float] | np.ndarray, what: str = "stage") -> np.ndarray:
+    """Parse a SPEC into a sorted float64 array of unique values; ``what`` (``stage`` or
+    ``depth``) names the values in error messages.
 
     >>> parse_spec("0:1:0.5").tolist()
     [0.0, 0.5, 1.0]
@@ -32,42 +33,42 @@ def parse_spec(spec: str | float | list[float] | np.ndarray) -> np.ndarray:
         try:
             values = np.asarray(spec, dtype=float).ravel()
         except (TypeError, ValueError) as exc:
-            raise StageSpecError(f"stage list {spec!r} holds a non-number; give numbers only") from exc
+            raise StageSpecError(f"{what} list {spec!r} holds a non-number; give numbers only") from exc
     else:
         text = str(spec).strip()
         if not text:
-            raise StageSpecError("the stage specification is empty; give start:stop:step or a comma list")
+            raise StageSpecError(f"the {what} specification is empty; give start:stop:step or a comma list")
         if ":" in text:
             parts = text.split(":")
             if len(parts) != 3:
                 raise StageSpecError(
-                    f"stage range {text!r} needs three parts start:stop:step, e.g. 10:15:0.5"
+                    f"{what} range {text!r} needs three parts start:stop:step, e.g. 10:15:0.5"
                 )
             try:
                 start, stop, step = (float(p) for p in parts)
             except ValueError as exc:
                 raise StageSpecError(
-                    f"stage range {text!r} holds a non-number; use numbers like 10:15:0.5"
+                    f"{what} range {text!r} holds a non-number; use numbers like 10:15:0.5"
                 ) from exc
             if not step > 0:
-                raise StageSpecError(f"stage range {text!r} needs a positive step")
+                raise StageSpecError(f"{what} range {text!r} needs a positive step")
             if stop < start:
-                raise StageSpecError(f"stage range {text!r} has stop below start; swap them")
+                raise StageSpecError(f"{what} range {text!r} has stop below start; swap them")
             count = int(np.floor((stop - start) / step + 1e-9)) + 1
             if count > 100_000:
-                raise StageSpecError(f"stage range {text!r} gives {count} stages; use a coarser step")
+                raise StageSpecError(f"{what} range {text!r} gives {count} {what}s; use a coarser step")
             values = start + step * np.arange(count)
         else:
             try:
                 values = np.array([float(p) for p in text.split(",") if p.strip()])
             except ValueError as exc:
                 raise StageSpecError(
-                    f"stage list {text!r} holds a non-number; use numbers separated by commas"
+                    f"{what} list {text!r} holds a non-number; use numbers separated by commas"
                 ) from exc
     if values.size == 0:
-        raise StageSpecError("the stage specification holds no values")
+        raise StageSpecError(f"the {what} specification holds no values")
     if not np.all(np.isfinite(values)):
-        raise StageSpecError("the stage specification holds a non-finite value")
+        raise StageSpecError(f"the {what} specification holds a non-finite value")
     return np.unique(values)
 
 
@@ -87,7 +88,7 @@ class StageSpec:
             raise StageSpecError("give exactly one of stages or depths")
         if stages is not None:
             return cls(parse_spec(stages), "stage")
-        values = parse_spec(depths)  # type: ignore[arg-type]
+        values = parse_spec(depths, "depth")  # type: ignore[arg-type]
         if np.any(values < 0):
             raise StageSpecError("depths must be zero or positive")
         return cls(values, "depth")

@@ -33,6 +33,17 @@ def test_parse_spec_rejects(spec):
         parse_spec(spec)
 
 
+@pytest.mark.parametrize(
+    ("options", "first_words"),
+    [({"depths": "3:1:1"}, "depth range '3:1:1'"), ({"stages": "3:1:1"}, "stage range '3:1:1'"),
+     ({"depths": "1,x"}, "depth list '1,x'"), ({"stages": ""}, "the stage specification")],
+)
+def test_errors_name_depths_or_stages_as_given(options, first_words):
+    with pytest.raises(StageSpecError) as caught:
+        StageSpec.from_options(**options)
+    assert str(caught.value).startswith(first_words)
+
+
 def test_stage_spec_errors_are_value_errors():
     # one hierarchy: a stage error is an InputError and a builtin ValueError
     with pytest.raises(ValueError):
