@@ -124,10 +124,18 @@ def plot_class_ratios(
         name = classes[i]
         part = bands[bands[by] == name]
         colour = PALETTE[i % len(PALETTE)]
-        if not part.empty:
+        n_points = int(np.isfinite(part["p50"].to_numpy(dtype=float)).sum())
+        if n_points:
             ax.fill_between(part[x], part["p10"], part["p90"], color=colour, alpha=0.25,
                             linewidth=0, label=f"10-90 % of {item}s")
-            ax.plot(part[x], part["p50"], color=colour, linewidth=2, label="median")
+            # a line needs two points: a class wet at one depth only shows as dots
+            ax.plot(part[x], part["p50"], color=colour, linewidth=2, label="median",
+                    marker="o" if n_points < 2 else None, markersize=4)
+            if n_points < 2:
+                ax.vlines(part[x], part["p10"], part["p90"], color=colour, alpha=0.5)
+        else:  # say why the panel is empty rather than leave it blank
+            ax.text(0.5, 0.5, f"no ratio: no {item} of this class\nis wet in both families",
+                    transform=ax.transAxes, ha="center", va="center", fontsize=8, color="0.35")
         ax.axhline(1.0, color="0.4", linewidth=0.8, linestyle="--")
         ax.set_title(str(name), fontsize=9)
         ax.grid(True, linewidth=0.3, alpha=0.6)

@@ -206,6 +206,28 @@ def test_plots_write_deterministic_pngs(tmp_path):
         assert first.read_bytes()[:4] == b"\x89PNG"
 
 
+def test_class_ratio_panels_show_one_depth_as_a_dot_and_say_why_one_is_empty(tmp_path,
+                                                                           monkeypatch):
+    bands = pd.DataFrame({
+        "class": ["many", "many", "one", "none"],
+        "depth": [0.5, 1.0, 1.5, 1.0],
+        "p10": [0.8, 0.9, 150.0, np.nan], "p50": [0.9, 1.0, 160.0, np.nan],
+        "p90": [1.0, 1.1, 170.0, np.nan], "count": [5, 5, 1, 0],
+    })
+    figures = []
+    saved = plots._save
+    monkeypatch.setattr(plots, "_save", lambda fig, path: (figures.append(fig), saved(fig, path))[1])
+    plots.plot_class_ratios(tmp_path / "c.png", bands)
+    panels = {ax.get_title(): ax for ax in figures[0].axes if ax.get_visible()}
+    markers = {title: [line.get_marker() for line in ax.get_lines() if len(line.get_xdata()) > 0
+                       and line.get_linestyle() != "--"] for title, ax in panels.items()}
+    assert markers["many"] == ["None"]  # a line through its depths
+    assert markers["one"] == ["o"]  # one depth: a dot (a line of one point draws nothing)
+    assert markers["none"] == []
+    assert any("wet in both families" in text.get_text() for text in panels["none"].texts)
+    assert not panels["many"].texts
+
+
 def test_maps_painted_window_by_window_are_the_whole_grid_painted(tmp_path, monkeypatch):
     # the GeoTIFFs are painted in windows, each window rasterising only the cells over
     # it; every pixel must get the cell one rasterisation of the whole grid gives it (the
