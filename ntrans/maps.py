@@ -303,6 +303,21 @@ def _nice_length(span: float) -> float:
     return float(power)
 
 
+#: ratio colour-bar ticks: factors and their inverses
+_RATIO_TICKS = (1.0, 1.1, 1.25, 1.5, 2.0, 3.0, 5.0, 10.0, 20.0, 50.0, 100.0)
+
+
+def _ratio_ticks(high: float) -> list[float]:
+    """Ticks for a log ratio axis from 1 / ``high`` to ``high``: 1, up to three factors of
+    :data:`_RATIO_TICKS` spread evenly in log up to ``high``, and their inverses."""
+    candidates = [t for t in _RATIO_TICKS[1:] if t <= high * (1 + 1e-9)]
+    if not candidates:
+        return [1.0]
+    ups = {min(candidates, key=lambda t: abs(np.log(t) - k / 3 * np.log(high)))
+           for k in (1, 2, 3)}
+    return sorted({1.0} | ups | {round(1.0 / t, 3) for t in ups})
+
+
 def quicklook_png(
     path: str | os.PathLike[str],
     values: np.ndarray,
@@ -312,7 +327,7 @@ def quicklook_png(
     title: str,
     label: str,
     length_unit: str = "m",
-    diverging: bool = False,
+    scale: str = "linear",
     vmin: float | None = None,
     vmax: float | None = None,
     shade: np.ndarray | None = None,
@@ -327,8 +342,10 @@ def quicklook_png(
         The grid's affine transform (north-up), for extent and scale bar.
     title, label
         Figure title; colour-bar label with units.
-    diverging
-        Centre the palette (``PuOr``) on zero, for signed quantities; otherwise ``cividis``.
+    scale
+        ``linear`` (``cividis`` from the 2nd to the 98th percentile), ``diverging`` (``PuOr``
+        centred on zero, for signed quantities) or ``ratio`` (``PuOr`` on a log axis centred
+        on 1, for factors: 0.8 and 1.25 lie equally far from 1).
     shade
         A precomputed :func:`hillshade` of ``elevation`` (computed here when None).
     """
@@ -336,7 +353,7 @@ def quicklook_png(
 
     matplotlib.use("Agg", force=False)
     import matplotlib.pyplot as plt
-    from matplotlib.colors import Normalize, TwoSlopeNorm
+    from matplotlib.colors import LogNorm, Normalize, TwoSlopeNorm
 
     vals = np.asarray(values, dtype=float)
     rows, cols = vals.shape
@@ -348,11 +365,23 @@ def quicklook_png(
         shade = hillshade(elevation, dx=abs(a), dy=abs(e))
 
     finite = vals[np.isfinite(vals)]
-    if diverging:
+    ticks = None
+    if scale == "ratio":
+        positive = finite[finite > 0]
+        vals = np.where(vals > 0, vals, np.nan)  # no place for 0 or less on a log axis
+        # 98th percentile of |log ratio|, at least 1.1: a few extreme cells do not wash
+        # out the rest, and a uniform map is not stretched over round-off
+        bound = float(np.exp(np.percentile(np.abs(np.log(positive)), 98))) if positive.size else 2.0
+        bound = max(bound, 1.1)
+        norm: Normalize = LogNorm(vmin=1.0 / bound if vmin is None else vmin,
+                                  vmax=bound if vmax is None else vmax)
+        cmap = "PuOr_r"  # above 1 orange, as a stage that comes out low on the bias map
+        ticks = _ratio_ticks(max(norm.vmax, 1.0 / norm.vmin))
+    elif scale == "diverging":
         # 98th percentile of |value|: a few extreme cells do not wash out the rest
         bound = float(np.percentile(np.abs(finite), 98)) if finite.size else 1.0
         bound = bound if bound > 0 else 1.0
-        norm: Normalize = TwoSlopeNorm(vcenter=0.0, vmin=-bound if vmin is None else vmin,
+        norm = TwoSlopeNorm(vcenter=0.0, vmin=-bound if vmin is None else vmin,
                                        vmax=bound if vmax is None else vmax)
         cmap = "PuOr"
     else:
@@ -379,6 +408,9 @@ def quicklook_png(
         interpolation="nearest",
     )
     bar = fig.colorbar(image, cax=cax, extend="both")
+    if ticks is not None:
+        bar.set_ticks(ticks, labels=[f"{t:g}" for t in ticks])
+        bar.minorticks_off()
     bar.set_label(label)
     ax.set_title(title)
     ax.set_xlabel(f"easting ({length_unit})")
@@ -416,24 +448,25 @@ def quicklook_png(
 
 # ------------------------------------------------------------------------- orchestration
 
-#: name -> (title, colour-bar label template, diverging, description)
-MAP_SPECS: dict[str, tuple[str, str, bool, str]] = {
+#: name -> (title, colour-bar label template, colour scale (see :func:`quicklook_png`),
+#: description)
+MAP_SPECS: dict[str, tuple[str, str, str, str]] = {
     "friction_factor": (
         "Where the terrain adds wetted bed (bed area / wet area)",
         "bed area / wet area (-)",
-        False,
+        "linear",
         "Wetted bed area over wet plan area per cell at the reference depth (dimensionless)",
     ),
     "n_ratio": (
         "Change of Manning's n needed per cell (target / source)",
-        "n ratio, median of the cell's faces (-)",
-        False,
+        "n ratio, median of the cell's faces (-, log scale)",
+        "ratio",
         "n_target / n_source, median over the window of the cell's faces (dimensionless)",
     ),
     "stage_bias": (
         "Stage error if n is carried over unchanged",
         "stage bias ({unit})",
-        True,
+        "diverging",
         "Target minus source stage with n carried over unchanged, median of the cell's faces",
     ),
 }
@@ -499,11 +532,11 @@ def write_maps(
         shade = hillshade(look_z, dx=abs(look_transform.a), dy=abs(look_transform.e))
         index = cell_index_grid(geoms, transform=look_transform, shape=look_shape)
         for name in names:
-            title, label, diverging, _ = MAP_SPECS[name]
+            title, label, scale, _ = MAP_SPECS[name]
             written[name] = quicklook_png(
                 out / f"{name}.png", paint(index, values[name]), elevation=look_z,
                 transform=look_transform, title=title, label=label.format(unit=vertical_unit),
-                length_unit=length_unit, diverging=diverging, shade=shade,
+                length_unit=length_unit, scale=scale, shade=shade,
             )
     if faces is not None and face_values is not None:
         written["faces"] = write_face_layer(out / "faces.gpkg", faces, face_values)

@@ -61,7 +61,9 @@ FIGURES: dict[str, tuple[tuple[str, str, str], ...]] = {
             "n_ratio",
             "Change of n needed per cell",
             "Per cell, the median over the window and over its faces of the ratio of target "
-            "to source n that keeps conveyance equal at equal stage.",
+            "to source n that keeps conveyance equal at equal stage, on a log scale centred "
+            "on 1: orange where n must rise (the cells that would run low with n unchanged), "
+            "purple where it must fall.",
         ),
     ),
     "plots": (

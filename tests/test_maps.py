@@ -268,6 +268,43 @@ def test_maps_painted_window_by_window_are_the_whole_grid_painted(tmp_path, monk
         assert drawn[name] == ((133, 153), (133, 153), 4.0)
 
 
+@pytest.mark.parametrize("high", [1.05, 1.1, 1.6, 2.0, 35.0, 160.0])
+def test_ratio_ticks_are_symmetric_about_one_in_log(high):
+    ticks = maps._ratio_ticks(high)
+    assert 1.0 in ticks and len(ticks) <= 7
+    assert all(1.0 / high * (1 - 1e-3) <= t <= high * (1 + 1e-9) for t in ticks)
+    ups = [t for t in ticks if t > 1.0]
+    downs = sorted((t for t in ticks if t < 1.0), reverse=True)
+    np.testing.assert_allclose([1.0 / t for t in downs], ups, rtol=2e-3)  # labels rounded
+
+
+@pytest.mark.parametrize(("scale", "centre"), [("ratio", 1.0), ("diverging", 0.0)])
+def test_quicklook_colours_centre_ratios_on_one_and_signed_values_on_zero(tmp_path, monkeypatch,
+                                                                           scale, centre):
+    import matplotlib.figure
+
+    rng = np.random.default_rng(3)
+    values = np.exp(rng.normal(0.0, 0.3, (40, 50))) if scale == "ratio" else rng.normal(0, 1, (40, 50))
+    norms = []
+    savefig = matplotlib.figure.Figure.savefig
+
+    def capture(fig, *args, **kwargs):
+        norms.extend(im.norm for ax in fig.axes for im in ax.get_images())
+        return savefig(fig, *args, **kwargs)
+
+    monkeypatch.setattr(matplotlib.figure.Figure, "savefig", capture)
+    maps.quicklook_png(tmp_path / "q.png", values, elevation=np.zeros((40, 50)),
+                       transform=rasterio.Affine(2.0, 0, 0, 0, -2.0, 100.0), title="t",
+                       label="l", scale=scale)
+    norm = norms[-1]  # the values' layer, over the hillshade
+    if scale == "ratio":
+        assert type(norm).__name__ == "LogNorm"
+        assert norm.vmin * norm.vmax == pytest.approx(1.0)  # 1 / b .. b: centred on 1 in log
+        assert norm.vmax >= 1.1
+    else:
+        assert norm.vcenter == centre and norm.vmin == -norm.vmax
+
+
 #: a polygon with two holes, one of them a triangle
 HOLED = shapely.Polygon([(5, 5), (25, 5), (25, 25), (5, 25)],
                         [[(8, 8), (14, 8), (14, 14), (8, 14)], [(17.5, 17.5), (22, 17.5), (22, 22)]])
