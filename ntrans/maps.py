@@ -27,7 +27,7 @@ import logging
 import os
 from collections.abc import Sequence
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 import pandas as pd
@@ -327,7 +327,7 @@ def quicklook_png(
     title: str,
     label: str,
     length_unit: str = "m",
-    scale: str = "linear",
+    scale: Literal["linear", "diverging", "ratio"] = "linear",
     vmin: float | None = None,
     vmax: float | None = None,
     shade: np.ndarray | None = None,
@@ -364,6 +364,8 @@ def quicklook_png(
     if shade is None:
         shade = hillshade(elevation, dx=abs(a), dy=abs(e))
 
+    if scale not in ("linear", "diverging", "ratio"):
+        raise ValueError(f"colour scale {scale!r} is not linear, diverging or ratio")
     finite = vals[np.isfinite(vals)]
     ticks = None
     if scale == "ratio":
@@ -382,7 +384,7 @@ def quicklook_png(
         bound = float(np.percentile(np.abs(finite), 98)) if finite.size else 1.0
         bound = bound if bound > 0 else 1.0
         norm = TwoSlopeNorm(vcenter=0.0, vmin=-bound if vmin is None else vmin,
-                                       vmax=bound if vmax is None else vmax)
+                            vmax=bound if vmax is None else vmax)
         cmap = "PuOr"
     else:
         lo = float(np.nanpercentile(finite, 2)) if finite.size else 0.0
@@ -450,7 +452,7 @@ def quicklook_png(
 
 #: name -> (title, colour-bar label template, colour scale (see :func:`quicklook_png`),
 #: description)
-MAP_SPECS: dict[str, tuple[str, str, str, str]] = {
+MAP_SPECS: dict[str, tuple[str, str, Literal["linear", "diverging", "ratio"], str]] = {
     "friction_factor": (
         "Where the terrain adds wetted bed (bed area / wet area)",
         "bed area / wet area (-)",

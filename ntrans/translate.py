@@ -37,6 +37,7 @@ n_ratio = K_target(n_source) / K_source(n_source).
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import dataclass, field, replace
 from typing import Any, Literal, Protocol
 
@@ -79,7 +80,7 @@ FLAG_MEANINGS: dict[str, str] = {
 _TINY = 1e-12
 
 
-def flags_explained(flag_texts: Any) -> list[tuple[str, str]]:
+def flags_explained(flag_texts: Iterable[object]) -> list[tuple[str, str]]:
     """(flag, meaning) for every flag in ``flag_texts`` (the ``;``-separated texts of a
     ``flags`` column), in the order of :data:`FLAG_MEANINGS`; ``dry_wet_mismatch`` is
     shown as ``dry_wet_mismatch:N``.  Unknown names are left out."""
@@ -91,7 +92,7 @@ def flags_explained(flag_texts: Any) -> list[tuple[str, str]]:
             for name, meaning in FLAG_MEANINGS.items() if name in shown]
 
 
-def flag_lines(flag_texts: Any, width: int = 88) -> list[str]:
+def flag_lines(flag_texts: Iterable[object], width: int = 88) -> list[str]:
     """:func:`flags_explained` as text lines for a terminal: a ``flags:`` heading, then
     each flag with its meaning, wrapped at ``width`` characters; no lines without flags."""
     import textwrap
