@@ -1001,7 +1001,7 @@ def _text_summary(summary: dict[str, Any], frame: Any, out: Path, z_unit: str) -
         f"{'items':>6}  flags",
     ]
     for row in frame.itertuples(index=False):
-        spread = f"{row.ratio_p10:.2f}-{row.ratio_p90:.2f}" if np.isfinite(row.ratio_p10) else "-"
+        spread = f"{row.ratio_p10:.3g}-{row.ratio_p90:.3g}" if np.isfinite(row.ratio_p10) else "-"
         lines.append(f"{str(row[0])[:20]:<20} {row.n_source:>8.4f} {row.n_target:>8.4f} "
                      f"{row.ratio:>6.3f} {spread:>11} {row.faces:>6}  {row.flags}")
     explained = flag_lines(frame["flags"]) if "flags" in frame.columns else []
