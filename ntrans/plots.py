@@ -123,15 +123,15 @@ def plot_class_ratios(
             continue
         name = classes[i]
         part = bands[bands[by] == name]
+        part = part[np.isfinite(part["p50"].to_numpy(dtype=float))]  # depths with a ratio
         colour = PALETTE[i % len(PALETTE)]
-        n_points = int(np.isfinite(part["p50"].to_numpy(dtype=float)).sum())
-        if n_points:
+        if len(part):
             ax.fill_between(part[x], part["p10"], part["p90"], color=colour, alpha=0.25,
                             linewidth=0, label=f"10-90 % of {item}s")
-            # a line needs two points: a class wet at one depth only shows as dots
+            # a line needs two points: a class wet at one depth only shows as a dot
             ax.plot(part[x], part["p50"], color=colour, linewidth=2, label="median",
-                    marker="o" if n_points < 2 else None, markersize=4)
-            if n_points < 2:
+                    marker="o" if len(part) == 1 else None, markersize=4)
+            if len(part) == 1:
                 ax.vlines(part[x], part["p10"], part["p90"], color=colour, alpha=0.5)
         else:  # say why the panel is empty rather than leave it blank
             ax.text(0.5, 0.5, f"no ratio: no {item} of this class\nis wet in both families",

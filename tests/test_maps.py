@@ -209,10 +209,14 @@ def test_plots_write_deterministic_pngs(tmp_path):
 def test_class_ratio_panels_show_one_depth_as_a_dot_and_say_why_one_is_empty(tmp_path,
                                                                            monkeypatch):
     bands = pd.DataFrame({
-        "class": ["many", "many", "one", "none"],
-        "depth": [0.5, 1.0, 1.5, 1.0],
-        "p10": [0.8, 0.9, 150.0, np.nan], "p50": [0.9, 1.0, 160.0, np.nan],
-        "p90": [1.0, 1.1, 170.0, np.nan], "count": [5, 5, 1, 0],
+        "class": ["many", "many", "one", "one", "gap", "gap", "gap", "none"],
+        # "one": a depth without a ratio, then one with; "gap": two ratios around a depth
+        # without one (a line broken at the gap would draw nothing)
+        "depth": [0.5, 1.0, 1.0, 1.5, 0.5, 1.0, 1.5, 1.0],
+        "p10": [0.8, 0.9, np.nan, 150.0, 0.9, np.nan, 1.1, np.nan],
+        "p50": [0.9, 1.0, np.nan, 160.0, 1.0, np.nan, 1.2, np.nan],
+        "p90": [1.0, 1.1, np.nan, 170.0, 1.1, np.nan, 1.3, np.nan],
+        "count": [5, 5, 0, 1, 3, 0, 3, 0],
     })
     figures = []
     saved = plots._save
@@ -224,6 +228,8 @@ def test_class_ratio_panels_show_one_depth_as_a_dot_and_say_why_one_is_empty(tmp
     assert markers["many"] == ["None"]  # a line through its depths
     assert markers["one"] == ["o"]  # one depth: a dot (a line of one point draws nothing)
     assert markers["none"] == []
+    medians = [line for line in panels["gap"].get_lines() if line.get_linestyle() != "--"]
+    assert [list(line.get_ydata()) for line in medians] == [[1.0, 1.2]]  # joined, no gap
     assert any("wet in both families" in text.get_text() for text in panels["none"].texts)
     assert not panels["many"].texts
 
