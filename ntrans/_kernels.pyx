@@ -677,3 +677,22 @@ def ramp_table_values(pref, pair0, row, p, e, dry):
             per[i] = _at_least_zero(x * s3 - s4 + s7)
             area[i] = _at_least_zero(0.5 * (x * x * s0 - 2.0 * x * s1 + s2) + x * s5 - s6)
     return wet_a, per_a, area_a
+
+
+def cumulative_rows(values):
+    """``np.cumsum(values, axis=0, out=values)`` in place on a C-contiguous float64 2-D array.
+
+    The same additions in the same order (row i += row i-1, top to bottom), so the same
+    bits; unlike numpy's accumulate along the first axis it runs without the GIL, which a
+    tile thread building its prefix tables would otherwise hold for the whole sum.
+    """
+    if not (isinstance(values, np.ndarray) and values.ndim == 2 and values.dtype == np.float64
+            and values.flags.c_contiguous and values.flags.writeable):
+        raise TypeError("values must be a writeable C-contiguous float64 2-D array")
+    cdef double[:, ::1] v = values
+    cdef index_t n = v.shape[0], k = v.shape[1], i, j
+    with nogil:
+        for i in range(1, n):
+            for j in range(k):
+                v[i, j] += v[i - 1, j]
+    return values

@@ -274,6 +274,8 @@ def _restarted_prefix(columns: list[Any], pair: np.ndarray, start: np.ndarray,
     off, so the round-off scales with one pair, not the whole tile.  Row i of pair p sits
     at row i + shift[p] + 1 of the returned (n + n_pairs_used + 1, n_columns) array, whose
     first row is 0.  Returns (shift, prefix)."""
+    from ._kernels import cumulative_rows
+
     nonempty = end > start
     firsts = start[nonempty]
     shift = np.cumsum(nonempty)
@@ -286,7 +288,7 @@ def _restarted_prefix(columns: list[Any], pair: np.ndarray, start: np.ndarray,
         pref[rows, j] = values
         if firsts.size > 1:
             pref[pads, j] = -np.add.reduceat(values, firsts)[:-1]
-    np.cumsum(pref[1:], axis=0, out=pref[1:])
+    cumulative_rows(pref)  # row 0 is 0: the same sums as np.cumsum(pref[1:], axis=0)
     return shift, pref
 
 

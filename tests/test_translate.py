@@ -711,6 +711,32 @@ def test_first_at_least_is_searchsorted_per_range(n_ranges, size, seed):
     assert got.dtype == np.int64
 
 
+@pytest.mark.parametrize("shape", [(0, 3), (1, 8), (2, 1), (5_001, 3), (777, 8)])
+def test_cumulative_rows_is_numpy_cumsum_to_the_bit(shape):
+    """The compiled prefix sum of the stage tables is ``np.cumsum(axis=0)`` bit for bit:
+    the same additions (row i += row i-1) in the same order, including NaN and infinite
+    entries and values of very different magnitudes (where the order of additions shows)."""
+    from ntrans._kernels import cumulative_rows
+
+    rng = np.random.default_rng(shape[0])
+    values = rng.normal(0.0, 1.0, shape) * 10.0 ** rng.integers(-8, 9, shape)
+    if values.size > 20:
+        values.flat[7], values.flat[13] = np.nan, np.inf
+    expected = np.cumsum(values, axis=0)
+    got = cumulative_rows(values)
+    assert got is values  # in place
+    assert got.tobytes() == expected.tobytes()
+
+
+@pytest.mark.parametrize("bad", [np.zeros((3, 2), dtype=np.float32), np.zeros((4, 2)).T,
+                                 np.zeros(5), np.zeros((3, 3))[:, :2]])
+def test_cumulative_rows_refuses_what_it_cannot_sum_in_place(bad):
+    from ntrans._kernels import cumulative_rows
+
+    with pytest.raises(TypeError):
+        cumulative_rows(bad)
+
+
 def test_ramp_table_values_are_the_numpy_form_to_the_bit():
     """The compiled evaluation of a face's ramp table (wet length, perimeter, area from the
     pair's eight prefix sums) gives the numpy expressions' values bit for bit: the same
