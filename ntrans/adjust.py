@@ -896,13 +896,15 @@ def _warn_if_short_of_memory(n_cells: int, n_faces: int, n_window: int, threads:
     need = estimated_peak_bytes(n_cells, n_faces, n_window, threads=threads, tile_size=tile_size)
     have = available_memory()
     if have is not None and need > 0.9 * have:
-        warn(
-            f"this adjustment will need about {need / 1e9:.1f} GB of memory at its peak "
-            f"({n_cells} cells, {n_faces} faces, {n_window} window stages, {threads} tile "
-            f"thread(s) of {tile_size} px) and {have / 1e9:.1f} GB is available; run one tile "
-            "at a time (--threads 1) with a smaller --tile-size, or on a machine with more "
-            "memory",
-            MemoryEstimateWarning, stacklevel=3)
+        what = (f"this adjustment will need about {need / 1e9:.1f} GB of memory at its peak "
+                f"({n_cells} cells, {n_faces} faces, {n_window} window stages, {threads} tile "
+                f"thread(s) of {tile_size} px) and {have / 1e9:.1f} GB is available")
+        if need > 2.0 * have:  # it could not finish: refuse before the long passes
+            raise InputError(f"{what}; give fewer window stages, run one tile at a time "
+                             "(--threads 1) with a smaller --tile-size, or use a machine with "
+                             "more memory")
+        warn(f"{what}; run one tile at a time (--threads 1) with a smaller --tile-size, or on "
+             "a machine with more memory", MemoryEstimateWarning, stacklevel=3)
 
 
 #: the class fit's memory per item-stage wet in several classes (kept one by one; most of

@@ -49,9 +49,9 @@ from .engine import (
     plan_tiles,
     rows_of,
 )
-from .errors import InputError, PartialCoverageWarning, check_choice, warn
+from .errors import InputError, MemoryEstimateWarning, PartialCoverageWarning, check_choice, warn
 from .inputs import RASTER_CACHE_BYTES, rasters_kept_open
-from .memory import collection_paused, release_free_memory
+from .memory import available_memory, collection_paused, release_free_memory
 from .stages import StageSpec
 
 log = logging.getLogger(__name__)
@@ -81,6 +81,37 @@ PARTIAL_TOLERANCE = 1e-6
 #: beside the tiles instead of after them; larger layers are encoded batch by batch at
 #: the end, so their encoded geometry never sits in memory whole
 EARLY_ENCODE_BYTES = 64 << 20
+
+
+#: memory per cell- or face-stage of a tile result held at once (its table rows and their
+#: temporaries): about 174 bytes measured with 3,000 depths on the demo mesh (peak 6.7 GB
+#: against 0.41 GB with 30, all four tiles in flight); kept as a bound
+TABLE_BYTES_PER_ITEM_STAGE = 200.0
+#: the rest of a job's peak, as in the README's bound
+TABLE_BASE_BYTES = 0.3e9
+
+
+def estimated_stage_rows_bytes(tile_items: list[int], n_stages: int, in_flight: int) -> float:
+    """Peak memory (bytes) the stage rows of the ``in_flight`` largest tiles take at once,
+    for tiles of ``tile_items`` cells and faces each and ``n_stages`` stages."""
+    largest = sorted(tile_items, reverse=True)[:max(int(in_flight), 1)]
+    return TABLE_BYTES_PER_ITEM_STAGE * float(sum(largest)) * float(n_stages)
+
+
+def _check_stage_rows_fit(tile_items: list[int], n_stages: int, in_flight: int) -> None:
+    """Refuse stage tables whose rows would take more than twice the memory available
+    (they could not finish), and warn above 90 % of it, before the tiles run."""
+    have = available_memory()
+    need = TABLE_BASE_BYTES + estimated_stage_rows_bytes(tile_items, n_stages, in_flight)
+    if have is None or need <= 0.9 * have:
+        return
+    what = (f"these stage tables need about {need / 1e9:.1f} GB of memory ({n_stages} stages "
+            f"for up to {max(tile_items, default=0)} cells and faces per tile, {in_flight} "
+            f"tile(s) at once) and {have / 1e9:.1f} GB is available")
+    if need > 2.0 * have:
+        raise InputError(f"{what}; give fewer stages, a smaller --tile-size or --threads 1")
+    warn(f"{what}; if the job runs out of memory, give fewer stages, a smaller --tile-size "
+         "or --threads 1", MemoryEstimateWarning, stacklevel=3)
 
 
 @dataclass
@@ -390,6 +421,13 @@ def build_tables(
         log.info(
             "%d cells, %d faces, %d stages (%s mode) in %d tiles of %d px",
             n_cells, n_faces, spec.values.size, spec.mode, len(tiles), int(tile_size),
+        )
+        from .cluster import default_threads
+
+        per_worker = int(threads) if threads is not None else default_threads()
+        _check_stage_rows_fit(
+            [t.cells.size + (t.faces.size if faces else 0) for t in tiles], spec.values.size,
+            min(len(tiles), 2 * per_worker if connection is None else 4 * connection.n_workers()),
         )
         settings = TileSettings(
             stages=spec,

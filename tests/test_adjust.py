@@ -260,12 +260,14 @@ def test_scheduler_same_result(channel_case, tmp_path):
     pd.testing.assert_frame_equal(a, b)
 
 
-@pytest.mark.parametrize("available, warns", [(10_000, True), (10**13, False), (None, False)])
+@pytest.mark.parametrize("available, warns", [(1.5e9, True), (10**13, False), (None, False)])
 def test_warns_up_front_when_memory_looks_short(flat_case, tmp_path, monkeypatch, available,
                                                warns):
     import ntrans.adjust as adjust_module
     from ntrans.errors import MemoryEstimateWarning
 
+    # a 2 GB estimate: above 90 % of 1.5 GB (a warning) but not above twice it (refused)
+    monkeypatch.setattr(adjust_module, "estimated_peak_bytes", lambda *a, **k: 2e9)
     monkeypatch.setattr(adjust_module, "available_memory", lambda: available)
     dem, cells = flat_case
     with warnings.catch_warnings(record=True) as caught:
@@ -278,6 +280,20 @@ def test_warns_up_front_when_memory_looks_short(flat_case, tmp_path, monkeypatch
         # one sentence saying what to change; the job still runs (an estimate, not a limit)
         assert "(--threads 1) with a smaller --tile-size" in str(memory[0].message)
         assert (tmp_path / "out" / "n_by_class.csv").exists()
+
+
+def test_refuses_up_front_what_could_not_fit_in_memory(flat_case, tmp_path, monkeypatch):
+    # more than twice the memory available: the job could not finish, so it stops before
+    # the tile passes with one sentence and writes nothing
+    import ntrans.adjust as adjust_module
+    from ntrans.errors import InputError
+
+    monkeypatch.setattr(adjust_module, "available_memory", lambda: 10_000)
+    dem, cells = flat_case
+    with pytest.raises(InputError, match="give fewer window stages"):
+        adjust_roughness(dem, cells, out=tmp_path / "out", n=0.03, depths="0.5,1,2",
+                         source="flat", target="subgrid", closure="lumped")
+    assert not (tmp_path / "out").exists()
 
 
 def test_warns_before_the_fit_when_its_mixed_entries_look_short(flat_case, tmp_path,
@@ -293,6 +309,7 @@ def test_warns_before_the_fit_when_its_mixed_entries_look_short(flat_case, tmp_p
     table = tmp_path / "n.csv"
     table.write_text("class,n\n1,0.03\n2,0.06\n")
     monkeypatch.setattr(adjust_module, "available_memory", lambda: 1_000)
+    monkeypatch.setattr(adjust_module, "estimated_peak_bytes", lambda *a, **k: 1_500.0)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         adjust_roughness(dem, cells, out=tmp_path / "out", class_raster=raster, n_table=table,

@@ -237,6 +237,46 @@ def test_atomic_output_on_error(case, tmp_path, monkeypatch, threads):
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".out")]
 
 
+@pytest.mark.parametrize("available, outcome", [(10**13, "runs"), (None, "runs"),
+                                                ("just short", "warns"), (10_000, "refused")])
+def test_memory_of_many_stages_is_checked_before_the_tiles(case, tmp_path, monkeypatch,
+                                                          available, outcome):
+    """A tile's stage rows grow with the stages: far more than the memory available is
+    refused before the tiles run (it could not finish), a little more gives a warning."""
+    import warnings
+
+    import ntrans.tables as tables_module
+    from ntrans.errors import InputError, MemoryEstimateWarning
+
+    dem, cells, _, _ = case
+    stages = "9:13:0.01"  # 401 stages
+    if available == "just short":  # the estimate lies between 90 % and twice what is there
+        need = tables_module.TABLE_BASE_BYTES + tables_module.estimated_stage_rows_bytes(
+            [9 + 24], 401, 1)  # one tile: 9 cells and their 24 faces
+        available = int(need / 1.5)
+    monkeypatch.setattr(tables_module, "available_memory", lambda: available)
+    out = tmp_path / "out"
+    if outcome == "refused":
+        with pytest.raises(InputError, match="give fewer stages"):
+            build_tables(dem, cells, out=out, stages=stages)
+        assert not out.exists()
+        return
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        build_tables(dem, cells, out=out, stages=stages)
+    memory = [w for w in caught if issubclass(w.category, MemoryEstimateWarning)]
+    assert len(memory) == int(outcome == "warns")
+    assert (out / "cell_stage.parquet").exists()
+
+
+def test_stage_rows_estimate_takes_the_largest_tiles_in_flight():
+    from ntrans.tables import TABLE_BYTES_PER_ITEM_STAGE, estimated_stage_rows_bytes
+
+    got = estimated_stage_rows_bytes([5, 50, 20, 40], 10, 2)
+    assert got == TABLE_BYTES_PER_ITEM_STAGE * (50 + 40) * 10
+    assert estimated_stage_rows_bytes([], 10, 4) == 0.0
+
+
 def test_bad_stage_spec_writes_nothing(case, tmp_path):
     dem, cells, _, _ = case
     with pytest.raises(StageSpecError):
