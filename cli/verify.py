@@ -10,13 +10,19 @@ import click
 def command(bundle: str) -> None:
     """Re-hash every file of BUNDLE (a folder or its zip) and compare with manifest.json.
 
-    Lists missing, changed and extra files; exits with code 2 when anything differs.
+    Lists missing, changed and extra files, checks that the manifest itself was not
+    edited after the run, and prints the manifest's own SHA-256; exits with code 2 when
+    anything differs.
     """
     from ntrans.bundle import verify_bundle
 
     result = verify_bundle(bundle)
     for line in result.lines():
         click.echo(line)
+    if result.manifest_edited is None:
+        click.echo("note: this manifest predates its own check; edits to it cannot be detected")
+    click.echo(f"manifest.json sha256: {result.manifest_sha256} (record it with the handover "
+               "to recognise this exact bundle later)")
     if result.ok:
         click.echo(f"ok: {result.summary()}")
         return

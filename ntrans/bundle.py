@@ -12,6 +12,7 @@ same project produce the same output hashes.
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import json
 import logging
@@ -201,9 +202,25 @@ def write_manifest(
     }
     if extra:
         manifest.update(_jsonable(dict(extra)))
+    manifest[SELF_CHECK_KEY] = _self_check(manifest)
     path = root / MANIFEST_NAME
     path.write_text(json.dumps(manifest, indent=2, sort_keys=False) + "\n", encoding="utf-8")
     return path
+
+
+#: the manifest's check of itself: SHA-256 of the rest of it as canonical JSON
+SELF_CHECK_KEY = "manifest_sha256"
+
+
+def _self_check(manifest: Mapping[str, Any]) -> str:
+    """SHA-256 (hex) of ``manifest`` without its self-check entry, as canonical JSON (keys
+    sorted, no spaces, UTF-8): an edit to its parameters, inputs or listed hashes after the
+    run changes it.  It tells an edit by hand from the manifest ntrans wrote, not a forgery
+    (anyone can recompute it); the manifest file's own hash, recorded with the handover,
+    identifies the bundle."""
+    rest = {k: v for k, v in manifest.items() if k != SELF_CHECK_KEY}
+    text = json.dumps(rest, sort_keys=True, separators=(",", ":"), ensure_ascii=False)
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
 
 def _jsonable(value: Any) -> Any:
@@ -243,16 +260,26 @@ class VerifyResult:
     missing: tuple[str, ...] = field(default_factory=tuple)
     changed: tuple[str, ...] = field(default_factory=tuple)
     extra: tuple[str, ...] = field(default_factory=tuple)
+    #: True when the manifest's own check fails (edited after the run); None when it has
+    #: none (written before manifests checked themselves)
+    manifest_edited: bool | None = False
+    #: SHA-256 of the manifest file itself (empty when not read)
+    manifest_sha256: str = ""
 
     @property
     def ok(self) -> bool:
-        """True when every listed file is present and unchanged and nothing was added."""
-        return not (self.missing or self.changed or self.extra)
+        """True when every listed file is present and unchanged, nothing was added and the
+        manifest itself was not edited."""
+        return not (self.missing or self.changed or self.extra or self.manifest_edited)
 
     def lines(self) -> list[str]:
         """One line per difference, e.g. ``changed: report.html``."""
+        edited = ([f"changed: {MANIFEST_NAME} (edited after the run: its parameters, inputs "
+                   "or listed hashes are not the ones ntrans wrote)"]
+                  if self.manifest_edited else [])
         return (
-            [f"missing: {p}" for p in self.missing]
+            edited
+            + [f"missing: {p}" for p in self.missing]
             + [f"changed: {p}" for p in self.changed]
             + [f"extra: {p}" for p in self.extra]
         )
@@ -261,8 +288,9 @@ class VerifyResult:
         """One sentence describing the outcome."""
         if self.ok:
             return f"all {self.checked} files of the bundle match its manifest"
+        edited = "the manifest was edited after the run; " if self.manifest_edited else ""
         return (
-            f"the bundle does not match its manifest: {len(self.missing)} missing, "
+            f"the bundle does not match its manifest: {edited}{len(self.missing)} missing, "
             f"{len(self.changed)} changed, {len(self.extra)} extra file(s) of {self.checked} listed"
         )
 
@@ -290,8 +318,7 @@ def verify_bundle(path: str | os.PathLike[str]) -> VerifyResult:
                 archive.extractall(tmp)
             roots = [d for d in Path(tmp).iterdir()]
             root = roots[0] if len(roots) == 1 and roots[0].is_dir() else Path(tmp)
-            result = _verify_folder(root)
-            return VerifyResult(p, result.checked, result.missing, result.changed, result.extra)
+            return dataclasses.replace(_verify_folder(root), folder=p)
     if not p.is_dir():
         raise BundleError(f"{str(p)!r} is neither a bundle folder nor a bundle zip; check the path")
     return _verify_folder(p)
@@ -315,7 +342,11 @@ def _verify_folder(root: Path) -> VerifyResult:
         ) != entry["sha256"]:
             changed.append(rel)
     extra = sorted(present - set(listed))
-    result = VerifyResult(root, len(listed), tuple(missing), tuple(changed), tuple(extra))
+    recorded = manifest.get(SELF_CHECK_KEY)
+    edited = None if recorded is None else recorded != _self_check(manifest)
+    result = VerifyResult(root, len(listed), tuple(missing), tuple(changed), tuple(extra),
+                          manifest_edited=edited,
+                          manifest_sha256=sha256_file(root / MANIFEST_NAME))
     logger.debug(result.summary())
     return result
 

@@ -78,6 +78,48 @@ def test_verify_detects_edited_missing_and_extra_files(tmp_path, change, kind, n
         result.raise_for_differences()
 
 
+@pytest.mark.parametrize("edit", [
+    lambda m: m["parameters"]["window"].update(depths="0:2:0.5"),  # a parameter
+    lambda m: m["outputs"][0].update(sha256="0" * 64),  # a listed hash
+    lambda m: m.update(created_utc="2020-01-01T00:00:00Z"),  # the time of the run
+])
+def test_verify_detects_an_edited_manifest(tmp_path, edit):
+    """The manifest checks itself: an edit by hand to what it records (rewritten as valid
+    JSON, every output file untouched) makes the bundle fail verification."""
+    folder = _make_bundle(tmp_path / "b")
+    path = folder / "manifest.json"
+    manifest = json.loads(path.read_text())
+    edit(manifest)
+    path.write_text(json.dumps(manifest, indent=2) + "\n", encoding="utf-8")
+    result = bundle.verify_bundle(folder)
+    assert result.manifest_edited and not result.ok
+    assert result.lines()[0].startswith("changed: manifest.json (edited after the run")
+    with pytest.raises(BundleError, match="manifest was edited"):
+        result.raise_for_differences()
+
+
+def test_manifest_check_survives_rewriting_and_reports_the_file_hash(tmp_path):
+    # the check is of the content, not the layout: the same JSON re-indented still passes;
+    # the file's own SHA-256 is reported (independent hash)
+    folder = _make_bundle(tmp_path / "b")
+    path = folder / "manifest.json"
+    path.write_text(json.dumps(json.loads(path.read_text()), indent=4), encoding="utf-8")
+    result = bundle.verify_bundle(folder)
+    assert result.ok and result.manifest_edited is False
+    assert result.manifest_sha256 == hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def test_a_manifest_without_its_check_still_verifies(tmp_path):
+    # bundles written before manifests checked themselves: their files are still checked
+    folder = _make_bundle(tmp_path / "b")
+    path = folder / "manifest.json"
+    manifest = json.loads(path.read_text())
+    del manifest[bundle.SELF_CHECK_KEY]
+    path.write_text(json.dumps(manifest), encoding="utf-8")
+    result = bundle.verify_bundle(folder)
+    assert result.ok and result.manifest_edited is None
+
+
 def test_verify_without_manifest_is_a_bundle_error(tmp_path):
     (tmp_path / "x").mkdir()
     with pytest.raises(BundleError):

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import hashlib
+
 import pandas as pd
 import pytest
 from click.testing import CliRunner
@@ -84,7 +86,10 @@ def test_verify_ok_exits_0(runner, tmp_path):
     folder = _bundle(tmp_path / "b")
     result = runner.invoke(cli, ["verify", str(folder)])
     assert result.exit_code == 0, result.output
-    assert result.stdout.startswith("ok: ")
+    digest = hashlib.sha256((folder / "manifest.json").read_bytes()).hexdigest()
+    lines = result.stdout.splitlines()
+    assert lines[0].startswith(f"manifest.json sha256: {digest} (record it")
+    assert lines[1].startswith("ok: ")
 
 
 def test_verify_lists_every_difference_then_exits_2(runner, tmp_path):
@@ -94,12 +99,24 @@ def test_verify_lists_every_difference_then_exits_2(runner, tmp_path):
     (folder / "extra.txt").write_text("x", encoding="utf-8")
     result = runner.invoke(cli, ["verify", str(folder)])
     assert result.exit_code == 2
-    assert result.stdout.splitlines() == [
+    assert result.stdout.splitlines()[:3] == [
         "missing: n_by_class.csv",
         "changed: report.html",
         "extra: extra.txt",
     ]
+    assert result.stdout.splitlines()[3].startswith("manifest.json sha256: ")
     assert "1 missing, 1 changed, 1 extra" in _one_error_line(result)
+
+
+def test_verify_catches_a_parameter_edited_in_the_manifest(runner, tmp_path):
+    folder = _bundle(tmp_path / "b")
+    path = folder / "manifest.json"
+    path.write_text(path.read_text().replace('"parameters": {}', '"parameters": {"closure": "strip"}'),
+                    encoding="utf-8")
+    result = runner.invoke(cli, ["verify", str(folder)])
+    assert result.exit_code == 2
+    assert result.stdout.splitlines()[0].startswith("changed: manifest.json (edited after the run")
+    assert "the manifest was edited after the run" in _one_error_line(result)
 
 
 def test_verify_without_manifest_exits_2(runner, tmp_path):
