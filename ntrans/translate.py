@@ -1217,6 +1217,9 @@ def solve_class_n(
         p10[:], p50[:], p90[:] = spread.quantiles([0.1, 0.5, 0.9], column_factor=scale)[:n_cls].T
     else:
         _spread_in_memory(terms, scale, p10, p50, p90)
+    # a class wet nowhere has no ratio of its own: the ratios of the items that hold it
+    # (by extent, while other classes carry their flow) would read as its spread
+    p10[~present] = p50[~present] = p90[~present] = np.nan
 
     def full_x(x_free: np.ndarray) -> np.ndarray:
         x = x0.copy()

@@ -489,6 +489,21 @@ def test_fit_flags():
         assert all(name.split(":")[0] in FLAG_MEANINGS for name in flags), flags
 
 
+def test_a_class_wet_nowhere_has_no_spread_of_its_own():
+    # below the bank tops (bank heights 1-2 m) only the channel (class 0) is under water:
+    # the floodplain class is not fitted, and the ratios of the faces that hold it by
+    # extent are not its spread (blank, not the channel's ratios)
+    fg = channel_mesh()
+    st = fg.stats(np.tile([0.5, 0.9], (fg.n_items, 1)))
+    n = np.array([0.03, 0.05])
+    fit = fit_class_n(conveyance(st, n), st, n)
+    assert "not_fitted" in fit.flags[1] and "not_fitted" not in fit.flags[0]
+    assert np.isnan([fit.ratio_p10[1], fit.ratio_p50[1], fit.ratio_p90[1]]).all()
+    # the channel's ratios are all 1 (the source is the target at the same n)
+    np.testing.assert_allclose([fit.ratio_p10[0], fit.ratio_p90[0]], 1.0, rtol=1e-9)
+    assert fit.n_target[1] == n[1]
+
+
 @pytest.mark.parametrize(
     ("texts", "names"),
     [
