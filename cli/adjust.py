@@ -23,6 +23,8 @@ from . import options
               help="One Manning's n for the whole mesh (s/m^(1/3) or its US equivalent).")
 @click.option("--classes", default=None, type=click.Path(dir_okay=False, path_type=str),
               metavar="PATH", help="Roughness class polygons (GeoPackage, Shapefile, ...).")
+@click.option("--classes-layer", default=None, metavar="NAME",
+              help="Layer of --classes to read, when the file holds several.")
 @click.option("--class-field", default=None, metavar="NAME",
               help="Attribute of --classes holding the class name (with --n-table).")
 @click.option("--n-table", default=None, type=click.Path(dir_okay=False, path_type=str),
@@ -51,6 +53,7 @@ from . import options
 @click.option("--composite", type=click.Choice(["horton_einstein", "pavlovskii", "lotter"]),
               default="horton_einstein", show_default=True,
               help="Composite n along a face with several classes.")
+@options.verbosity
 @click.pass_context
 def command(ctx: click.Context, **kwargs) -> None:
     """Fit one Manning's n per roughness class so the target model family carries the

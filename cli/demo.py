@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import click
 
+from . import options
 from .run import echo_summary
 
 
@@ -15,6 +16,7 @@ from .run import echo_summary
     show_default=True,
     help="Bundle folder to write (replaced if it exists).",
 )
+@options.verbosity
 @click.pass_context
 def command(ctx: click.Context, out: str) -> None:
     """Run the whole job on the invented demo river (data_demo/) and print where the

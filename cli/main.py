@@ -11,12 +11,13 @@ from __future__ import annotations
 import importlib
 import logging
 import sys
-import warnings
 
 import click
 from tqdm.contrib.logging import logging_redirect_tqdm
 
 from ntrans.errors import NtransError
+
+from . import options
 
 # command name -> module path; imported only when the command is used.
 COMMANDS: dict[str, str] = {
@@ -56,9 +57,9 @@ def _available(name: str) -> bool:
 
 
 @click.group(cls=LazyGroup, context_settings={"help_option_names": ["-h", "--help"]})
-@click.option("-v", "--verbose", count=True, help="More log lines (repeat for debug logs).")
-@click.option("-q", "--quiet", is_flag=True, help="Only warnings and errors; no progress bars.")
-@click.option("--debug", is_flag=True, help="Show the full traceback on errors.")
+@click.option("-v", "--verbose", count=True, help=options.VERBOSE_HELP)
+@click.option("-q", "--quiet", is_flag=True, help=options.QUIET_HELP)
+@click.option("--debug", is_flag=True, help=options.DEBUG_HELP)
 @click.version_option(package_name="ntrans")
 @click.pass_context
 def cli(ctx: click.Context, verbose: int, quiet: bool, debug: bool) -> None:
@@ -67,18 +68,17 @@ def cli(ctx: click.Context, verbose: int, quiet: bool, debug: bool) -> None:
     Adjusted n values are a starting point for calibration, not a substitute for it; a
     qualified engineer must review them; local codes, agency guidance and licensed
     practice take precedence.
+
+    -v, -q and --debug may also follow the command's name.
     """
-    ctx.meta["ntrans.debug"] = debug
-    ctx.meta["ntrans.quiet"] = quiet
-    level = logging.WARNING if quiet else (logging.INFO if verbose == 0 else logging.DEBUG)
     console = logging.StreamHandler()
     console.setFormatter(_ConsoleFormatter())
-    logging.basicConfig(level=level, handlers=[console], force=True)
+    logging.basicConfig(handlers=[console], force=True)
     logging.captureWarnings(True)
+    options.set_verbosity(ctx, verbose=verbose, quiet=quiet, debug=debug)
     # log lines written while a progress bar is up: clear the bar, print the line, redraw
     # the bar below it (else the line is appended to the bar's and the bar is left behind)
     ctx.with_resource(logging_redirect_tqdm())
-    warnings.formatwarning = _one_line_warning if not debug else _located_warning
 
 
 class _ConsoleFormatter(logging.Formatter):
@@ -93,16 +93,6 @@ class _ConsoleFormatter(logging.Formatter):
         if record.name == "py.warnings":
             return self._warning.format(record)
         return super().format(record)
-
-
-def _one_line_warning(message, category, filename, lineno, line=None) -> str:
-    """Format a warning as one line (the log record adds the level)."""
-    return f"{category.__name__}: {message}"
-
-
-def _located_warning(message, category, filename, lineno, line=None) -> str:
-    """Format a warning as one line with its origin (``--debug``)."""
-    return f"{category.__name__}: {message} ({filename}:{lineno})"
 
 
 def main(argv: list[str] | None = None) -> None:

@@ -28,12 +28,20 @@ cells = click.option(
     help="Mesh cells as polygons (GeoPackage, Shapefile, ...) in the DEM's CRS.",
 )
 
+cells_layer = click.option(
+    "--cells-layer",
+    default=None,
+    metavar="NAME",
+    help="Layer of --cells to read, when the file holds several (e.g. a GeoPackage with "
+    "more than the mesh).",
+)
+
 id_field = click.option(
     "--id-field",
     default=None,
     metavar="NAME",
-    help="Attribute holding unique cell ids (default: a cell_id, id or fid column if "
-    "there is one, else the feature order from 0).",
+    help="Attribute holding unique cell ids (default: the first of cell_id, cellid, id, "
+    "fid, objectid, ogc_fid there is, any case, else the feature order from 0).",
 )
 
 
@@ -57,10 +65,11 @@ depths = click.option(
 
 vertical_units = click.option(
     "--vertical-units",
-    type=click.Choice(["metre", "foot"]),
+    type=click.Choice(["metre", "foot", "us_survey_foot"]),
     default=None,
     help="Units of the DEM's elevations when they differ from the CRS's horizontal "
-    "units (default: the same as horizontal).",
+    "units (default: the same as horizontal).  'foot' is the CRS's foot when it is in "
+    "feet, else the international foot (0.3048 m); 'us_survey_foot' is 1200/3937 m.",
 )
 
 coverage = click.option(
@@ -180,6 +189,7 @@ def tables_options(func: F) -> F:
         [
             dem,
             cells,
+            cells_layer,
             id_field,
             stages,
             depths,
@@ -207,3 +217,66 @@ def check_stages_or_depths(stages_value: str | None, depths_value: str | None) -
     """Exactly one of --stages / --depths; a usage error (exit 2) otherwise."""
     if (stages_value is None) == (depths_value is None):
         raise click.UsageError("give exactly one of --stages and --depths")
+
+
+# ------------------------------------------------------------------ logging and errors
+
+VERBOSE_HELP = "More log lines (repeat for debug logs)."
+QUIET_HELP = "Only warnings and errors; no progress bars."
+DEBUG_HELP = "Show the full traceback on errors."
+
+
+def set_verbosity(ctx: click.Context, *, verbose: int = 0, quiet: bool = False,
+                  debug: bool = False) -> None:
+    """Add ``-v`` / ``-q`` / ``--debug`` to what the command line already asked for and
+    apply the result: the log level, progress bars, tracebacks, the warning format.
+
+    Both the command group (``ntrans -q run ...``) and every command (``ntrans run ...
+    -q``) call it; the context's ``meta`` is shared between them, so the flags add up
+    wherever they were given (``-q`` wins over ``-v``).
+    """
+    import logging
+    import warnings
+
+    meta = ctx.meta
+    meta["ntrans.verbose"] = int(meta.get("ntrans.verbose", 0)) + int(verbose)
+    meta["ntrans.quiet"] = bool(meta.get("ntrans.quiet", False)) or bool(quiet)
+    meta["ntrans.debug"] = bool(meta.get("ntrans.debug", False)) or bool(debug)
+    if meta["ntrans.quiet"]:
+        level = logging.WARNING
+    else:
+        level = logging.INFO if meta["ntrans.verbose"] == 0 else logging.DEBUG
+    logging.getLogger().setLevel(level)
+    warnings.formatwarning = located_warning if meta["ntrans.debug"] else one_line_warning
+
+
+def one_line_warning(message, category, filename, lineno, line=None) -> str:
+    """Format a warning as one line (the log record adds the level)."""
+    return f"{category.__name__}: {message}"
+
+
+def located_warning(message, category, filename, lineno, line=None) -> str:
+    """Format a warning as one line with its origin (``--debug``)."""
+    return f"{category.__name__}: {message} ({filename}:{lineno})"
+
+
+def _verbosity_callback(ctx: click.Context, param: click.Parameter, value: Any) -> None:
+    if value:
+        set_verbosity(ctx, **{str(param.name): value})
+
+
+def verbosity(func: F) -> F:
+    """``-v`` / ``-q`` / ``--debug`` after a command's name too (``ntrans run x.toml -q``),
+    doing what they do before it."""
+    for deco in reversed(
+        [
+            click.option("-v", "--verbose", count=True, expose_value=False,
+                         callback=_verbosity_callback, help=VERBOSE_HELP),
+            click.option("-q", "--quiet", is_flag=True, expose_value=False,
+                         callback=_verbosity_callback, help=QUIET_HELP),
+            click.option("--debug", is_flag=True, expose_value=False,
+                         callback=_verbosity_callback, help=DEBUG_HELP),
+        ]
+    ):
+        func = deco(func)
+    return func

@@ -9,6 +9,8 @@ import click
 from ntrans.cautions import CAUTIONS
 from ntrans.translate import flag_lines
 
+from . import options
+
 
 def echo_summary(result: Any, *, extra: tuple[str, ...] = ()) -> None:
     """Print the bundle's location, the n per class, ``extra`` lines, and the cautions."""
@@ -48,6 +50,7 @@ def echo_summary(result: Any, *, extra: tuple[str, ...] = ()) -> None:
     default=None,
     help="Replace the bundle folder if it exists (default: the project's outputs.overwrite).",
 )
+@options.verbosity
 @click.pass_context
 def command(ctx: click.Context, project: str, overwrite: bool | None) -> None:
     """Run the whole job of PROJECT (a TOML project file): stage tables, n per class,

@@ -17,6 +17,7 @@ from . import options
     show_default=True,
     help="Also build the face tables (face_stage.parquet, faces.gpkg).",
 )
+@options.verbosity
 @click.pass_context
 def command(ctx: click.Context, **kwargs) -> None:
     """Cell stage tables (wet area, volume, wetted bed area, hydraulic radius) and face

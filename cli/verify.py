@@ -4,9 +4,12 @@ from __future__ import annotations
 
 import click
 
+from . import options
+
 
 @click.command("verify")
 @click.argument("bundle", type=click.Path(exists=True, path_type=str))
+@options.verbosity
 def command(bundle: str) -> None:
     """Re-hash every file of BUNDLE (a folder or its zip) and compare with manifest.json.
 

@@ -507,8 +507,10 @@ def adjust_roughness(
     *,
     out: str | os.PathLike[str],
     id_field: str | None = None,
+    cells_layer: str | None = None,
     n: float | str | None = None,
     classes: str | os.PathLike[str] | None = None,
+    classes_layer: str | None = None,
     class_field: str | None = None,
     n_table: str | os.PathLike[str] | None = None,
     n_field: str | None = None,
@@ -548,6 +550,8 @@ def adjust_roughness(
         the source model's roughness (exactly one form); ``default_class`` for ground no
         class covers; ``overlap_rule`` (``error | first | last | max_n``) for overlapping
         class polygons.  See :func:`ntrans.roughness.load_roughness`.
+    cells_layer, classes_layer : the layer of ``cells`` / ``classes`` to read; needed when
+        the file holds several.
     source, target : ``flat`` or ``subgrid`` (at least one subgrid).
     closure : friction closure of the subgrid side (``lumped | strip | cell``); the
         target's when both sides are subgrid, with ``source_closure`` the source's.
@@ -610,16 +614,17 @@ def adjust_roughness(
         rasters_kept_open(),  # tiles share DEM blocks: decode each once
     ):
         setup = prepare_mesh_job(
-            dem, cells, id_field=id_field, vertical_units=vertical_units,
-            elevation_rule=elevation_rule, elevation_field=elevation_field,
-            face_spacing=face_spacing, snap_tolerance=snap_tolerance, tile_size=tile_size,
+            dem, cells, id_field=id_field, cells_layer=cells_layer,
+            vertical_units=vertical_units, elevation_rule=elevation_rule,
+            elevation_field=elevation_field, face_spacing=face_spacing, snap_tolerance=snap_tolerance, tile_size=tile_size,
             connection=connection, threads=threads,
         )
         dem_info, layer, geoms, ids = setup.dem, setup.layer, setup.geoms, setup.ids
         field_values, mesh, tiles = setup.field_values, setup.mesh, setup.tiles
         # the mesh outline is only needed to check class polygons against it
         mesh_area = shapely.union_all(geoms) if classes is not None else None
-        model = load_roughness(n=n, classes=classes, class_field=class_field, n_table=n_table,
+        model = load_roughness(n=n, classes=classes, classes_layer=classes_layer,
+                               class_field=class_field, n_table=n_table,
                                n_field=n_field, class_raster=class_raster,
                                default_class=default_class, overlap_rule=overlap_rule,  # type: ignore[arg-type]
                                crs=dem_info.crs, mesh_area=mesh_area)

@@ -680,7 +680,8 @@ def _dem_by_path(path: str, open_kwargs: tuple):
 def _open_cached(path: str, open_kwargs: tuple, stamp: tuple | None):
     from .inputs import open_dem
 
-    return open_dem(path, **dict(open_kwargs))
+    # the job checked the projection's scale when it opened the DEM
+    return open_dem(path, check_scale=False, **dict(open_kwargs))
 
 
 def read_tile_window(dem: Any, window: Window) -> tuple[np.ndarray, Affine]:

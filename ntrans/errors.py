@@ -89,6 +89,10 @@ class DryWetMismatchWarning(NtransWarning):
     """Items wet in one model family and dry in the other were left out of a fit."""
 
 
+class ProjectionScaleWarning(NtransWarning):
+    """The DEM's projection stretches or shrinks lengths noticeably where the DEM lies."""
+
+
 class MemoryEstimateWarning(NtransWarning):
     """A job is expected to need more memory than the machine has available."""
 

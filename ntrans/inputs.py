@@ -43,6 +43,7 @@ from .errors import (
     InputError,
     InputFileError,
     OutputError,
+    ProjectionScaleWarning,
     warn,
 )
 from .mesh import is_valid
@@ -57,7 +58,11 @@ MANNING_K: dict[str, float] = {"metre": 1.0, "foot": 1.486}
 
 _INTERNATIONAL_FOOT = 0.3048
 _US_SURVEY_FOOT = 1200.0 / 3937.0
-_UNIT_ALIASES: dict[str, LengthUnit] = {
+#: Values ``vertical_units`` takes (aliases aside): ``foot`` is the foot of the CRS when
+#: the horizontal unit is a foot, else the international foot (0.3048 m);
+#: ``us_survey_foot`` is 1200/3937 m.
+VERTICAL_UNITS: tuple[str, ...] = ("metre", "foot", "us_survey_foot")
+_UNIT_ALIASES: dict[str, str] = {
     "metre": "metre",
     "meter": "metre",
     "metres": "metre",
@@ -66,7 +71,17 @@ _UNIT_ALIASES: dict[str, LengthUnit] = {
     "foot": "foot",
     "feet": "foot",
     "ft": "foot",
+    "us_survey_foot": "us_survey_foot",
+    "us_survey_feet": "us_survey_foot",
+    "us-ft": "us_survey_foot",
+    "ftus": "us_survey_foot",
 }
+#: Largest relative error of lengths (the projection's point scale at the DEM's centre
+#: against 1) accepted silently, and the largest accepted at all: UTM zones and national
+#: grids stay within about 0.1 %; beyond 2 % every length, area and volume would be
+#: wrong by the scale (areas by its square).
+SCALE_WARNING_LIMIT = 0.005
+SCALE_ERROR_LIMIT = 0.02
 #: Column names tried, in order and ignoring case, when no id field is given.
 ID_FIELD_CANDIDATES: tuple[str, ...] = ("cell_id", "cellid", "id", "fid", "objectid", "ogc_fid")
 _POLYGON_TYPE_IDS = (3, 6)  # shapely type ids of Polygon and MultiPolygon
@@ -148,10 +163,12 @@ def _unit_of_factor(factor: float) -> LengthUnit | None:
     return None
 
 
-def _parse_unit(value: str, option: str) -> LengthUnit:
+def _parse_unit(value: str, option: str) -> str:
+    """One of :data:`VERTICAL_UNITS` from a name or alias."""
     unit = _UNIT_ALIASES.get(str(value).strip().lower())
     if unit is None:
-        raise InputError(f"{option} {value!r} is not a known unit; choose 'metre' or 'foot'")
+        raise InputError(f"{option} {value!r} is not a known unit; choose one of "
+                         f"{', '.join(VERTICAL_UNITS)}")
     return unit
 
 
@@ -488,16 +505,91 @@ class DemInfo:
         return row0, col0, max(row1 - row0, 0), max(col1 - col0, 0)
 
 
-def open_dem(path: str | os.PathLike[str], *, vertical_units: str | None = None) -> DemInfo:
+def length_scale_error(crs: CRS | pyproj.CRS | str, x: float, y: float) -> float | None:
+    """How far the projection of ``crs`` stretches or shrinks lengths at map point (x, y).
+
+    The largest of ``|a - 1|`` and ``|b - 1|``, where a and b are the greatest and least
+    point scales there (the semi-axes of Tissot's indicatrix, from PROJ's factors); 0 for
+    a true-scale point.  None when it cannot be computed (a CRS PROJ cannot evaluate, a
+    point outside the projection's domain).
+
+    >>> round(length_scale_error("EPSG:3857", 0.0, 5_591_295.9), 3)  # 45 deg N  # doctest: +SKIP
+    0.414
+    """
+    horizontal = _split_compound(_to_pyproj(crs))[0]
+    if not horizontal.is_projected:
+        return None
+    try:
+        lon, lat = _lonlat(horizontal, x, y)
+        factors = pyproj.Proj(horizontal).get_factors(lon, lat)
+        a, b = float(factors.tissot_semimajor), float(factors.tissot_semiminor)
+    except Exception:  # pyproj / PROJ errors of every kind: the check is only advice
+        return None
+    if not (math.isfinite(a) and math.isfinite(b) and a > 0 and b > 0):
+        return None
+    return max(abs(a - 1.0), abs(b - 1.0))
+
+
+def _lonlat(horizontal: pyproj.CRS, x: float, y: float) -> tuple[float, float]:
+    """Longitude and latitude (degrees, on the CRS's own datum) of map point (x, y)."""
+    to_lonlat = pyproj.Transformer.from_crs(horizontal, horizontal.geodetic_crs,
+                                            always_xy=True)
+    lon, lat = to_lonlat.transform(x, y)
+    return float(lon), float(lat)
+
+
+def _percent(share: float) -> str:
+    pct = 100.0 * share
+    return f"{pct:.0f} %" if pct >= 10 else f"{pct:.2g} %"
+
+
+def _check_projection_scale(text: str, horizontal: pyproj.CRS,
+                            bounds: rasterio.coords.BoundingBox) -> None:
+    """Refuse a DEM whose CRS distorts lengths beyond :data:`SCALE_ERROR_LIMIT` at its
+    centre (e.g. Web Mercator away from the equator); warn beyond
+    :data:`SCALE_WARNING_LIMIT`."""
+    x, y = 0.5 * (bounds.left + bounds.right), 0.5 * (bounds.bottom + bounds.top)
+    error = length_scale_error(horizontal, x, y)
+    if error is None:
+        logger.debug("DEM %s: the scale of CRS '%s' could not be checked", text, horizontal.name)
+        return
+    if error <= SCALE_WARNING_LIMIT:
+        return
+    what = (f"DEM '{text}' is in the CRS '{horizontal.name}', which distorts lengths by "
+            f"{_percent(error)} where the DEM lies")
+    if error > SCALE_ERROR_LIMIT:
+        lon, lat = _lonlat(horizontal, x, y)
+        if abs(lat) < 84:
+            zone = min(max(int((lon + 180.0) // 6) + 1, 1), 60)
+            example = f"e.g. the UTM zone, EPSG:{(32600 if lat >= 0 else 32700) + zone}"
+        else:
+            example = "e.g. a polar stereographic CRS"
+        raise CRSError(
+            f"{what}; reproject the DEM and the cells to a local projected CRS ({example}) "
+            "with gdalwarp / ogr2ogr"
+        )
+    warn(f"{what}, and lengths, areas and volumes carry that error; consider reprojecting "
+         "the DEM and the cells to a local projected CRS (e.g. the UTM zone)",
+         ProjectionScaleWarning, stacklevel=3)
+
+
+def open_dem(path: str | os.PathLike[str], *, vertical_units: str | None = None,
+             check_scale: bool = True) -> DemInfo:
     """Open a DEM and check its CRS, units and grid.
 
     Parameters
     ----------
     path : str or path-like
         Any raster GDAL reads; band 1 holds the elevations.
-    vertical_units : {"metre", "foot"} or None
+    vertical_units : {"metre", "foot", "us_survey_foot"} or None
         Units of the elevations.  None: the unit of a vertical CRS in the DEM's compound
-        CRS if there is one, else the horizontal unit.  Aliases m/meter/ft/feet accepted.
+        CRS if there is one, else the horizontal unit.  ``foot`` is the CRS's own foot
+        when the horizontal unit is a foot, else the international foot (0.3048 m);
+        ``us_survey_foot`` is 1200/3937 m.  Aliases m/meter/ft/feet accepted.
+    check_scale : bool
+        Check the projection's point scale at the DEM's centre: lengths off by more than
+        :data:`SCALE_ERROR_LIMIT` (2 %) raise :class:`CRSError`, by more than
+        :data:`SCALE_WARNING_LIMIT` (0.5 %) warn (:class:`ProjectionScaleWarning`).
 
     Returns
     -------
@@ -508,7 +600,8 @@ def open_dem(path: str | os.PathLike[str], *, vertical_units: str | None = None)
     InputFileError
         Missing or unreadable file.
     CRSError
-        No CRS, a geographic CRS, or a unit other than metre or foot.
+        No CRS, a geographic CRS, a unit other than metre or foot, or a projection that
+        distorts lengths by more than 2 % at the DEM's centre.
     InputError
         Rotated or skewed grid, non-numeric band, or an unknown ``vertical_units``.
     """
@@ -570,13 +663,15 @@ def open_dem(path: str | os.PathLike[str], *, vertical_units: str | None = None)
         transform.c, transform.f + transform.e * height, transform.c + transform.a * width,
         transform.f,
     )
+    if check_scale:
+        _check_projection_scale(text, horizontal, bounds)
 
     vertical_factor = (
         vertical.axis_info[0].unit_conversion_factor
         if vertical is not None and vertical.axis_info else float("nan")
     )
     if requested is not None:
-        vertical_unit: LengthUnit = requested
+        vertical_unit: LengthUnit = "metre" if requested == "metre" else "foot"
     elif _unit_of_factor(vertical_factor) is not None:
         vertical_unit = _unit_of_factor(vertical_factor)  # type: ignore[assignment]
         logger.info("DEM %s: vertical unit %s taken from its vertical CRS", text, vertical_unit)
@@ -584,6 +679,9 @@ def open_dem(path: str | os.PathLike[str], *, vertical_units: str | None = None)
         vertical_unit = horizontal_unit
     if requested is None and _unit_of_factor(vertical_factor) == vertical_unit:
         z_factor = vertical_factor  # the exact foot of the vertical CRS
+    elif requested == "us_survey_foot":
+        z_factor = (xy_factor if math.isclose(xy_factor, _US_SURVEY_FOOT, rel_tol=1e-9)
+                    else _US_SURVEY_FOOT)
     elif vertical_unit == horizontal_unit:
         z_factor = xy_factor
     elif vertical_unit == "foot":
@@ -663,44 +761,174 @@ class CellLayer:
             pending.result()
 
 
-def _choose_layer(path: str, layer: str | int | None) -> str | int | None:
+@dataclass(frozen=True)
+class _VectorInput:
+    """Which vector input a message is about, and how its layer is named by the user."""
+
+    what: str    # "cells", "class polygon"
+    option: str  # command-line option naming the layer
+    key: str     # project key and keyword argument naming the layer
+
+
+_CELLS = _VectorInput("cells", "--cells-layer", "cells_layer")
+_CLASSES = _VectorInput("class polygon", "--classes-layer", "classes_layer")
+
+
+def _choose_layer(path: str, layer: str | int | None, source: _VectorInput = _CELLS) -> str:
+    """The name of the layer of ``path`` to read.
+
+    ``layer`` (a name or a number from 0) picks one; without it the file must hold one
+    layer with geometry (tables without geometry, e.g. a GeoPackage's attribute tables,
+    are not candidates), else :class:`InputError` lists the layers.
+    """
     import pyogrio
 
     try:
         layers = pyogrio.list_layers(path)
     except Exception as exc:  # pyogrio raises DataSourceError and friends
         raise InputFileError(
-            f"cells file '{path}' cannot be read as a vector layer ({_reason(exc, path)}); "
-            "give a GeoPackage, Shapefile, GeoJSON or FlatGeobuf file"
+            f"{source.what} file '{path}' cannot be read as a vector layer "
+            f"({_reason(exc, path)}); give a GeoPackage, Shapefile, GeoJSON or FlatGeobuf file"
         ) from exc
     names = [str(row[0]) for row in layers]
     if not names:
-        raise InputError(f"cells file '{path}' holds no layer; give a file with a polygon layer")
+        raise InputError(
+            f"{source.what} file '{path}' holds no layer; give a file with a polygon layer"
+        )
     if layer is not None:
         if isinstance(layer, int):
             if not 0 <= layer < len(names):
                 raise InputError(
-                    f"cells layer number {layer} does not exist in '{path}'; it has "
+                    f"{source.what} layer number {layer} does not exist in '{path}'; it has "
                     f"{len(names)} layers: {_name_list(names, limit=10)}"
                 )
             return names[layer]
         if layer not in names:
             raise InputError(
-                f"cells layer '{layer}' does not exist in '{path}'; choose one of "
+                f"{source.what} layer '{layer}' does not exist in '{path}'; choose one of "
                 f"{_name_list(names, limit=10)}"
             )
         return layer
-    if len(names) == 1:
-        return None
-    polygonal = [str(row[0]) for row in layers if row[1] and "Polygon" in str(row[1])]
-    chosen = polygonal[0] if polygonal else names[0]
-    logger.info("cells file %s has %d layers; using '%s' (choose with layer=)",
-                path, len(names), chosen)
-    return chosen
+    spatial = [str(row[0]) for row in layers if row[1] is not None]
+    candidates = spatial or names
+    if len(candidates) == 1:
+        return candidates[0]
+    raise InputError(
+        f"{source.what} file '{path}' holds {len(candidates)} layers "
+        f"({_name_list(candidates, limit=10)}); name the one to read with {source.option} "
+        f"({source.key} in a project file or a Python call)"
+    )
 
 
-def _resolve_id_field(frame: Any, id_field: str | None, path: str) -> tuple[str, np.ndarray]:
-    """Pick the id column and return (field name, ids array)."""
+def _read_layer(text: str, layer: str, source: _VectorInput) -> Any:
+    """Layer ``layer`` of ``text`` as a GeoDataFrame indexed by feature id."""
+    import geopandas as gpd
+
+    # through Arrow: about a third faster on large layers; only for formats whose text is
+    # UTF-8 by their specification (a Shapefile's may be in any code page)
+    use_arrow = Path(text).suffix.lower() in _UTF8_VECTOR_SUFFIXES
+    try:
+        frame = gpd.read_file(text, layer=layer, engine="pyogrio", fid_as_index=True,
+                              use_arrow=use_arrow)
+    except Exception as exc:  # pyogrio / GDAL errors of every kind
+        raise InputFileError(
+            f"{source.what} file '{text}' cannot be read ({_reason(exc, text)}); give a "
+            "GeoPackage, Shapefile, GeoJSON or FlatGeobuf polygon layer"
+        ) from exc
+    if not isinstance(frame, gpd.GeoDataFrame) or frame.geometry is None:
+        raise GeometryError(
+            f"{source.what} layer '{layer}' of '{text}' has no geometry; give a polygon layer"
+        )
+    return frame
+
+
+def _source_crs(frame: Any, text: str, source: _VectorInput) -> pyproj.CRS:
+    """The layer's CRS; :class:`CRSError` when it has none (never assumed)."""
+    if frame.crs is None:
+        raise CRSError(
+            f"{source.what} layer '{text}' has no CRS; assign the CRS it was drawn in (e.g. "
+            "write a .prj file or use ogr2ogr -a_srs)"
+        )
+    return _to_pyproj(frame.crs)
+
+
+def _in_crs(frame: Any, text: str, source: _VectorInput,
+            dem_crs: CRS | pyproj.CRS | str) -> tuple[Any, bool]:
+    """``(frame in the horizontal part of dem_crs, whether it was reprojected)``: the
+    reprojection is logged; :class:`CRSError` when the layer has no CRS or cannot be
+    reprojected."""
+    own = _source_crs(frame, text, source)
+    full = _to_pyproj(dem_crs)
+    target = _split_compound(full)[0]
+    if _same_crs(own, target) or _same_crs(own, full):
+        return frame.set_crs(target, allow_override=True), False
+    logger.info("%s %s: reprojecting from %s to the DEM's CRS %s",
+                source.what, text, own.name, target.name)
+    try:
+        return frame.to_crs(target), True
+    except Exception as exc:
+        raise CRSError(
+            f"{source.what} layer '{text}' cannot be reprojected from '{own.name}' to the "
+            f"DEM's CRS '{target.name}' ({_reason(exc, text)}); reproject it yourself first"
+        ) from exc
+
+
+def read_class_polygons(
+    path: str | os.PathLike[str],
+    *,
+    layer: str | int | None = None,
+    crs: CRS | pyproj.CRS | str | None = None,
+) -> Any:
+    """Read roughness class polygons as a GeoDataFrame, in ``crs`` when given.
+
+    Parameters
+    ----------
+    path : str or path-like
+        Any OGR polygon layer (GeoPackage, Shapefile, GeoJSON, FlatGeobuf, ...).
+    layer : str, int or None
+        Layer name or number; None: the file's only layer with geometry.
+    crs : the DEM's CRS, or None to keep the layer's own.
+
+    Raises
+    ------
+    InputFileError
+        Missing or unreadable file.
+    InputError
+        Several layers and no ``layer``, or an unknown ``layer``.
+    GeometryError
+        A layer without geometry.
+    CRSError
+        With ``crs``: the layer has no CRS (it is never assumed to be the DEM's), or
+        cannot be reprojected.
+    """
+    text = _check_exists(path, _CLASSES.what)
+    name = _choose_layer(text, layer, _CLASSES)
+    frame = _read_layer(text, name, _CLASSES)
+    if crs is not None:
+        frame = _in_crs(frame, text, _CLASSES, crs)[0]
+    return frame
+
+
+def _feature_numbers(frame: Any, rows: np.ndarray, text: str, layer: str) -> str:
+    """How a user finds rows ``rows`` (positions in ``frame``) in the file: by the
+    layer's feature ids when it has a fid column, else by position from 0."""
+    import pyogrio
+
+    try:
+        info = pyogrio.read_info(text, layer=layer)
+    except Exception:  # only a message depends on it
+        info = {}
+    fid_column, driver = info.get("fid_column") or "", info.get("driver") or ""
+    if fid_column:
+        fids = frame.index.to_numpy()[rows]
+        by = "GeoPackage fid" if driver == "GPKG" else f"the layer's {fid_column} column"
+        return f"features {_name_list(fids)} by {by}"
+    return f"features at positions {_name_list(rows)} counted from 0"
+
+
+def _resolve_id_field(frame: Any, id_field: str | None, path: str,
+                      layer: str) -> tuple[str, np.ndarray]:
+    """Pick the id column of layer ``layer`` of ``path``; return (field name, ids array)."""
     import pandas as pd
 
     columns = [c for c in frame.columns if c != frame.geometry.name]
@@ -721,15 +949,15 @@ def _resolve_id_field(frame: Any, id_field: str | None, path: str) -> tuple[str,
             logger.info("cells in %s: using the layer's feature ids (fid) as cell ids", path)
             return "fid", frame.index.to_numpy().astype(np.int64)
         raise InputError(
-            f"id field '{id_field}' is not in the cells layer '{path}'; its fields are "
-            f"{_name_list(columns, limit=20) or 'none'}"
+            f"id field '{id_field}' is not in the cells layer '{layer}' of '{path}'; its "
+            f"fields are {_name_list(columns, limit=20) or 'none'}"
         )
     column = frame[id_field]
     missing = np.flatnonzero(column.isna().to_numpy())
     if missing.size:
         raise InputError(
-            f"id field '{id_field}' is empty in {missing.size} cells (rows "
-            f"{_name_list(missing)}); give every cell an id"
+            f"id field '{id_field}' is empty in {missing.size} cells: "
+            f"{_feature_numbers(frame, missing, path, layer)}; give every cell an id"
         )
     if pd.api.types.is_bool_dtype(column):
         ids = column.astype(str).to_numpy(dtype=object)
@@ -987,7 +1215,8 @@ def read_cells(
         present (ignoring case), else the row number 0..n-1.  ``"fid"`` also reaches the
         layer's feature ids when no such column exists.
     layer : str, int or None
-        Layer name or number; None: the only layer, or the first polygon layer.
+        Layer name or number (``cells_layer`` of the jobs); None: the file's only layer
+        with geometry (several raise :class:`InputError` listing them).
     overlap_tolerance : float
         Largest shared area allowed between two cells, as a fraction of the smaller one.
     overlaps_in_background : bool
@@ -1009,28 +1238,17 @@ def read_cells(
     GeometryError
         Empty layer, null/empty or non-polygon geometry, unrepairable or overlapping cells.
     InputError
-        Unknown layer or id field, missing or duplicate ids, no cell over the DEM.
+        Several layers and no ``layer``, unknown layer or id field, missing or duplicate
+        ids, no cell over the DEM.
     """
     import geopandas as gpd
 
-    text = _check_exists(path, "cells")
-    chosen = _choose_layer(text, layer)
-    # through Arrow: about a third faster on large layers; only for formats whose text is
-    # UTF-8 by their specification (a Shapefile's may be in any code page)
-    use_arrow = Path(text).suffix.lower() in _UTF8_VECTOR_SUFFIXES
-    try:
-        frame = gpd.read_file(text, layer=chosen, engine="pyogrio", fid_as_index=True,
-                              use_arrow=use_arrow)
-    except Exception as exc:  # pyogrio / GDAL errors of every kind
-        raise InputFileError(
-            f"cells file '{text}' cannot be read ({_reason(exc, text)}); give a GeoPackage, "
-            "Shapefile, GeoJSON or FlatGeobuf polygon layer"
-        ) from exc
-    if not isinstance(frame, gpd.GeoDataFrame) or frame.geometry is None:
-        raise GeometryError(f"cells layer '{text}' has no geometry; give a polygon layer")
+    text = _check_exists(path, _CELLS.what)
+    chosen = _choose_layer(text, layer, _CELLS)
+    frame = _read_layer(text, chosen, _CELLS)
     if len(frame) == 0:
         raise GeometryError(f"cells layer '{text}' is empty; give a layer with cell polygons")
-    id_name, ids = _resolve_id_field(frame, id_field, text)
+    id_name, ids = _resolve_id_field(frame, id_field, text, chosen)
     frame = frame.reset_index(drop=True)
     if id_name not in frame.columns:
         frame[id_name] = ids
@@ -1052,26 +1270,10 @@ def read_cells(
             "give a polygon layer"
         )
 
-    if frame.crs is None:
-        raise CRSError(
-            f"cells layer '{text}' has no CRS; assign the CRS it was drawn in (e.g. write a "
-            ".prj file or use ogr2ogr -a_srs)"
-        )
     target = dem.horizontal_crs
-    source = _to_pyproj(frame.crs)
-    if not (_same_crs(source, target) or _same_crs(source, _to_pyproj(dem.crs))):
-        logger.info("cells %s: reprojecting from %s to the DEM's CRS %s",
-                    text, source.name, target.name)
-        try:
-            frame = frame.to_crs(target)
-        except Exception as exc:
-            raise CRSError(
-                f"cells layer '{text}' cannot be reprojected from '{source.name}' to the DEM's "
-                f"CRS '{target.name}' ({_reason(exc, text)}); reproject it yourself first"
-            ) from exc
+    frame, reprojected = _in_crs(frame, text, _CELLS, dem.crs)
+    if reprojected:
         geoms = np.asarray(frame.geometry.array, dtype=object)
-    else:
-        frame = frame.set_crs(target, allow_override=True)
     as_read = geoms  # the frame's own geometry, until something below changes it
 
     if shapely.has_z(geoms).any():  # force_2d rebuilds every geometry: only when needed

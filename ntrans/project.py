@@ -3,8 +3,9 @@
 A project file is TOML.  Its keys are the keyword names of the Python API
 (:func:`ntrans.build_tables`, :func:`ntrans.adjust_roughness`), grouped in tables::
 
-    [inputs]    dem, cells, id_field, n, classes, class_field, n_table, n_field,
-                class_raster, default_class, water_surface, vertical_units, elevation_field
+    [inputs]    dem, cells, cells_layer, id_field, n, classes, classes_layer, class_field,
+                n_table, n_field, class_raster, default_class, overlap_rule, water_surface,
+                vertical_units, elevation_field
     [families]  source, target, closure, source_closure, composite, elevation_rule, face_rule
     [window]    depths | stages
     [outputs]   out, csv, zip, overwrite
@@ -57,6 +58,8 @@ ELEVATION_RULES: tuple[str, ...] = ("mean", "min", "median", "centroid", "field"
 FACE_RULES: tuple[str, ...] = ("higher", "mean", "min", "profile_mean")
 COVERAGE_MODES: tuple[str, ...] = ("exact", "centre")
 VERTICAL_UNITS: tuple[str, ...] = ("metre", "foot", "us_survey_foot")
+#: Id columns tried when no id_field is given (the same as ntrans.inputs').
+ID_FIELD_CANDIDATES: tuple[str, ...] = ("cell_id", "cellid", "id", "fid", "objectid", "ogc_fid")
 
 
 @dataclass(frozen=True)
@@ -87,9 +90,11 @@ SCHEMA: dict[str, dict[str, Key]] = {
     "inputs": {
         "dem": _PATH,
         "cells": _PATH,
+        "cells_layer": _STR,
         "id_field": _STR,
         "n": _FLOAT_POS,
         "classes": _PATH,
+        "classes_layer": _STR,
         "class_field": _STR,
         "n_table": _PATH,
         "n_field": _STR,
@@ -323,12 +328,16 @@ TEMPLATE = """\
 [inputs]
 dem = "dem.tif"                 # terrain raster (GeoTIFF), projected CRS
 cells = "cells.gpkg"            # mesh cells as polygons, same CRS as the DEM
-# id_field = "cell_id"          # attribute with unique cell ids (default: feature order)
+# cells_layer = "cells"         # layer of the cells file to read (when it holds several)
+# id_field = "cell_id"          # attribute with unique cell ids (default: the first of
+#                               # {id_fields} there is,
+#                               # any case; else the feature order from 0)
 # Roughness: one of the following
 # n = 0.035                     # one Manning's n everywhere
 classes = "landcover.gpkg"      # roughness class polygons ...
 class_field = "landcover"       # ... their class attribute ...
 n_table = "n_table.csv"         # ... and a CSV with columns class, n (optional surface)
+# classes_layer = "landcover"   # layer of the classes file to read (when it holds several)
 # n_field = "n"                 # or: polygons that carry their own n
 # class_raster = "classes.tif"  # or: an integer class raster (with n_table)
 # default_class = "pasture"     # class for ground no polygon covers
@@ -340,7 +349,8 @@ n_table = "n_table.csv"         # ... and a CSV with columns class, n (optional 
 source = "flat"                 # model family the n values were calibrated in: flat | subgrid
 target = "subgrid"              # model family they are carried to: flat | subgrid
 closure = "lumped"              # friction closure of the target: {closures}
-# source_closure = "flat"       # friction closure of the source (default from the family)
+# source_closure = "lumped"     # closure of the source when both families are subgrid:
+#                               # {closures} (default lumped)
 composite = "horton_einstein"   # composite n along a face: {composites}
 elevation_rule = "mean"         # flat cell bed: {elevation_rules}
 face_rule = "higher"            # flat face bed: {face_rules}
@@ -381,6 +391,7 @@ def write_project_template(path: str | os.PathLike[str], *, overwrite: bool = Fa
         name=p.name,
         stem=p.stem,
         closures=" | ".join(CLOSURES),
+        id_fields=", ".join(ID_FIELD_CANDIDATES),
         composites=" | ".join(COMPOSITES),
         elevation_rules=" | ".join(ELEVATION_RULES),
         face_rules=" | ".join(FACE_RULES),

@@ -669,6 +669,7 @@ def load_roughness(
     *,
     n: float | str | None = None,
     classes: str | Path | None = None,
+    classes_layer: str | int | None = None,
     class_field: str | None = None,
     n_table: str | Path | None = None,
     n_field: str | None = None,
@@ -681,8 +682,11 @@ def load_roughness(
     """Read the roughness inputs and build a :class:`RoughnessModel`.
 
     Exactly one of ``n``, ``classes`` (with ``class_field`` + ``n_table`` or with
-    ``n_field``) or ``class_raster`` (with ``n_table``) must be given.  Layers in another
-    CRS than ``crs`` (the DEM's) are reprojected, with a log line.  ``mesh_area`` is the
+    ``n_field``) or ``class_raster`` (with ``n_table``) must be given.  ``classes_layer``
+    names the layer of ``classes`` to read (needed when the file holds several).  Layers
+    in another CRS than ``crs`` (the DEM's) are reprojected, with a log line; with
+    ``crs``, class polygons without a CRS raise :class:`~ntrans.errors.CRSError`, as
+    cells do.  ``mesh_area`` is the
     union of the mesh cells, used for the coverage checks.
     """
     given = [name for name, v in (("n", n), ("classes", classes), ("class_raster", class_raster))
@@ -699,25 +703,15 @@ def load_roughness(
             raise RoughnessError("class polygons need either a class field with an n table, or an n field")
         if class_field is not None and n_table is None:
             raise RoughnessError("a class field needs an n table (CSV with columns class,n)")
-        import geopandas as gpd
+        from .inputs import read_class_polygons
 
-        path = Path(classes)
-        if not path.exists():
-            raise InputFileError(f"class polygon layer {str(path)!r} does not exist; give an existing file")
-        try:
-            frame = gpd.read_file(path)
-        except Exception as exc:
-            raise RoughnessError(f"class polygon layer {str(path)!r} cannot be read ({exc}); "
-                                 "give a GeoPackage or shapefile") from exc
+        frame = read_class_polygons(classes, layer=classes_layer, crs=crs)
         column = class_field if class_field is not None else n_field
         if column not in frame.columns:
             raise RoughnessError(
                 f"class polygon layer has no field {column!r}; its fields are "
                 f"{[c for c in frame.columns if c != frame.geometry.name]}"
             )
-        if crs is not None and frame.crs is not None and not frame.crs.equals(crs):
-            log.info("class polygons reprojected from %s to the DEM's CRS", frame.crs)
-            frame = frame.to_crs(crs)
         geoms = np.asarray(frame.geometry.values, dtype=object)
         if class_field is not None:
             table = read_n_table(n_table)  # type: ignore[arg-type]

@@ -223,6 +223,7 @@ def prepare_mesh_job(
     cells: str | os.PathLike[str],
     *,
     id_field: str | None,
+    cells_layer: str | None = None,
     vertical_units: str | None,
     elevation_rule: str,
     elevation_field: str | None,
@@ -252,7 +253,8 @@ def prepare_mesh_job(
     if int(tile_size) < 1:
         raise InputError(f"tile size {tile_size} is not a positive number of pixels; use e.g. 512")
     dem_info = open_dem(dem, vertical_units=vertical_units)
-    layer = read_cells(cells, dem=dem_info, id_field=id_field, overlaps_in_background=True)
+    layer = read_cells(cells, dem=dem_info, id_field=id_field, layer=cells_layer,
+                       overlaps_in_background=True)
     release_free_memory()  # the reading's temporaries, before the faces are built
     field_values = elevation_field_values(layer, elevation_rule, elevation_field)
     pixel = min(dem_info.pixel_size)
@@ -323,6 +325,7 @@ def build_tables(
     *,
     out: str | os.PathLike[str],
     id_field: str | None = None,
+    cells_layer: str | None = None,
     stages: str | None = None,
     depths: str | None = None,
     vertical_units: str | None = None,
@@ -349,11 +352,13 @@ def build_tables(
     cells : polygon layer of the mesh cells.
     out : output folder; written whole or not at all (exists -> error unless
         ``overwrite``).
-    id_field : attribute with unique cell ids (default: a ``cell_id``/``id``-like column,
-        else the feature order from 0).
+    id_field : attribute with unique cell ids (default: the first of ``cell_id, cellid,
+        id, fid, objectid, ogc_fid`` present, any case, else the feature order from 0).
+    cells_layer : layer of ``cells`` to read; needed when the file holds several.
     stages, depths : exactly one; SPEC ``start:stop:step`` or a comma list, in the DEM's
         vertical units.  Depths are above each cell's / face's lowest terrain point.
-    vertical_units : ``metre`` or ``foot`` when the elevations are not in the CRS unit.
+    vertical_units : ``metre``, ``foot`` or ``us_survey_foot`` when the elevations are not
+        in the CRS unit.
     coverage : ``exact`` (area fractions) or ``centre`` (pixel centre inside).
     elevation_rule : flat cell bed: ``mean | min | median | centroid | field``.
     elevation_field : attribute with the flat bed elevations (rule ``field``).
@@ -408,7 +413,8 @@ def build_tables(
     ):
         tmp = folder.path
         job = prepare_mesh_job(
-            dem, cells, id_field=id_field, vertical_units=vertical_units,
+            dem, cells, id_field=id_field, cells_layer=cells_layer,
+            vertical_units=vertical_units,
             elevation_rule=elevation_rule, elevation_field=elevation_field,
             face_spacing=face_spacing, snap_tolerance=snap_tolerance,
             tile_size=tile_size, faces=faces, connection=connection, threads=threads,

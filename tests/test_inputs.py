@@ -31,11 +31,13 @@ from ntrans.errors import (
     InputFileError,
     NtransError,
     OutputError,
+    ProjectionScaleWarning,
 )
 from ntrans.inputs import (
     CellLayer,
     DemInfo,
     check_output_not_input,
+    length_scale_error,
     open_dem,
     open_water_surface,
     read_cells,
@@ -110,6 +112,10 @@ def test_open_dem_units(tmp_path: Path, crs: str, unit: str, factor: float, k: f
         ("EPSG:32633", "metre", 1.0),
         ("EPSG:2263", "metre", 1.0 / US_FOOT),  # metres into US survey feet
         ("EPSG:2263", "feet", 1.0),  # the same foot as the plan unit
+        ("EPSG:32633", "us_survey_foot", US_FOOT),  # 1200/3937 m per US survey foot
+        ("EPSG:2263", "us_survey_foot", 1.0),  # the plan unit itself
+        ("+proj=utm +zone=33 +datum=WGS84 +units=ft +no_defs", "us_survey_foot",
+         US_FOOT / INT_FOOT),  # US survey feet into international feet
     ],
 )
 def test_open_dem_vertical_units(tmp_path: Path, crs: str, vertical: str, z_to_xy: float) -> None:
@@ -133,8 +139,70 @@ def test_open_dem_vertical_unit_from_compound_crs(tmp_path: Path) -> None:
 
 
 def test_open_dem_bad_vertical_unit(tmp_dem: Path) -> None:
-    with pytest.raises(InputError, match="'metre' or 'foot'"):
+    with pytest.raises(InputError, match="metre, foot, us_survey_foot"):
         open_dem(tmp_dem, vertical_units="yard")
+
+
+def _dem_at(tmp_path: Path, crs: str, lon: float, lat: float, *, size: float = 10.0) -> Path:
+    """A 4 x 4 DEM in ``crs`` whose centre lies at (lon, lat) (WGS 84 degrees)."""
+    x, y = pyproj.Transformer.from_crs("EPSG:4326", crs, always_xy=True).transform(lon, lat)
+    return write_dem(tmp_path / "d.tif", np.ones((4, 4)), crs=crs, pixel_size=size,
+                     origin=(x - 2 * size, y + 2 * size))
+
+
+@pytest.mark.parametrize(
+    ("crs", "lon", "lat"),
+    [
+        ("EPSG:32633", 18.0, 0.5),  # UTM 33N at its zone edge, 3 deg from the central meridian
+        ("EPSG:32633", 15.0, 45.0),  # on the central meridian (scale 0.9996)
+        ("EPSG:2263", -73.9, 40.75),  # NY Long Island state plane, US survey feet
+        ("EPSG:27700", -2.0, 54.0),  # British National Grid
+        ("EPSG:3857", 10.0, 0.5),  # Web Mercator next to the equator is true to 0.004 %
+    ],
+    ids=["utm-zone-edge", "utm-central-meridian", "state-plane-foot", "national-grid",
+         "web-mercator-equator"],
+)
+def test_open_dem_true_scale_projections_pass_silently(tmp_path: Path, crs: str, lon: float,
+                                                       lat: float) -> None:
+    path = _dem_at(tmp_path, crs, lon, lat)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # no warning of any kind
+        dem = open_dem(path)
+    # UTM at 3 deg from its central meridian on the equator: k = 0.9996 (1 + (3 deg in
+    # radians)^2 / 2) = 1.00097 (Snyder 1987, USGS PP 1395, eq. 8-11, leading terms);
+    # the other grids are closer still
+    error = length_scale_error(dem.crs, (dem.bounds.left + dem.bounds.right) / 2,
+                               (dem.bounds.bottom + dem.bounds.top) / 2)
+    assert error is not None and error < 0.0011
+
+
+@pytest.mark.parametrize("lat", [45.0, 8.0, -30.0])
+def test_length_scale_error_of_web_mercator_is_the_secant_of_latitude(lat: float) -> None:
+    # Mercator point scale k = h = sec(latitude) (Snyder 1987, Map Projections - A Working
+    # Manual, USGS Professional Paper 1395, eq. 7-3); at 45 deg 1/cos(45 deg) = 1.414.
+    # Web Mercator's spherical formulas on WGS 84 latitudes give that same sec(latitude)
+    x, y = pyproj.Transformer.from_crs("EPSG:4326", "EPSG:3857",
+                                       always_xy=True).transform(10.0, lat)
+    expected = 1.0 / np.cos(np.radians(lat)) - 1.0
+    assert length_scale_error("EPSG:3857", x, y) == pytest.approx(expected, rel=1e-6)  # rounding
+
+
+def test_open_dem_refuses_web_mercator_away_from_the_equator(tmp_path: Path) -> None:
+    path = _dem_at(tmp_path, "EPSG:3857", 10.0, 45.0)
+    with pytest.raises(CRSError) as info:
+        open_dem(path)
+    message = str(info.value)
+    assert "41 %" in message  # sec 45 deg = 1.414: lengths 41 % too long
+    assert "EPSG:32632" in message  # the UTM zone of 10 deg E, north
+    assert_one_sentence(message, "DEM")
+    assert open_dem(path, check_scale=False).crs.to_epsg() == 3857  # the check alone refuses
+
+
+def test_open_dem_warns_of_a_small_but_noticeable_scale_error(tmp_path: Path) -> None:
+    # Web Mercator at 8 deg: sec 8 deg = 1.0098, lengths 1 % too long (between 0.5 and 2 %)
+    path = _dem_at(tmp_path, "EPSG:3857", 10.0, 8.0)
+    with pytest.warns(ProjectionScaleWarning, match="0.98 %"):
+        open_dem(path)
 
 
 def _rotated(tmp_path: Path) -> Path:
@@ -422,9 +490,12 @@ def test_read_cells_errors(tmp_path: Path, tmp_dem: Path, case: str) -> None:
 
 
 def test_read_cells_missing_id_field(tmp_path: Path, tmp_dem: Path) -> None:
-    path = write_cells(tmp_path / "c.gpkg", grid_polygons(2, 1, 5.0))
-    with pytest.raises(InputError, match="cell_id"):  # lists the fields there are
+    path = write_cells(tmp_path / "c.gpkg", grid_polygons(2, 1, 5.0), layer="mesh")
+    with pytest.raises(InputError) as info:
         read_cells(path, dem=open_dem(tmp_dem), id_field="zone")
+    assert "cell_id" in str(info.value)  # lists the fields there are
+    assert "layer 'mesh'" in str(info.value)  # and says which layer they are of
+    assert_one_sentence(str(info.value), "id")
 
 
 def test_read_cells_unreadable(tmp_path: Path, tmp_dem: Path) -> None:
@@ -439,12 +510,56 @@ def test_read_cells_layers(tmp_path: Path, tmp_dem: Path) -> None:
     write_cells(path, [shapely.Point(1, 1)], layer="gauges")
     write_cells(path, grid_polygons(2, 1, 5.0), layer="mesh")
     dem = open_dem(tmp_dem)
-    assert len(read_cells(path, dem=dem)) == 2  # first polygon layer chosen
     assert len(read_cells(path, dem=dem, layer="mesh")) == 2
+    assert len(read_cells(path, dem=dem, layer=1)) == 2
     with pytest.raises(GeometryError):
         read_cells(path, dem=dem, layer="gauges")
     with pytest.raises(InputError):
         read_cells(path, dem=dem, layer="nothing")
+
+
+def test_read_cells_from_several_layers_needs_the_layer_name(tmp_path: Path,
+                                                             tmp_dem: Path) -> None:
+    # two polygon layers: neither may be taken for the cells without being named
+    path = tmp_path / "c.gpkg"
+    write_cells(path, [shapely.box(0, 0, 30, 30)], id_field=None, layer="landcover",
+                attributes={"landcover": ["grass"]})
+    write_cells(path, grid_polygons(3, 3, 10.0), layer="cells")
+    dem = open_dem(tmp_dem)
+    with pytest.raises(InputError) as info:
+        read_cells(path, dem=dem)
+    message = str(info.value)
+    assert "landcover" in message and "cells" in message and "--cells-layer" in message
+    assert_one_sentence(message, "cells")
+    assert len(read_cells(path, dem=dem, layer="cells")) == 9
+
+
+def test_read_cells_skips_tables_without_geometry(tmp_path: Path, tmp_dem: Path) -> None:
+    import pandas as pd
+    import pyogrio
+
+    path = write_cells(tmp_path / "c.gpkg", grid_polygons(3, 3, 10.0), layer="cells")
+    pyogrio.write_dataframe(pd.DataFrame({"note": ["made by hand"]}), path, layer="notes")
+    assert len(pyogrio.list_layers(path)) == 2
+    assert len(read_cells(path, dem=open_dem(tmp_dem))) == 9  # the one layer with geometry
+
+
+@pytest.mark.parametrize(
+    ("name", "where"),
+    [
+        # a GeoPackage numbers its features from 1 (fid): the 2nd and 4th are 2 and 4
+        ("c.gpkg", "features 2, 4 by GeoPackage fid"),
+        # GeoJSON has no fid column: positions from 0
+        ("c.geojson", "features at positions 1, 3 counted from 0"),
+    ],
+)
+def test_read_cells_null_ids_say_how_to_find_them(tmp_path: Path, tmp_dem: Path, name: str,
+                                                  where: str) -> None:
+    path = write_cells(tmp_path / name, grid_polygons(2, 2, 5.0), ids=["a", None, "c", None])
+    with pytest.raises(InputError) as info:
+        read_cells(path, dem=open_dem(tmp_dem))
+    assert where in str(info.value)
+    assert_one_sentence(str(info.value), "id")
 
 
 def test_read_cells_repairs_invalid(tmp_path: Path, tmp_dem: Path) -> None:

@@ -62,6 +62,85 @@ def test_template_is_a_valid_project(tmp_path):
     proj.write_project_template(path, overwrite=True)
 
 
+def _template_values(text: str) -> dict[tuple[str, str], list[object]]:
+    """Every value the template gives or names for each key: ``(table, key) -> values``.
+
+    A key line is ``key = value`` or ``# key = value`` (an example), with an optional
+    comment; the comment and the lines ``#   # ...`` that continue it may list the
+    alternatives as ``a | b | c``.
+    """
+    import re
+    import tomllib
+
+    values: dict[tuple[str, str], list[object]] = {}
+    table, last = None, None
+    for line in text.splitlines():
+        header = re.match(r"^\[(\w+)\]", line)
+        if header:
+            table, last = header.group(1), None
+            continue
+        key_line = re.match(r"^#?\s*(\w+)\s*=\s*(.+?)\s*(?:#\s*(.*))?$", line)
+        more = re.match(r"^#\s+#\s*(.*)$", line)
+        if key_line and table is not None:
+            key, value, comment = key_line.groups()
+            last = (table, key)
+            values[last] = [tomllib.loads(f"v = {value}")["v"]]
+        elif more and last is not None:
+            comment = more.group(1)
+        else:
+            last = None
+            continue
+        for run in re.findall(r"\w+(?:\s*\|\s*\w+)+", comment or ""):
+            values[last] += [word.strip() for word in run.split("|")]
+    return values
+
+
+def test_every_value_the_template_names_is_accepted(tmp_path):
+    """Each value the template gives or names in its comments, for every key, loads,
+    and the library takes the choices it names (the template is parsed, so a value added
+    to it later is checked too)."""
+    from ntrans.adjust import _families
+    from ntrans.inputs import open_dem
+
+    path = proj.write_project_template(tmp_path / "job.toml")
+    text = path.read_text(encoding="utf-8")
+    import tomllib
+
+    base = tomllib.loads(text)
+    found = _template_values(text)
+    for table, keys in proj.SCHEMA.items():  # every key of the schema the template shows
+        for key in keys:
+            if f"{key} =" in text:
+                assert (table, key) in found, f"{table}.{key} not read from the template"
+    assert ("families", "source_closure") in found and ("inputs", "vertical_units") in found
+    dem = write_dem(tmp_path / "dem.tif", np.ones((4, 4)))
+    library = {  # choices the project loader passes on unchanged, checked by the library
+        ("inputs", "vertical_units"): lambda v: open_dem(dem, vertical_units=v),
+        ("families", "source_closure"): lambda v: _families("subgrid", "subgrid", "lumped", v),
+        ("families", "closure"): lambda v: _families("flat", "subgrid", v, None),
+    }
+    for (table, key), values in found.items():
+        assert table in proj.SCHEMA and key in proj.SCHEMA[table], f"{table}.{key} unknown"
+        for value in values:
+            data = {t: dict(v) for t, v in base.items()}
+            if (table, key) in {("window", "depths"), ("window", "stages")}:
+                data["window"] = {}
+            data.setdefault(table, {})[key] = value
+            proj.parse_project(data, base=tmp_path)  # raises ProjectFileError if refused
+            if (table, key) in library:
+                library[(table, key)](value)  # raises InputError if refused
+
+
+def test_template_names_the_id_fields_looked_for(tmp_path):
+    from ntrans.inputs import ID_FIELD_CANDIDATES
+
+    text = proj.write_project_template(tmp_path / "job.toml").read_text(encoding="utf-8")
+    comment = text[text.index("# id_field"):text.index("# Roughness")]
+    for name in ID_FIELD_CANDIDATES:
+        assert name in comment
+    assert "feature order" in comment
+
+
 @pytest.mark.parametrize(
     ("extra", "words"),
     [
@@ -145,7 +224,7 @@ def test_missing_project_file_is_an_input_file_error(tmp_path):
 
 def test_keys_and_choices_match_the_library():
     """Project keys are API keyword names; choices equal the library's own lists."""
-    from ntrans import adjust, engine, roughness, tables
+    from ntrans import adjust, engine, inputs, roughness, tables
     from ntrans.translate import COMPOSITES
 
     api = set(inspect.signature(tables.build_tables).parameters) | set(
@@ -162,6 +241,8 @@ def test_keys_and_choices_match_the_library():
     assert set(proj.FACE_RULES) == set(engine.FACE_RULES)
     assert set(proj.COVERAGE_MODES) == set(engine.COVERAGE_MODES)
     assert set(proj.OVERLAP_RULES) == set(roughness.OVERLAP_RULES)
+    assert set(proj.VERTICAL_UNITS) == set(inputs.VERTICAL_UNITS)
+    assert proj.ID_FIELD_CANDIDATES == inputs.ID_FIELD_CANDIDATES
 
 
 # ------------------------------------------------------------------------------ the run

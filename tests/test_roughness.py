@@ -9,7 +9,13 @@ import pytest
 import shapely
 from affine import Affine
 
-from ntrans.errors import InputFileError, RoughnessError, RoughnessRangeWarning
+from ntrans.errors import (
+    CRSError,
+    InputError,
+    InputFileError,
+    RoughnessError,
+    RoughnessRangeWarning,
+)
 from ntrans.roughness import (
     PUBLISHED_N_RANGES,
     class_at_points,
@@ -224,3 +230,52 @@ def test_load_roughness_files(tmp_path):
     with pytest.raises(RoughnessError):
         load_roughness(classes=tmp_path / "classes.gpkg", class_field="kind",
                        n_table=tmp_path / "bad.csv", mesh_area=MESH)
+
+
+def _write_classes(path, *, crs="EPSG:32633", layer=None):
+    import geopandas as gpd
+
+    with warnings.catch_warnings():  # a layer without a CRS on purpose
+        warnings.simplefilter("ignore", UserWarning)
+        gpd.GeoDataFrame({"kind": ["a", "b"]}, geometry=list(two_halves()), crs=crs).to_file(
+            path, layer=layer)
+    return path
+
+
+def test_class_polygons_without_crs_are_refused_like_cells(tmp_path):
+    # cells without a CRS are refused (ntrans.inputs.read_cells); class polygons too,
+    # instead of being taken to lie in the DEM's CRS
+    path = _write_classes(tmp_path / "classes.gpkg", crs=None)
+    (tmp_path / "n.csv").write_text("class,n\na,0.03\nb,0.045\n")
+    with pytest.raises(CRSError) as info:
+        load_roughness(classes=path, class_field="kind", n_table=tmp_path / "n.csv",
+                       crs="EPSG:32633", mesh_area=MESH)
+    assert str(info.value).startswith("class polygon layer")
+    assert "no CRS" in str(info.value)
+
+
+def test_class_polygons_reprojected_to_the_dem_crs(tmp_path):
+    import geopandas as gpd
+
+    # the same two halves drawn in UTM 33N, stored in UTM 34N: back in 33N where they were
+    halves = gpd.GeoSeries(list(two_halves()), crs="EPSG:32633").to_crs("EPSG:32634")
+    gpd.GeoDataFrame({"kind": ["a", "b"]}, geometry=halves).to_file(tmp_path / "c.gpkg")
+    (tmp_path / "n.csv").write_text("class,n\na,0.03\nb,0.045\n")
+    m = load_roughness(classes=tmp_path / "c.gpkg", class_field="kind",
+                       n_table=tmp_path / "n.csv", crs="EPSG:32633", mesh_area=MESH)
+    # a round trip through two transverse Mercator zones: within a micrometre
+    assert shapely.equals_exact(m.polygons[np.argsort(m.polygon_class)][0],
+                                two_halves()[0], tolerance=1e-6)
+
+
+def test_class_polygons_from_several_layers_need_the_layer_name(tmp_path):
+    path = tmp_path / "both.gpkg"
+    _write_classes(path, layer="landcover")
+    _write_classes(path, layer="other")
+    (tmp_path / "n.csv").write_text("class,n\na,0.03\nb,0.045\n")
+    kw = {"classes": path, "class_field": "kind", "n_table": tmp_path / "n.csv",
+          "crs": "EPSG:32633", "mesh_area": MESH}
+    with pytest.raises(InputError) as info:
+        load_roughness(**kw)
+    assert "landcover" in str(info.value) and "--classes-layer" in str(info.value)
+    assert load_roughness(classes_layer="landcover", **kw).classes == ("a", "b")

@@ -14,7 +14,8 @@ from cli.main import cli
 from ntrans.cautions import CAUTIONS
 from ntrans.translate import FLAG_MEANINGS
 
-OPTIONS = ["--dem", "--cells", "--n", "--classes", "--class-field", "--n-table", "--n-field",
+OPTIONS = ["--dem", "--cells", "--cells-layer", "--n", "--classes", "--classes-layer",
+           "--class-field", "--n-table", "--n-field",
            "--class-raster", "--default-class", "--overlap-rule", "--from", "--to", "--closure",
            "--source-closure", "--composite", "--depths", "--stages", "--water-surface", "--out",
            "--overwrite", "--csv"]
@@ -84,6 +85,45 @@ def test_class_polygons_run(runner, inputs, tmp_path, builders):
                                  "--n-table", str(table), "--stages", "11", "--out", str(out)])
     assert result.exit_code == 0, result.stderr
     assert sorted(pd.read_csv(out / "n_by_class.csv")["class"]) == ["a", "b"]
+
+
+def test_class_polygons_from_a_file_of_several_layers(runner, inputs, tmp_path, builders):
+    dem, cells = inputs
+    # the cells and the class polygons in one GeoPackage
+    both = builders.write_cells(tmp_path / "both.gpkg", builders.grid_polygons(2, 2, 10.0),
+                                layer="mesh")
+    builders.write_cells(both, [shapely.box(0, 0, 10, 20), shapely.box(10, 0, 20, 20)],
+                         id_field=None, attributes={"kind": ["a", "b"]}, layer="landcover")
+    table = tmp_path / "n.csv"
+    table.write_text("class,n\na,0.03\nb,0.05\n")
+    out = tmp_path / "out"
+    args = ["-q", "adjust", "--dem", str(dem), "--cells", str(both), "--cells-layer", "mesh",
+            "--classes", str(both), "--class-field", "kind", "--n-table", str(table),
+            "--stages", "11", "--out", str(out)]
+    result = runner.invoke(cli, args)
+    assert result.exit_code == 2
+    line = _one_error_line(result)
+    assert "--classes-layer" in line and "mesh" in line and "landcover" in line
+    assert _nothing_written(out)
+    result = runner.invoke(cli, [*args, "--classes-layer", "landcover"])
+    assert result.exit_code == 0, result.stderr
+    assert sorted(pd.read_csv(out / "n_by_class.csv")["class"]) == ["a", "b"]
+
+
+def test_class_polygons_without_crs_exit_2(runner, inputs, tmp_path, builders):
+    dem, cells = inputs
+    classes = builders.write_cells(tmp_path / "classes.gpkg",
+                                   [shapely.box(0, 0, 10, 20), shapely.box(10, 0, 20, 20)],
+                                   id_field=None, attributes={"kind": ["a", "b"]}, crs=None)
+    table = tmp_path / "n.csv"
+    table.write_text("class,n\na,0.03\nb,0.05\n")
+    out = tmp_path / "out"
+    result = runner.invoke(cli, ["-q", "adjust", "--dem", str(dem), "--cells", str(cells),
+                                 "--classes", str(classes), "--class-field", "kind",
+                                 "--n-table", str(table), "--stages", "11", "--out", str(out)])
+    assert result.exit_code == 2
+    assert "no CRS" in _one_error_line(result)
+    assert _nothing_written(out)
 
 
 @pytest.mark.parametrize(

@@ -115,3 +115,67 @@ def test_warnings_show_their_category_not_the_logger(runner, monkeypatch):
     assert "WARNING PartialCoverageWarning: 2 cells lie partly outside the DEM" in lines
     assert "INFO ntrans.tables: tables written" in lines
     assert "py.warnings" not in result.output
+
+
+def test_every_command_takes_the_log_options_after_its_name(runner):
+    for name in main_module.COMMANDS:
+        if main_module._available(name):
+            result = runner.invoke(main_module.cli, [name, "--help"])
+            for option in ("-v, --verbose", "-q, --quiet", "--debug"):
+                assert option in result.output, (name, option)
+
+
+@pytest.fixture
+def level_command(monkeypatch):
+    """A command reporting the log level and the flags it runs with."""
+    from cli import options
+
+    seen = {}
+
+    @click.command("level")
+    @options.verbosity
+    @click.pass_context
+    def level(ctx):
+        seen.update(level=logging.getLogger().level, quiet=ctx.meta["ntrans.quiet"],
+                    debug=ctx.meta["ntrans.debug"])
+
+    monkeypatch.setitem(main_module.COMMANDS, "level", "cli.main")
+    monkeypatch.setattr(main_module, "command", level, raising=False)
+    return seen
+
+
+@pytest.mark.parametrize(
+    ("args", "level", "quiet", "debug"),
+    [
+        (["level"], logging.INFO, False, False),
+        (["-q", "level"], logging.WARNING, True, False),
+        (["level", "-q"], logging.WARNING, True, False),
+        (["level", "--quiet"], logging.WARNING, True, False),
+        (["level", "-v"], logging.DEBUG, False, False),
+        (["-v", "level", "-q"], logging.WARNING, True, False),  # quiet wins, as before it
+        (["level", "--debug"], logging.INFO, False, True),
+        (["--debug", "level"], logging.INFO, False, True),
+    ],
+)
+def test_log_options_after_the_command_do_what_they_do_before_it(runner, level_command, args,
+                                                                 level, quiet, debug):
+    result = runner.invoke(main_module.cli, args)
+    assert result.exit_code == 0, result.output
+    assert level_command == {"level": level, "quiet": quiet, "debug": debug}
+
+
+def test_debug_after_the_command_shows_the_traceback(runner, tmp_path):
+    from ntrans.errors import InputFileError
+
+    missing = str(tmp_path / "absent.toml")
+    result = runner.invoke(main_module.cli, ["run", missing])
+    assert result.exit_code == 2
+    assert "Traceback" not in result.output
+    result = runner.invoke(main_module.cli, ["run", missing, "--debug"])
+    assert isinstance(result.exception, InputFileError)
+
+
+def test_quiet_after_a_real_command(runner, tmp_path):
+    result = runner.invoke(main_module.cli, ["init", str(tmp_path / "p.toml"), "-q"])
+    assert result.exit_code == 0, result.output
+    assert (tmp_path / "p.toml").is_file()

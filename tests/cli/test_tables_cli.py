@@ -14,7 +14,7 @@ from ntrans.cautions import CAUTIONS
 from ntrans.errors import CRSError, GeometryRepairedWarning, InputError, NtransError
 
 OPTIONS = [
-    "--dem", "--cells", "--id-field", "--stages", "--depths", "--vertical-units", "--coverage",
+    "--dem", "--cells", "--cells-layer", "--id-field", "--stages", "--depths", "--vertical-units", "--coverage",
     "--elevation-rule", "--elevation-field", "--face-rule", "--face-spacing",
     "--snap-tolerance", "--out", "--overwrite", "--csv", "--tile-size", "--workers",
     "--scheduler",
@@ -135,6 +135,23 @@ def _outside(tmp_path, b):
     return dem, cells, InputError
 
 
+def _two_layers(tmp_path, b):
+    dem = b.write_dem(tmp_path / "dem.tif", np.ones((10, 10)))
+    cells = b.write_cells(tmp_path / "c.gpkg", b.grid_polygons(2, 2, 5.0), layer="cells")
+    b.write_cells(cells, [shapely.box(0, 0, 10, 10)], layer="landcover")
+    return dem, cells, InputError
+
+
+def _web_mercator_at_45_degrees(tmp_path, b):
+    # lengths 41 % too long there (Mercator scale sec 45 deg = 1.414)
+    x, y = 1_113_194.9, 5_621_521.5  # 10 deg E, 45 deg N
+    dem = b.write_dem(tmp_path / "dem.tif", np.ones((10, 10)), crs="EPSG:3857",
+                      origin=(x, y + 10.0))
+    cells = b.write_cells(tmp_path / "c.gpkg", b.grid_polygons(1, 1, 10.0, origin=(x, y)),
+                          crs="EPSG:3857")
+    return dem, cells, CRSError
+
+
 def _unreadable(tmp_path, b):
     dem = tmp_path / "dem.tif"
     dem.write_text("not a raster")
@@ -145,9 +162,9 @@ def _unreadable(tmp_path, b):
 @pytest.mark.parametrize(
     "make",
     [_geographic, _no_crs, _empty_layer, _points, _duplicate_ids, _overlapping, _outside,
-     _unreadable],
+     _two_layers, _web_mercator_at_45_degrees, _unreadable],
     ids=["geographic-crs", "no-crs", "empty-layer", "not-polygons", "duplicate-ids",
-         "overlapping", "no-cell-on-dem", "unreadable"],
+         "overlapping", "no-cell-on-dem", "several-layers", "web-mercator", "unreadable"],
 )
 def test_user_errors_exit_2_one_line_nothing_written(runner, tmp_path, builders, make):
     dem, cells, error_class = make(tmp_path, builders)
@@ -189,3 +206,18 @@ def test_invalid_polygon_repaired_with_warning(runner, tmp_path, builders):
         result = runner.invoke(cli, _args(dem, cells, out))
     assert result.exit_code == 0, result.output
     assert (out / "cell_stage.parquet").is_file()
+
+
+def test_cells_layer_names_the_layer_to_read(runner, tmp_path, builders):
+    dem = builders.write_dem(tmp_path / "dem.tif", builders.tilted_plane(20, 20))
+    both = builders.write_cells(tmp_path / "both.gpkg", [shapely.box(0, 0, 20, 20)],
+                                layer="landcover")
+    builders.write_cells(both, builders.grid_polygons(2, 2, 10.0), layer="cells")
+    out = tmp_path / "out"
+    result = runner.invoke(cli, _args(dem, both, out))
+    assert result.exit_code == 2
+    line = _one_error_line(result)
+    assert "landcover" in line and "--cells-layer" in line
+    result = runner.invoke(cli, _args(dem, both, out, "--cells-layer", "cells"))
+    assert result.exit_code == 0, result.output
+    assert "4 cells" in result.stdout
