@@ -89,6 +89,11 @@ class DryWetMismatchWarning(NtransWarning):
     """Items wet in one model family and dry in the other were left out of a fit."""
 
 
+class DeepWindowWarning(NtransWarning):
+    """The calibration window stands implausibly deep above the terrain (e.g. a water
+    surface in feet over terrain in metres)."""
+
+
 class MemoryEstimateWarning(NtransWarning):
     """A job is expected to need more memory than the machine has available."""
 
