@@ -42,6 +42,7 @@ from .engine import (
     make_tasks,
 )
 from .errors import (
+    DeepWindowWarning,
     DryWetMismatchWarning,
     InputError,
     MemoryEstimateWarning,
@@ -56,6 +57,7 @@ from .roughness import (
     AREA_TOLERANCE,
     OVERLAP_RULES,
     RoughnessModel,
+    check_roughness_inputs,
     class_at_points,
     class_index_on_window,
     load_roughness,
@@ -81,6 +83,14 @@ from .translate import (
 from .translate import Family as _Family
 
 log = logging.getLogger(__name__)
+
+#: a window is called deep (DeepWindowWarning) when more than half of its wet cell-stages
+#: lie more than this many metres above their cell's lowest terrain, i.e. the median
+#: depth over the wet cells exceeds it: deeper than river floods on floodplains run
+#: (common practice, no source).  A water surface in feet over terrain in metres stands
+#: 3.28 times too high, so it trips this rule wherever the terrain lies more than about
+#: 13 m above the datum (2.28 x 13 m = 30 m)
+DEEP_WINDOW_METRES = 30.0
 
 #: bins of the stage bias's spill files are uniform in asinh(bias / this), in the DEM's
 #: vertical unit: fine near zero, relative further out (they never change the figures)
@@ -188,6 +198,7 @@ class _TileGeometry:
     cell_flat: np.ndarray        # flat cell elevation (own cells)
     face_low: np.ndarray
     cell_low: np.ndarray
+    cell_covered: np.ndarray     # plan area of own cells over valid terrain
     face_stages: np.ndarray      # (n_faces, n_window)
     cell_stages: np.ndarray      # (n_cells, n_window)
     uncovered: float             # plan area of own cells' pixels with no class
@@ -275,8 +286,9 @@ def _tile_geometry(task: Any, elevation: np.ndarray, transform: Any, plan: _Plan
                                                                         cols[own], plan_area[own]),
         n_cells=n_own, window=(transform, elevation.shape), face_a=np.asarray(la, dtype=np.int64))
     return _TileGeometry(tile.cells, tile.faces, ga, gb, face_geom, cell_geom, face_flat,
-                         flat_z[:n_own], face_low, cell_low, face_stages, cell_stages,
-                         uncovered, covered)
+                         flat_z[:n_own], face_low, cell_low,
+                         np.asarray(summary["covered_area"], dtype=float)[:n_own],
+                         face_stages, cell_stages, uncovered, covered)
 
 
 class _Window:
@@ -399,7 +411,103 @@ def _pass_statistics(job: _Job, task: Any) -> dict[str, Any]:
     terms = fit_terms(k_source, _family_stats(fam_t, st, cache), model.n,
                       closure=_domain_closure(plan.target_closure),  # type: ignore[arg-type]
                       composite=plan.composite, k=plan.k)  # type: ignore[arg-type]
-    return {"terms": terms, "uncovered": tg.uncovered, "covered": tg.covered}
+    low = tg.face_low if faces else tg.cell_low
+    deep = DEEP_WINDOW_METRES / float(job.dem.z_metres_per_unit)
+    return {"terms": terms, "uncovered": tg.uncovered, "covered": tg.covered,
+            "cells": tg.cells, "cell_covered": tg.cell_covered,
+            "wetting": _WindowWetting.of(st, low, tg.cell_stages, tg.cell_low, deep)}
+
+
+@dataclass
+class _WindowWetting:
+    """How the window meets the terrain, summed tile by tile (pass 1).
+
+    Fit domain: ``reached`` items with terrain and a stage, ``wet`` items above their
+    lowest terrain at some window stage, ``nearest`` the largest stage minus lowest
+    terrain of any item-stage (at most 0 when none is wet), ``lowest`` the lowest
+    terrain.  Cells: ``cell_wet`` cell-stages above the cell's lowest terrain, ``cell_deep``
+    those more than the deep limit above it.
+    """
+
+    reached: int = 0
+    wet: int = 0
+    nearest: float = -np.inf
+    lowest: float = np.inf
+    cell_wet: int = 0
+    cell_deep: int = 0
+
+    @classmethod
+    def of(cls, stages: np.ndarray, low: np.ndarray, cell_stages: np.ndarray,
+           cell_low: np.ndarray, deep: float) -> _WindowWetting:
+        with np.errstate(invalid="ignore"):
+            depth = np.asarray(stages, dtype=float) - np.asarray(low, dtype=float)[:, None]
+            cell_depth = (np.asarray(cell_stages, dtype=float)
+                          - np.asarray(cell_low, dtype=float)[:, None])
+        finite = np.isfinite(depth)
+        has_low = np.isfinite(low)
+        return cls(reached=int(finite.any(axis=1).sum()),
+                   wet=int((depth > 0).any(axis=1).sum()),
+                   nearest=float(depth[finite].max()) if finite.any() else -np.inf,
+                   lowest=float(np.min(low[has_low])) if has_low.any() else np.inf,
+                   cell_wet=int(np.count_nonzero(cell_depth > 0)),
+                   cell_deep=int(np.count_nonzero(cell_depth > deep)))
+
+    def add(self, other: _WindowWetting) -> None:
+        self.reached += other.reached
+        self.wet += other.wet
+        self.nearest = max(self.nearest, other.nearest)
+        self.lowest = min(self.lowest, other.lowest)
+        self.cell_wet += other.cell_wet
+        self.cell_deep += other.cell_deep
+
+
+def _check_window_wets(wetting: _WindowWetting, *, spec: StageSpec | None, domain: str,
+                       z_unit: str, surfaces: list[Any]) -> None:
+    """InputError when no item of the fit domain is wet at any window stage: one sentence
+    saying what the window met."""
+    if wetting.wet > 0:
+        return
+    item = domain[:-1]
+    if spec is None:
+        names = ", ".join(repr(ws.name) for ws in surfaces)
+        what = f"water surface {names}" if len(surfaces) == 1 else f"water surfaces {names}"
+        if wetting.reached == 0:
+            raise InputError(
+                f"the {what} has no value over any {item} of the mesh with terrain (it lies "
+                "off the mesh or holds only nodata there); check its extent, CRS and nodata "
+                "value")
+        raise InputError(
+            f"the {what} lies below the terrain everywhere: at every {item} it reaches it "
+            f"stands at least {-wetting.nearest:.3g} {z_unit} below the {item}'s lowest "
+            f"terrain; check that it holds elevations, not depths, in the DEM's vertical "
+            f"unit ({z_unit})")
+    if spec.mode == "stage":
+        low = f" (the lowest lies at {wetting.lowest:.6g} {z_unit})" if np.isfinite(
+            wetting.lowest) else ""
+        raise InputError(
+            f"the window's stages ({spec.values.min():g} to {spec.values.max():g} {z_unit}) "
+            f"lie below the lowest terrain of every {item}{low}; give stages above the "
+            "terrain in the DEM's vertical unit, or depths instead")
+    raise InputError(f"no {item} of the mesh is wet at any depth of the window; give depths "
+                     "above zero over cells with terrain")
+
+
+def _warn_if_window_deep(wetting: _WindowWetting, *, spec: StageSpec | None, z_unit: str,
+                         z_metres: float) -> None:
+    """DeepWindowWarning when the median depth over the wet cell-stages exceeds
+    :data:`DEEP_WINDOW_METRES` (more than half of them deeper)."""
+    if not (wetting.cell_wet and 2 * wetting.cell_deep > wetting.cell_wet):
+        return
+    limit = DEEP_WINDOW_METRES / z_metres
+    if spec is not None and spec.mode == "depth":
+        hint = "check the window's depths"
+    else:
+        what = "water surface" if spec is None else "stages"
+        hint = (f"check the vertical unit of the {what} (a water surface in feet over terrain "
+                "in metres stands 3.28 times too high)")
+    warn(f"the calibration window is implausibly deep: {wetting.cell_deep} of "
+         f"{wetting.cell_wet} wet cell-stages lie more than {limit:.3g} {z_unit} above their "
+         f"cell's lowest terrain; {hint}", DeepWindowWarning, stacklevel=3)
 
 
 def _pass_tables(job: _Job, task: Any, n_fit: np.ndarray) -> dict[str, Any]:
@@ -573,12 +681,25 @@ def adjust_roughness(
     -------
     AdjustResult
 
+    Raises
+    ------
+    RoughnessError
+        A class or the default class missing from the n table, or an n outside 0.005-1
+        (checked before the mesh is read).
+    InputError
+        Among others: a water surface off the mesh (before the tile passes), or a window
+        that wets no face (cell) of the fit domain (after the first pass, before anything
+        is written).  A window whose median depth over the wet cells exceeds
+        :data:`DEEP_WINDOW_METRES` warns (:class:`~ntrans.errors.DeepWindowWarning`);
+        cells partly or wholly without terrain warn
+        (:class:`~ntrans.errors.PartialCoverageWarning`).
+
     Writes ``n_by_class.csv``, ``face_adjustment.parquet``, ``cell_adjustment.parquet``,
-    ``cells.gpkg``, ``faces.gpkg`` and ``adjust_summary.json``.  Lengths in the CRS's
+    ``cells.gpkg`` (with ``covered_fraction``), ``faces.gpkg`` and ``adjust_summary.json``.  Lengths in the CRS's
     horizontal unit, stages and stage bias in the DEM's vertical unit; conveyance
     k A R^(2/3) / n with k = 1.0 (metre) or 1.486 (foot).
     """
-    from .inputs import read_water_surfaces
+    from .inputs import check_water_surfaces_reach, read_water_surfaces
     from .outputs import (
         OutputFolder,
         TableWriter,
@@ -588,7 +709,13 @@ def adjust_roughness(
         write_csv,
         write_geopackage,
     )
-    from .tables import prepare_mesh_job, table_units
+    from .tables import (
+        covered_fractions,
+        partial_coverage,
+        prepare_mesh_job,
+        table_units,
+        warn_partial_coverage,
+    )
 
     started = time.perf_counter()
     check_choice("coverage", coverage, COVERAGE_MODES)
@@ -605,6 +732,10 @@ def adjust_roughness(
         raise InputError("give exactly one calibration window: depths, stages or water-surface "
                          "rasters")
     spec = None if water_surface else StageSpec.from_options(stages=stages, depths=depths)
+    # the classes against the n table and every n, before the mesh is read
+    check_roughness_inputs(n=n, classes=classes, class_field=class_field, n_table=n_table,
+                           n_field=n_field, class_raster=class_raster, default_class=default_class,
+                           classes_layer=classes_layer)
     # workers start (and warm up) in the background while the mesh is read and built
     with (
         connect_workers(workers, scheduler) or contextlib.nullcontext() as connection,
@@ -629,6 +760,8 @@ def adjust_roughness(
                                default_class=default_class, overlap_rule=overlap_rule,  # type: ignore[arg-type]
                                crs=dem_info.crs, mesh_area=mesh_area)
         surfaces = read_water_surfaces(water_surface, dem=dem_info) if water_surface else []
+        if surfaces:
+            check_water_surfaces_reach(surfaces, dem_info, tuple(shapely.total_bounds(geoms)))
         window = _Window(spec, surfaces, dem_info)
         plan = _Plan(source, target, sc, tc, domain, composite, elevation_rule, face_rule, coverage,
                      setup.spacing, float(dem_info.z_to_xy), float(dem_info.manning_k))
@@ -655,6 +788,8 @@ def adjust_roughness(
         # ---- pass 1: the class fit's terms from the fit domain, tile by tile
         parts: list[FitTerms] = []
         uncovered = covered = 0.0
+        wetting = _WindowWetting()
+        cell_covered = np.zeros(n_cells)
         _warn_if_short_of_memory(n_cells, n_faces, n_win,
                                  1 if connection is not None else
                                  (default_threads() if threads is None else int(threads)),
@@ -663,12 +798,18 @@ def adjust_roughness(
             layer.raise_if_checks_failed()
             uncovered += res["uncovered"]
             covered += res["covered"]
+            wetting.add(res["wetting"])
+            cell_covered[res["cells"]] = res["cell_covered"]
             terms = res["terms"]
             spread.add(terms.spread_class, terms.spread_ratio, terms.spread_weight,
                        terms.spread_stage)
             parts.append(terms.without_spread())
             del res, terms
         layer.finish_checks()
+        z_unit = table_units(dem_info)["stage"]
+        _check_window_wets(wetting, spec=spec, domain=domain, z_unit=z_unit, surfaces=surfaces)
+        _warn_if_window_deep(wetting, spec=spec, z_unit=z_unit,
+                             z_metres=float(dem_info.z_metres_per_unit))
         share = uncovered / covered if covered > 0 else 0.0
         if model.source == "raster" and model.default < 0 and share > AREA_TOLERANCE:
             raise RoughnessError(
@@ -799,8 +940,10 @@ def adjust_roughness(
         import pandas as pd
 
         crs = layer.frame.crs
+        covered_fraction = covered_fractions(cell_covered, shapely.area(geoms))
         cell_frame = gpd.GeoDataFrame(
-            {"cell_id": ids, "n_ratio_median": cell_ratio_med,
+            {"cell_id": ids, "covered_fraction": covered_fraction,
+             "n_ratio_median": cell_ratio_med,
              "stage_bias_unadjusted_median": cell_bias_med, "bed_factor": cell_bed,
              "dominant_class": cls_names[cell_dom].astype(str)},
             geometry=gpd.GeoSeries(geoms, crs=crs), crs=crs)
@@ -845,6 +988,7 @@ def adjust_roughness(
             "classes": json.loads(frame.to_json(orient="records")),
             "stage_bias": {"unadjusted": bias["unadjusted"]["overall"],
                            "adjusted": bias["adjusted"]["overall"]},
+            **partial_coverage(ids, covered_fraction).summary(),
             "flagged": {"face_stage_dry_wet_mismatch": mismatch_faces,
                         "cell_stage_dry_wet_mismatch": mismatch_cells,
                         "classes_flagged": int(sum(1 for f in flags if f))},
@@ -860,6 +1004,7 @@ def adjust_roughness(
         rel = [p.name for p in files]
 
     final = Path(os.fspath(out)).expanduser().absolute()
+    warn_partial_coverage(ids, covered_fraction, stacklevel=2)
     mism = mismatch_faces if domain == "faces" else mismatch_cells
     if mism:
         warn(

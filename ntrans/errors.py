@@ -93,6 +93,11 @@ class ProjectionScaleWarning(NtransWarning):
     """The DEM's projection stretches or shrinks lengths noticeably where the DEM lies."""
 
 
+class DeepWindowWarning(NtransWarning):
+    """The calibration window stands implausibly deep above the terrain (e.g. a water
+    surface in feet over terrain in metres)."""
+
+
 class MemoryEstimateWarning(NtransWarning):
     """A job is expected to need more memory than the machine has available."""
 

@@ -1538,6 +1538,41 @@ def read_water_surfaces(
     return surfaces
 
 
+def check_water_surfaces_reach(
+    surfaces: Sequence[WaterSurface], dem: DemInfo, bounds: Sequence[float]
+) -> None:
+    """Raise :class:`InputError` when a water surface's extent misses ``bounds``
+    (``minx, miny, maxx, maxy`` of the mesh, in the DEM's CRS) entirely.
+
+    Only the rasters' extents are compared, so this costs nothing; a surface that meets
+    the mesh but holds no value over it is found by the job's first pass.
+    """
+    minx, miny, maxx, maxy = (float(v) for v in bounds)
+    target = _to_pyproj(dem.crs)
+    for ws in surfaces:
+        west, north = ws.transform @ (0, 0)
+        east, south = ws.transform @ (ws.width, ws.height)
+        west, east = sorted((west, east))
+        south, north = sorted((south, north))
+        own = _to_pyproj(ws.crs)
+        if not _same_crs(own, target):
+            transformer = _transformer(own.to_wkt(), target.to_wkt())
+            west, south, east, north = transformer.transform_bounds(west, south, east, north,
+                                                                    densify_pts=21)
+        if east <= minx or west >= maxx or north <= miny or south >= maxy:
+            raise InputError(
+                f"water surface '{ws.name}' lies off the mesh everywhere (raster x "
+                f"{_coord(west)} to {_coord(east)}, y {_coord(south)} to {_coord(north)}; mesh "
+                f"x {_coord(minx)} to {_coord(maxx)}, y {_coord(miny)} to {_coord(maxy)}); "
+                "check its extent and CRS"
+            )
+
+
+def _coord(value: float) -> str:
+    """A map coordinate for a message: to a tenth of a unit, without exponent."""
+    return f"{round(float(value), 1):.12g}"
+
+
 def sample_water_surface(
     surface: WaterSurface | str | os.PathLike[str],
     dem: DemInfo,

@@ -337,11 +337,14 @@ cells = "cells.gpkg"            # mesh cells as polygons, same CRS as the DEM
 classes = "landcover.gpkg"      # roughness class polygons ...
 class_field = "landcover"       # ... their class attribute ...
 n_table = "n_table.csv"         # ... and a CSV with columns class, n (optional surface)
+#                                 (names match the classes exactly, case included;
+#                                 n in s/m^(1/3), 0.005 to 1)
 # classes_layer = "landcover"   # layer of the classes file to read (when it holds several)
 # n_field = "n"                 # or: polygons that carry their own n
 # class_raster = "classes.tif"  # or: an integer class raster (with n_table)
 # default_class = "pasture"     # class for ground no polygon covers
 # water_surface = "wse.tif"     # calibrated water surface(s) of the source model (or a list)
+#                                 (elevations, not depths, in the DEM's vertical unit)
 # vertical_units = "metre"      # metre | foot | us_survey_foot (default: as horizontal)
 # elevation_field = "bed_z"     # flat bed elevation attribute (with elevation_rule = "field")
 
@@ -502,12 +505,16 @@ def run_project(
         The project file is invalid.
     OutputExistsError
         The bundle folder exists and overwrite is false.
+    RoughnessError
+        A class (or the default class) is missing from the n table, or an n is not a
+        Manning's n; checked before the stage tables.
     """
     import pandas as pd
 
     from . import bundle
     from .adjust import adjust_roughness
     from .outputs import OutputFolder
+    from .roughness import check_roughness_inputs
     from .tables import build_tables
 
     project = load_project(path)
@@ -520,6 +527,8 @@ def run_project(
     dem, cells = str(project.inputs["dem"]), str(project.inputs["cells"])
     timings: dict[str, float] = {}
     logger.info("project %s -> %s", project.path, target)
+    # the classes against the n table, before the stage tables take their minutes
+    check_roughness_inputs(**_call_kwargs(check_roughness_inputs, options))
 
     with fixed_gdal_dates(), OutputFolder(
         target, overwrite=overwrite, inputs=[*_input_paths(project), project.path]

@@ -16,9 +16,12 @@ Inputs, in the order they are tried by :func:`load_roughness`:
 - ``class_raster`` + ``n_table``: an integer class raster and the CSV.
 
 ``default_class`` names the class for ground no polygon (or raster pixel) covers.
-Every bad input raises :class:`~ntrans.errors.RoughnessError` with one sentence; an n
+Every bad input raises :class:`~ntrans.errors.RoughnessError` with one sentence: among
+them an n outside :data:`N_MIN`..:data:`N_MAX`, the class fit's search bounds, which no
+Manning's n reaches (a Strickler coefficient, or a value in the wrong unit); an n
 outside the published range for its surface, or above 0.3, emits
-:class:`~ntrans.errors.RoughnessRangeWarning`.
+:class:`~ntrans.errors.RoughnessRangeWarning`.  :func:`check_roughness_inputs` checks
+the classes against the n table without building the class map, before long work.
 """
 
 from __future__ import annotations
@@ -60,6 +63,18 @@ PUBLISHED_N_RANGES: dict[str, tuple[float, float, float]] = {
 
 #: Above this n a value is unusual for any natural surface (warning only).
 N_HIGH = 0.3
+
+#: Accepted Manning's n (s/m^(1/3), the same number in US-customary use): the class fit's
+#: absolute bounds (:func:`ntrans.translate.solve_class_n` searches n source divided or
+#: multiplied by 10 within them), so the fit can always return the source n.  Values
+#: outside are no Manning's n: the smoothest built surfaces lie near 0.01, the roughest
+#: floodplains near 0.2 (common practice, no source).
+N_MIN, N_MAX = 0.005, 1.0
+#: the range of Manning's n named in messages (common practice, no source)
+N_TYPICAL = (0.01, 0.2)
+#: Strickler coefficients (1/n, m^(1/3)/s) of natural channels and floodplains start
+#: about here; an n this large is taken for one in messages (common practice, no source)
+STRICKLER_LOW = 5.0
 
 #: Overlaps and uncovered ground smaller than this share of the area are ignored.
 AREA_TOLERANCE = 1e-6
@@ -220,8 +235,13 @@ def class_at_points(class_index: np.ndarray, transform: Any, x: np.ndarray,
 # validation helpers
 
 
-def _check_n_values(names: list[str], values: list[Any], what: str) -> np.ndarray:
-    """Parse n values; raise listing every bad one."""
+def _check_n_values(names: list[str], values: list[Any], what: str, *,
+                    labels: list[str] | None = None) -> np.ndarray:
+    """Parse n values; raise listing every bad one.
+
+    ``labels`` name each value in the message about values outside :data:`N_MIN` ..
+    :data:`N_MAX` (e.g. ``"class 'channel'"``; default: none).
+    """
     out = np.full(len(values), np.nan)
     bad: list[str] = []
     for i, (name, value) in enumerate(zip(names, values, strict=True)):
@@ -239,7 +259,30 @@ def _check_n_values(names: list[str], values: list[Any], what: str) -> np.ndarra
             f"{what} holds n values that are not positive numbers ({', '.join(bad)}); "
             "give every n as a number above zero"
         )
+    outside = [i for i, v in enumerate(out) if not N_MIN <= v <= N_MAX]
+    if outside:
+        raise _outside_error(what, [(None if labels is None else labels[i], float(out[i]))
+                                    for i in outside])
     return out
+
+
+def _outside_error(what: str, bad: list[tuple[str | None, float]]) -> RoughnessError:
+    """The error for n values outside N_MIN..N_MAX: (label or None, value) each."""
+    label, value = bad[0]
+    if len(bad) == 1:
+        given = f"n {value:g}" + (f" for {label}" if label else "")
+    else:
+        given = "n " + ", ".join(f"{v:g}" + (f" ({lab})" if lab else "") for lab, v in bad)
+    if value >= STRICKLER_LOW:
+        hint = (f"if it is a Strickler coefficient, give its reciprocal (1/{value:g} = "
+                f"{1.0 / value:.3g})")
+    else:
+        hint = "check the value and its decimal point"
+    verb = "is not a Manning's n" if len(bad) == 1 else "are not Manning's n values"
+    return RoughnessError(
+        f"{what} gives {given}, which {verb} (expected about {N_TYPICAL[0]:g}-"
+        f"{N_TYPICAL[1]:g} s/m^(1/3); accepted {N_MIN:g}-{N_MAX:g}); {hint}"
+    )
 
 
 def check_ranges(model: RoughnessModel, n: np.ndarray | None = None, *, what: str = "n") -> list[str]:
@@ -339,22 +382,51 @@ def uniform_model(n: float | str) -> RoughnessModel:
     return model
 
 
+def _close_match(name: str, candidates: list[str]) -> str | None:
+    """The candidate ``name`` most likely meant: equal but for case, else a near spelling."""
+    import difflib
+
+    folded = {c.casefold(): c for c in candidates}
+    if name.casefold() in folded:
+        return folded[name.casefold()]
+    near = difflib.get_close_matches(name.casefold(), list(folded), n=1, cutoff=0.75)
+    return folded[near[0]] if near else None
+
+
 def _table_lookup(classes_used: list[str], table: tuple[list[str], list[Any], list[str | None]],
                   *, what: str, default_class: str | None) -> tuple[list[str], np.ndarray,
                                                                     list[str | None], int]:
     names, values, surfaces = table
     lookup = dict(zip(names, range(len(names)), strict=True))
     needed = list(dict.fromkeys(classes_used))
-    if default_class is not None and default_class not in needed:
-        needed.append(default_class)
     missing = [c for c in needed if c not in lookup]
     if missing:
+        close = [(c, m) for c in missing if (m := _close_match(c, names)) is not None]
+        hint = ""
+        if close:
+            shown = ", ".join(f"{m!r} for {c!r}" for c, m in close[:3])
+            more = f" and {len(close) - 3} more" if len(close) > 3 else ""
+            case = ("names match case-sensitively; " if any(c.casefold() == m.casefold()
+                                                            for c, m in close) else "")
+            hint = f" ({case}the table has {shown}{more})"
         raise RoughnessError(
-            f"classes {missing} of {what} are missing from the n table; add a row for each "
-            "(columns class,n)"
+            f"classes {missing} of {what} are missing from the n table{hint}; add a row for "
+            "each (columns class,n) or correct the names"
         )
+    if default_class is not None and default_class not in lookup:
+        match = _close_match(default_class, names)
+        near = f" (closest: {match!r})" if match is not None else ""
+        listed = ", ".join(names[:10]) + (f" and {len(names) - 10} more" if len(names) > 10
+                                          else "")
+        raise RoughnessError(
+            f"default class {default_class!r} is not in the n table{near}; give one of its "
+            f"classes ({listed}) or add a row for it"
+        )
+    if default_class is not None and default_class not in needed:
+        needed.append(default_class)
     idx = [lookup[c] for c in needed]
-    n = _check_n_values([names[i] for i in idx], [values[i] for i in idx], "the n table")
+    n = _check_n_values([names[i] for i in idx], [values[i] for i in idx], "the n table",
+                        labels=[f"class {names[i]!r}" for i in idx])
     surf = [surfaces[i] for i in idx]
     _check_surfaces(surf)
     default = needed.index(default_class) if default_class is not None else -1
@@ -373,6 +445,15 @@ def _overlap_area(polygons: np.ndarray) -> tuple[float, int]:
         return 0.0, 0
     areas = shapely.area(shapely.intersection(polygons[left], polygons[right]))
     return float(areas.sum()), int(np.count_nonzero(areas > 0))
+
+
+def _class_labels(labels: np.ndarray) -> list[str]:
+    """Class names of polygons as text; RoughnessError when any is empty."""
+    label_str = [str(v).strip() if v is not None else "" for v in labels]
+    empty = sum(1 for v in label_str if v in ("", "nan", "None"))
+    if empty:
+        raise RoughnessError(f"{empty} class polygons have an empty class value; give every polygon a class")
+    return label_str
 
 
 def polygon_model(
@@ -417,7 +498,8 @@ def polygon_model(
     if n_values is not None:
         raw = np.asarray(n_values, dtype=object)[keep]
         names_raw = [f"polygon {i}" for i in range(raw.size)]
-        n_poly = _check_n_values(names_raw, list(raw), "the n field of the class polygons")
+        n_poly = _check_n_values(names_raw, list(raw), "the n field of the class polygons",
+                                 labels=names_raw)
         distinct = list(np.unique(n_poly))
         default_index = -1
         if default_class is not None:
@@ -433,10 +515,7 @@ def polygon_model(
         source = "n_field"
     else:
         assert table is not None
-        label_str = [str(v).strip() if v is not None else "" for v in labels]
-        empty = sum(1 for v in label_str if v in ("", "nan", "None"))
-        if empty:
-            raise RoughnessError(f"{empty} class polygons have an empty class value; give every polygon a class")
+        label_str = _class_labels(labels)
         classes, n, surf, default_index = _table_lookup(
             sorted(set(label_str)), table, what="the class polygons",
             default_class=None if default_class is None else str(default_class))
@@ -605,22 +684,35 @@ def raster_file_model(
     gathered strip by strip and tiles read their own windows (:class:`RasterClasses`)."""
     import rasterio
 
-    from .inputs import _read_band1
 
     path = str(path)
     with rasterio.open(path) as src:
         transform, crs, width, height = src.transform, src.crs, src.width, src.height
+    codes = raster_file_codes(path)
+    return _raster_classes_model(
+        codes, transform, (height, width), crs, table, default_class=default_class,
+        mesh_bounds=mesh_bounds,
+        raster=lambda codes, code_class: RasterClasses(path, transform, crs, width, height,
+                                                       codes, code_class))
+
+
+def raster_file_codes(path: str | Path) -> np.ndarray:
+    """Sorted distinct class codes (float64) of a class raster file, read in strips of
+    about 4 million pixels; RoughnessError if any is not an integer."""
+    import rasterio
+
+    from .inputs import _read_band1
+
+    path = str(path)
+    with rasterio.open(path) as src:
+        width, height = src.width, src.height
     codes = np.empty(0)
     rows_per_strip = max(1, (1 << 22) // max(width, 1))  # strips of about 4 million pixels
     for row in range(0, height, rows_per_strip):
         values = _read_band1(path, row, 0, min(rows_per_strip, height - row), width,
                              (height, width))
         codes = np.union1d(codes, _integer_codes(values[np.isfinite(values)]))
-    return _raster_classes_model(
-        codes, transform, (height, width), crs, table, default_class=default_class,
-        mesh_bounds=mesh_bounds,
-        raster=lambda codes, code_class: RasterClasses(path, transform, crs, width, height,
-                                                       codes, code_class))
+    return codes
 
 
 def _integer_codes(values: np.ndarray) -> np.ndarray:
@@ -665,6 +757,106 @@ def _raster_classes_model(codes: np.ndarray, transform: Any, shape: tuple[int, i
 # I/O edge
 
 
+def _check_forms(*, n: Any, classes: Any, class_field: Any, n_table: Any, n_field: Any,
+                 class_raster: Any) -> None:
+    """RoughnessError unless exactly one roughness input is given, with what it needs."""
+    given = [name for name, v in (("n", n), ("classes", classes), ("class_raster", class_raster))
+             if v is not None]
+    if len(given) != 1:
+        raise RoughnessError(
+            "give exactly one roughness input: an n value, class polygons, or a class raster"
+            + (f" (got {', '.join(given)})" if given else "")
+        )
+    if classes is not None:
+        if (class_field is None) == (n_field is None):
+            raise RoughnessError("class polygons need either a class field with an n table, or an n field")
+        if class_field is not None and n_table is None:
+            raise RoughnessError("a class field needs an n table (CSV with columns class,n)")
+    if class_raster is not None and n_table is None:
+        raise RoughnessError("a class raster needs an n table (CSV with columns class,n)")
+
+
+def _read_class_layer(classes: str | Path, column: str, crs: Any = None, *,
+                      layer: str | int | None = None) -> Any:
+    """The class polygon layer ``layer`` (geometry and ``column``) as a GeoDataFrame, in
+    ``crs`` when given (:func:`ntrans.inputs.read_class_polygons`)."""
+    from .inputs import read_class_polygons
+
+    frame = read_class_polygons(classes, layer=layer, crs=crs)
+    if column not in frame.columns:
+        raise RoughnessError(
+            f"class polygon layer has no field {column!r}; its fields are "
+            f"{[c for c in frame.columns if c != frame.geometry.name]}"
+        )
+    return frame
+
+
+def _open_class_raster(class_raster: str | Path) -> tuple[Path, Any]:
+    """(path, CRS) of a class raster that exists and can be opened."""
+    import rasterio
+
+    path = Path(class_raster)
+    if not path.exists():
+        raise InputFileError(f"class raster {str(path)!r} does not exist; give an existing file")
+    try:
+        with rasterio.open(path) as src:
+            return path, src.crs
+    except rasterio.errors.RasterioIOError as exc:
+        raise RoughnessError(f"class raster {str(path)!r} cannot be read ({exc})") from exc
+
+
+def check_roughness_inputs(
+    *,
+    n: float | str | None = None,
+    classes: str | Path | None = None,
+    class_field: str | None = None,
+    n_table: str | Path | None = None,
+    n_field: str | None = None,
+    class_raster: str | Path | None = None,
+    default_class: str | None = None,
+    classes_layer: str | int | None = None,
+) -> None:
+    """Check the roughness inputs as :func:`load_roughness` does, without the mesh: one
+    input form, every class of the polygons (or codes of the raster) and the default
+    class in the n table, every n a positive number within :data:`N_MIN`..:data:`N_MAX`,
+    known surface kinds.
+
+    Jobs call it before their long work, so a bad n table fails in seconds; the checks
+    that need the mesh (the layer meets it, uncovered ground, overlaps) stay with
+    :func:`load_roughness`.  Emits no warning.  Raises :class:`RoughnessError` (or
+    :class:`InputFileError` for a missing file) with the same sentence as
+    :func:`load_roughness`.
+    """
+    import shapely
+
+    _check_forms(n=n, classes=classes, class_field=class_field, n_table=n_table,
+                 n_field=n_field, class_raster=class_raster)
+    if n is not None:
+        _check_n_values(["n"], [n], "the --n option")
+        return
+    if classes is not None:
+        column = class_field if class_field is not None else n_field
+        frame = _read_class_layer(classes, column, layer=classes_layer)  # type: ignore[arg-type]
+        geoms = np.asarray(frame.geometry.values, dtype=object)
+        keep = ~(shapely.is_missing(geoms) | shapely.is_empty(geoms))
+        values = frame[column].to_numpy(dtype=object)[keep]
+        if class_field is not None:
+            table = read_n_table(n_table)  # type: ignore[arg-type]
+            _table_lookup(sorted(set(_class_labels(values))), table, what="the class polygons",
+                          default_class=None if default_class is None else str(default_class))
+            return
+        names = [f"polygon {i}" for i in range(values.size)]
+        _check_n_values(names, list(values), "the n field of the class polygons", labels=names)
+        if default_class is not None:
+            _check_n_values(["default"], [default_class], "the default n")
+        return
+    path, _ = _open_class_raster(class_raster)  # type: ignore[arg-type]
+    table = read_n_table(n_table)  # type: ignore[arg-type]
+    names = [str(int(c)) for c in raster_file_codes(path)]
+    _table_lookup(names, table, what="the class raster",
+                  default_class=None if default_class is None else str(default_class))
+
+
 def load_roughness(
     *,
     n: float | str | None = None,
@@ -689,29 +881,13 @@ def load_roughness(
     cells do.  ``mesh_area`` is the
     union of the mesh cells, used for the coverage checks.
     """
-    given = [name for name, v in (("n", n), ("classes", classes), ("class_raster", class_raster))
-             if v is not None]
-    if len(given) != 1:
-        raise RoughnessError(
-            "give exactly one roughness input: an n value, class polygons, or a class raster"
-            + (f" (got {', '.join(given)})" if given else "")
-        )
+    _check_forms(n=n, classes=classes, class_field=class_field, n_table=n_table,
+                 n_field=n_field, class_raster=class_raster)
     if n is not None:
         return uniform_model(n)
     if classes is not None:
-        if (class_field is None) == (n_field is None):
-            raise RoughnessError("class polygons need either a class field with an n table, or an n field")
-        if class_field is not None and n_table is None:
-            raise RoughnessError("a class field needs an n table (CSV with columns class,n)")
-        from .inputs import read_class_polygons
-
-        frame = read_class_polygons(classes, layer=classes_layer, crs=crs)
         column = class_field if class_field is not None else n_field
-        if column not in frame.columns:
-            raise RoughnessError(
-                f"class polygon layer has no field {column!r}; its fields are "
-                f"{[c for c in frame.columns if c != frame.geometry.name]}"
-            )
+        frame = _read_class_layer(classes, column, crs, layer=classes_layer)  # type: ignore[arg-type]
         geoms = np.asarray(frame.geometry.values, dtype=object)
         if class_field is not None:
             table = read_n_table(n_table)  # type: ignore[arg-type]
@@ -722,18 +898,7 @@ def load_roughness(
                              default_class=default_class, overlap_rule=overlap_rule,
                              mesh_area=mesh_area)
     # class raster
-    if n_table is None:
-        raise RoughnessError("a class raster needs an n table (CSV with columns class,n)")
-    import rasterio
-
-    path = Path(class_raster)  # type: ignore[arg-type]
-    if not path.exists():
-        raise InputFileError(f"class raster {str(path)!r} does not exist; give an existing file")
-    try:
-        with rasterio.open(path) as src:
-            rcrs = src.crs
-    except rasterio.errors.RasterioIOError as exc:
-        raise RoughnessError(f"class raster {str(path)!r} cannot be read ({exc})") from exc
+    path, rcrs = _open_class_raster(class_raster)  # type: ignore[arg-type]
     if crs is not None and rcrs is not None and rcrs != crs:
         log.info("class raster %s will be resampled (nearest) from %s to the DEM's CRS", path.name, rcrs)
     mesh_bounds = None

@@ -114,6 +114,73 @@ def _check_stage_rows_fit(tile_items: list[int], n_stages: int, in_flight: int) 
          "or --threads 1", MemoryEstimateWarning, stacklevel=3)
 
 
+def covered_fractions(covered_area: np.ndarray, area: np.ndarray) -> np.ndarray:
+    """Share of each cell's plan area over valid DEM pixels, in [0, 1] (0 for a cell of no
+    area or without terrain)."""
+    covered_area = np.asarray(covered_area, dtype=float)
+    area = np.asarray(area, dtype=float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        fraction = np.where(area > 0, covered_area / np.where(area > 0, area, 1.0), np.nan)
+    return np.clip(np.nan_to_num(fraction, nan=0.0), 0.0, 1.0)
+
+
+@dataclass(frozen=True)
+class PartialCoverage:
+    """Cells not wholly over valid terrain: ``partly`` (some of their area over valid DEM
+    pixels), ``wholly`` (none of it; outside the DEM or over nodata), ``first`` the first
+    few ids of both, in cell order."""
+
+    partly: int
+    wholly: int
+    first: list[Any]
+
+    @property
+    def count(self) -> int:
+        return self.partly + self.wholly
+
+    def summary(self) -> dict[str, Any]:
+        """The run-summary entries (``partial_cells`` counts both kinds)."""
+        return {"partial_cells": self.count, "cells_without_terrain": self.wholly,
+                "partial_cells_first": [str(v) for v in self.first]}
+
+    def message(self) -> str | None:
+        """The warning's sentence, or None when every cell is wholly over terrain."""
+        if not self.count:
+            return None
+
+        def cells(k: int) -> str:
+            return f"{k} cell lies" if k == 1 else f"{k} cells lie"
+
+        if self.partly and self.wholly:
+            where = (f"{self.count} cells lie outside the DEM or over nodata, {self.wholly} "
+                     f"wholly and {self.partly} partly")
+        elif self.wholly:
+            where = f"{cells(self.wholly)} wholly outside the DEM or over nodata"
+        else:
+            where = f"{cells(self.partly)} partly outside the DEM or over nodata"
+        return (f"{where} (first: {', '.join(map(str, self.first))}); their covered_fraction "
+                "is in cells.gpkg")
+
+
+def partial_coverage(ids: np.ndarray, covered_fraction: np.ndarray) -> PartialCoverage:
+    """The cells whose ``covered_fraction`` is below 1 (less :data:`PARTIAL_TOLERANCE`)."""
+    fraction = np.asarray(covered_fraction, dtype=float)
+    partial = fraction < 1.0 - PARTIAL_TOLERANCE
+    wholly = int(np.count_nonzero(fraction <= 0.0))
+    return PartialCoverage(int(partial.sum()) - wholly, wholly, ids[partial][:5].tolist())
+
+
+def warn_partial_coverage(ids: np.ndarray, covered_fraction: np.ndarray, *,
+                          stacklevel: int = 2) -> PartialCoverage:
+    """Emit :class:`PartialCoverageWarning` for cells not wholly over valid terrain (as
+    the tables and the adjustment report them); return what was found."""
+    found = partial_coverage(ids, covered_fraction)
+    message = found.message()
+    if message is not None:
+        warn(message, PartialCoverageWarning, stacklevel=stacklevel + 1)
+    return found
+
+
 @dataclass
 class TablesResult:
     """What :func:`build_tables` wrote, and a few summary numbers.
@@ -553,9 +620,7 @@ def build_tables(
         import pandas as pd
 
         area = shapely.area(geoms)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            covered_fraction = np.where(area > 0, cell_sum["covered_area"] / area, np.nan)
-        covered_fraction = np.clip(np.nan_to_num(covered_fraction, nan=0.0), 0.0, 1.0)
+        covered_fraction = covered_fractions(cell_sum["covered_area"], area)
         layer.covered_fraction = covered_fraction
         crs = layer.frame.crs
         cell_frame = gpd.GeoDataFrame(
@@ -588,8 +653,7 @@ def build_tables(
             if faces:
                 files.append(write_csv(face_path, tmp / "face_stage.csv"))
 
-        partial = covered_fraction < 1.0 - PARTIAL_TOLERANCE
-        partial_ids = ids[partial][:5].tolist()
+        partial = partial_coverage(ids, covered_fraction)
         seconds = time.perf_counter() - started
         summary = {
             "ntrans_version": __version__,
@@ -610,8 +674,7 @@ def build_tables(
             "snap_tolerance": job.snap_tolerance,
             "horizontal_unit": dem_info.horizontal_unit,
             "vertical_unit": dem_info.vertical_unit,
-            "partial_cells": int(partial.sum()),
-            "partial_cells_first": [str(v) for v in partial_ids],
+            **partial.summary(),
             "seconds": round(seconds, 3),
             "units": {k: v for k, v in units.items() if k in set(CELL_STAGE_COLUMNS)
                       | set(FACE_STAGE_COLUMNS) | set(CELL_SUMMARY_COLUMNS)
@@ -623,14 +686,7 @@ def build_tables(
         rel = [p.name for p in files]
 
     final = Path(os.fspath(out)).expanduser().absolute()
-    n_partial = int(partial.sum())
-    if n_partial:
-        warn(
-            f"{n_partial} cells lie partly outside the DEM or over nodata (first: "
-            f"{', '.join(map(str, partial_ids))}); their covered_fraction is in cells.gpkg",
-            PartialCoverageWarning,
-            stacklevel=2,
-        )
+    warn_partial_coverage(ids, covered_fraction, stacklevel=2)
     log.info("tables written to %s in %.1f s", final, seconds)
     return TablesResult(
         out=final,
@@ -639,8 +695,8 @@ def build_tables(
         n_faces=int(n_faces),
         n_stages=int(spec.values.size),
         n_tiles=len(tiles),
-        n_partial=n_partial,
-        partial_ids=partial_ids,
+        n_partial=partial.count,
+        partial_ids=partial.first,
         seconds=seconds,
         units=units,
     )

@@ -44,14 +44,15 @@ from typing import Any, Literal, Protocol
 import numpy as np
 from scipy import sparse
 
-from .roughness import N_HIGH
+from .errors import RoughnessError
+from .roughness import N_HIGH, N_MAX, N_MIN
 
 Closure = Literal["lumped", "strip"]
 Composite = Literal["horton_einstein", "pavlovskii", "lotter"]
 CLOSURES: tuple[str, ...] = ("lumped", "strip")
 COMPOSITES: tuple[str, ...] = ("horton_einstein", "pavlovskii", "lotter")
 
-N_MIN, N_MAX = 0.005, 1.0  # absolute bounds of a fitted n
+# N_MIN, N_MAX: absolute bounds of a fitted n, and of an accepted source n (roughness.py)
 BOUND_FACTOR = 10.0  # a fitted n stays within n source / BOUND_FACTOR .. x BOUND_FACTOR
 FEW_FACES = 10
 WIDE_SPREAD = 1.5
@@ -1167,6 +1168,12 @@ def solve_class_n(
 
     n_source = np.asarray(n_source, dtype=float)
     n_cls = n_source.size
+    outside = ~((n_source >= N_MIN) & (n_source <= N_MAX))
+    if outside.any():
+        raise RoughnessError(
+            f"source n {', '.join(f'{v:g}' for v in n_source[outside])} lies outside "
+            f"{N_MIN:g}-{N_MAX:g}, the class fit's search bounds; give Manning's n values "
+            "within them")
     if terms.n_classes != n_cls:
         raise ValueError(f"fit terms for {terms.n_classes} classes, n for {n_cls}")
     col_tot = terms.source_total

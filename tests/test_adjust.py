@@ -324,3 +324,145 @@ def test_available_memory_is_a_positive_byte_count_or_unknown():
 
     value = available_memory()
     assert value is None or value > 0
+
+
+# --------------------------------------------------------------------------- input checks
+
+
+def _mesh_never_read(monkeypatch):
+    """Make reading the mesh fail the test: a check must come before it."""
+    import ntrans.tables
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("the mesh was read before the roughness inputs were checked")
+
+    monkeypatch.setattr(ntrans.tables, "prepare_mesh_job", refuse)
+
+
+@pytest.mark.parametrize("bad", ["35", "12", "0.0004"])
+def test_n_outside_the_fit_bounds_refused_before_any_work(flat_case, tmp_path, monkeypatch, bad):
+    dem, cells = flat_case
+    _mesh_never_read(monkeypatch)
+    out = tmp_path / "out"
+    with pytest.raises(RoughnessError):
+        adjust_roughness(dem, cells, out=out, n=bad, depths="1")
+    table = tmp_path / "n.csv"
+    table.write_text(f"class,n\na,0.03\nb,{bad}\n")
+    classes = write_cells(tmp_path / "classes.gpkg", [shapely.box(0, 0, 10, 20),
+                                                      shapely.box(10, 0, 20, 20)],
+                          id_field=None, attributes={"kind": ["a", "b"]})
+    with pytest.raises(RoughnessError):
+        adjust_roughness(dem, cells, out=out, classes=classes, class_field="kind", n_table=table,
+                         depths="1")
+    assert _nothing_written(out)
+
+
+def test_missing_class_and_default_class_refused_before_any_work(flat_case, tmp_path,
+                                                                  monkeypatch):
+    dem, cells = flat_case
+    _mesh_never_read(monkeypatch)
+    table = tmp_path / "n.csv"
+    table.write_text("class,n\na,0.03\nb,0.04\n")
+    classes = write_cells(tmp_path / "classes.gpkg", [shapely.box(0, 0, 10, 20)],
+                          id_field=None, attributes={"kind": ["a"]})
+    with pytest.raises(RoughnessError) as err:
+        adjust_roughness(dem, cells, out=tmp_path / "out", classes=classes, class_field="kind",
+                         n_table=table, default_class="bb", depths="1")
+    assert str(err.value).startswith("default class 'bb' is not in the n table")
+
+
+def _surface(tmp_path, value, **kw):
+    return write_dem(tmp_path / "ws.tif", np.full((20, 20), value), **kw)
+
+
+@pytest.mark.parametrize(
+    "window",
+    [
+        "below",      # a depth grid given as a water surface: 2 m, the terrain at 10 m
+        "nodata",     # the raster covers the mesh but holds no value there
+        "away",       # the raster lies 1 km east of the mesh
+        "stages",     # stages below the terrain
+        "zero_depth",  # depths of zero wet nothing
+    ],
+)
+def test_window_that_wets_nothing_is_refused_before_anything_is_written(flat_case, tmp_path,
+                                                                        window):
+    dem, cells = flat_case
+    kw: dict = {
+        "below": {"water_surface": [_surface(tmp_path, 2.0)]},
+        "nodata": {"water_surface": [_surface(tmp_path, np.nan)]},
+        "away": {"water_surface": [_surface(tmp_path, 11.5, origin=(1000.0, 20.0))]},
+        "stages": {"stages": "0:5:1"},
+        "zero_depth": {"depths": "0"},
+    }[window]
+    out = tmp_path / "out"
+    with pytest.raises(InputError):
+        adjust_roughness(dem, cells, out=out, n=0.03, **kw)
+    assert _nothing_written(out)
+
+
+def test_water_surface_off_the_mesh_refused_before_the_tile_passes(flat_case, tmp_path,
+                                                                    monkeypatch):
+    import ntrans.adjust as adjust_module
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("a tile pass ran")
+
+    monkeypatch.setattr(adjust_module, "_run_tiles", refuse)
+    dem, cells = flat_case
+    ws = _surface(tmp_path, 11.5, origin=(1000.0, 20.0))
+    with pytest.raises(InputError) as err:
+        adjust_roughness(dem, cells, out=tmp_path / "out", n=0.03, water_surface=[ws])
+    assert str(err.value).startswith("water surface 'ws' lies off the mesh everywhere")
+
+
+@pytest.mark.parametrize(
+    ("depth", "units", "deep"),
+    [
+        (1.5, None, False),
+        (29.0, None, False),
+        (40.0, None, True),      # 40 m over the terrain: more than the 30 m limit
+        (40.0, "foot", False),   # 40 ft = 12.2 m
+        (110.0, "foot", True),   # 110 ft = 33.5 m
+    ],
+)
+def test_deep_window_warns(flat_case, tmp_path, depth, units, deep):
+    from ntrans.errors import DeepWindowWarning
+
+    dem, cells = flat_case
+    ws = _surface(tmp_path, 10.0 + depth)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        adjust_roughness(dem, cells, out=tmp_path / "out", n=0.03, water_surface=[ws],
+                         vertical_units=units)
+    found = [w for w in caught if issubclass(w.category, DeepWindowWarning)]
+    assert len(found) == int(deep)
+
+
+def test_cells_over_nodata_warn_and_carry_their_covered_fraction(tmp_path):
+    import pyogrio
+
+    from ntrans.errors import PartialCoverageWarning
+    from ntrans.tables import build_tables
+
+    z = np.full((20, 30), 10.0)
+    z[:, 25:] = np.nan   # the right column of cells half over nodata
+    z[10:, 20:] = np.nan  # and its lower cell (rows 10-19 are y 0-10) wholly
+    dem = write_dem(tmp_path / "dem.tif", z)
+    cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(3, 2, 10.0))
+    with pytest.warns(PartialCoverageWarning) as adj:
+        _quiet(dem=dem, cells=cells, out=tmp_path / "adj", n=0.03, depths="1")
+    with pytest.warns(PartialCoverageWarning) as tab:
+        build_tables(dem, cells, out=tmp_path / "tab", depths="1")
+    # the same sentence from both jobs: one cell wholly, one partly without terrain
+    assert [str(w.message) for w in adj] == [str(w.message) for w in tab]
+    assert str(adj[0].message).startswith("2 cells lie outside the DEM or over nodata, "
+                                          "1 wholly and 1 partly")
+    a = pyogrio.read_dataframe(tmp_path / "adj" / "cells.gpkg").set_index("cell_id")
+    t = pyogrio.read_dataframe(tmp_path / "tab" / "cells.gpkg").set_index("cell_id")
+    # geometry identity: cell 6 (x 20-30, y 10-20) has half its area over pixels with
+    # terrain, cell 3 (x 20-30, y 0-10) none
+    np.testing.assert_allclose(a.loc[[3, 6], "covered_fraction"], [0.0, 0.5], atol=1e-12)
+    np.testing.assert_array_equal(a["covered_fraction"], t["covered_fraction"])
+    summary = json.loads((tmp_path / "adj" / "adjust_summary.json").read_text())
+    assert summary["partial_cells"] == 2 and summary["cells_without_terrain"] == 1

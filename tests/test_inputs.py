@@ -37,6 +37,7 @@ from ntrans.inputs import (
     CellLayer,
     DemInfo,
     check_output_not_input,
+    check_water_surfaces_reach,
     length_scale_error,
     open_dem,
     open_water_surface,
@@ -849,6 +850,30 @@ def test_read_water_surfaces_names_and_errors(tmp_path: Path, tmp_dem: Path) -> 
         read_water_surfaces([write_dem(tmp_path / "x.tif", np.ones((3, 3)), crs=None)], dem=dem)
     with pytest.raises(InputError):
         read_water_surfaces([], dem=dem)
+
+
+@pytest.mark.parametrize(
+    ("origin", "crs", "reaches"),
+    [
+        ((0.0, 30.0), "EPSG:32633", True),        # on the DEM
+        ((25.0, 55.0), "EPSG:32633", True),       # overlaps one corner of the mesh
+        ((30.0, 30.0), "EPSG:32633", False),      # touches the mesh's east edge only
+        ((1000.0, 30.0), "EPSG:32633", False),    # 1 km east
+        ((0.0, 30.0), "EPSG:32632", False),       # the same numbers in the next UTM zone
+    ],
+)
+def test_water_surface_off_the_mesh_is_refused(tmp_path: Path, tmp_dem: Path, origin, crs,
+                                                reaches) -> None:
+    dem = open_dem(tmp_dem)
+    ws = read_water_surfaces([write_dem(tmp_path / "ws.tif", np.full((30, 30), 12.0),
+                                        origin=origin, crs=crs)], dem=dem)
+    mesh = (0.0, 0.0, 30.0, 30.0)
+    if reaches:
+        check_water_surfaces_reach(ws, dem, mesh)
+        return
+    with pytest.raises(InputError) as err:
+        check_water_surfaces_reach(ws, dem, mesh)
+    assert_one_sentence(str(err.value), "water")
 
 
 # --------------------------------------------------------------------------- output guard

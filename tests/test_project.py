@@ -390,6 +390,34 @@ def test_warnings_of_the_run_reach_the_caller_and_the_report(two_runs):
     assert "data:image/png;base64," in text and "https://" not in text
 
 
+@pytest.mark.parametrize(
+    ("table", "extra"),
+    [
+        ("class,n\nchannel,0.035\n", ""),  # grass missing
+        ("class,n\nchannel,0.035\ngrass,30\n", ""),  # a Strickler coefficient
+        ("class,n\nchannel,0.035\ngrass,0.03\n", "default_class = \"gras\""),
+    ],
+)
+def test_run_checks_the_n_table_before_the_stage_tables(tmp_path, monkeypatch, table, extra):
+    from ntrans import tables
+    from ntrans.errors import RoughnessError
+
+    project = write_small_project(tmp_path)
+    (tmp_path / "n_table.csv").write_text(table, encoding="utf-8")
+    if extra:
+        text = project.read_text().replace('n_table = "n_table.csv"',
+                                           f'n_table = "n_table.csv"\n{extra}')
+        project.write_text(text)
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("the stage tables were built before the n table was checked")
+
+    monkeypatch.setattr(tables, "build_tables", refuse)
+    with pytest.raises(RoughnessError):
+        proj.run_project(project)
+    assert not (tmp_path / "bundle").exists()
+
+
 def test_demo_project_is_valid_and_names_the_demo_files():
     from ntrans.demo import DEMO_FILES, demo_folder
 

@@ -17,7 +17,10 @@ from ntrans.errors import (
     RoughnessRangeWarning,
 )
 from ntrans.roughness import (
+    N_MAX,
+    N_MIN,
     PUBLISHED_N_RANGES,
+    check_roughness_inputs,
     class_at_points,
     class_index_on_window,
     load_roughness,
@@ -54,6 +57,40 @@ def test_uniform_model_bad_n(bad):
         uniform_model(bad)
 
 
+# n outside the class fit's bounds 0.005..1 (ntrans.translate.solve_class_n): a Strickler
+# coefficient (35), a value in the wrong decimal place (0.0004), just past either bound
+OUTSIDE_FIT = ["35", "12", "1.5", "1.0001", "0.0049", "0.0004"]
+
+
+@pytest.mark.parametrize("bad", OUTSIDE_FIT)
+def test_n_outside_the_fit_bounds_is_refused_everywhere(bad):
+    with pytest.raises(RoughnessError) as err:
+        uniform_model(bad)
+    assert "Manning's n" in str(err.value)
+    with pytest.raises(RoughnessError):
+        polygon_model(two_halves(), np.array(["a", "b"], dtype=object),
+                      table=table([("a", "0.03"), ("b", bad)]), mesh_area=MESH)
+    with pytest.raises(RoughnessError):
+        polygon_model(two_halves(), np.zeros(2), n_values=np.array([0.03, bad], dtype=object),
+                      mesh_area=MESH)
+
+
+def test_strickler_coefficient_gets_its_reciprocal_named():
+    with pytest.raises(RoughnessError) as err:
+        polygon_model(two_halves(), np.array(["a", "b"], dtype=object),
+                      table=table([("a", "0.03"), ("b", "35")]), mesh_area=MESH)
+    text = str(err.value)
+    assert "class 'b'" in text and "0.0286" in text  # 1 / 35 to three figures
+
+
+@pytest.mark.parametrize("value", [N_MIN, 0.3, 0.5, N_MAX])
+def test_n_within_the_fit_bounds_is_accepted(value):
+    # 0.5 and 1 are unusual (the range warning says so) but the fit can handle them
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RoughnessRangeWarning)
+        assert uniform_model(value).n.tolist() == [value]
+
+
 def test_polygons_rasterise_on_window():
     m = polygon_model(two_halves(), np.array(["grass", "channel"], dtype=object),
                       table=table([("channel", "0.03"), ("grass", "0.05")]), mesh_area=MESH)
@@ -73,6 +110,25 @@ def test_missing_classes_listed_all():
         polygon_model(polys, np.array(["a", "b", "c"], dtype=object), table=table([("a", "0.03")]),
                       mesh_area=MESH)
     assert "'b'" in str(err.value) and "'c'" in str(err.value)
+
+
+def test_missing_classes_differing_by_case_name_the_close_match():
+    with pytest.raises(RoughnessError) as err:
+        polygon_model(two_halves(), np.array(["grass", "channel"], dtype=object),
+                      table=table([("Grass", "0.03"), ("Channel", "0.03")]), mesh_area=MESH)
+    text = str(err.value)
+    assert "case-sensitively" in text and "'Channel' for 'channel'" in text
+
+
+@pytest.mark.parametrize("default", ["gras", "Grass", "pavement"])
+def test_default_class_missing_from_the_table_is_named_as_such(default):
+    with pytest.raises(RoughnessError) as err:
+        polygon_model(two_halves(), np.array(["grass", "grass"], dtype=object),
+                      table=table([("grass", "0.03"), ("woods", "0.06")]), mesh_area=MESH,
+                      default_class=default)
+    text = str(err.value)
+    assert text.startswith(f"default class {default!r} is not in the n table")
+    assert ("closest: 'grass'" in text) == (default != "pavement")
 
 
 @pytest.mark.parametrize("bad", ["0", "-1", "x", "inf"])
@@ -279,3 +335,66 @@ def test_class_polygons_from_several_layers_need_the_layer_name(tmp_path):
         load_roughness(**kw)
     assert "landcover" in str(info.value) and "--classes-layer" in str(info.value)
     assert load_roughness(classes_layer="landcover", **kw).classes == ("a", "b")
+    # the early check (before the mesh is read) asks for the layer the same way
+    kw.pop("crs"), kw.pop("mesh_area")
+    with pytest.raises(InputError, match="--classes-layer"):
+        check_roughness_inputs(**kw)
+    check_roughness_inputs(classes_layer="landcover", **kw)
+
+
+@pytest.fixture
+def class_files(tmp_path):
+    import geopandas as gpd
+
+    gpd.GeoDataFrame({"kind": ["a", "b"]}, geometry=list(two_halves()), crs="EPSG:32633").to_file(
+        tmp_path / "classes.gpkg")
+    return tmp_path / "classes.gpkg"
+
+
+@pytest.mark.parametrize(
+    ("rows", "extra", "ok"),
+    [
+        ("class,n\na,0.03\nb,0.04\n", {}, True),
+        ("class,n\na,0.03\nb,0.04\nunused,x\n", {}, True),  # only classes in use count
+        ("class,n\na,0.03\n", {}, False),  # b missing
+        ("class,n\nA,0.03\nB,0.04\n", {}, False),  # case differs
+        ("class,n\na,0.03\nb,35\n", {}, False),  # a Strickler coefficient
+        ("class,n\na,0.03\nb,0.04\n", {"default_class": "c"}, False),
+        ("class,n\na,0.03\nb,0.04\n", {"default_class": "a"}, True),
+    ],
+)
+def test_check_roughness_inputs_matches_load_roughness(class_files, tmp_path, rows, extra, ok):
+    (tmp_path / "n.csv").write_text(rows)
+    kw = {"classes": class_files, "class_field": "kind", "n_table": tmp_path / "n.csv", **extra}
+    if ok:
+        with warnings.catch_warnings():
+            warnings.simplefilter("error")  # the check itself never warns
+            check_roughness_inputs(**kw)
+        load_roughness(**kw, crs="EPSG:32633", mesh_area=MESH)
+        return
+    with pytest.raises(RoughnessError) as early:
+        check_roughness_inputs(**kw)
+    with pytest.raises(RoughnessError) as late:
+        load_roughness(**kw, crs="EPSG:32633", mesh_area=MESH)
+    assert str(early.value) == str(late.value)  # the same sentence before and after the mesh
+
+
+def test_check_roughness_inputs_other_forms(tmp_path):
+    check_roughness_inputs(n="0.03")
+    with pytest.raises(RoughnessError):
+        check_roughness_inputs(n="35")
+    with pytest.raises(RoughnessError):
+        check_roughness_inputs(n="0.03", class_raster=tmp_path / "codes.tif")
+    codes = np.ones((4, 4), dtype=np.int16)
+    codes[:, 2:] = 2
+    import rasterio
+
+    with rasterio.open(tmp_path / "codes.tif", "w", driver="GTiff", width=4, height=4, count=1,
+                       dtype="int16", crs="EPSG:32633", transform=TRANSFORM, nodata=0) as dst:
+        dst.write(codes, 1)
+    (tmp_path / "n.csv").write_text("class,n\n1,0.03\n")
+    with pytest.raises(RoughnessError) as err:
+        check_roughness_inputs(class_raster=tmp_path / "codes.tif", n_table=tmp_path / "n.csv")
+    assert "['2']" in str(err.value)
+    (tmp_path / "n.csv").write_text("class,n\n1,0.03\n2,0.05\n")
+    check_roughness_inputs(class_raster=tmp_path / "codes.tif", n_table=tmp_path / "n.csv")

@@ -192,7 +192,7 @@ def test_partial_coverage_warns(tmp_path):
     dem = write_dem(tmp_path / "dem.tif", z)
     cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(3, 3, 10.0))
     out = tmp_path / "out"
-    with pytest.warns(PartialCoverageWarning, match="3 cells"):
+    with pytest.warns(PartialCoverageWarning, match="3 cells lie wholly outside"):
         res = build_tables(dem, cells, out=out, stages="11")
     assert res.n_partial == 3
     gpkg = pyogrio.read_dataframe(out / "cells.gpkg").set_index("cell_id")
@@ -288,7 +288,7 @@ def test_cells_partly_off_the_dem(tmp_path):
     dem = write_dem(tmp_path / "dem.tif", bumpy(20, 20), dtype="float64")
     # the left column of cells hangs 5 m off the DEM's west edge
     cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(3, 2, 10.0, origin=(-5.0, 0.0)))
-    with pytest.warns(PartialCoverageWarning, match="4 cells"):
+    with pytest.warns(PartialCoverageWarning, match="4 cells lie partly outside"):
         build_tables(dem, cells, out=tmp_path / "out", stages="11", tile_size=4)
     gpkg = pyogrio.read_dataframe(tmp_path / "out" / "cells.gpkg").set_index("cell_id")
     # geometry identity: half of a 10 m x 10 m cell lies over the 20 m DEM
@@ -325,3 +325,22 @@ def test_text_ids(tmp_path):
     inner = face[face.cell_b.notna()]
     assert len(inner) == 1 and {inner.cell_a.iloc[0], inner.cell_b.iloc[0]} == {"east", "west"}
     assert face.cell_b.isna().sum() == 2  # one boundary piece per cell
+
+
+@pytest.mark.parametrize(
+    ("fractions", "partly", "wholly", "start"),
+    [
+        ([1.0, 1.0], 0, 0, None),
+        ([1.0, 0.4, 0.0, 0.0], 1, 2, "3 cells lie outside the DEM or over nodata, 2 wholly and "
+                                     "1 partly"),
+        ([0.0, 1.0], 0, 1, "1 cell lies wholly outside"),
+        ([0.5, 0.2, 1 - 1e-9], 2, 0, "2 cells lie partly outside"),  # 1e-9: round-off, whole
+    ],
+)
+def test_partial_coverage_counts_wholly_and_partly(fractions, partly, wholly, start):
+    from ntrans.tables import partial_coverage
+
+    found = partial_coverage(np.arange(1, len(fractions) + 1), np.array(fractions))
+    assert (found.partly, found.wholly) == (partly, wholly)
+    message = found.message()
+    assert (message is None) if start is None else message.startswith(start)

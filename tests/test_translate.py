@@ -504,6 +504,19 @@ def test_a_class_wet_nowhere_has_no_spread_of_its_own():
     assert fit.n_target[1] == n[1]
 
 
+@pytest.mark.parametrize("bad", [35.0, 10.0, 0.0004, 0.0049, 1.5])
+def test_fit_refuses_a_source_n_outside_its_bounds(bad):
+    # the fit searches n source / 10 .. x 10 within 0.005..1; outside, that range would be
+    # empty or miss n source itself, so the input is refused with an InputError
+    from ntrans.errors import RoughnessError
+
+    fg = channel_mesh(n_faces=3)
+    st = fg.stats(np.tile([2.5], (3, 1)))
+    n = np.array([0.03, bad])
+    with pytest.raises(RoughnessError):
+        fit_class_n(conveyance(st, n), st, n)
+
+
 @pytest.mark.parametrize(
     ("texts", "names"),
     [

@@ -165,6 +165,27 @@ def test_bad_uniform_n_exit_2(runner, inputs, tmp_path, value):
     assert _nothing_written(out)
 
 
+@pytest.mark.parametrize("value", ["35", "0.0004"])
+def test_uniform_n_outside_the_fit_bounds_exit_2(runner, inputs, tmp_path, value):
+    dem, cells = inputs
+    out = tmp_path / "out"
+    result = runner.invoke(cli, ["-q", "adjust", "--dem", str(dem), "--cells", str(cells),
+                                 "--n", value, "--depths", "1", "--out", str(out)])
+    assert result.exit_code == 2
+    assert _one_error_line(result).startswith(f"ntrans: error: the --n option gives n {value}")
+    assert _nothing_written(out)
+
+
+def test_window_wetting_nothing_exit_2(runner, inputs, tmp_path):
+    dem, cells = inputs  # flat terrain at z = 10
+    out = tmp_path / "out"
+    result = runner.invoke(cli, ["-q", "adjust", "--dem", str(dem), "--cells", str(cells),
+                                 "--n", "0.03", "--stages", "0:5:1", "--out", str(out)])
+    assert result.exit_code == 2
+    assert _one_error_line(result).startswith("ntrans: error: the window's stages (0 to 5 m)")
+    assert _nothing_written(out)
+
+
 def test_window_required(runner, inputs, tmp_path):
     dem, cells = inputs
     result = runner.invoke(cli, ["adjust", "--dem", str(dem), "--cells", str(cells), "--n", "0.03",
