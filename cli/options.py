@@ -57,10 +57,11 @@ depths = click.option(
 
 vertical_units = click.option(
     "--vertical-units",
-    type=click.Choice(["metre", "foot"]),
+    type=click.Choice(["metre", "foot", "us_survey_foot"]),
     default=None,
     help="Units of the DEM's elevations when they differ from the CRS's horizontal "
-    "units (default: the same as horizontal).",
+    "units (default: the same as horizontal).  'foot' is the CRS's own foot on a CRS in "
+    "feet, else the international foot (0.3048 m); 'us_survey_foot' is 1200/3937 m.",
 )
 
 coverage = click.option(

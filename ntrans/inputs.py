@@ -70,7 +70,11 @@ _UNIT_ALIASES: dict[str, LengthUnit] = {
     "foot": "foot",
     "feet": "foot",
     "ft": "foot",
+    "us_survey_foot": "foot",
+    "us-ft": "foot",
 }
+#: Vertical unit names that mean the US survey foot (1200/3937 m) whatever the CRS's foot.
+_US_SURVEY_NAMES = frozenset({"us_survey_foot", "us-ft"})
 #: Column names tried, in order and ignoring case, when no id field is given.
 ID_FIELD_CANDIDATES: tuple[str, ...] = ("cell_id", "cellid", "id", "fid", "objectid", "ogc_fid")
 _POLYGON_TYPE_IDS = (3, 6)  # shapely type ids of Polygon and MultiPolygon
@@ -168,7 +172,8 @@ def conveyance_factor(manning_k: float, z_to_xy: float) -> float:
 def _parse_unit(value: str, option: str) -> LengthUnit:
     unit = _UNIT_ALIASES.get(str(value).strip().lower())
     if unit is None:
-        raise InputError(f"{option} {value!r} is not a known unit; choose 'metre' or 'foot'")
+        raise InputError(f"{option} {value!r} is not a known unit; choose 'metre', 'foot' or "
+                         "'us_survey_foot'")
     return unit
 
 
@@ -520,9 +525,11 @@ def open_dem(path: str | os.PathLike[str], *, vertical_units: str | None = None)
     ----------
     path : str or path-like
         Any raster GDAL reads; band 1 holds the elevations.
-    vertical_units : {"metre", "foot"} or None
+    vertical_units : {"metre", "foot", "us_survey_foot"} or None
         Units of the elevations.  None: the unit of a vertical CRS in the DEM's compound
         CRS if there is one, else the horizontal unit.  Aliases m/meter/ft/feet accepted.
+        ``foot`` is the CRS's own foot on a CRS in feet, else the international foot
+        (0.3048 m); ``us_survey_foot`` (or ``us-ft``) is 1200/3937 m.
 
     Returns
     -------
@@ -539,6 +546,7 @@ def open_dem(path: str | os.PathLike[str], *, vertical_units: str | None = None)
     """
     text = _check_exists(path, "DEM")
     requested = None if vertical_units is None else _parse_unit(vertical_units, "vertical unit")
+    survey = requested is not None and str(vertical_units).strip().lower() in _US_SURVEY_NAMES
     try:
         with rasterio.open(text) as src:
             crs, transform = src.crs, src.transform
@@ -609,6 +617,9 @@ def open_dem(path: str | os.PathLike[str], *, vertical_units: str | None = None)
         vertical_unit = horizontal_unit
     if requested is None and _unit_of_factor(vertical_factor) == vertical_unit:
         z_factor = vertical_factor  # the exact foot of the vertical CRS
+    elif survey:  # the plan's own factor when the plan is in US survey feet too
+        us_plan = math.isclose(xy_factor, _US_SURVEY_FOOT, rel_tol=1e-9)
+        z_factor = xy_factor if us_plan else _US_SURVEY_FOOT
     elif vertical_unit == horizontal_unit:
         z_factor = xy_factor
     elif vertical_unit == "foot":

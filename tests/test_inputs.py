@@ -110,6 +110,9 @@ def test_open_dem_units(tmp_path: Path, crs: str, unit: str, factor: float, k: f
         ("EPSG:32633", "metre", 1.0),
         ("EPSG:2263", "metre", 1.0 / US_FOOT),  # metres into US survey feet
         ("EPSG:2263", "feet", 1.0),  # the same foot as the plan unit
+        ("EPSG:32633", "us_survey_foot", US_FOOT),  # e.g. heights in US survey feet
+        ("EPSG:2263", "us_survey_foot", 1.0),  # the plan's own foot
+        ("+proj=utm +zone=33 +datum=WGS84 +units=ft +no_defs", "us-ft", US_FOOT / INT_FOOT),
     ],
 )
 def test_open_dem_vertical_units(tmp_path: Path, crs: str, vertical: str, z_to_xy: float) -> None:
@@ -137,7 +140,7 @@ def test_open_dem_vertical_unit_from_compound_crs(tmp_path: Path) -> None:
 
 
 def test_open_dem_bad_vertical_unit(tmp_dem: Path) -> None:
-    with pytest.raises(InputError, match="'metre' or 'foot'"):
+    with pytest.raises(InputError, match="'us_survey_foot'"):
         open_dem(tmp_dem, vertical_units="yard")
 
 

@@ -147,7 +147,7 @@ def test_flat_dem_subgrid_equals_flat(tmp_path):
 
 #: (horizontal, vertical) units of the same terrain and mesh; None: vertical as horizontal
 UNIT_CASES = [("metre", "foot"), ("foot", None), ("foot", "metre"), ("us_survey_foot", None),
-              ("us_survey_foot", "metre")]
+              ("us_survey_foot", "metre"), ("metre", "us_survey_foot")]
 #: Manning unit factor k per horizontal unit: 1.0 SI, 1.486 ft^(1/3)/s in US customary
 #: units (Manning's equation in US customary units, Chow 1959, Open-Channel Hydraulics,
 #: section 5-6, from memory; it rounds the exact (1 / 0.3048)^(1/3) = 1.48592)
