@@ -61,7 +61,7 @@ def command(ctx: click.Context, **kwargs) -> None:
     carrying n over unchanged.
 
     Lengths are in the CRS's horizontal units, stages and stage bias in the DEM's
-    vertical units.
+    vertical units; face conveyance in horizontal units cubed per second.
     """
     from ntrans.adjust import adjust_roughness
 

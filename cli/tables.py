@@ -24,7 +24,8 @@ def command(ctx: click.Context, **kwargs) -> None:
     stage tables (flow area, wetted perimeter, top width, geometric conveyance), for the
     subgrid terrain and for flat beds, at the given stages or depths.
 
-    Lengths are in the CRS's horizontal units, elevations in the DEM's vertical units.
+    Lengths are in the CRS's horizontal units, elevations in the DEM's vertical units;
+    conveyance is in horizontal units cubed per second at n = 1.
     """
     from ntrans.tables import build_tables
 

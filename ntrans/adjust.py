@@ -50,7 +50,7 @@ from .errors import (
     check_choice,
     warn,
 )
-from .inputs import rasters_kept_open
+from .inputs import conveyance_factor, rasters_kept_open
 from .memory import available_memory, release_free_memory
 from .quantiles import SpilledQuantiles
 from .roughness import (
@@ -124,6 +124,8 @@ class AdjustResult:
 
     ``classes`` is the per-class table (as in ``n_by_class.csv``), ``summary`` the content
     of ``adjust_summary.json``, ``text`` the one-screen summary ending with the cautions.
+    ``units`` are the face table's column units; the cell table's are in
+    ``summary["cell_units"]`` (its conveyance columns are in L^4/s).
     """
 
     out: Path
@@ -151,7 +153,13 @@ class _Plan:
     coverage: str
     spacing: float
     z_to_xy: float
-    k: float
+    k: float              # Manning unit factor of the horizontal unit (1.0 or 1.486)
+
+    @property
+    def conveyance_k(self) -> float:
+        """k z_to_xy^(5/3): the factor that gives conveyance in horizontal units (flow areas,
+        radii, volumes and depths formed in the vertical unit are converted by it)."""
+        return conveyance_factor(self.k, self.z_to_xy)
 
 
 def _families(source: str, target: str, closure: str, source_closure: str | None) -> tuple[str, str, str]:
@@ -406,11 +414,11 @@ def _pass_statistics(job: _Job, task: Any) -> dict[str, Any]:
     st = tg.face_stages if faces else tg.cell_stages
     cache: dict[int, ClassStats] = {}
     st_s = _family_stats(fam_s, st, cache)
-    k_source = fam_s.conveyance(st, model.n, composite=plan.composite, k=plan.k,  # type: ignore[arg-type]
+    k_source = fam_s.conveyance(st, model.n, composite=plan.composite, k=plan.conveyance_k,  # type: ignore[arg-type]
                                 stats=st_s)
     terms = fit_terms(k_source, _family_stats(fam_t, st, cache), model.n,
                       closure=_domain_closure(plan.target_closure),  # type: ignore[arg-type]
-                      composite=plan.composite, k=plan.k)  # type: ignore[arg-type]
+                      composite=plan.composite, k=plan.conveyance_k)  # type: ignore[arg-type]
     low = tg.face_low if faces else tg.cell_low
     deep = DEEP_WINDOW_METRES / float(job.dem.z_metres_per_unit)
     return {"terms": terms, "uncovered": tg.uncovered, "covered": tg.covered,
@@ -513,7 +521,7 @@ def _warn_if_window_deep(wetting: _WindowWetting, *, spec: StageSpec | None, z_u
 def _pass_tables(job: _Job, task: Any, n_fit: np.ndarray) -> dict[str, Any]:
     """Pass 2 of one tile: per face and per cell ratios, conveyances and stage bias."""
     plan, model = job.plan, job.model
-    comp, k = plan.composite, plan.k
+    comp, k = plan.composite, plan.conveyance_k
     tg = _load_tile(job, task)
     out: dict[str, Any] = {"faces": tg.faces, "cells": tg.cells, "face_a": tg.face_a,
                            "face_b": tg.face_b}
@@ -697,7 +705,8 @@ def adjust_roughness(
     Writes ``n_by_class.csv``, ``face_adjustment.parquet``, ``cell_adjustment.parquet``,
     ``cells.gpkg`` (with ``covered_fraction``), ``faces.gpkg`` and ``adjust_summary.json``.  Lengths in the CRS's
     horizontal unit, stages and stage bias in the DEM's vertical unit; conveyance
-    k A R^(2/3) / n with k = 1.0 (metre) or 1.486 (foot).
+    k A R^(2/3) / n with A and R converted to the horizontal unit L and k = 1.0 (metre) or
+    1.486 (foot): L^3/s on faces, L^4/s on cells (k V R^(2/3) / n).
     """
     from .inputs import check_water_surfaces_reach, read_water_surfaces
     from .outputs import (
@@ -706,6 +715,7 @@ def adjust_roughness(
         id_arrow_type,
         ids_at,
         ids_series,
+        unit_symbol,
         write_csv,
         write_geopackage,
     )
@@ -822,7 +832,8 @@ def adjust_roughness(
             dry = np.empty((0, n_win))
             parts.append(fit_terms(dry, ClassStats(none, none, 0, n_cls, np.empty(0), dry, dry,
                                                    dry, dry), model.n,
-                                   closure=_domain_closure(tc), composite=composite, k=k))  # type: ignore[arg-type]
+                                   closure=_domain_closure(tc), composite=composite,  # type: ignore[arg-type]
+                                   k=plan.conveyance_k))
         log.debug("fit statistics gathered; solving the class fit")
         terms = combine_fit_terms(parts)  # empties parts
         _warn_if_fit_short_of_memory(terms.mixed_stage.size, domain)
@@ -844,7 +855,11 @@ def adjust_roughness(
                       "n_ratio_lumped_equal_volume": "1", "n_ratio_conveyance_form_equal_volume": "1",
                       "n_ratio_median": "1", "stage_bias_unadjusted_median": z_unit,
                       "bed_factor": "1"})
+        # a cell's conveyance k V R^(2/3) / n is a discharge times a length
+        cell_units = {**units, **dict.fromkeys(CELL_CONVEYANCE_COLUMNS,
+                                               f"{unit_symbol(dem_info.horizontal_unit)}4/s")}
         descriptions = _descriptions()
+        cell_descriptions = {**descriptions, **_cell_conveyance_descriptions()}
         id_type = id_arrow_type(ids)
         f64 = pa.float64()
         face_schema = pa.schema(
@@ -882,8 +897,8 @@ def adjust_roughness(
         face_path, cell_path = tmp / "face_adjustment.parquet", tmp / "cell_adjustment.parquet"
         fw = TableWriter(face_path, schema=face_schema, units=units, descriptions=descriptions,
                          metadata=meta)
-        cw = TableWriter(cell_path, schema=cell_schema, units=units, descriptions=descriptions,
-                         metadata=meta)
+        cw = TableWriter(cell_path, schema=cell_schema, units=cell_units,
+                         descriptions=cell_descriptions, metadata=meta)
         try:
             for res in _run_tiles(_pass_tables, job, tasks(), n_fit, desc="tables", **run):
                 fc, cc = res["faces"], res["cells"]
@@ -998,6 +1013,7 @@ def adjust_roughness(
             "cautions": list(CAUTIONS),
             "seconds": round(seconds, 3),
             "units": {c: units.get(c, "") for c in (*FACE_COLUMNS, *CELL_COLUMNS)},
+            "cell_units": {c: cell_units.get(c, "") for c in CELL_COLUMNS},
         }
         (tmp / "adjust_summary.json").write_text(json.dumps(summary, indent=2, default=_json_default))
         files.append(tmp / "adjust_summary.json")
@@ -1014,7 +1030,7 @@ def adjust_roughness(
     text = _text_summary(summary, frame, final, z_unit)
     log.info("adjustment written to %s in %.1f s", final, seconds)
     return AdjustResult(out=final, files=[final / r for r in rel], classes=frame, summary=summary,
-                        text=text, seconds=seconds, units=units)
+                        text=text, seconds=seconds, units=units)  # face units (cells: summary)
 
 
 #: Peak memory of a job: a base, the mesh (per cell and per face: polygons, lines as WKB,
@@ -1104,7 +1120,8 @@ def _descriptions() -> dict[str, str]:
 
     d = column_descriptions()
     d.update({
-        "conveyance_source": "source conveyance at the source n (k A R^(2/3) / n or the closure's form)",
+        "conveyance_source": "source conveyance at the source n (k A R^(2/3) / n or the closure's "
+                             "form; A, R in the horizontal unit, k = 1.0 metre, 1.486 foot)",
         "conveyance_target": "target conveyance with the fitted n",
         "conveyance_target_unadjusted": "target conveyance with the source n carried over",
         "dominant_class": "roughness class with the largest length (faces) or area (cells)",
@@ -1118,6 +1135,22 @@ def _descriptions() -> dict[str, str]:
                                "fitted n",
     })
     return d
+
+
+#: conveyance columns of cell_adjustment.parquet (L^4/s: k V R^(2/3) / n)
+CELL_CONVEYANCE_COLUMNS: tuple[str, ...] = (
+    "conveyance_source", "conveyance_target", "conveyance_target_unadjusted")
+
+
+def _cell_conveyance_descriptions() -> dict[str, str]:
+    what = ("k V R^(2/3) / n (volume times the Manning velocity at unit slope, a discharge "
+            "times a length; V and R in the horizontal unit)")
+    return {
+        "conveyance_source": f"source cell conveyance at the source n: {what}",
+        "conveyance_target": "target cell conveyance with the fitted n (same form)",
+        "conveyance_target_unadjusted": "target cell conveyance with the source n carried over "
+                                        "(same form)",
+    }
 
 
 def _class_frame(model: RoughnessModel, fit: Any, flags: list[list[str]], bias: dict) -> Any:

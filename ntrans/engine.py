@@ -288,7 +288,9 @@ class TileSettings:
     ``reference`` is the reference depth (depth mode: above each item's low point) or the
     reference stage (stage mode) at which ``bed_factor`` and ``perimeter_ratio`` are
     reported.  ``face_spacing`` is the profile sampling step (CRS units); ``z_to_xy``
-    converts vertical to horizontal units for the surface factor.
+    converts vertical to horizontal units for the surface factor and the wetted perimeter;
+    ``conveyance_factor`` (``k z_to_xy^(5/3)``, :func:`ntrans.inputs.conveyance_factor`)
+    turns the face conveyances at n = 1 into horizontal units cubed per second.
     """
 
     stages: StageSpec
@@ -298,6 +300,7 @@ class TileSettings:
     face_rule: FaceRule = "higher"
     face_spacing: float = 0.5
     z_to_xy: float = 1.0
+    conveyance_factor: float = 1.0
     faces: bool = True
 
 
@@ -605,12 +608,15 @@ def _face_part(task, elevation, transform, settings, flat_z):
     flat_depth = flat["flat_depth"]
 
     conv = {}
+    # flow area (L Z) and radius (Z) are in vertical units: the factor k z_to_xy^(5/3)
+    # gives K in L^3/s, as converting them to L first would
+    k = settings.conveyance_factor
     with np.errstate(invalid="ignore"):
-        # n = 1 everywhere: the lumped closure is A R^(2/3) straight from the table
+        # n = 1 everywhere: the lumped closure is k A R^(2/3) straight from the table
         area = np.asarray(ft["flow_area"], dtype=float)[:, :n_st]
         radius = np.asarray(ft["hydraulic_radius"], dtype=float)[:, :n_st]
         no_terrain = ~(np.asarray(fsum["covered_fraction"], dtype=float) > 0)
-        conv["lumped"] = np.where(area > 0, area * np.cbrt(radius) ** 2, 0.0)
+        conv["lumped"] = np.where(area > 0, k * area * np.cbrt(radius) ** 2, 0.0)
         conv["lumped"][no_terrain] = np.nan  # never a fake zero for a face off the DEM
     for closure in ("flat", "strip"):
         # strip takes the table's stage matrix (reference column dropped after): the
@@ -622,7 +628,7 @@ def _face_part(task, elevation, transform, settings, flat_z):
                 closure=closure,
                 n_segment=None,  # n = 1 everywhere: geometric conveyance
                 flat_bed=flat_bed if closure == "flat" else None,
-                k=1.0,
+                k=k,
                 z_to_xy=settings.z_to_xy,
             ),
             dtype=float,

@@ -53,7 +53,11 @@ logger = logging.getLogger(__name__)
 LengthUnit = Literal["metre", "foot"]
 SampleMethod = Literal["bilinear", "nearest"]
 
-#: Manning unit factor k per length unit (DESIGN.md section 2).
+#: Manning unit factor k per horizontal length unit (DESIGN.md section 2): 1.0 with n in
+#: s/m^(1/3) and lengths in metres; 1.486 ft^(1/3)/s for lengths in feet, so the same n
+#: serves both (Manning's equation in US customary units, V = (1.486/n) R^(2/3) S^(1/2):
+#: Chow 1959, Open-Channel Hydraulics, section 5-6, from memory).  1.486 is the customary
+#: rounding of the exact (1 / 0.3048)^(1/3) = 1.48592 (international foot).
 MANNING_K: dict[str, float] = {"metre": 1.0, "foot": 1.486}
 
 _INTERNATIONAL_FOOT = 0.3048
@@ -161,6 +165,19 @@ def _unit_of_factor(factor: float) -> LengthUnit | None:
     ):
         return "foot"
     return None
+
+
+def conveyance_factor(manning_k: float, z_to_xy: float) -> float:
+    """Factor turning a conveyance formed from vertical depths into horizontal units.
+
+    Every conveyance form (``A R^(2/3)``, ``L h^(5/3)``, ``sum h^(5/3) ds``, ``V R^(2/3)``)
+    is of degree 5/3 in vertical lengths once the plan lengths and the wetted perimeter are
+    in horizontal units.  Converting the depths to horizontal units first therefore equals
+    multiplying by ``z_to_xy ** (5/3)``; with ``manning_k`` the result is a discharge in
+    horizontal units cubed per second at n = 1 (faces).  Exactly ``manning_k`` when the
+    units agree (``z_to_xy == 1``).
+    """
+    return float(manning_k) * float(z_to_xy) ** (5.0 / 3.0)
 
 
 def _parse_unit(value: str, option: str) -> str:
@@ -430,6 +447,9 @@ class DemInfo:
         Factor turning a vertical length into horizontal units (1.0 when equal).
     manning_k : float
         Manning unit factor from the horizontal unit: 1.0 (metre) or 1.486 (foot).
+    conveyance_factor : float (property)
+        ``manning_k * z_to_xy ** (5/3)``: turns a conveyance formed from depths in vertical
+        units into horizontal units cubed per second (:func:`conveyance_factor`).
     pixel_size : (float, float)
         (dx, dy) in horizontal units, both positive.
     pixel_area : float
@@ -459,6 +479,11 @@ class DemInfo:
     xy_metres_per_unit: float = 1.0
     z_metres_per_unit: float = 1.0
     block_shape: tuple[int, int] | None = None
+
+    @property
+    def conveyance_factor(self) -> float:
+        """``manning_k * z_to_xy ** (5/3)`` (see :func:`conveyance_factor`)."""
+        return conveyance_factor(self.manning_k, self.z_to_xy)
 
     @property
     def shape(self) -> tuple[int, int]:

@@ -682,8 +682,10 @@ def column_units(horizontal_unit: str, vertical_unit: str | None = None) -> dict
     ``L`` is the horizontal unit, ``Z`` the vertical one: stage and depths in ``Z``;
     plan and bed areas in ``L2``; volume ``L2*Z`` (``m3`` when equal); flow area ``L*Z``;
     lengths, perimeters and widths in ``L`` (perimeters are measured with elevations
-    converted to ``L``); hydraulic radius ``Z``; conveyance at n = 1 in ``L3/s``
-    (depths converted to ``L``); ratios and fractions ``1``; ids and flags ``""``.
+    converted to ``L``); hydraulic radius ``Z``; face conveyance in ``L3/s`` (depths, flow
+    areas and radii converted to ``L``, k of ``L``: :func:`ntrans.inputs.conveyance_factor`;
+    a cell's conveyance k V R^(2/3) / n is ``L4/s``, set by ``adjust``); ratios and
+    fractions ``1``; ids and flags ``""``.
 
     >>> column_units("metre")["volume"]
     'm3'

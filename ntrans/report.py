@@ -255,6 +255,8 @@ Chow (1959), <i>Open-Channel Hydraulics</i>, Table 2-1.</p>
 <h3>Manning's equation and conveyance</h3>
 <span class="f">Q = K S<sup>1/2</sup>,&nbsp; K = (k / n) A R<sup>2/3</sup>,&nbsp;
 k = 1.0 (SI) or 1.486 (US customary) &mdash; Manning; Chow (1959)</span>
+<p>A, R and depths enter K in the horizontal unit (elevations in another unit are converted
+first), so face conveyance is in horizontal units cubed per second.</p>
 <span class="f">flat face: K = (k / n) L h<sup>5/3</sup>;&nbsp; strips: K = k &Sigma; h<sub>j</sub><sup>5/3</sup>
 &Delta;s<sub>j</sub> / n<sub>j</sub> (divided conveyance, Lotter)</span>
 <h3>Composite n along a face</h3>

@@ -2,8 +2,9 @@
 
 Flow: open and check the DEM and the cells -> faces of the whole mesh (vector only) ->
 tiles (:mod:`ntrans.engine`) -> per tile, pure numpy: pixel weights, surface factor,
-subgrid and flat cell tables, face profiles and face tables, geometric conveyance at
-n = 1 -> rows streamed tile by tile into Parquet inside an atomic output folder ->
+subgrid and flat cell tables, face profiles and face tables, conveyance at n = 1
+(horizontal units cubed per second: depths converted to the horizontal unit, k = 1.0 or
+1.486; :func:`ntrans.inputs.conveyance_factor`) -> rows streamed tile by tile into Parquet inside an atomic output folder ->
 cell and face summaries as GeoPackage, optional CSV copies, a run summary in JSON.
 
 Flat face beds need the flat elevation of both adjacent cells; a tile carries the
@@ -228,9 +229,12 @@ def _descriptions() -> dict[str, str]:
         {
             "depth": "stage minus the item's lowest terrain point",
             "flat_flow_area": "face length times flat_depth",
-            "conveyance_flat": "geometric conveyance at n = 1, flat face: k L h^(5/3)",
-            "conveyance_lumped": "geometric conveyance at n = 1, lumped radius: k A R^(2/3)",
-            "conveyance_strip": "geometric conveyance at n = 1, strips: k sum h^(5/3) ds",
+            "conveyance_flat": "conveyance at n = 1, flat face: k L h^(5/3) (h in the "
+                               "horizontal unit; k = 1.0 metre, 1.486 foot)",
+            "conveyance_lumped": "conveyance at n = 1, lumped radius: k A R^(2/3) (A, R in "
+                                 "the horizontal unit; k = 1.0 metre, 1.486 foot)",
+            "conveyance_strip": "conveyance at n = 1, strips: k sum h^(5/3) ds (h in the "
+                                "horizontal unit; k = 1.0 metre, 1.486 foot)",
             "relief": "highest minus lowest point of the face profile",
             "bed_factor": "bed_area / wet_area at the reference depth",
             "perimeter_ratio": "wetted_perimeter / top_width at the reference depth",
@@ -510,6 +514,7 @@ def build_tables(
             face_rule=face_rule,  # type: ignore[arg-type]
             face_spacing=spacing,
             z_to_xy=float(dem_info.z_to_xy),
+            conveyance_factor=float(dem_info.conveyance_factor),
             faces=bool(faces),
         )
         tasks = make_tasks(
@@ -674,6 +679,7 @@ def build_tables(
             "snap_tolerance": job.snap_tolerance,
             "horizontal_unit": dem_info.horizontal_unit,
             "vertical_unit": dem_info.vertical_unit,
+            "manning_k": dem_info.manning_k,
             **partial.summary(),
             "seconds": round(seconds, 3),
             "units": {k: v for k, v in units.items() if k in set(CELL_STAGE_COLUMNS)

@@ -8,6 +8,8 @@ functions without an import):
 - :func:`write_cells` -- a polygon layer (driver chosen by suffix) from shapely polygons.
 - :func:`grid_polygons` -- ``nx * ny`` square cells, row-major from the lower left.
 - :func:`tilted_plane` -- elevations of a plane at the pixel centres of a grid.
+- :func:`write_in_units` -- one terrain and mesh written with lengths and elevations in
+  metres, international feet or US survey feet; :func:`metres_per` reads a unit label.
 
 Fixtures: ``tmp_dem`` (30 x 30 pixels of 1 m, plane z = 10 + 0.1 x + 0.05 y, EPSG:32633,
 lower-left corner at (0, 0)) and ``tmp_cells`` (a 3 x 3 grid of 10 m cells over it, ids
@@ -149,6 +151,53 @@ def grid_polygons(
         for j in range(ny)
         for i in range(nx)
     ]
+
+
+#: Metres per length unit, exact by definition: the international foot is 0.3048 m (the
+#: 1959 international yard and pound agreement), the US survey foot 1200/3937 m.
+METRES_PER_UNIT = {"metre": 1.0, "foot": 0.3048, "us_survey_foot": 1200.0 / 3937.0}
+#: UTM zone 33N (the fixtures' EPSG:32633) with its lengths in each unit.
+UNIT_CRS = {
+    "metre": "EPSG:32633",
+    "foot": "+proj=utm +zone=33 +datum=WGS84 +units=ft +no_defs",
+    "us_survey_foot": "+proj=utm +zone=33 +datum=WGS84 +units=us-ft +no_defs",
+}
+
+
+def write_in_units(
+    folder: str | Path,
+    elevation_m: np.ndarray,
+    polygons_m: Sequence[shapely.Geometry],
+    *,
+    horizontal: str = "metre",
+    vertical: str | None = None,
+) -> tuple[Path, Path]:
+    """A DEM of 1 m pixels (lower-left corner at (0, 0)) and its cells, written with x/y in
+    ``horizontal`` units (CRS :data:`UNIT_CRS`) and elevations in ``vertical`` units (default:
+    the horizontal ones).  Returns ``(dem, cells)`` paths in ``folder``."""
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    to_xy = 1.0 / METRES_PER_UNIT[horizontal]
+    to_z = 1.0 / METRES_PER_UNIT[vertical or horizontal]
+    rows = np.shape(elevation_m)[0]
+    dem = write_dem(folder / "dem.tif", np.asarray(elevation_m, dtype=float) * to_z,
+                    pixel_size=to_xy, origin=(0.0, rows * to_xy), crs=UNIT_CRS[horizontal],
+                    dtype="float64")
+    polygons = [shapely.transform(p, lambda xy: xy * to_xy) for p in polygons_m]
+    cells = write_cells(folder / "cells.gpkg", polygons, crs=UNIT_CRS[horizontal])
+    return dem, cells
+
+
+def metres_per(label: str, foot: float) -> float:
+    """SI factor of a column unit label such as ``m``, ``ft2*m``, ``m3/s`` or ``ft4/s``:
+    the value times this factor is in metres to the label's powers (per second), with
+    ``foot`` metres per ``ft``.  Labels without lengths (``1``, ``""``) give 1."""
+    factor = 1.0
+    for part in label.removesuffix("/s").split("*"):
+        unit = part.rstrip("0123456789")
+        power = int(part[len(unit):] or 1)
+        factor *= {"m": 1.0, "ft": foot}.get(unit, 1.0) ** power
+    return factor
 
 
 @pytest.fixture

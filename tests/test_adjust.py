@@ -9,7 +9,14 @@ import numpy as np
 import pandas as pd
 import pytest
 import shapely
-from conftest import grid_polygons, write_cells, write_dem
+from conftest import (
+    METRES_PER_UNIT,
+    grid_polygons,
+    metres_per,
+    write_cells,
+    write_dem,
+    write_in_units,
+)
 
 from ntrans.adjust import CLASS_COLUMNS, adjust_roughness
 from ntrans.errors import DryWetMismatchWarning, InputError, RoughnessError
@@ -466,3 +473,56 @@ def test_cells_over_nodata_warn_and_carry_their_covered_fraction(tmp_path):
     np.testing.assert_array_equal(a["covered_fraction"], t["covered_fraction"])
     summary = json.loads((tmp_path / "adj" / "adjust_summary.json").read_text())
     assert summary["partial_cells"] == 2 and summary["cells_without_terrain"] == 1
+
+
+#: (horizontal, vertical) units of the same terrain and mesh; None: vertical as horizontal
+UNIT_CASES = [("metre", "foot"), ("foot", None), ("foot", "metre"), ("us_survey_foot", None)]
+#: Manning unit factor k per horizontal unit: 1.0 SI, 1.486 ft^(1/3)/s in US customary
+#: units (Manning's equation in US customary units, Chow 1959, Open-Channel Hydraulics,
+#: section 5-6, from memory; it rounds the exact (1 / 0.3048)^(1/3) = 1.48592)
+MANNING_K = {"metre": 1.0, "foot": 1.486, "us_survey_foot": 1.486}
+
+
+@pytest.mark.parametrize("horizontal, vertical", UNIT_CASES)
+def test_same_terrain_in_other_units_converts_by_the_unit_factors(tmp_path, horizontal,
+                                                                   vertical):
+    z = channel_dem()
+    polys = grid_polygons(4, 4, 10.0)
+    depths_m = [0.5, 1.0, 1.5]
+    fz = METRES_PER_UNIT[vertical or horizontal]  # metres per vertical unit (by definition)
+    fl = METRES_PER_UNIT[horizontal]  # metres per horizontal unit
+    runs = {}
+    for name, units, factor in (("m", {}, 1.0),
+                                ("u", {"horizontal": horizontal, "vertical": vertical}, fz)):
+        dem, cells = write_in_units(tmp_path / name, z, polys, **units)
+        runs[name] = _quiet(dem=dem, cells=cells, out=tmp_path / name / "out", n=0.035,
+                            vertical_units=units.get("vertical"),
+                            depths=",".join(repr(d / factor) for d in depths_m))
+    k = MANNING_K[horizontal]
+    assert runs["u"].summary["manning_k"] == k
+    # the fit depends on ratios of conveyances only: the same n in every unit
+    np.testing.assert_allclose(runs["u"].classes["n_target"], runs["m"].classes["n_target"],
+                               rtol=1e-9)
+    for table, units_key, power in (("face_adjustment", "units", 8 / 3),
+                                    ("cell_adjustment", "cell_units", 11 / 3)):
+        ref = pd.read_parquet(tmp_path / "m" / "out" / f"{table}.parquet")
+        got = pd.read_parquet(tmp_path / "u" / "out" / f"{table}.parquet")
+        ref_units, units = runs["m"].summary[units_key], runs["u"].summary[units_key]
+        assert len(got) == len(ref)
+        for col in (c for c in got.columns if got[c].dtype.kind == "f"):
+            to_si = metres_per(units[col], foot=fl if horizontal != "metre" else fz)
+            if col.startswith("conveyance"):
+                # K / k is a length^(8/3) on faces (A R^(2/3), Manning's equation) and a
+                # length^(11/3) on cells (V R^(2/3)): it converts by the length factor
+                # alone; 1e-9 is round-off of the scaled coordinates
+                np.testing.assert_allclose(got[col] / k * fl ** power, ref[col], rtol=1e-9,
+                                           atol=1e-9, err_msg=col)
+                # as labelled (m3/s, ft3/s; m4/s, ft4/s): equal up to k's rounding
+                # (1.486 vs 1.48592, 5.4e-5 relative)
+                np.testing.assert_allclose(got[col] * to_si, ref[col], rtol=6e-5, atol=1e-9,
+                                           err_msg=col)
+            else:
+                # stages, depths and stage bias in their labelled unit, ratios equal;
+                # 1e-7 covers the stage solver's tolerance (1e-9 x depth)
+                np.testing.assert_allclose(got[col] * to_si, ref[col] * metres_per(
+                    ref_units[col], 1.0), rtol=1e-9, atol=1e-7, err_msg=col)

@@ -123,6 +123,10 @@ def test_open_dem_vertical_units(tmp_path: Path, crs: str, vertical: str, z_to_x
     path = write_dem(tmp_path / "d.tif", np.ones((4, 4)), crs=crs, origin=(1000.0, 5000.0))
     dem = open_dem(path, vertical_units=vertical)
     assert dem.z_to_xy == pytest.approx(z_to_xy, rel=1e-12)  # ratio of unit definitions
+    # conveyance is of degree 5/3 in depths (K = k A R^(2/3), A = L x depth): depths
+    # converted to the plan unit, then Manning's k of the plan unit (DESIGN.md section 2)
+    k = 1.0 if crs == "EPSG:32633" else 1.486
+    assert dem.conveyance_factor == pytest.approx(k * z_to_xy ** (5 / 3), rel=1e-12)
 
 
 def test_open_dem_vertical_unit_from_compound_crs(tmp_path: Path) -> None:

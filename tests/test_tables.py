@@ -7,7 +7,15 @@ import pandas as pd
 import pyogrio
 import pytest
 import shapely
-from conftest import grid_polygons, tilted_plane, write_cells, write_dem
+from conftest import (
+    METRES_PER_UNIT,
+    grid_polygons,
+    metres_per,
+    tilted_plane,
+    write_cells,
+    write_dem,
+    write_in_units,
+)
 
 from ntrans.errors import OutputExistsError, PartialCoverageWarning, StageSpecError
 from ntrans.outputs import read_table_metadata
@@ -135,6 +143,53 @@ def test_flat_dem_subgrid_equals_flat(tmp_path):
     np.testing.assert_allclose(
         face.conveyance_flat, face.length * (face.stage - 5.0) ** (5.0 / 3.0), rtol=1e-9
     )
+
+
+#: (horizontal, vertical) units of the same terrain and mesh; None: vertical as horizontal
+UNIT_CASES = [("metre", "foot"), ("foot", None), ("foot", "metre"), ("us_survey_foot", None),
+              ("us_survey_foot", "metre"), ("metre", "us_survey_foot")]
+#: Manning unit factor k per horizontal unit: 1.0 SI, 1.486 ft^(1/3)/s in US customary
+#: units (Manning's equation in US customary units, Chow 1959, Open-Channel Hydraulics,
+#: section 5-6, from memory; it rounds the exact (1 / 0.3048)^(1/3) = 1.48592)
+MANNING_K = {"metre": 1.0, "foot": 1.486, "us_survey_foot": 1.486}
+
+
+@pytest.mark.parametrize("horizontal, vertical", UNIT_CASES)
+def test_same_terrain_in_other_units_converts_by_the_unit_factors(tmp_path, horizontal,
+                                                                   vertical):
+    z = bumpy(40, 40)
+    polys = grid_polygons(3, 3, 12.0, origin=(2.3, 1.7))
+    stages_m = [10.5, 11.5, 12.5]
+    dem_m, cells_m = write_in_units(tmp_path / "m", z, polys)
+    build_tables(dem_m, cells_m, out=tmp_path / "m" / "out", stages=",".join(map(repr, stages_m)))
+    dem, cells = write_in_units(tmp_path / "u", z, polys, horizontal=horizontal, vertical=vertical)
+    fz = METRES_PER_UNIT[vertical or horizontal]  # metres per vertical unit (by definition)
+    fl = METRES_PER_UNIT[horizontal]  # metres per horizontal unit
+    build_tables(dem, cells, out=tmp_path / "u" / "out", vertical_units=vertical,
+                 stages=",".join(repr(s / fz) for s in stages_m))
+    k = MANNING_K[horizontal]
+    for name in ("cell_stage.parquet", "face_stage.parquet"):
+        ref = pd.read_parquet(tmp_path / "m" / "out" / name)
+        got = pd.read_parquet(tmp_path / "u" / "out" / name)
+        ref_units = read_table_metadata(tmp_path / "m" / "out" / name)["units"]
+        units = read_table_metadata(tmp_path / "u" / "out" / name)["units"]
+        assert len(got) == len(ref)
+        for col in (c for c in got.columns if got[c].dtype.kind == "f"):
+            to_si = metres_per(units[col], foot=fl if horizontal != "metre" else fz)
+            if col.startswith("conveyance_"):
+                assert (ref_units[col], units[col]) == ("m3/s", f"{'m' if fl == 1 else 'ft'}3/s")
+                # K / k = A R^(2/3) is a length^(8/3) (Manning's equation): it converts by
+                # the length factor alone; 1e-9 is round-off of the scaled coordinates
+                np.testing.assert_allclose(got[col] / k * fl ** (8 / 3), ref[col], rtol=1e-9,
+                                           atol=1e-9, err_msg=col)
+                # as labelled, a discharge: equal in m3/s up to k's rounding (1.486 vs
+                # 1.48592, 5.4e-5 relative)
+                np.testing.assert_allclose(got[col] * to_si, ref[col], rtol=6e-5, atol=1e-9,
+                                           err_msg=col)
+            else:
+                # every other length, area and volume is what its label says
+                np.testing.assert_allclose(got[col] * to_si, ref[col] * metres_per(
+                    ref_units[col], 1.0), rtol=1e-9, atol=1e-9, err_msg=col)
 
 
 def test_tilted_plane_bed_factor(tmp_path):
