@@ -14,7 +14,8 @@ from .run import echo_summary
     type=click.Path(file_okay=False, path_type=str),
     default="demo-out",
     show_default=True,
-    help="Bundle folder to write (replaced if it exists).",
+    help="Bundle folder to write (an earlier ntrans output there is replaced; a folder of "
+    "other files never is).",
 )
 @options.verbosity
 @click.pass_context

@@ -3,14 +3,20 @@
 Each command lives in its own module (``cli/<name>.py``) exposing ``command``, a
 ``click.Command`` that calls one library function.  Library errors
 (:class:`ntrans.errors.NtransError`) become one line on stderr and exit code 2; with
-``--debug`` the traceback is shown as well.
+``--debug`` the traceback is shown as well.  Ctrl-C (SIGINT) and SIGTERM stop a command
+the same way: its clean-up runs (no staging folder is left), one line says what was
+written, and the exit code is 128 + the signal's number (130, 143).
 """
 
 from __future__ import annotations
 
+import contextlib
 import importlib
 import logging
+import signal
 import sys
+import traceback
+from collections.abc import Iterator
 
 import click
 from tqdm.contrib.logging import logging_redirect_tqdm
@@ -43,13 +49,61 @@ class LazyGroup(click.Group):
         return module.command
 
     def invoke(self, ctx: click.Context):
-        try:
-            return super().invoke(ctx)
-        except NtransError as exc:
-            if ctx.meta.get("ntrans.debug"):
+        with _stop_on_signals() as received:
+            try:
+                result = super().invoke(ctx)
+            except click.exceptions.Exit:
                 raise
-            click.echo(f"ntrans: error: {exc}", err=True)
-            ctx.exit(exc.exit_code)
+            except BaseException as exc:
+                # a library may turn the interrupt into an error of its own: the signal decides
+                if received or isinstance(exc, KeyboardInterrupt):
+                    _exit_interrupted(ctx, received, exc)
+                if not isinstance(exc, NtransError) or ctx.meta.get("ntrans.debug"):
+                    raise
+                click.echo(f"ntrans: error: {exc}", err=True)
+                ctx.exit(exc.exit_code)
+            if received:  # the signal came while the command was finishing
+                _exit_interrupted(ctx, received, None)
+            return result
+
+
+#: the signals that stop a command (Ctrl-C, and a batch system's or ``timeout``'s stop)
+STOP_SIGNALS = (signal.SIGINT, signal.SIGTERM)
+
+
+@contextlib.contextmanager
+def _stop_on_signals() -> Iterator[list[int]]:
+    """While open, SIGINT and SIGTERM raise KeyboardInterrupt, so the command's clean-up
+    runs; yields the list of signals received.  The previous handlers are restored."""
+    received: list[int] = []
+
+    def stop(signum: int, frame: object) -> None:
+        received.append(signum)
+        raise KeyboardInterrupt
+
+    previous = {}
+    try:
+        for number in STOP_SIGNALS:
+            previous[number] = signal.signal(number, stop)
+    except ValueError:  # not the main thread: signals cannot be handled here
+        pass
+    try:
+        yield received
+    finally:
+        for number, handler in previous.items():
+            signal.signal(number, signal.SIG_DFL if handler is None else handler)
+
+
+def _exit_interrupted(ctx: click.Context, received: list[int], exc: BaseException | None
+                      ) -> None:
+    """Say the command was interrupted and what was written; exit with 128 + signal."""
+    number = received[0] if received else signal.SIGINT
+    if exc is not None and ctx.meta.get("ntrans.debug"):
+        traceback.print_exception(exc)
+    notes = getattr(exc, "__notes__", None) or []
+    outcome = f"; {notes[-1]}" if notes else ""  # the outermost output folder's note
+    click.echo(f"ntrans: interrupted ({signal.Signals(number).name}){outcome}", err=True)
+    ctx.exit(128 + number)
 
 
 def _available(name: str) -> bool:

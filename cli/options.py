@@ -136,7 +136,8 @@ overwrite = click.option(
     "--overwrite",
     is_flag=True,
     default=False,
-    help="Replace the output folder if it exists.",
+    help="Replace the output folder if it exists and is empty or an earlier ntrans "
+    "output (never a folder of other files).",
 )
 
 csv = click.option(

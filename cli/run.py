@@ -48,7 +48,8 @@ def echo_summary(result: Any, *, extra: tuple[str, ...] = ()) -> None:
     "--overwrite",
     is_flag=True,
     default=None,
-    help="Replace the bundle folder if it exists (default: the project's outputs.overwrite).",
+    help="Replace the bundle folder (and zip) if it is an earlier ntrans output "
+    "(default: the project's outputs.overwrite); a folder of other files is never replaced.",
 )
 @options.verbosity
 @click.pass_context

@@ -28,7 +28,7 @@ from importlib import metadata
 from pathlib import Path
 from typing import Any
 
-from .errors import BundleError, InputFileError
+from .errors import BundleError, InputFileError, OutputError, OutputExistsError
 
 logger = logging.getLogger(__name__)
 
@@ -351,22 +351,57 @@ def _verify_folder(root: Path) -> VerifyResult:
     return result
 
 
+def zip_path(folder: str | os.PathLike[str]) -> Path:
+    """Where :func:`write_zip` puts the zip of ``folder``: ``<folder>.zip`` beside it."""
+    root = Path(folder)
+    return root.with_name(root.name + ".zip")
+
+
+def check_zip_target(folder: str | os.PathLike[str], *, overwrite: bool) -> None:
+    """Refuse, before a run starts, to replace the zip of ``folder`` (:func:`zip_path`)
+    without ``overwrite``, or ever when it is not the zip of an ntrans bundle (no
+    ``<name>/manifest.json`` inside)."""
+    dest = zip_path(folder)
+    if not (dest.exists() or dest.is_symlink()):
+        return
+    try:
+        with zipfile.ZipFile(dest) as archive:
+            ours = f"{Path(folder).name}/{MANIFEST_NAME}" in archive.namelist()
+    except (OSError, zipfile.BadZipFile):
+        ours = False
+    if not ours:
+        error = OutputError if overwrite else OutputExistsError
+        raise error(
+            f"'{dest}' exists and is not the zip of an ntrans bundle, so it will not be "
+            "replaced; choose another output folder or remove it yourself"
+        )
+    if not overwrite:
+        raise OutputExistsError(
+            f"zip '{dest}' exists; pass --overwrite to replace it or choose another folder"
+        )
+
+
 def write_zip(folder: str | os.PathLike[str], destination: str | os.PathLike[str] | None = None) -> Path:
     """Zip ``folder`` (entries under the folder's name, fixed dates, sorted) beside it.
 
-    The archive is deterministic apart from the manifest's own time stamp.
+    The archive is deterministic apart from the manifest's own time stamp.  It is
+    written as ``<zip>.part`` and renamed when complete (removed on any error).
     """
     root = Path(folder)
-    dest = Path(destination) if destination is not None else root.with_name(root.name + ".zip")
+    dest = Path(destination) if destination is not None else zip_path(root)
     tmp = dest.with_name(dest.name + ".part")
-    with zipfile.ZipFile(tmp, "w", compression=zipfile.ZIP_DEFLATED) as archive:
-        for rel in list_files(root):
-            info = zipfile.ZipInfo(f"{root.name}/{rel}", date_time=(1980, 1, 1, 0, 0, 0))
-            info.compress_type = zipfile.ZIP_DEFLATED
-            info.external_attr = 0o644 << 16
-            with open(root / rel, "rb") as handle:
-                archive.writestr(info, handle.read())
-    os.replace(tmp, dest)
+    try:
+        with zipfile.ZipFile(tmp, "w", compression=zipfile.ZIP_DEFLATED) as archive:
+            for rel in list_files(root):
+                info = zipfile.ZipInfo(f"{root.name}/{rel}", date_time=(1980, 1, 1, 0, 0, 0))
+                info.compress_type = zipfile.ZIP_DEFLATED
+                info.external_attr = 0o644 << 16
+                with open(root / rel, "rb") as handle:
+                    archive.writestr(info, handle.read())
+        os.replace(tmp, dest)
+    except BaseException:  # KeyboardInterrupt included: no half-written zip is left
+        tmp.unlink(missing_ok=True)
+        raise
     return dest
 
 

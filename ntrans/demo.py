@@ -75,7 +75,8 @@ def run_demo(
     Parameters
     ----------
     out
-        Bundle folder (default ``./demo-out``), replaced when ``overwrite``.
+        Bundle folder (default ``./demo-out``), replaced when ``overwrite`` and it is an
+        earlier ntrans output (a folder of other files never is).
     overwrite
         Replace an existing folder.
     progress

@@ -1,7 +1,8 @@
 """The output edge: an atomic output folder and the Parquet / CSV / GeoPackage writers.
 
 - :class:`OutputFolder` -- write into a hidden temporary sibling folder, move it into
-  place only when everything succeeded; nothing half-written ever sits at the target.
+  place only when everything succeeded; nothing half-written ever sits at the target,
+  and only an empty folder or an earlier ntrans output is ever replaced.
 - :class:`TableWriter` -- stream a Parquet table chunk by chunk, with column units and
   descriptions in the file's key-value metadata.
 - :func:`write_csv`, :func:`write_geopackage` -- the same tables as CSV, geometry as GPKG.
@@ -16,8 +17,10 @@ import itertools
 import json
 import logging
 import os
+import re
 import secrets
 import shutil
+import socket
 from collections import deque
 from collections.abc import Iterable, Iterator, Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
@@ -46,6 +49,56 @@ KEY_FLOAT_COLUMNS = ("stage", "depth")
 
 # --------------------------------------------------------------------------- folder
 
+#: files an ntrans job writes at the top of its output folder (``tables``, ``adjust``, a
+#: ``run`` / ``demo`` bundle): ``overwrite`` replaces only an empty folder or one that
+#: holds one of them, never a folder of other files
+OUTPUT_MARKERS = ("tables_summary.json", "adjust_summary.json", "manifest.json")
+
+
+def _host_tag() -> str:
+    """This machine's name as written into staging folder names."""
+    return re.sub(r"[^A-Za-z0-9.-]", "", socket.gethostname()) or "host"
+
+
+def _process_alive(pid: int) -> bool:
+    """False only when no process ``pid`` exists on this machine (POSIX; elsewhere
+    every process counts as alive)."""
+    if os.name != "posix" or pid <= 0:
+        return True
+    try:
+        os.kill(pid, 0)  # signal 0: only checks that the process exists
+    except ProcessLookupError:
+        return False
+    except OSError:  # another user's process
+        return True
+    return True
+
+
+def remove_stale_staging(out_dir: str | os.PathLike[str]) -> list[Path]:
+    """Remove the staging folders of output folder ``out_dir`` left behind by runs on
+    this machine whose process no longer exists (killed); return the removed paths.
+
+    Only hidden siblings named ``.<name>.tmp-<host>-<pid>-<hex>`` are considered: a
+    folder of a live process, of another machine or of another name is kept.
+    """
+    final = Path(os.fspath(out_dir)).expanduser().absolute()
+    pattern = re.compile(rf"\.{re.escape(final.name)}\.tmp-(.+)-(\d+)-[0-9a-f]{{8}}")
+    host = _host_tag()
+    removed: list[Path] = []
+    try:
+        siblings = list(final.parent.iterdir())
+    except OSError:  # no parent yet, or not readable: nothing to clean
+        return removed
+    for path in siblings:
+        match = pattern.fullmatch(path.name)
+        if (match is None or match.group(1) != host or _process_alive(int(match.group(2)))
+                or path.is_symlink() or not path.is_dir()):
+            continue
+        shutil.rmtree(path, ignore_errors=True)
+        logger.info("removed %s, left by an earlier run that was stopped", path)
+        removed.append(path)
+    return removed
+
 
 def _is_disk_full(exc: BaseException | None) -> bool:
     """True for an error that says the disk (or the user's quota) is full, also when a
@@ -60,16 +113,46 @@ def _is_disk_full(exc: BaseException | None) -> bool:
     return False
 
 
+def _replace_refusal(final: Path) -> str | None:
+    """Why the existing ``final`` is never replaced, even with ``overwrite`` (a file; the
+    current, home or root folder; a folder of other files than an ntrans output), or
+    None when it may be."""
+    if not final.is_dir():
+        return f"output path '{final}' is a file, not a folder; choose another output folder"
+    resolved = final.resolve()
+    protected = {Path(resolved.anchor), Path.home().resolve()}
+    cwd = Path.cwd().resolve()
+    if resolved in protected or resolved == cwd or resolved in cwd.parents:
+        return (f"output folder '{final}' is the current, home or root folder (or holds it) "
+                "and will not be replaced; choose a dedicated output folder")
+    try:
+        empty = next(final.iterdir(), None) is None
+        ours = any((final / name).is_file() for name in OUTPUT_MARKERS)
+    except OSError as exc:
+        raise OutputError(
+            f"output folder '{final}' cannot be read ({exc.strerror or exc}); check its "
+            "permissions or choose another folder"
+        ) from exc
+    if not (empty or ours):
+        return (f"output folder '{final}' is not empty and does not look like ntrans output, "
+                "so it will not be replaced; choose another output folder or remove it yourself")
+    return None
+
+
 class OutputFolder:
     """Context manager giving an all-or-nothing output folder.
 
     On enter the target is checked (exists without ``overwrite`` ->
-    :class:`OutputExistsError`; would replace an input -> :class:`OutputError`) and a
-    hidden sibling ``.<name>.tmp-<random>`` is created: write everything into
+    :class:`OutputExistsError`; would replace an input, is a file, the current, home or
+    root folder, or a non-empty folder without any of :data:`OUTPUT_MARKERS` ->
+    :class:`OutputError`), staging folders a killed run left for this target are removed
+    (:func:`remove_stale_staging`) and a hidden sibling
+    ``.<name>.tmp-<host>-<pid>-<random>`` is created: write everything into
     :attr:`path`.  On a clean exit the temporary folder is renamed to :attr:`final`
     (an existing target is first moved aside and deleted after the rename).  On any
     exception, KeyboardInterrupt included, the temporary folder is deleted, an existing
-    target is left untouched and the exception propagates.
+    target is left untouched and the exception propagates with a note saying whether
+    the outputs were written (``exc.__notes__``).
 
     >>> with OutputFolder("out", overwrite=True) as folder:  # doctest: +SKIP
     ...     (folder.path / "a.txt").write_text("x")
@@ -98,30 +181,25 @@ class OutputFolder:
         final = self.final
         check_output_not_input(final, self.inputs)  # first: --overwrite would not help
         if final.exists() or final.is_symlink():
-            if not self.overwrite:
-                raise OutputExistsError(
+            refusal = _replace_refusal(final)
+            if not self.overwrite:  # suggest --overwrite only where it would help
+                raise OutputExistsError(refusal or (
                     f"output folder '{final}' exists; pass --overwrite to replace it or choose "
                     "another folder"
-                )
-            if not final.is_dir():
-                raise OutputError(
-                    f"output path '{final}' is a file, not a folder; choose another output folder"
-                )
-            resolved = final.resolve()
-            protected = {Path(resolved.anchor), Path.home().resolve()}
-            cwd = Path.cwd().resolve()
-            if resolved in protected or resolved == cwd or resolved in cwd.parents:
-                raise OutputError(
-                    f"output folder '{final}' is the current, home or root folder (or holds "
-                    "it) and will not be replaced; choose a dedicated output folder"
-                )
+                ))
+            if refusal is not None:
+                raise OutputError(refusal)
 
     def __enter__(self) -> OutputFolder:
         self._check_target()
+        remove_stale_staging(self.final)
         parent = self.final.parent
         try:
             parent.mkdir(parents=True, exist_ok=True)
-            tmp = parent / f".{self.final.name}.tmp-{secrets.token_hex(4)}"
+            # host and process id in the name: a later run tells a killed run's folder
+            # from a live one's (remove_stale_staging)
+            owner = f"{_host_tag()}-{os.getpid()}"
+            tmp = parent / f".{self.final.name}.tmp-{owner}-{secrets.token_hex(4)}"
             tmp.mkdir()
         except OSError as exc:
             raise OutputError(
@@ -145,6 +223,8 @@ class OutputFolder:
         if exc_type is not None:
             shutil.rmtree(tmp, ignore_errors=True)
             logger.debug("removed temporary folder %s after an error", tmp)
+            if exc is not None:
+                exc.add_note(f"nothing was written to {self.final}")
             if _is_disk_full(exc):
                 raise OutputError(
                     f"the disk of output folder '{self.final}' ran out of space while writing "
@@ -153,8 +233,11 @@ class OutputFolder:
             return False
         try:
             self._commit(tmp)
-        except BaseException:
+        except BaseException as error:
+            written = not tmp.exists()  # renamed into place; the old folder's removal stopped
             shutil.rmtree(tmp, ignore_errors=True)
+            error.add_note(f"the outputs were written to {self.final}" if written
+                           else f"nothing was written to {self.final}")
             raise
         return False
 
@@ -187,7 +270,11 @@ class OutputFolder:
                 ) from exc
             raise
         if old is not None:
-            shutil.rmtree(old, ignore_errors=True)
+            try:
+                shutil.rmtree(old, ignore_errors=True)
+            except BaseException:  # an interrupt: finish removing the old results first
+                shutil.rmtree(old, ignore_errors=True)
+                raise
         logger.info("outputs written to %s", final)
 
 

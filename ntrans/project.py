@@ -367,7 +367,7 @@ depths = "0.25:3:0.25"          # depths above each cell's / face's low point (s
 out = "{stem}-bundle"           # bundle folder (written whole or not at all)
 csv = false                     # also write every table as CSV
 zip = false                     # also write <out>.zip beside the folder
-overwrite = false               # replace an existing bundle folder
+overwrite = false               # replace an earlier bundle (never a folder of other files)
 
 [run]
 coverage = "exact"              # pixel-to-cell weights: exact | centre
@@ -504,7 +504,10 @@ def run_project(
     ProjectFileError
         The project file is invalid.
     OutputExistsError
-        The bundle folder exists and overwrite is false.
+        The bundle folder (or its zip) exists and overwrite is false.
+    OutputError
+        The bundle folder or zip exists but is not an earlier ntrans output (never
+        replaced), or would replace an input.
     RoughnessError
         A class (or the default class) is missing from the n table, or an n is not a
         Manning's n; checked before the stage tables.
@@ -527,6 +530,8 @@ def run_project(
     dem, cells = str(project.inputs["dem"]), str(project.inputs["cells"])
     timings: dict[str, float] = {}
     logger.info("project %s -> %s", project.path, target)
+    if project.outputs.get("zip", False):  # before the run, as the folder is checked
+        bundle.check_zip_target(target, overwrite=overwrite)
     # the classes against the n table, before the stage tables take their minutes
     check_roughness_inputs(**_call_kwargs(check_roughness_inputs, options))
 
@@ -579,7 +584,11 @@ def run_project(
     zip_path = None
     if project.outputs.get("zip", False):
         with _step("zip", timings):
-            zip_path = bundle.write_zip(final)
+            try:
+                zip_path = bundle.write_zip(final)
+            except BaseException as exc:
+                exc.add_note(f"the bundle was written to {final}, its zip was not")
+                raise
     n_by_class = pd.read_csv(final / "n_by_class.csv")
     files = bundle.list_files(final)
     summary["timings"] = timings

@@ -422,7 +422,7 @@ def build_tables(
     dem : terrain raster in a projected CRS (metre or foot).
     cells : polygon layer of the mesh cells.
     out : output folder; written whole or not at all (exists -> error unless
-        ``overwrite``).
+        ``overwrite``; only an empty folder or an earlier ntrans output is replaced).
     id_field : attribute with unique cell ids (default: the first of ``cell_id, cellid,
         id, fid, objectid, ogc_fid`` present, any case, else the feature order from 0).
     cells_layer : layer of ``cells`` to read; needed when the file holds several.

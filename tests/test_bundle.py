@@ -12,7 +12,7 @@ import pytest
 from conftest import write_dem
 
 from ntrans import bundle
-from ntrans.errors import BundleError, InputFileError
+from ntrans.errors import BundleError, InputFileError, OutputError, OutputExistsError
 
 
 def _make_bundle(folder: Path) -> Path:
@@ -145,6 +145,33 @@ def test_zip_is_verifiable_and_deterministic(tmp_path):
     assert names == sorted(names)
     assert "b/manifest.json" in names
     assert bundle.verify_bundle(first).ok
+
+
+def test_zip_target_replaced_only_when_it_is_a_bundle_zip_and_overwrite(tmp_path):
+    folder = _make_bundle(tmp_path / "b")
+    bundle.check_zip_target(folder, overwrite=False)  # no zip yet: nothing to refuse
+    ours = bundle.write_zip(folder)
+    assert ours == bundle.zip_path(folder) == tmp_path / "b.zip"
+    with pytest.raises(OutputExistsError, match="--overwrite"):
+        bundle.check_zip_target(folder, overwrite=False)
+    bundle.check_zip_target(folder, overwrite=True)
+    ours.write_bytes(b"someone's archive")  # not a zip of this bundle: never replaced
+    for overwrite, error in ((False, OutputExistsError), (True, OutputError)):
+        with pytest.raises(error, match="not the zip of an ntrans bundle"):
+            bundle.check_zip_target(folder, overwrite=overwrite)
+    assert ours.read_bytes() == b"someone's archive"
+
+
+def test_interrupted_zip_leaves_no_part_file(tmp_path, monkeypatch):
+    folder = _make_bundle(tmp_path / "b")
+
+    def interrupted(root):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(bundle, "list_files", interrupted)
+    with pytest.raises(KeyboardInterrupt):
+        bundle.write_zip(folder)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["b"]
 
 
 def test_describe_input_records_crs_and_hash(tmp_path):

@@ -4,6 +4,9 @@ from __future__ import annotations
 
 import errno
 import json
+import os
+import subprocess
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -17,6 +20,7 @@ from conftest import grid_polygons
 from ntrans.errors import OutputError, OutputExistsError
 from ntrans.outputs import (
     DESCRIPTION_KEY,
+    OUTPUT_MARKERS,
     UNITS_KEY,
     OutputFolder,
     TableWriter,
@@ -24,6 +28,7 @@ from ntrans.outputs import (
     column_units,
     encode_geometry,
     read_table_metadata,
+    remove_stale_staging,
     write_csv,
     write_geopackage,
 )
@@ -37,11 +42,21 @@ def _entries(folder: Path) -> list[str]:
 # --------------------------------------------------------------------------- OutputFolder
 
 
+def _earlier_output(target: Path, marker: str = "tables_summary.json") -> None:
+    """``target`` as an earlier ntrans job left it: its marker file and one more file."""
+    target.mkdir()
+    (target / marker).write_text("{}")
+    (target / "old.txt").write_text("old")
+
+
 def test_output_folder_clean_exit(tmp_path: Path) -> None:
     target = tmp_path / "out"
     with OutputFolder(target) as folder:
         assert folder.final == target
-        assert folder.path.parent == tmp_path and folder.path.name.startswith(".out.tmp-")
+        assert folder.path.parent == tmp_path
+        # the staging name says which process on which machine writes it
+        assert folder.path.name.startswith(".out.tmp-")
+        assert f"-{os.getpid()}-" in folder.path.name
         (folder.path / "a.txt").write_text("x")
         assert not target.exists()  # nothing at the target before the end
     assert (target / "a.txt").read_text() == "x"
@@ -51,10 +66,11 @@ def test_output_folder_clean_exit(tmp_path: Path) -> None:
 @pytest.mark.parametrize("error", [RuntimeError, KeyboardInterrupt])
 def test_output_folder_exception_leaves_nothing(tmp_path: Path, error: type) -> None:
     target = tmp_path / "out"
-    with pytest.raises(error), OutputFolder(target) as folder:
+    with pytest.raises(error) as info, OutputFolder(target) as folder:
         (folder.path / "half.parquet").write_bytes(b"PAR1")
         raise error("stop")
     assert _entries(tmp_path) == []
+    assert info.value.__notes__ == [f"nothing was written to {target}"]  # the CLI says it
 
 
 @pytest.mark.parametrize("raised", [
@@ -84,10 +100,10 @@ def test_output_folder_exists_without_overwrite(tmp_path: Path) -> None:
     assert _entries(target) == ["old.txt"]
 
 
-def test_output_folder_overwrite_replaces(tmp_path: Path) -> None:
+@pytest.mark.parametrize("marker", OUTPUT_MARKERS)
+def test_output_folder_overwrite_replaces(tmp_path: Path, marker: str) -> None:
     target = tmp_path / "out"
-    target.mkdir()
-    (target / "old.txt").write_text("old")
+    _earlier_output(target, marker)  # tables, adjust or a run bundle
     with OutputFolder(target, overwrite=True) as folder:
         (folder.path / "new.txt").write_text("new")
         assert (target / "old.txt").exists()  # old results stay until the end
@@ -95,14 +111,106 @@ def test_output_folder_overwrite_replaces(tmp_path: Path) -> None:
     assert _entries(tmp_path) == ["out"]
 
 
-def test_output_folder_overwrite_error_keeps_old(tmp_path: Path) -> None:
+def test_output_folder_overwrite_replaces_an_empty_folder(tmp_path: Path) -> None:
     target = tmp_path / "out"
     target.mkdir()
-    (target / "old.txt").write_text("old")
+    with OutputFolder(target, overwrite=True) as folder:
+        (folder.path / "new.txt").write_text("new")
+    assert _entries(target) == ["new.txt"]
+
+
+@pytest.mark.parametrize("overwrite", [False, True])
+@pytest.mark.parametrize("contents", [
+    {"important/model.hdf": "data"},
+    {"notes.txt": "x", "tables_summary.json/x": "a folder of that name is no marker"},
+])
+def test_output_folder_never_replaces_other_files(tmp_path: Path, overwrite: bool,
+                                                  contents: dict[str, str]) -> None:
+    # a folder that holds none of the files an ntrans job writes at its top is someone's
+    # data: refused with or without overwrite, before the job does any work
+    target = tmp_path / "out"
+    for name, text in contents.items():
+        (target / name).parent.mkdir(parents=True, exist_ok=True)
+        (target / name).write_text(text)
+    error = OutputError if overwrite else OutputExistsError
+    with pytest.raises(error, match="does not look like ntrans output") as info, \
+            OutputFolder(target, overwrite=overwrite):
+        pytest.fail("the body must not run")  # pragma: no cover
+    assert "--overwrite" not in str(info.value)  # it would not help
+    assert _entries(tmp_path) == ["out"]
+    for name, text in contents.items():
+        assert (target / name).read_text() == text
+
+
+def test_output_folder_overwrite_error_keeps_old(tmp_path: Path) -> None:
+    target = tmp_path / "out"
+    _earlier_output(target)
     with pytest.raises(ValueError), OutputFolder(target, overwrite=True) as folder:
         (folder.path / "new.txt").write_text("new")
         raise ValueError("boom")
-    assert _entries(target) == ["old.txt"]
+    assert _entries(target) == ["old.txt", "tables_summary.json"]
+    assert _entries(tmp_path) == ["out"]
+
+
+def test_output_folder_interrupt_while_removing_old_says_written(tmp_path: Path,
+                                                                monkeypatch) -> None:
+    # an interrupt after the new folder is in place: the old results are still removed
+    # and the note says the outputs were written
+    import shutil
+
+    target = tmp_path / "out"
+    _earlier_output(target)
+    real_rmtree = shutil.rmtree
+    calls = []
+
+    def interrupted_once(path, *args, **kwargs):
+        calls.append(Path(path).name)
+        if len(calls) == 1:
+            raise KeyboardInterrupt
+        return real_rmtree(path, *args, **kwargs)
+
+    with pytest.raises(KeyboardInterrupt) as info, OutputFolder(target, overwrite=True) as folder:
+        (folder.path / "new.txt").write_text("new")
+        monkeypatch.setattr(shutil, "rmtree", interrupted_once)
+    assert calls[0].startswith(".out.old-")
+    assert _entries(target) == ["new.txt"]
+    assert _entries(tmp_path) == ["out"]
+    assert info.value.__notes__ == [f"the outputs were written to {target}"]
+
+
+def _dead_pid() -> int:
+    """The id of a process that has ended (a child that exited and was reaped)."""
+    child = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"],
+                           capture_output=True, text=True, check=True)
+    return int(child.stdout)
+
+
+def test_stale_staging_of_a_dead_run_is_removed_a_live_one_kept(tmp_path: Path) -> None:
+    from ntrans.outputs import _host_tag
+
+    host, dead = _host_tag(), _dead_pid()
+    names = {
+        "dead": f".out.tmp-{host}-{dead}-0123abcd",
+        "live": f".out.tmp-{host}-{os.getpid()}-0123abcd",  # this test's own process
+        "other host": f".out.tmp-not-{host}-{dead}-0123abcd",  # cannot tell: kept
+        "no pid": ".out.tmp-0123abcd",  # named before process ids were written: kept
+        "other output": f".other.tmp-{host}-{dead}-0123abcd",
+    }
+    for name in names.values():
+        (tmp_path / name).mkdir()
+        (tmp_path / name / "half.parquet").write_bytes(b"PAR1")
+    assert remove_stale_staging(tmp_path / "out") == [tmp_path / names["dead"]]
+    assert _entries(tmp_path) == sorted(n for k, n in names.items() if k != "dead")
+
+
+def test_output_folder_removes_stale_staging_on_enter(tmp_path: Path) -> None:
+    from ntrans.outputs import _host_tag
+
+    stale = tmp_path / f".out.tmp-{_host_tag()}-{_dead_pid()}-0123abcd"
+    stale.mkdir()
+    with OutputFolder(tmp_path / "out") as folder:
+        (folder.path / "a.txt").write_text("x")
+        assert not stale.exists()
     assert _entries(tmp_path) == ["out"]
 
 
@@ -137,6 +245,15 @@ def test_output_folder_refuses_file_and_cwd(tmp_path: Path, monkeypatch) -> None
     with pytest.raises(OutputError):  # never replace the folder the user works in
         OutputFolder(".", overwrite=True).__enter__()
     assert _entries(tmp_path) == ["out"]
+
+
+def test_output_folder_refuses_home_even_with_a_marker(tmp_path: Path, monkeypatch) -> None:
+    home = tmp_path / "home"
+    _earlier_output(home, "manifest.json")
+    monkeypatch.setenv("HOME", str(home))
+    with pytest.raises(OutputError, match="home"):
+        OutputFolder(home, overwrite=True).__enter__()
+    assert _entries(home) == ["manifest.json", "old.txt"]
 
 
 def test_output_folder_creates_parents_and_path_outside_block(tmp_path: Path) -> None:

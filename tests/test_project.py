@@ -15,7 +15,13 @@ import shapely
 from conftest import grid_polygons, write_cells, write_dem
 
 from ntrans import project as proj
-from ntrans.errors import InputFileError, NtransWarning, OutputExistsError, ProjectFileError
+from ntrans.errors import (
+    InputFileError,
+    NtransWarning,
+    OutputError,
+    OutputExistsError,
+    ProjectFileError,
+)
 
 BASE = """
 [inputs]
@@ -426,3 +432,32 @@ def test_demo_project_is_valid_and_names_the_demo_files():
     assert names == set(DEMO_FILES)
     assert (project.families["source"], project.families["target"]) == ("flat", "subgrid")
     assert project.inputs["class_field"] == "landcover"
+
+
+@pytest.mark.parametrize("overwrite", [None, True])  # None: the project file says true
+def test_run_never_replaces_a_folder_of_other_files(tmp_path, overwrite):
+    project = write_small_project(tmp_path, extra="overwrite = true")
+    (tmp_path / "bundle" / "important").mkdir(parents=True)
+    (tmp_path / "bundle" / "important" / "model.hdf").write_text("data")
+    with pytest.raises(OutputError, match="does not look like ntrans output"):
+        proj.run_project(project, overwrite=overwrite)
+    assert (tmp_path / "bundle" / "important" / "model.hdf").read_text() == "data"
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".bundle")]
+
+
+@pytest.mark.parametrize(("overwrite", "error"), [(False, OutputExistsError), (True, OutputError)])
+def test_run_refuses_a_zip_of_other_files_before_it_starts(tmp_path, monkeypatch, overwrite,
+                                                           error):
+    project = write_small_project(tmp_path, extra="zip = true")
+    (tmp_path / "bundle.zip").write_bytes(b"someone's archive")
+
+    def not_reached(*args, **kwargs):
+        raise AssertionError("the run started")
+
+    import ntrans.tables
+
+    monkeypatch.setattr(ntrans.tables, "build_tables", not_reached)
+    with pytest.raises(error, match="not the zip of an ntrans bundle"):
+        proj.run_project(project, overwrite=overwrite)
+    assert (tmp_path / "bundle.zip").read_bytes() == b"someone's archive"
+    assert not (tmp_path / "bundle").exists()

@@ -258,7 +258,7 @@ def test_partial_coverage_warns(tmp_path):
 def test_output_exists_and_overwrite(case, tmp_path):
     dem, cells, _, _ = case
     out = tmp_path / "out"
-    out.mkdir()
+    build_tables(dem, cells, out=out, stages="10")  # an earlier run
     (out / "old.txt").write_text("x")
     with pytest.raises(OutputExistsError):
         build_tables(dem, cells, out=out, stages="11")

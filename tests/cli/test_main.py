@@ -1,12 +1,18 @@
 """The command group: help, version, error handling."""
 
 import logging
+import os
+import signal
+import subprocess
+import sys
+from pathlib import Path
 
 import click
 import pytest
 from click.testing import CliRunner
 
 import cli.main as main_module
+import ntrans
 from ntrans.cautions import CAUTIONS
 from ntrans.errors import InputError
 
@@ -179,3 +185,67 @@ def test_quiet_after_a_real_command(runner, tmp_path):
     result = runner.invoke(main_module.cli, ["init", str(tmp_path / "p.toml"), "-q"])
     assert result.exit_code == 0, result.output
     assert (tmp_path / "p.toml").is_file()
+
+
+# ------------------------------------------------------------------------ interrupts
+
+#: a command that writes into its output's staging folder, says so, then waits to be
+#: stopped (run as a script, imported again by the command group as ``slow_job``)
+_SLOW_JOB = """
+import sys
+import time
+
+import click
+
+from ntrans.outputs import OutputFolder
+
+
+@click.command("slow")
+@click.argument("out")
+def command(out):
+    with OutputFolder(out) as folder:
+        (folder.path / "half.parquet").write_bytes(b"PAR1")
+        print("writing", flush=True)
+        time.sleep(60)
+
+
+if __name__ == "__main__":
+    import cli.main
+
+    cli.main.COMMANDS["slow"] = "slow_job"
+    cli.main.main(["-q", "slow", sys.argv[1]])
+"""
+
+
+@pytest.mark.parametrize(("number", "exit_code"), [(signal.SIGTERM, 143), (signal.SIGINT, 130)])
+def test_a_stopped_job_leaves_no_staging_folder(tmp_path, number, exit_code):
+    # SIGTERM (a batch system, timeout) stops a job as Ctrl-C does: the staging folder is
+    # removed, one line says nothing was written, exit code 128 + the signal's number
+    script = tmp_path / "slow_job.py"
+    script.write_text(_SLOW_JOB, encoding="utf-8")
+    out = tmp_path / "job" / "out"
+    root = Path(ntrans.__file__).resolve().parents[1]  # this checkout's cli and ntrans
+    env = {**os.environ, "PYTHONPATH": str(root), "PYTHONDONTWRITEBYTECODE": "1"}
+    child = subprocess.Popen([sys.executable, str(script), str(out)], env=env, text=True,
+                             stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    try:
+        assert child.stdout.readline() == "writing\n"  # the staging folder holds a file
+        assert [p.name for p in out.parent.iterdir()][0].startswith(".out.tmp-")
+        child.send_signal(number)
+        _, stderr = child.communicate(timeout=30)
+    finally:
+        if child.poll() is None:  # pragma: no cover - only when the test fails
+            child.kill()
+            child.communicate()
+    assert child.returncode == exit_code, stderr
+    assert stderr.splitlines() == [
+        f"ntrans: interrupted ({signal.Signals(number).name}); nothing was written to {out}"
+    ]
+    assert list(out.parent.iterdir()) == []
+
+
+def test_signal_handlers_are_restored_after_a_command(runner, failing_command):
+    stops = (signal.SIGINT, signal.SIGTERM)
+    before = [signal.getsignal(n) for n in stops]
+    runner.invoke(main_module.cli, ["boom"])
+    assert [signal.getsignal(n) for n in stops] == before

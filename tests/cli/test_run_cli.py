@@ -167,3 +167,13 @@ def test_demo_prints_report_and_bundle_then_the_cautions(runner, tmp_path, monke
     lines = [line for line in result.stdout.splitlines() if line.strip()]
     assert lines[-len(CAUTIONS):] == [f"Caution: {c}" for c in CAUTIONS]
     assert (out / "report.html").is_file()
+    # run again: the earlier demo bundle is replaced, a folder of other files never is
+    again = runner.invoke(cli, ["-q", "demo", "--out", str(out)])
+    assert again.exit_code == 0, again.output
+    other = tmp_path / "documents"
+    other.mkdir()
+    (other / "notes.txt").write_text("mine")
+    refused = runner.invoke(cli, ["-q", "demo", "--out", str(other)])
+    assert refused.exit_code == 2
+    assert "does not look like ntrans output" in _one_error_line(refused)
+    assert [p.name for p in other.iterdir()] == ["notes.txt"]

@@ -185,15 +185,30 @@ def test_existing_output_needs_overwrite(runner, inputs, tmp_path):
     dem, cells = inputs
     out = tmp_path / "out"
     out.mkdir()
+    (out / "tables_summary.json").write_text("{}")  # an earlier tables run
     (out / "keep.txt").write_text("old")
     result = runner.invoke(cli, _args(dem, cells, out))
     assert result.exit_code == 2
     assert "--overwrite" in _one_error_line(result)
-    assert sorted(p.name for p in out.iterdir()) == ["keep.txt"]
+    assert sorted(p.name for p in out.iterdir()) == ["keep.txt", "tables_summary.json"]
     result = runner.invoke(cli, _args(dem, cells, out, "--overwrite"))
     assert result.exit_code == 0, result.output
     assert not (out / "keep.txt").exists()
     assert (out / "cell_stage.parquet").is_file()
+
+
+def test_overwrite_refuses_a_folder_that_is_not_ntrans_output(runner, inputs, tmp_path):
+    dem, cells = inputs
+    out = tmp_path / "danger"
+    (out / "important").mkdir(parents=True)
+    (out / "important" / "model.hdf").write_text("data")
+    result = runner.invoke(cli, _args(dem, cells, out, "--overwrite"))
+    assert result.exit_code == 2
+    line = _one_error_line(result)
+    assert "does not look like ntrans output" in line and "remove it yourself" in line
+    assert (out / "important" / "model.hdf").read_text() == "data"
+    assert sorted(p.name for p in tmp_path.iterdir()) == sorted(["cells.gpkg", "danger",
+                                                                 "dem.tif"])
 
 
 def test_invalid_polygon_repaired_with_warning(runner, tmp_path, builders):
