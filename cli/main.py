@@ -129,10 +129,31 @@ def cli(ctx: click.Context, verbose: int, quiet: bool, debug: bool) -> None:
     console.setFormatter(_ConsoleFormatter())
     logging.basicConfig(handlers=[console], force=True)
     logging.captureWarnings(True)
+    # a job made of steps (ntrans run: tables, then adjust) may warn of the same thing in
+    # each; the console shows each warning once per command
+    warnings_log = logging.getLogger("py.warnings")
+    once = _EachWarningOnce()
+    warnings_log.addFilter(once)
+    ctx.call_on_close(lambda: warnings_log.removeFilter(once))
     options.set_verbosity(ctx, verbose=verbose, quiet=quiet, debug=debug)
     # log lines written while a progress bar is up: clear the bar, print the line, redraw
     # the bar below it (else the line is appended to the bar's and the bar is left behind)
     ctx.with_resource(logging_redirect_tqdm())
+
+
+class _EachWarningOnce(logging.Filter):
+    """Let a warning's text through the first time only."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self._seen: set[str] = set()
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        text = record.getMessage()
+        if text in self._seen:
+            return False
+        self._seen.add(text)
+        return True
 
 
 class _ConsoleFormatter(logging.Formatter):

@@ -5,6 +5,7 @@ import os
 import signal
 import subprocess
 import sys
+import warnings
 from pathlib import Path
 
 import click
@@ -121,6 +122,30 @@ def test_warnings_show_their_category_not_the_logger(runner, monkeypatch):
     assert "WARNING PartialCoverageWarning: 2 cells lie partly outside the DEM" in lines
     assert "INFO ntrans.tables: tables written" in lines
     assert "py.warnings" not in result.output
+
+
+def test_a_warning_repeated_by_a_later_step_shows_once(runner, monkeypatch):
+    # ntrans run's steps (tables, then adjust) each warn of cells off the DEM, from two
+    # places in the code: the console shows it once per command, and again in the next
+    from ntrans.errors import PartialCoverageWarning, warn
+
+    @click.command("steps")
+    def steps():
+        warn("2 cells lie partly outside the DEM", PartialCoverageWarning)  # a first step
+        warn("2 cells lie partly outside the DEM", PartialCoverageWarning)  # a second step
+        warn("3 cells lie partly outside the DEM", PartialCoverageWarning)
+
+    monkeypatch.setitem(main_module.COMMANDS, "steps", "cli.main")
+    monkeypatch.setattr(main_module, "command", steps, raising=False)
+    for _ in range(2):
+        logging.captureWarnings(False)  # as in a fresh process (see above)
+        with warnings.catch_warnings():
+            warnings.simplefilter("always")  # Python's own once-per-place rule aside
+            result = runner.invoke(main_module.cli, ["steps"])
+        assert result.exit_code == 0, result.output
+        assert result.output.count("2 cells lie partly outside the DEM") == 1
+        assert result.output.count("3 cells lie partly outside the DEM") == 1
+    assert not logging.getLogger("py.warnings").filters  # removed when each command ended
 
 
 def test_every_command_takes_the_log_options_after_its_name(runner):
