@@ -72,13 +72,19 @@ def test_uniform_n_run_prints_summary(runner, inputs, tmp_path):
     assert "at_bound:" not in printed
 
 
-def test_class_polygons_run(runner, inputs, tmp_path, builders):
-    dem, cells = inputs
+def _two_classes(builders, tmp_path, **kw):
+    """Class polygons 'a' (west half) and 'b' (east half) with their n table."""
     classes = builders.write_cells(tmp_path / "classes.gpkg",
                                    [shapely.box(0, 0, 10, 20), shapely.box(10, 0, 20, 20)],
-                                   id_field=None, attributes={"kind": ["a", "b"]})
+                                   id_field=None, attributes={"kind": ["a", "b"]}, **kw)
     table = tmp_path / "n.csv"
     table.write_text("class,n\na,0.03\nb,0.05\n")
+    return classes, table
+
+
+def test_class_polygons_run(runner, inputs, tmp_path, builders):
+    dem, cells = inputs
+    classes, table = _two_classes(builders, tmp_path)
     out = tmp_path / "out"
     result = runner.invoke(cli, ["-q", "adjust", "--dem", str(dem), "--cells", str(cells),
                                  "--classes", str(classes), "--class-field", "kind",
@@ -112,11 +118,7 @@ def test_class_polygons_from_a_file_of_several_layers(runner, inputs, tmp_path, 
 
 def test_class_polygons_without_crs_exit_2(runner, inputs, tmp_path, builders):
     dem, cells = inputs
-    classes = builders.write_cells(tmp_path / "classes.gpkg",
-                                   [shapely.box(0, 0, 10, 20), shapely.box(10, 0, 20, 20)],
-                                   id_field=None, attributes={"kind": ["a", "b"]}, crs=None)
-    table = tmp_path / "n.csv"
-    table.write_text("class,n\na,0.03\nb,0.05\n")
+    classes, table = _two_classes(builders, tmp_path, crs=None)
     out = tmp_path / "out"
     result = runner.invoke(cli, ["-q", "adjust", "--dem", str(dem), "--cells", str(cells),
                                  "--classes", str(classes), "--class-field", "kind",
@@ -154,25 +156,18 @@ def test_bad_roughness_exit_2(runner, inputs, tmp_path, builders, rows, polys, k
     assert _nothing_written(out)
 
 
-@pytest.mark.parametrize("value", ["0", "-0.02", "abc"])
-def test_bad_uniform_n_exit_2(runner, inputs, tmp_path, value):
+@pytest.mark.parametrize(("value", "start"), [
+    ("0", "the --n option"), ("-0.02", "the --n option"), ("abc", "the --n option"),
+    # outside the fit's bounds (0.005-1): said with the value given
+    ("35", "the --n option gives n 35"), ("0.0004", "the --n option gives n 0.0004"),
+])
+def test_bad_uniform_n_exit_2(runner, inputs, tmp_path, value, start):
     dem, cells = inputs
     out = tmp_path / "out"
     result = runner.invoke(cli, ["-q", "adjust", "--dem", str(dem), "--cells", str(cells),
                                  "--n", value, "--depths", "1", "--out", str(out)])
     assert result.exit_code == 2
-    assert _one_error_line(result).startswith("ntrans: error: the --n option")
-    assert _nothing_written(out)
-
-
-@pytest.mark.parametrize("value", ["35", "0.0004"])
-def test_uniform_n_outside_the_fit_bounds_exit_2(runner, inputs, tmp_path, value):
-    dem, cells = inputs
-    out = tmp_path / "out"
-    result = runner.invoke(cli, ["-q", "adjust", "--dem", str(dem), "--cells", str(cells),
-                                 "--n", value, "--depths", "1", "--out", str(out)])
-    assert result.exit_code == 2
-    assert _one_error_line(result).startswith(f"ntrans: error: the --n option gives n {value}")
+    assert _one_error_line(result).startswith(f"ntrans: error: {start}")
     assert _nothing_written(out)
 
 
