@@ -62,8 +62,8 @@ class LazyGroup(click.Group):
                     raise
                 click.echo(f"ntrans: error: {exc}", err=True)
                 ctx.exit(exc.exit_code)
-            if received:  # the signal came while the command was finishing
-                _exit_interrupted(ctx, received, None)
+            if received:  # the signal came once the command's work was done
+                _exit_interrupted(ctx, received, None, "its work was already done")
             return result
 
 
@@ -94,14 +94,15 @@ def _stop_on_signals() -> Iterator[list[int]]:
             signal.signal(number, signal.SIG_DFL if handler is None else handler)
 
 
-def _exit_interrupted(ctx: click.Context, received: list[int], exc: BaseException | None
-                      ) -> None:
-    """Say the command was interrupted and what was written; exit with 128 + signal."""
+def _exit_interrupted(ctx: click.Context, received: list[int], exc: BaseException | None,
+                      done: str | None = None) -> None:
+    """Say the command was interrupted and what was written (the outermost output
+    folder's note on ``exc``, or ``done``); exit with 128 + the signal's number."""
     number = received[0] if received else signal.SIGINT
     if exc is not None and ctx.meta.get("ntrans.debug"):
         traceback.print_exception(exc)
-    notes = getattr(exc, "__notes__", None) or []
-    outcome = f"; {notes[-1]}" if notes else ""  # the outermost output folder's note
+    notes = getattr(exc, "__notes__", None) or ([done] if done else [])
+    outcome = f"; {notes[-1]}" if notes else ""
     click.echo(f"ntrans: interrupted ({signal.Signals(number).name}){outcome}", err=True)
     ctx.exit(128 + number)
 

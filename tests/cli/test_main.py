@@ -269,6 +269,25 @@ def test_a_stopped_job_leaves_no_staging_folder(tmp_path, number, exit_code):
     assert list(out.parent.iterdir()) == []
 
 
+def test_a_signal_swallowed_by_the_work_still_stops_with_its_code(runner, monkeypatch):
+    # a library may catch the interrupt and go on; the command then ends, but it was told
+    # to stop: exit 128 + the signal's number, saying its work was done
+    @click.command("stubborn")
+    def stubborn():
+        try:
+            os.kill(os.getpid(), signal.SIGTERM)
+        except KeyboardInterrupt:
+            pass
+        click.echo("finished")
+
+    monkeypatch.setitem(main_module.COMMANDS, "stubborn", "cli.main")
+    monkeypatch.setattr(main_module, "command", stubborn, raising=False)
+    result = runner.invoke(main_module.cli, ["stubborn"])
+    assert result.exit_code == 143
+    assert result.stdout == "finished\n"
+    assert result.stderr.strip() == "ntrans: interrupted (SIGTERM); its work was already done"
+
+
 def test_signal_handlers_are_restored_after_a_command(runner, failing_command):
     stops = (signal.SIGINT, signal.SIGTERM)
     before = [signal.getsignal(n) for n in stops]
