@@ -196,6 +196,13 @@ class Project:
         return flat
 
 
+def _as_run(parameters: dict[str, Any], out: Path, overwrite: bool) -> dict[str, Any]:
+    """The project's parameters with the output folder and overwrite the run used (a call
+    or ``--out`` / ``--overwrite`` may override the file's)."""
+    outputs = {**parameters.get("outputs", {}), "out": str(out), "overwrite": bool(overwrite)}
+    return {**parameters, "outputs": outputs}
+
+
 def _as_plain(value: Any) -> Any:
     if isinstance(value, Path):
         return str(value)
@@ -569,7 +576,8 @@ def run_project(
             bundle.write_manifest(
                 tmp,
                 inputs=inputs,
-                parameters={**project.parameters(), "effective": effective},
+                parameters={**_as_run(project.parameters(), target, overwrite),
+                            "effective": effective},
                 units=summary.get("units", {}),
                 extra={
                     "project_file": {

@@ -351,6 +351,15 @@ def test_manifest_hashes_every_output_and_input(two_runs):
     assert proj.load_project(manifest["project_file"]["path"]).families["target"] == "subgrid"
 
 
+def test_manifest_records_the_output_folder_the_run_used(two_runs):
+    # the second run's out argument overrides the project file's: the manifest records
+    # where the bundle went, not where the file pointed
+    first, second = two_runs
+    for result in (first, second):
+        outputs = json.loads(result.manifest.read_text())["parameters"]["outputs"]
+        assert Path(outputs["out"]).resolve() == result.folder.resolve()
+
+
 def test_two_runs_give_identical_outputs_apart_from_the_time(two_runs):
     first, second = two_runs
     a = json.loads(first.manifest.read_text())
