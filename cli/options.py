@@ -6,6 +6,7 @@ the library's keyword name, so ``build_tables(**kwargs)`` takes them as they com
 
 from __future__ import annotations
 
+import os
 from collections.abc import Callable
 from typing import Any
 
@@ -144,7 +145,7 @@ csv = click.option(
     "--csv",
     is_flag=True,
     default=False,
-    help="Also write the stage tables as CSV (cell_stage.csv, face_stage.csv).",
+    help="Also write every Parquet table as CSV beside it (the same name with .csv).",
 )
 
 tile_size = click.option(
@@ -249,6 +250,16 @@ def set_verbosity(ctx: click.Context, *, verbose: int = 0, quiet: bool = False,
         level = logging.INFO if meta["ntrans.verbose"] == 0 else logging.DEBUG
     logging.getLogger().setLevel(level)
     warnings.formatwarning = located_warning if meta["ntrans.debug"] else one_line_warning
+    # a local Dask cluster logs its start and every worker at INFO: shown with -vv only.
+    # Dask reads its logging levels from the environment when it is imported (later, and
+    # in the worker processes); a level the user set there is kept
+    if DASK_LOG_ENV not in os.environ or meta.get("ntrans.dask_log_env"):
+        os.environ[DASK_LOG_ENV] = "info" if level <= logging.DEBUG else "warning"
+        meta["ntrans.dask_log_env"] = True
+
+
+#: environment variable that sets the level of Dask's ``distributed`` loggers
+DASK_LOG_ENV = "DASK_LOGGING__DISTRIBUTED"
 
 
 def one_line_warning(message, category, filename, lineno, line=None) -> str:

@@ -148,6 +148,26 @@ def test_a_warning_repeated_by_a_later_step_shows_once(runner, monkeypatch):
     assert not logging.getLogger("py.warnings").filters  # removed when each command ended
 
 
+@pytest.mark.parametrize(("args", "user", "expected"), [
+    (["-q"], None, "warning"), ([], None, "warning"), (["-vv"], None, "info"),
+    (["-v", "verify", "-v"], None, "info"),  # the flags add up wherever they are given
+    ([], "error", "error"),  # a level the user set in the environment is kept
+])
+def test_dask_logs_follow_the_verbosity(runner, monkeypatch, tmp_path, args, user, expected):
+    # a local cluster's start-up lines (INFO) only with -vv; Dask takes the level from the
+    # environment when it is imported, in this process and in its workers
+    from cli.options import DASK_LOG_ENV
+
+    monkeypatch.setenv(DASK_LOG_ENV, "unset")  # restored after the test, whatever it was
+    if user is None:
+        monkeypatch.delenv(DASK_LOG_ENV)
+    else:
+        monkeypatch.setenv(DASK_LOG_ENV, user)
+    command = args if "verify" in args else [*args, "verify"]
+    runner.invoke(main_module.cli, [*command, str(tmp_path)])
+    assert os.environ[DASK_LOG_ENV] == expected
+
+
 def test_every_command_takes_the_log_options_after_its_name(runner):
     for name in main_module.COMMANDS:
         if main_module._available(name):
