@@ -377,7 +377,8 @@ def check_zip_target(folder: str | os.PathLike[str], *, overwrite: bool) -> None
         )
     if not overwrite:
         raise OutputExistsError(
-            f"zip '{dest}' exists; pass --overwrite to replace it or choose another folder"
+            f"zip '{dest}' exists; pass --overwrite (overwrite=True from Python) to replace "
+            "it or choose another folder"
         )
 
 

@@ -184,7 +184,8 @@ class OutputFolder:
             refusal = _replace_refusal(final)
             if not self.overwrite:  # suggest --overwrite only where it would help
                 raise OutputExistsError(refusal or (
-                    f"output folder '{final}' exists; pass --overwrite to replace it or choose "
+                    f"output folder '{final}' exists; pass --overwrite (overwrite=True from "
+                    "Python) to replace it or choose "
                     "another folder"
                 ))
             if refusal is not None:
@@ -247,7 +248,8 @@ class OutputFolder:
         if final.exists() or final.is_symlink():
             if not self.overwrite:  # appeared while we were working
                 raise OutputExistsError(
-                    f"output folder '{final}' appeared while writing; pass --overwrite to replace "
+                    f"output folder '{final}' appeared while writing; pass --overwrite "
+                    "(overwrite=True from Python) to replace "
                     "it or choose another folder"
                 )
             old = final.parent / f".{final.name}.old-{secrets.token_hex(4)}"
