@@ -35,6 +35,14 @@ def echo_summary(result: Any, *, extra: tuple[str, ...] = ()) -> None:
             f"\nmedian stage error: {bias['median']:+.3f} {unit} with n carried over, "
             f"{after['median']:+.3f} {unit} with the adjusted n"
         )
+        if bias.get("weighted_mean_abs") is not None and after.get("weighted_mean_abs") is not None:
+            worse = after["weighted_mean_abs"] > bias["weighted_mean_abs"]
+            click.echo(
+                f"mean |stage error| weighted by the source conveyance: "
+                f"{bias['weighted_mean_abs']:.3f} {unit} with n carried over, "
+                f"{after['weighted_mean_abs']:.3f} {unit} with the adjusted n"
+                + (" (larger: see the report's remarks)" if worse else "")
+            )
     for line in extra:
         click.echo(line)
     click.echo("")

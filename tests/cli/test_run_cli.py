@@ -143,6 +143,14 @@ def test_run_writes_the_bundle_and_ends_with_the_cautions(runner, tmp_path):
     for name, meaning in FLAG_MEANINGS.items():
         assert (f": {meaning}" in printed) == (name in shown), name
     assert ("flags:" in printed) == bool(shown)
+    # the stage errors as the report gives them: the median, and the mean |error| weighted
+    # by the source conveyance (the fit's own weighting), said larger when it is
+    weighted = [line for line in result.stdout.splitlines()
+                if line.startswith("mean |stage error| weighted by the source conveyance: ")]
+    assert len(weighted) == 1
+    before, after = (float(part.split()[0]) for part in
+                     weighted[0].split(": ", 1)[1].split(", "))
+    assert weighted[0].endswith("(larger: see the report's remarks)") == (after > before)
     again = runner.invoke(cli, ["-q", "run", str(project)])
     assert again.exit_code == 2  # the bundle exists and --overwrite was not given
     _one_error_line(again)
