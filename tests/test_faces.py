@@ -305,3 +305,21 @@ def test_vertical_units_factor_scales_only_the_rise():
     # geometry identity: rise of 1 vertical unit = 3 horizontal units -> P = hypot(4, 3)
     assert t["wetted_perimeter"][0, 0] == pytest.approx(5.0)
     assert t["flow_area"][0, 0] == pytest.approx(2.0)  # horizontal x vertical units
+
+
+def test_stations_do_not_depend_on_the_faces_before():
+    """A face's stations are distances along that face alone (geometry identity: the
+    station of a vertex is the length of the line up to it), bit for bit the same whether
+    other, long faces come before it in the tile or not."""
+    import shapely as _sh
+    from affine import Affine as _Affine
+
+    from ntrans.faces import sample_profiles as _sample
+
+    face = _sh.LineString([(1.1, 1.3), (2.7, 1.3), (2.7, 3.9)])
+    long = _sh.LineString([(0.0, 0.0), (123456.789, 0.1), (0.3, 98765.4321)])
+    z = np.zeros((8, 8))
+    tr = _Affine(1, 0, 0, 0, -1, 8)
+    alone = _sample(np.array([face]), z, tr, 0.5)
+    after = _sample(np.array([long, long, face]), z, tr, 0.5)
+    assert np.array_equal(after.station[after.face == 2], alone.station[alone.face == 0])
