@@ -696,3 +696,23 @@ def cumulative_rows(values):
             for j in range(k):
                 v[i, j] += v[i - 1, j]
     return values
+
+
+def distance_along(seg_len, first):
+    """Per vertex: its distance from its line's first vertex, ``seg_len[k]`` being the
+    length from vertex k to k + 1 and ``first`` marking the first vertex of each line
+    (lines contiguous).  Summed in order within each line only, so a line's distances do
+    not depend on the lines before it (a running sum over all would carry their
+    round-off)."""
+    cdef const double[::1] s = _f64(seg_len)
+    cdef const unsigned char[::1] f = np.ascontiguousarray(first, dtype=np.bool_).view(np.uint8)
+    if f.shape[0] != s.shape[0]:
+        raise ValueError("seg_len and first must have the same length")
+    out_a = np.zeros(s.shape[0])
+    cdef double[::1] out = out_a
+    cdef index_t i
+    with nogil:
+        for i in range(1, s.shape[0]):
+            if not f[i]:
+                out[i] = out[i - 1] + s[i - 1]
+    return out_a

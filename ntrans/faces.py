@@ -323,9 +323,11 @@ def sample_profiles(
     seg_len[~same_next] = 0.0
     # distance of each vertex from its face's start, summed within the face only (a
     # running sum over every face of the tile would make it depend on the tiling)
+    from ._kernels import distance_along
+
     first = np.ones(nv, dtype=bool)
     first[1:] = idx[1:] != idx[:-1]
-    cum = _face_running_sum(seg_len, first)
+    cum = distance_along(seg_len, first)
     m = np.where(same_next, np.maximum(1, np.ceil(seg_len / spacing)), 1).astype(np.int64)
     total = int(m.sum())
     owner = np.repeat(np.arange(nv), m)
@@ -355,18 +357,6 @@ def sample_profiles(
     last = np.flatnonzero(~same_next)  # each face's last vertex
     length[idx[last]] = cum[last]
     return Profiles(face, station, z, n_faces, x, y, length)
-
-
-def _face_running_sum(seg_len: np.ndarray, first: np.ndarray) -> np.ndarray:
-    """Distance of each vertex from its face's first vertex (faces contiguous, ``first``
-    marks their first vertices), added in order within each face so that a face's
-    stations do not depend on the faces before it."""
-    pos = np.arange(first.size) - np.maximum.accumulate(np.where(first, np.arange(first.size), 0))
-    cum = np.zeros(first.size)
-    for j in range(1, int(pos.max()) + 1 if pos.size else 0):  # loop over vertex positions
-        at = np.flatnonzero(pos == j)
-        cum[at] = cum[at - 1] + seg_len[at - 1]
-    return cum
 
 
 def _stage_matrix(stages: np.ndarray, n_faces: int) -> np.ndarray:

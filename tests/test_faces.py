@@ -323,3 +323,22 @@ def test_stations_do_not_depend_on_the_faces_before():
     alone = _sample(np.array([face]), z, tr, 0.5)
     after = _sample(np.array([long, long, face]), z, tr, 0.5)
     assert np.array_equal(after.station[after.face == 2], alone.station[alone.face == 0])
+
+
+@pytest.mark.parametrize("sizes", [[1], [3], [2, 1, 5], [1, 1, 1], [40, 2, 7, 1]])
+def test_distance_along_sums_each_line_alone(sizes):
+    """The compiled distance along lines: each line's running sum of its own segment
+    lengths, starting at 0 at its first vertex (np.cumsum of that line alone, the same
+    additions in the same order: bit for bit)."""
+    from ntrans._kernels import distance_along
+
+    rng = np.random.default_rng(len(sizes))
+    seg = rng.uniform(0.0, 1e4, sum(sizes))
+    first = np.zeros(seg.size, dtype=bool)
+    first[np.cumsum([0, *sizes[:-1]])] = True
+    got = distance_along(seg, first)
+    at = 0
+    for n in sizes:
+        expected = np.concatenate([[0.0], np.cumsum(seg[at:at + n - 1])])
+        assert got[at:at + n].tobytes() == expected.tobytes()
+        at += n
