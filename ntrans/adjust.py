@@ -719,6 +719,7 @@ def adjust_roughness(
         write_csv,
         write_geopackage,
     )
+    from .summaries import cell_medians_over_faces
     from .tables import (
         covered_fractions,
         partial_coverage,
@@ -854,6 +855,7 @@ def adjust_roughness(
                       "dominant_class": "", "n_ratio_lumped": "1", "n_ratio_conveyance_form": "1",
                       "n_ratio_lumped_equal_volume": "1", "n_ratio_conveyance_form_equal_volume": "1",
                       "n_ratio_median": "1", "stage_bias_unadjusted_median": z_unit,
+                      "n_ratio_cell_median": "1",
                       "bed_factor": "1"})
         # a cell's conveyance k V R^(2/3) / n is a discharge times a length
         cell_units = {**units, **dict.fromkeys(CELL_CONVEYANCE_COLUMNS,
@@ -956,13 +958,25 @@ def adjust_roughness(
 
         crs = layer.frame.crs
         covered_fraction = covered_fractions(cell_covered, shapely.area(geoms))
+        # the per-cell figures of the fit domain, as the maps show them: with the faces
+        # fitted, the median over the window and over every face of the cell
+        if domain == "faces":
+            over = cell_medians_over_faces(
+                face_path, cell_ids=ids, values=["n_ratio", "stage_bias_unadjusted"],
+                work_dir=tmp)
+            fit_ratio_med = over["n_ratio"].to_numpy(dtype=float)
+            fit_bias_med = over["stage_bias_unadjusted"].to_numpy(dtype=float)
+        else:
+            fit_ratio_med, fit_bias_med = cell_ratio_med, cell_bias_med
         cell_frame = gpd.GeoDataFrame(
             {"cell_id": ids, "covered_fraction": covered_fraction,
-             "n_ratio_median": cell_ratio_med,
-             "stage_bias_unadjusted_median": cell_bias_med, "bed_factor": cell_bed,
+             "n_ratio_median": fit_ratio_med,
+             "stage_bias_unadjusted_median": fit_bias_med,
+             "n_ratio_cell_median": cell_ratio_med, "bed_factor": cell_bed,
              "dominant_class": cls_names[cell_dom].astype(str)},
             geometry=gpd.GeoSeries(geoms, crs=crs), crs=crs)
-        files.append(write_geopackage(cell_frame, tmp / "cells.gpkg", "cells"))
+        files.append(write_geopackage(cell_frame, tmp / "cells.gpkg", "cells",
+                                      descriptions=cell_layer_descriptions(domain)))
         face_frame = pd.DataFrame(
             {"face_id": np.arange(n_faces, dtype=np.int64),
              "cell_a": ids_series(ids, mesh.cell_a),
@@ -971,7 +985,8 @@ def adjust_roughness(
              "stage_bias_unadjusted_median": face_bias_med,
              "dominant_class": cls_names[face_dom].astype(str)})
         files.append(write_geopackage(face_frame, tmp / "faces.gpkg", "faces",
-                                      encoded=setup.face_geometry, crs=crs))
+                                      encoded=setup.face_geometry, crs=crs,
+                                      descriptions=FACE_LAYER_DESCRIPTIONS))
         if csv:
             files.append(write_csv(face_path, tmp / "face_adjustment.csv"))
             files.append(write_csv(cell_path, tmp / "cell_adjustment.csv"))
@@ -1014,6 +1029,8 @@ def adjust_roughness(
             "seconds": round(seconds, 3),
             "units": {c: units.get(c, "") for c in (*FACE_COLUMNS, *CELL_COLUMNS)},
             "cell_units": {c: cell_units.get(c, "") for c in CELL_COLUMNS},
+            "cell_layer": cell_layer_descriptions(domain),
+            "face_layer": dict(FACE_LAYER_DESCRIPTIONS),
         }
         (tmp / "adjust_summary.json").write_text(json.dumps(summary, indent=2, default=_json_default))
         files.append(tmp / "adjust_summary.json")
@@ -1135,6 +1152,49 @@ def _descriptions() -> dict[str, str]:
                                "fitted n",
     })
     return d
+
+
+#: what each column of the adjustment's ``faces.gpkg`` holds
+FACE_LAYER_DESCRIPTIONS: dict[str, str] = {
+    "face_id": "face number, as in face_adjustment.parquet",
+    "cell_a": "cell id on one side of the face",
+    "cell_b": "cell id on the other side (empty on the mesh boundary)",
+    "length": "face length in plan (horizontal unit)",
+    "n_ratio_median": "median over the window of the face's n ratio (n target / n source at "
+                      "equal conveyance, face_adjustment.parquet's n_ratio)",
+    "stage_bias_unadjusted_median": "median over the window of the face's stage bias with n "
+                                    "carried over unchanged (vertical unit)",
+    "dominant_class": "roughness class with the largest length along the face",
+}
+
+
+def cell_layer_descriptions(domain: str) -> dict[str, str]:
+    """What each column of the adjustment's ``cells.gpkg`` holds when the class fit ran on
+    ``domain`` ("faces" or "cells"): ``n_ratio_median`` and
+    ``stage_bias_unadjusted_median`` are the fit domain's figures, those of the maps."""
+    if domain == "faces":
+        over = "median over the window and over every face of the cell of the face's"
+        table = "face_adjustment.parquet"
+    else:
+        over = "median over the window of the cell's own"
+        table = "cell_adjustment.parquet"
+    return {
+        "cell_id": "cell id, as in the cells input",
+        "covered_fraction": "share of the cell over valid DEM pixels",
+        "n_ratio_median": f"{over} n ratio (n target / n source at equal conveyance, {table}'s "
+                          "n_ratio), as on maps/n_ratio.tif",
+        "stage_bias_unadjusted_median": f"{over} stage bias with n carried over unchanged "
+                                        "(target minus source stage, vertical unit), as on "
+                                        "maps/stage_bias.tif",
+        "n_ratio_cell_median": "median over the window of the cell's own n ratio at equal cell "
+                               "conveyance (k V R^(2/3) / n, cell_adjustment.parquet's n_ratio)"
+                               + (", equal to n_ratio_median with the cells fitted"
+                                  if domain == "cells" else
+                                  "; the faces were fitted, so it can differ from "
+                                  "n_ratio_median, even in direction"),
+        "bed_factor": "wetted bed area / wet plan area, median over the window",
+        "dominant_class": "roughness class with the largest area in the cell",
+    }
 
 
 #: conveyance columns of cell_adjustment.parquet (L^4/s: k V R^(2/3) / n)

@@ -451,7 +451,8 @@ def quicklook_png(
 # ------------------------------------------------------------------------- orchestration
 
 #: name -> (title, colour-bar label template, colour scale (see :func:`quicklook_png`),
-#: description)
+#: description template); ``{over}`` and ``{short}`` in them say what a cell's value is a
+#: median of, for the fit domain (:data:`CELL_MEDIAN_OF`)
 MAP_SPECS: dict[str, tuple[str, str, Literal["linear", "diverging", "ratio"], str]] = {
     "friction_factor": (
         "Where the terrain adds wetted bed (bed area / wet area)",
@@ -461,17 +462,35 @@ MAP_SPECS: dict[str, tuple[str, str, Literal["linear", "diverging", "ratio"], st
     ),
     "n_ratio": (
         "Change of Manning's n needed per cell (target / source)",
-        "n ratio, median of the cell's faces (-, log scale)",
+        "n ratio, {short} (-, log scale)",
         "ratio",
-        "n_target / n_source, median over the window of the cell's faces (dimensionless)",
+        "n_target / n_source, {over} (dimensionless)",
     ),
     "stage_bias": (
         "Stage error if n is carried over unchanged",
         "stage bias ({unit})",
         "diverging",
-        "Target minus source stage with n carried over unchanged, median of the cell's faces",
+        "Target minus source stage with n carried over unchanged, {over}",
     ),
 }
+
+#: fit domain -> (``{over}``, ``{short}``) of :data:`MAP_SPECS`: what the n ratio and
+#: stage bias of a cell are medians of
+CELL_MEDIAN_OF: dict[str, tuple[str, str]] = {
+    "faces": ("median over the window and over the cell's faces", "median of the cell's faces"),
+    "cells": ("median over the window of the cell's own values", "median of the cell's own values"),
+}
+
+
+def map_texts(name: str, fit_domain: str = "faces") -> tuple[str, str, str, str]:
+    """Title, colour-bar label template, colour scale and band description of map ``name``
+    when the class fit ran on ``fit_domain`` ("faces" or "cells")."""
+    if fit_domain not in CELL_MEDIAN_OF:
+        raise ValueError(f"fit domain {fit_domain!r}: give 'faces' or 'cells'")
+    over, short = CELL_MEDIAN_OF[fit_domain]
+    title, label, scale, description = MAP_SPECS[name]
+    return (title, label.replace("{short}", short), scale,
+            description.replace("{over}", over))
 
 
 def write_maps(
@@ -487,6 +506,7 @@ def write_maps(
     faces: Any = None,
     face_values: pd.DataFrame | None = None,
     quicklooks: bool = True,
+    fit_domain: str = "faces",
 ) -> dict[str, Path]:
     """Write the GeoTIFF maps, the PNG quick-looks and the face layer into ``folder``.
 
@@ -505,6 +525,10 @@ def write_maps(
         (indexed by face id) for ``faces.gpkg``.
     quicklooks
         Also draw the PNG quick-looks.
+    fit_domain
+        "faces" or "cells": what the class fit ran on, so what the per-cell ``n_ratio``
+        and ``stage_bias`` are medians of (over the cell's faces, or the cell's own);
+        the band descriptions and colour-bar labels say so.
 
     Returns
     -------
@@ -522,9 +546,11 @@ def write_maps(
     else:
         shape = np.shape(elevation)
     names = [name for name in MAP_SPECS if name in cell_values.columns]
+    texts = {name: map_texts(name, fit_domain) for name in names}
     values = {name: cell_values[name].to_numpy(dtype=float) for name in names}
     _write_map_rasters(out, names, values, geoms, transform=transform, crs=crs, shape=shape,
-                       vertical_unit=vertical_unit)
+                       vertical_unit=vertical_unit,
+                       descriptions={name: texts[name][3] for name in names})
     written: dict[str, Path] = {}
     if quicklooks and names:
         step = max(1, -(-max(shape) // QUICKLOOK_MAX))  # ceil
@@ -534,7 +560,7 @@ def write_maps(
         shade = hillshade(look_z, dx=abs(look_transform.a), dy=abs(look_transform.e))
         index = cell_index_grid(geoms, transform=look_transform, shape=look_shape)
         for name in names:
-            title, label, scale, _ = MAP_SPECS[name]
+            title, label, scale, _ = texts[name]
             written[name] = quicklook_png(
                 out / f"{name}.png", paint(index, values[name]), elevation=look_z,
                 transform=look_transform, title=title, label=label.format(unit=vertical_unit),
@@ -547,8 +573,9 @@ def write_maps(
 
 def _write_map_rasters(out: Path, names: list[str], values: dict[str, np.ndarray],
                        geoms: np.ndarray, *, transform: Any, crs: Any, shape: tuple[int, int],
-                       vertical_unit: str) -> None:
-    """Every map's GeoTIFF, painted window by window from the cells over each window."""
+                       vertical_unit: str, descriptions: dict[str, str] | None = None) -> None:
+    """Every map's GeoTIFF, painted window by window from the cells over each window
+    (band descriptions from ``descriptions``, else :data:`MAP_SPECS` for faces)."""
     import contextlib
 
     import rasterio
@@ -565,7 +592,7 @@ def _write_map_rasters(out: Path, names: list[str], values: dict[str, np.ndarray
         stack.enter_context(rasterio.Env(GDAL_CACHEMAX=MAP_CACHE_BYTES))
         targets = {}
         for name in names:
-            _, _, _, description = MAP_SPECS[name]
+            description = (descriptions or {}).get(name) or map_texts(name)[3]
             dst = stack.enter_context(rasterio.open(
                 out / f"{name}.tif", "w", **_map_profile(rows, cols, transform, crs)))
             dst.set_band_description(1, description)

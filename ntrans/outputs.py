@@ -12,6 +12,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import errno
 import itertools
 import json
@@ -628,6 +629,7 @@ def read_encoded_layer(path: str | os.PathLike[str], columns: list[str] | None =
 def write_geopackage(
     frame: Any, path: str | os.PathLike[str], layer: str, *, chunk_rows: int = 65_536,
     encoded: EncodedGeometry | None = None, crs: Any = None, geometry_name: str = "geometry",
+    descriptions: Mapping[str, str] | None = None,
 ) -> Path:
     """Write a GeoDataFrame as one layer of a GeoPackage (created or appended to).
 
@@ -640,7 +642,8 @@ def write_geopackage(
     as the multi type.  ``encoded``: the frame's geometry already encoded by
     :func:`encode_geometry` (the same rows, in order).  A plain DataFrame (attributes
     only) is written with ``encoded`` as its geometry, in ``crs`` (a pyproj CRS or None),
-    under ``geometry_name``.
+    under ``geometry_name``.  ``descriptions`` (column -> text) go to the GeoPackage's
+    ``gpkg_data_columns`` table (:func:`write_column_descriptions`).
     """
     import geopandas as gpd
     import pyogrio.raw
@@ -672,12 +675,58 @@ def write_geopackage(
             crs=None if crs is None else (f"EPSG:{epsg}" if epsg else crs.to_wkt("WKT1_GDAL")),
             append=target.exists(),
         )
-    except Exception as exc:  # pyogrio / GDAL / Arrow errors
+        if descriptions:
+            write_column_descriptions(target, layer, descriptions)
+    except Exception as exc:  # pyogrio / GDAL / Arrow errors, sqlite errors
         raise OutputError(
             f"GeoPackage '{target}' layer '{layer}' cannot be written ({exc}); check the output "
             "folder"
         ) from exc
     return target
+
+
+def write_column_descriptions(path: str | os.PathLike[str], layer: str,
+                              descriptions: Mapping[str, str]) -> None:
+    """Record what each column of ``layer`` holds in the GeoPackage's ``gpkg_data_columns``
+    table (the GeoPackage schema extension: GIS programs show it as the field's comment).
+    """
+    import sqlite3
+
+    with contextlib.closing(sqlite3.connect(os.fspath(path))) as db, db:
+        db.execute(
+            "CREATE TABLE IF NOT EXISTS gpkg_data_columns (table_name TEXT NOT NULL, "
+            "column_name TEXT NOT NULL, name TEXT, title TEXT, description TEXT, "
+            "mime_type TEXT, constraint_name TEXT, "
+            "CONSTRAINT pk_gdc PRIMARY KEY (table_name, column_name), "
+            "CONSTRAINT gdc_tn UNIQUE (table_name, name))")
+        db.execute(
+            "CREATE TABLE IF NOT EXISTS gpkg_extensions (table_name TEXT, column_name TEXT, "
+            "extension_name TEXT NOT NULL, definition TEXT NOT NULL, scope TEXT NOT NULL, "
+            "CONSTRAINT ge_tce UNIQUE (table_name, column_name, extension_name))")
+        if not db.execute("SELECT 1 FROM gpkg_extensions WHERE table_name = "
+                          "'gpkg_data_columns'").fetchone():
+            db.execute("INSERT INTO gpkg_extensions VALUES ('gpkg_data_columns', NULL, "
+                       "'gpkg_schema', 'http://www.geopackage.org/spec/#extension_schema', "
+                       "'read-write')")
+        columns = {row[1] for row in db.execute(f'PRAGMA table_info("{layer}")')}
+        db.executemany(
+            "INSERT OR REPLACE INTO gpkg_data_columns (table_name, column_name, name, "
+            "description) VALUES (?, ?, ?, ?)",
+            [(layer, c, c, text) for c, text in descriptions.items() if c in columns])
+
+
+def column_descriptions_of(path: str | os.PathLike[str], layer: str) -> dict[str, str]:
+    """Column -> description recorded in a GeoPackage by :func:`write_column_descriptions`
+    (empty when it has none)."""
+    import sqlite3
+
+    with contextlib.closing(sqlite3.connect(os.fspath(path))) as db:
+        try:
+            rows = db.execute("SELECT column_name, description FROM gpkg_data_columns "
+                              "WHERE table_name = ?", (layer,)).fetchall()
+        except sqlite3.OperationalError:  # no such table
+            return {}
+    return {c: d for c, d in rows if d is not None}
 
 
 #: GDAL layer type per shapely type id (a linear ring is written as a line string)

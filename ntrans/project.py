@@ -758,19 +758,18 @@ def _gather(project: Project, folder: Path) -> dict[str, Any]:
     # per-cell map values, in the order of cells.gpkg
     factor = pd.Series(cells["bed_factor"].to_numpy(dtype=float), index=ids)
     cell_values = pd.DataFrame({"friction_factor": factor.to_numpy()})
-    per_cell = {"n_ratio": "n_ratio", "stage_bias_unadjusted": "stage_bias"}
-    if by_cells:  # friction per cell: each cell's own ratio and bias
-        med = summaries.item_medians(cell_path, key="cell_id", values=list(per_cell))
-        for column, name in per_cell.items():
-            cell_values[name] = (med[column].reindex(ids).to_numpy(dtype=float)
-                                 if column in med.columns else np.nan)
-    else:  # over every face of the cell
-        columns = set(summaries.table_columns(face_path))
-        present = [c for c in per_cell if c in columns]
-        med = summaries.cell_medians_over_faces(face_path, cell_ids=ids, values=present,
-                                                work_dir=folder)
-        for column, name in per_cell.items():
-            cell_values[name] = med[column].to_numpy() if column in present else np.nan
+    # the fit domain's medians per cell, as the adjustment wrote them in its cells.gpkg
+    # (over the cell's faces, or the cell's own with friction per cell): the maps show
+    # the same numbers under the same names
+    import pyogrio
+
+    per_cell = {"n_ratio_median": "n_ratio", "stage_bias_unadjusted_median": "stage_bias"}
+    fitted = pyogrio.read_dataframe(adjust / "cells.gpkg", read_geometry=False,
+                                    columns=["cell_id", *per_cell])
+    fitted = fitted.set_index("cell_id").reindex(ids)
+    for column, name in per_cell.items():
+        cell_values[name] = (fitted[column].to_numpy(dtype=float) if column in fitted.columns
+                             else np.nan)
     cols = ["n_ratio", "stage_bias_unadjusted", "stage_bias_adjusted"]
     face_values = summaries.item_medians(face_path, key="face_id", values=cols,
                                          first=["dominant_class"])
@@ -796,7 +795,10 @@ def _gather(project: Project, folder: Path) -> dict[str, Any]:
         "units": units,
         "cells": int(len(cells)),
         "faces": int(len(faces.frame)) if faces is not None else int(len(face_values)),
-        "stages": len(tsum.get("stage_values", [])) or None,
+        # stages per item: in the calibration window (one per water-surface raster), and
+        # in the stage tables
+        "stages": _window_size(asum.get("window")),
+        "table_stages": len(tsum.get("stage_values", [])) or None,
         "classes": int(len(n_by_class)),
         "reference": tsum.get("reference"),
         "stage_mode": mode,
@@ -846,6 +848,7 @@ def _write_maps(data: dict[str, Any], folder: Path) -> dict[str, Path]:
         vertical_unit=_unit_symbol(units["vertical"]),
         faces=faces,
         face_values=data["face_values"] if faces is not None else None,
+        fit_domain="cells" if data["item"] == "cell" else "faces",
     )
     written.pop("faces", None)
     return written
@@ -901,8 +904,39 @@ def _window_text(project: Project) -> str:
     return ""
 
 
+def _window_size(window: Any) -> int | None:
+    """Stages per item in the calibration window of ``adjust_summary.json``'s ``window``."""
+    if not isinstance(window, dict):
+        return None
+    if window.get("mode") == "water_surface":
+        return len(window.get("rasters", [])) or None
+    return len(window.get("values", [])) or None
+
+
+def _stage_counts(summary: Mapping[str, Any]) -> tuple[Any, Any]:
+    """The report's stages per item in the window and, when the window is water-surface
+    rasters, the levels of the stage tables (else None: the tables use the window)."""
+    n, levels = summary.get("stages"), summary.get("table_stages")
+    surfaces = summary.get("window_mode") == "water_surface"
+    if n is None:
+        return None, None
+    if surfaces:
+        window = (f"{n} (one per water-surface raster: each face and cell at its own stage "
+                  "under it)")
+    else:
+        window = n
+    table = None
+    if surfaces and levels:
+        kind = ("depths above each cell's and face's low point"
+                if summary.get("stage_mode") == "depth" else "stages")
+        table = f"{levels} {kind}"
+    return window, table
+
+
 def _report_context(project: Project, data: dict[str, Any]) -> dict[str, Any]:
     import math
+
+    from .report import domain_words
 
     fam = project.families
     asum = data["adjust_summary"]
@@ -931,6 +965,7 @@ def _report_context(project: Project, data: dict[str, Any]) -> dict[str, Any]:
     window = _window_text(project)
     if isinstance(asum.get("window"), dict) and asum["window"].get("mode") == "water_surface":
         window = "water surface rasters " + ", ".join(asum["window"].get("rasters", []))
+    words = domain_words(summary.get("fit_domain"))
     notes = list(data.get("notes", []))
     fit = asum.get("fit", {}) if isinstance(asum.get("fit"), dict) else {}
     if fit and not fit.get("success", True):
@@ -946,11 +981,24 @@ def _report_context(project: Project, data: dict[str, Any]) -> dict[str, Any]:
             else "mean absolute stage error")
     if (before.get(key) is not None and after.get(key) is not None
             and after[key] > before[key]):
+        wide = [str(row.get("class")) for row in classes
+                if "wide_spread" in str(row.get("flags") or "").split(";")]
+        if len(wide) == 1:
+            review = f"review the class flagged wide_spread ({wide[0]}) before using its n"
+        elif wide:
+            review = (f"review the classes flagged wide_spread ({', '.join(wide)}) before "
+                      "using their n")
+        else:
+            review = ("no class is flagged wide_spread, so review the stage errors per class "
+                      "and the stage error map before using the n")
         notes.append(
             f"With the adjusted n the {what} is larger ({after[key]:.3g} {z}) than with n "
-            f"carried over ({before[key]:.3g} {z}): one n per class does not fit these faces "
-            "well; review the classes with a wide spread before using their n."
+            f"carried over ({before[key]:.3g} {z}): one n per class does not fit these "
+            f"{words['items']} well; {review}."
         )
+    window_stages, table_stages = _stage_counts(
+        {**summary, "window_mode": (asum.get("window") or {}).get("mode")
+         if isinstance(asum.get("window"), dict) else None})
     return {
         "title": f"Manning's n carried from {source} to {target} cells",
         "project": project.path.name,
@@ -965,7 +1013,10 @@ def _report_context(project: Project, data: dict[str, Any]) -> dict[str, Any]:
             "window": window,
         },
         "units": summary["units"],
-        "counts": {k: summary.get(k) for k in ("cells", "faces", "stages", "classes")},
+        "fit_domain": summary.get("fit_domain", "faces"),
+        "counts": {"cells": summary.get("cells"), "faces": summary.get("faces"),
+                   "stages": window_stages, "table_stages": table_stages,
+                   "classes": summary.get("classes")},
         "classes": classes,
         "bias": {
             "before": summary.get("stage_bias_unadjusted"),

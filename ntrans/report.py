@@ -11,7 +11,11 @@ The context dict (all keys optional except ``classes``)::
     move                     dict: source, target, closure, source_closure, composite,
                              elevation_rule, face_rule, window (text), window_mode
     units                    dict: horizontal, vertical, manning_k
-    counts                   dict: cells, faces, stages, classes
+    fit_domain               "faces" (default) or "cells": what the class fit, the stage
+                             errors and the per-cell maps are over
+    counts                   dict: cells, faces, classes; stages (stages per item in the
+                             calibration window, a number or text); table_stages (text,
+                             the stage tables' levels when they differ from the window)
     classes                  list of dicts, one per class (columns of n_by_class.csv)
     bias                     dict: before / after -> dict(median, p10, p90, mean_abs, weighted_median, weighted_mean_abs, count)
     inputs                   list of dicts: role, path, sha256
@@ -32,21 +36,22 @@ from typing import Any
 
 from .cautions import CAUTIONS
 
-#: (image key, heading, caption) in report order; missing images are skipped.
+#: (image key, heading, caption) in report order; missing images are skipped.  Headings
+#: and captions are templates over the words of the fit domain (:data:`DOMAIN_WORDS`).
 FIGURES: dict[str, tuple[tuple[str, str, str], ...]] = {
     "bias": (
         (
             "stage_bias_hist",
-            "Spread over faces and stages",
+            "Spread over {items} and stages",
             "Stage in the target family minus stage in the source family at equal "
-            "conveyance, per face and stage of the window: above with the source n carried "
+            "conveyance, per {item} and stage of the window: above with the source n carried "
             "over unchanged, below with the adjusted n per class.",
         ),
         (
             "stage_bias",
             "Where stages would be biased",
-            "Per cell, the median over the window of the stage error of its faces with n "
-            "carried over unchanged. Positive: the target model would run high.",
+            "Per cell, the median {per_cell} stage error with n carried over unchanged. "
+            "Positive: the target model would run high.",
         ),
     ),
     "maps": (
@@ -60,8 +65,8 @@ FIGURES: dict[str, tuple[tuple[str, str, str], ...]] = {
         (
             "n_ratio",
             "Change of n needed per cell",
-            "Per cell, the median over the window and over its faces of the ratio of target "
-            "to source n that keeps conveyance equal at equal stage, on a log scale centred "
+            "Per cell, the median {per_cell} ratio of target to source n that keeps "
+            "conveyance equal at equal stage, on a log scale centred "
             "on 1: orange where n must rise (the cells that would run low with n unchanged), "
             "purple where it must fall.",
         ),
@@ -70,7 +75,7 @@ FIGURES: dict[str, tuple[tuple[str, str, str], ...]] = {
         (
             "class_ratios",
             "n ratio against depth per class",
-            "Median (line) and 10-90 % band (shaded) across the faces of each class.",
+            "Median (line) and 10-90 % band (shaded) across the {items} of each class.",
         ),
         (
             "cell_curves",
@@ -89,12 +94,34 @@ CLASS_COLUMNS: tuple[tuple[str, str], ...] = (
     ("ratio_p10", "ratio 10 %"),
     ("ratio_p50", "ratio 50 %"),
     ("ratio_p90", "ratio 90 %"),
-    ("faces", "faces"),
+    ("faces", "{items}"),
     ("weight_share", "weight share"),
     ("bias_unadjusted_median", "stage error, n unchanged ({unit})"),
     ("bias_adjusted_median", "stage error, adjusted n ({unit})"),
     ("flags", "flags"),
 )
+
+#: the words of the report for each fit domain: the item the class fit used, and what a
+#: per-cell map value is a median of
+DOMAIN_WORDS: dict[str, dict[str, str]] = {
+    "faces": {"item": "face", "items": "faces",
+              "per_cell": "over the window and over its faces of the"},
+    "cells": {"item": "cell", "items": "cells",
+              "per_cell": "over the window of the cell's own"},
+}
+
+
+def domain_words(fit_domain: str | None) -> dict[str, str]:
+    """The words of :data:`DOMAIN_WORDS` for ``fit_domain`` (faces when not given)."""
+    return DOMAIN_WORDS.get(str(fit_domain or "faces"), DOMAIN_WORDS["faces"])
+
+
+def _worded(text: str, words: Mapping[str, str]) -> str:
+    """``text`` with its ``{item}``, ``{items}``, ``{per_cell}`` replaced by ``words``."""
+    for key, value in words.items():
+        text = text.replace("{" + key + "}", value)
+    return text
+
 
 CSS = """
 body{font-family:-apple-system,"Segoe UI",Helvetica,Arial,sans-serif;margin:0;color:#1d2430;
@@ -157,12 +184,15 @@ def _cautions_block(heading: str) -> str:
     return f'<section class="caution"><h2>{esc(heading)}</h2><ul>{items}</ul></section>'
 
 
-def _class_table(classes: Sequence[Mapping[str, Any]], unit: str = "m") -> str:
+def _class_table(classes: Sequence[Mapping[str, Any]], unit: str = "m",
+                 words: Mapping[str, str] | None = None) -> str:
     if not classes:
         return '<p class="muted">No roughness classes were fitted.</p>'
+    words = words or domain_words(None)
     present = [(key, head) for key, head in CLASS_COLUMNS if any(key in row for row in classes)]
     head = "".join(
-        f'<th class="{"l" if key in ("class", "flags") else ""}">{esc(h.format(unit=unit))}</th>'
+        f'<th class="{"l" if key in ("class", "flags") else ""}">'
+        f'{esc(_worded(h, words).format(unit=unit))}</th>'
         for key, h in present
     )
     body = []
@@ -198,7 +228,7 @@ def _flag_legend(classes: Sequence[Mapping[str, Any]]) -> str:
     return f'<dl class="kv flags">{rows}</dl>' if rows else ""
 
 
-def _bias_table(bias: Mapping[str, Mapping[str, Any]], unit: str) -> str:
+def _bias_table(bias: Mapping[str, Mapping[str, Any]], unit: str, item: str = "face") -> str:
     if not bias:
         return ""
     rows = []
@@ -218,16 +248,17 @@ def _bias_table(bias: Mapping[str, Mapping[str, Any]], unit: str) -> str:
         f'<tr><th class="l"></th><th>median ({esc(unit)})</th><th>10 % ({esc(unit)})</th>'
         f"<th>90 % ({esc(unit)})</th><th>mean |error| ({esc(unit)})</th>"
         f"<th>median, weighted by conveyance ({esc(unit)})</th>"
-        f"<th>mean |error|, weighted by conveyance ({esc(unit)})</th><th>face-stages</th></tr>"
+        f"<th>mean |error|, weighted by conveyance ({esc(unit)})</th><th>{esc(item)}-stages</th></tr>"
     )
     return f"<table><thead>{head}</thead><tbody>{''.join(rows)}</tbody></table>"
 
 
-def _figures(group: str, images: Mapping[str, Any]) -> str:
+def _figures(group: str, images: Mapping[str, Any], words: Mapping[str, str]) -> str:
     parts = []
     for key, heading, caption in FIGURES[group]:
         if key not in images:
             continue
+        heading, caption = _worded(heading, words), _worded(caption, words)
         parts.append(
             f"<h3>{esc(heading)}</h3><figure><img src=\"{image_data_uri(images[key])}\" "
             f'alt="{esc(heading)}"><figcaption>{esc(caption)}</figcaption></figure>'
@@ -269,21 +300,21 @@ first), so face conveyance is in horizontal units cubed per second.</p>
 <span class="f">n<sub>target</sub>(&eta;) = n<sub>source</sub> &middot; G<sub>target</sub>(&eta;) / G<sub>source</sub>(&eta;),
 &nbsp; G = K &middot; n (conveyance with n factored out)</span>
 <p>Equal conveyance at equal stage. Per class, one n is fitted by least squares in log
-conveyance across the faces and stages of the window, weighted by conveyance share; the
+conveyance across the {items} and stages of the window, weighted by conveyance share; the
 10, 50 and 90 % ratios show its spread. Per-cell shortcut at equal volume with a lumped
 radius: n<sub>t</sub> = n<sub>s</sub> (A<sub>w</sub> / A<sub>b</sub>)<sup>2/3</sup>.
 Cell conveyance form: Volp, van Prooijen &amp; Stelling (2013), <i>Water Resour. Res.</i> 49.</p>
 <h3>Stage error</h3>
-<p>For a face at source stage &eta;<sub>s</sub>, the target stage &eta;<sub>t</sub> solves
+<p>For a {item} at source stage &eta;<sub>s</sub>, the target stage &eta;<sub>t</sub> solves
 K<sub>target</sub>(&eta;<sub>t</sub>) = K<sub>source</sub>(&eta;<sub>s</sub>) (K rises with &eta;,
 so a bracketed root search finds it). &eta;<sub>t</sub> &minus; &eta;<sub>s</sub> with n carried
 over unchanged is the bias the adjustment removes; with the fitted n it should be near zero
-where one n suits the class's faces (a class flagged <code>wide_spread</code> keeps errors at
+where one n suits the class's {items} (a class flagged <code>wide_spread</code> keeps errors at
 some of them).</p>
 """
 
 LIMITATIONS = (
-    "Conveyance is matched face by face at equal stage under uniform-flow friction; "
+    "Conveyance is matched {item} by {item} at equal stage under uniform-flow friction; "
     "momentum, turbulence, form losses and lateral mixing are not represented.",
     "The result depends on the calibration window: outside the depths or stages given, "
     "the ratios can differ markedly, most of all near the stage at which a face first wets.",
@@ -292,7 +323,7 @@ LIMITATIONS = (
     "Faces or cells wet in one family and dry in the other give no finite ratio and are "
     "left out of the class fit (see the flags).",
     "One n per class cannot remove the stage error everywhere; the spread shows how far "
-    "individual faces depart from the class value.",
+    "individual {items} depart from the class value.",
 )
 
 
@@ -309,6 +340,7 @@ def render_report(context: Mapping[str, Any], images: Mapping[str, Any]) -> str:
     move = context.get("move", {})
     units = context.get("units", {})
     counts = context.get("counts", {})
+    words = domain_words(context.get("fit_domain"))
     vertical = {"metre": "m", "foot": "ft", "us_survey_foot": "ft"}.get(
         str(units.get("vertical", "m")), str(units.get("vertical", "m"))
     )
@@ -337,7 +369,8 @@ def render_report(context: Mapping[str, Any], images: Mapping[str, Any]) -> str:
             ("Manning unit factor k", units.get("manning_k")),
             ("cells", counts.get("cells")),
             ("faces", counts.get("faces")),
-            ("stages per item", counts.get("stages")),
+            ("stages per face and cell in the window", counts.get("stages")),
+            ("levels of the stage tables", counts.get("table_stages")),
         ]
     )
     notes = context.get("notes") or []
@@ -358,7 +391,7 @@ def render_report(context: Mapping[str, Any], images: Mapping[str, Any]) -> str:
             '<table><thead><tr><th class="l">input</th><th class="l">file</th>'
             f'<th class="l">SHA-256 (start)</th></tr></thead><tbody>{rows}</tbody></table>'
         )
-    limitations = "".join(f"<li>{esc(t)}</li>" for t in LIMITATIONS)
+    limitations = "".join(f"<li>{esc(_worded(t, words))}</li>" for t in LIMITATIONS)
 
     parts = [
         "<!DOCTYPE html>",
@@ -374,22 +407,22 @@ def render_report(context: Mapping[str, Any], images: Mapping[str, Any]) -> str:
         "<h2>Manning's n per roughness class</h2>",
         "<p>n source is the calibrated value; n target the value that reproduces the source "
         "conveyance in the target family over the window; ratio = n target / n source, with its "
-        "10, 50 and 90 % across faces and stages. Weight share is the class's share of the "
-        "conveyance weights of the fit. Stage errors are medians over the class's faces and "
-        "stages.</p>",
-        _class_table(context.get("classes") or [], vertical),
+        f"10, 50 and 90 % across {words['items']} and stages. Weight share is the class's "
+        "share of the conveyance weights of the fit. Stage errors are medians over the "
+        f"class's {words['items']} and stages.</p>",
+        _class_table(context.get("classes") or [], vertical, words),
         _flag_legend(context.get("classes") or []),
         "<h2>Stage error before and after</h2>",
-        _bias_table(context.get("bias") or {}, vertical),
-        _figures("bias", images),
+        _bias_table(context.get("bias") or {}, vertical, words["item"]),
+        _figures("bias", images, words),
         "<h2>Maps</h2>",
         "<p>GeoTIFF versions of these maps, on the DEM grid, are in the <code>maps</code> folder "
         "of this bundle; <code>maps/faces.gpkg</code> carries the same values per face.</p>",
-        _figures("maps", images),
+        _figures("maps", images, words),
         "<h2>Figures</h2>",
-        _figures("plots", images),
+        _figures("plots", images, words),
         "<h2>Method</h2>",
-        METHOD_HTML,
+        _worded(METHOD_HTML, words),
         "<h2>Limitations</h2>",
         f"<ul>{limitations}</ul>",
         "<h2>Inputs and reproducibility</h2>",

@@ -526,3 +526,44 @@ def test_same_terrain_in_other_units_converts_by_the_unit_factors(tmp_path, hori
                 # 1e-7 covers the stage solver's tolerance (1e-9 x depth)
                 np.testing.assert_allclose(got[col] * to_si, ref[col] * metres_per(
                     ref_units[col], 1.0), rtol=1e-9, atol=1e-7, err_msg=col)
+
+
+@pytest.mark.parametrize("closure", ["lumped", "cell"])
+def test_cell_layer_holds_the_fit_domains_medians_and_says_which(channel_case, tmp_path,
+                                                                  closure):
+    import geopandas as gpd
+
+    from ntrans.maps import cell_median_of_faces
+    from ntrans.outputs import column_descriptions_of
+
+    dem, cells, classes, table = channel_case
+    out = tmp_path / "out"
+    res = _quiet(dem=dem, cells=cells, out=out, classes=classes, class_field="kind",
+                 n_table=table, depths="0.5:2.5:0.5", closure=closure)
+    layer = gpd.read_file(out / "cells.gpkg").set_index("cell_id")
+    faces = pd.read_parquet(out / "face_adjustment.parquet")
+    own = pd.read_parquet(out / "cell_adjustment.parquet").groupby("cell_id")
+    described = column_descriptions_of(out / "cells.gpkg", "cells")
+    # the cell's own ratio (equal cell conveyance) is always there, under its own name
+    np.testing.assert_allclose(layer["n_ratio_cell_median"],
+                               own["n_ratio"].median().reindex(layer.index), rtol=1e-12)
+    if res.summary["fit_domain"] == "faces":
+        # the median over every row of every face of the cell, as maps/n_ratio.tif shows
+        for column, source in (("n_ratio_median", "n_ratio"),
+                               ("stage_bias_unadjusted_median", "stage_bias_unadjusted")):
+            expected = cell_median_of_faces(faces, faces.drop_duplicates("face_id"),
+                                            value=source).reindex(layer.index)
+            assert expected.notna().any()
+            np.testing.assert_allclose(layer[column], expected, rtol=1e-12)
+            assert "every face of the cell" in described[column]
+        assert "can differ from n_ratio_median" in described["n_ratio_cell_median"]
+    else:
+        np.testing.assert_allclose(layer["n_ratio_median"], layer["n_ratio_cell_median"],
+                                   rtol=1e-12)
+        np.testing.assert_allclose(layer["stage_bias_unadjusted_median"],
+                                   own["stage_bias_unadjusted"].median().reindex(layer.index),
+                                   rtol=1e-12)
+        assert layer["stage_bias_unadjusted_median"].notna().any()
+        assert "cell's own" in described["n_ratio_median"]
+        assert "face" not in described["stage_bias_unadjusted_median"]
+    assert res.summary["cell_layer"] == described

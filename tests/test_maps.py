@@ -414,3 +414,29 @@ def test_map_compressed_on_every_core_is_the_one_thread_file(tmp_path, monkeypat
     one = maps.write_geotiff(tmp_path / "one.tif", grid, transform=transform,
                              crs="EPSG:32633")
     assert many.read_bytes() == one.read_bytes()
+
+
+@pytest.mark.parametrize(("fit_domain", "says", "never"), [
+    ("faces", "over the cell's faces", "cell's own"),
+    ("cells", "the cell's own values", "faces"),
+])
+def test_band_descriptions_say_what_a_cell_value_is_a_median_of(tmp_path, fit_domain, says,
+                                                                 never):
+    dem, z, cells = _grid_case(tmp_path)
+    values = pd.DataFrame({"n_ratio": np.linspace(0.8, 1.2, 6),
+                           "stage_bias": np.linspace(-0.3, 0.3, 6)})
+    with rasterio.open(dem) as src:
+        grid = {"transform": src.transform, "crs": src.crs}
+    maps.write_maps(tmp_path / "maps", cell_values=values, cell_geometry=cells, elevation=z,
+                    quicklooks=False, fit_domain=fit_domain, **grid)
+    for name in ("n_ratio", "stage_bias"):
+        with rasterio.open(tmp_path / "maps" / f"{name}.tif") as out:
+            text = out.descriptions[0]
+        assert says in text and never not in text, text
+        label = maps.map_texts(name, fit_domain)[1]
+        assert never not in label, label
+
+
+def test_map_texts_refuse_an_unknown_fit_domain():
+    with pytest.raises(ValueError, match="faces' or 'cells"):
+        maps.map_texts("n_ratio", "edges")

@@ -470,3 +470,68 @@ def test_run_refuses_a_zip_of_other_files_before_it_starts(tmp_path, monkeypatch
         proj.run_project(project, overwrite=overwrite)
     assert (tmp_path / "bundle.zip").read_bytes() == b"someone's archive"
     assert not (tmp_path / "bundle").exists()
+
+
+def test_maps_show_the_cell_figures_of_the_adjustment_layer(two_runs):
+    """maps/n_ratio.tif and maps/stage_bias.tif paint adjust/cells.gpkg's medians."""
+    import geopandas as gpd
+    import rasterio
+
+    result, _ = two_runs
+    layer = gpd.read_file(result.folder / "adjust" / "cells.gpkg")
+    points = layer.geometry.representative_point()
+    for name, column in (("n_ratio", "n_ratio_median"),
+                         ("stage_bias", "stage_bias_unadjusted_median")):
+        with rasterio.open(result.folder / "maps" / f"{name}.tif") as src:
+            xy = list(zip(points.x, points.y, strict=True))
+            painted = np.array([v[0] for v in src.sample(xy)], dtype=float)
+            painted[painted == src.nodata] = np.nan
+        expected = layer[column].to_numpy(dtype=float)
+        assert np.isfinite(expected).any()
+        np.testing.assert_allclose(painted, expected, rtol=1e-6)  # float32 storage
+
+
+def _context_for(fit_domain, flags, window):
+    """The report context of a run with these per-class flags and window (no files)."""
+    from types import SimpleNamespace
+
+    project = SimpleNamespace(families={}, path=Path("project.toml"), inputs={},
+                              window={"depths": "0.25:3:0.25"})
+    bias = {"weighted_mean_abs": 0.1, "mean_abs": 0.1}
+    data = {
+        "adjust_summary": {"fit_domain": fit_domain, "window": window},
+        "tables_summary": {},
+        "n_by_class": pd.DataFrame({"class": ["grass", "channel"], "flags": flags}),
+        "summary": {"units": {"horizontal": "metre", "vertical": "metre"}, "cells": 4,
+                    "faces": 12, "stages": proj._window_size(window), "table_stages": 12,
+                    "stage_mode": "depth", "fit_domain": fit_domain,
+                    "stage_bias_unadjusted": bias,
+                    "stage_bias_adjusted": {**bias, "weighted_mean_abs": 0.2}},
+    }
+    return proj._report_context(project, data)
+
+
+@pytest.mark.parametrize(("fit_domain", "flags", "says", "never"), [
+    ("faces", ["", "wide_spread"], "fit these faces well; review the class flagged "
+     "wide_spread (channel) before using its n.", "cells"),
+    ("cells", ["", "dry_wet_mismatch:3"], "fit these cells well; no class is flagged "
+     "wide_spread", "faces"),
+])
+def test_worse_fit_remark_names_the_items_and_only_flagged_classes(fit_domain, flags, says,
+                                                                   never):
+    window = {"mode": "depth", "values": [0.5, 1.0]}
+    remark = _context_for(fit_domain, flags, window)["notes"][-1]
+    assert says in remark and never not in remark, remark
+    if "wide_spread" not in flags:
+        assert "review the classes with a wide spread" not in remark
+
+
+@pytest.mark.parametrize(("window", "stages", "levels"), [
+    ({"mode": "water_surface", "rasters": ["event"]},
+     "1 (one per water-surface raster: each face and cell at its own stage under it)",
+     "12 depths above each cell's and face's low point"),
+    ({"mode": "depth", "values": [0.5, 1.0, 2.0]}, 3, None),
+])
+def test_report_counts_the_window_stages_not_the_table_levels(window, stages, levels):
+    counts = _context_for("faces", ["", ""], window)["counts"]
+    assert counts["stages"] == stages and counts["table_stages"] == levels

@@ -184,3 +184,45 @@ def test_fmt_keeps_integers_whole_and_escapes_text(value, text):
 def test_write_report_writes_utf8(tmp_path):
     path = report.write_report(tmp_path / "r" / "report.html", _context(), {"n_ratio": PNG_1PX})
     assert path.read_text(encoding="utf-8").count("data:image/png;base64,") == 1
+
+
+def _text_of(html_text: str) -> str:
+    parser = _Collector()
+    parser.feed(html_text)
+    parser.close()
+    return " ".join(" ".join(parser.text).split())
+
+
+ALL_IMAGES = ("friction_factor", "n_ratio", "stage_bias", "stage_bias_hist", "class_ratios",
+              "cell_curves")
+
+
+@pytest.mark.parametrize(("fit_domain", "item", "other"), [("faces", "face", "cell"),
+                                                           ("cells", "cell", "face")])
+def test_report_labels_name_the_items_of_the_fit_domain(fit_domain, item, other):
+    ctx = _context(fit_domain=fit_domain)
+    text = _text_of(report.render_report(ctx, dict.fromkeys(ALL_IMAGES, PNG_1PX)))
+    assert f"{item}-stages" in text and f"{other}-stages" not in text
+    assert f"Spread over {item}s and stages" in text
+    assert f"per {item} and stage of the window" in text
+    assert f"across the {item}s of each class" in text
+    assert f"Stage errors are medians over the class's {item}s and stages" in text
+    # the class table's count column is headed by what it counts
+    head = report.render_report(ctx, {}).split("<thead>")[1].split("</thead>")[0]
+    assert f">{item}s</th>" in head and f">{other}s</th>" not in head
+    if fit_domain == "cells":  # the per-cell maps are the cell's own figures
+        assert "of its faces" not in text and "over its faces" not in text
+        assert "the median over the window of the cell's own stage error" in text
+        assert "the median over the window of the cell's own ratio" in text
+    else:
+        assert "the median over the window and over its faces of the ratio" in text
+
+
+def test_report_says_what_the_window_stages_and_table_levels_are():
+    ctx = _context(counts={"cells": 9, "faces": 24,
+                           "stages": "1 (one per water-surface raster)",
+                           "table_stages": "8 depths"})
+    text = _text_of(report.render_report(ctx, {}))
+    assert "stages per face and cell in the window 1 (one per water-surface raster)" in text
+    assert "levels of the stage tables 8 depths" in text
+    assert "stages per item" not in text
