@@ -105,7 +105,8 @@ face_rule = click.option(
     default="higher",
     show_default=True,
     help="Flat-face bed elevation (vertical units): the higher, mean or lower of the two "
-    "adjacent flat-cell elevations, or the mean of the face's terrain profile.",
+    "adjacent flat-cell elevations (the one that has one when the other cell has none), "
+    "or the mean of the face's terrain profile.",
 )
 
 face_spacing = click.option(

@@ -207,6 +207,7 @@ class _TileGeometry:
     face_low: np.ndarray
     cell_low: np.ndarray
     cell_covered: np.ndarray     # plan area of own cells over valid terrain
+    cell_assigned: np.ndarray    # plan area of own cells' pixels, nodata included
     face_stages: np.ndarray      # (n_faces, n_window)
     cell_stages: np.ndarray      # (n_cells, n_window)
     uncovered: float             # plan area of own cells' pixels with no class
@@ -296,6 +297,7 @@ def _tile_geometry(task: Any, elevation: np.ndarray, transform: Any, plan: _Plan
     return _TileGeometry(tile.cells, tile.faces, ga, gb, face_geom, cell_geom, face_flat,
                          flat_z[:n_own], face_low, cell_low,
                          np.asarray(summary["covered_area"], dtype=float)[:n_own],
+                         np.bincount(item[own], weights=plan_area[own], minlength=n_own),
                          face_stages, cell_stages, uncovered, covered)
 
 
@@ -423,6 +425,7 @@ def _pass_statistics(job: _Job, task: Any) -> dict[str, Any]:
     deep = DEEP_WINDOW_METRES / float(job.dem.z_metres_per_unit)
     return {"terms": terms, "uncovered": tg.uncovered, "covered": tg.covered,
             "cells": tg.cells, "cell_covered": tg.cell_covered,
+            "cell_assigned": tg.cell_assigned, "cell_flat": tg.cell_flat,
             "wetting": _WindowWetting.of(st, low, tg.cell_stages, tg.cell_low, deep)}
 
 
@@ -700,7 +703,9 @@ def adjust_roughness(
         is written).  A window whose median depth over the wet cells exceeds
         :data:`DEEP_WINDOW_METRES` warns (:class:`~ntrans.errors.DeepWindowWarning`);
         cells partly or wholly without terrain warn
-        (:class:`~ntrans.errors.PartialCoverageWarning`).
+        (:class:`~ntrans.errors.PartialCoverageWarning`), and so do cells the
+        ``centroid`` or ``field`` rule gives no flat elevation
+        (:class:`~ntrans.errors.FlatElevationWarning`).
 
     Writes ``n_by_class.csv``, ``face_adjustment.parquet``, ``cell_adjustment.parquet``,
     ``cells.gpkg`` (with ``covered_fraction``), ``faces.gpkg`` and ``adjust_summary.json``.  Lengths in the CRS's
@@ -708,6 +713,7 @@ def adjust_roughness(
     k A R^(2/3) / n with A and R converted to the horizontal unit L and k = 1.0 (metre) or
     1.486 (foot): L^3/s on faces, L^4/s on cells (k V R^(2/3) / n).
     """
+    from .coverage import area_share_inside
     from .inputs import check_water_surfaces_reach, read_water_surfaces
     from .outputs import (
         OutputFolder,
@@ -721,10 +727,12 @@ def adjust_roughness(
     )
     from .summaries import cell_medians_over_faces
     from .tables import (
+        centre_covered_fractions,
         covered_fractions,
         partial_coverage,
         prepare_mesh_job,
         table_units,
+        warn_missing_flat_elevation,
         warn_partial_coverage,
     )
 
@@ -801,6 +809,8 @@ def adjust_roughness(
         uncovered = covered = 0.0
         wetting = _WindowWetting()
         cell_covered = np.zeros(n_cells)
+        cell_assigned = np.zeros(n_cells)
+        cell_flat = np.full(n_cells, np.nan)
         _warn_if_short_of_memory(n_cells, n_faces, n_win,
                                  1 if connection is not None else
                                  (default_threads() if threads is None else int(threads)),
@@ -811,6 +821,8 @@ def adjust_roughness(
             covered += res["covered"]
             wetting.add(res["wetting"])
             cell_covered[res["cells"]] = res["cell_covered"]
+            cell_assigned[res["cells"]] = res["cell_assigned"]
+            cell_flat[res["cells"]] = res["cell_flat"]
             terms = res["terms"]
             spread.add(terms.spread_class, terms.spread_ratio, terms.spread_weight,
                        terms.spread_stage)
@@ -957,7 +969,11 @@ def adjust_roughness(
         import pandas as pd
 
         crs = layer.frame.crs
-        covered_fraction = covered_fractions(cell_covered, shapely.area(geoms))
+        if coverage == "centre":
+            covered_fraction = centre_covered_fractions(
+                cell_covered, cell_assigned, area_share_inside(geoms, tuple(dem_info.bounds)))
+        else:
+            covered_fraction = covered_fractions(cell_covered, shapely.area(geoms))
         # the per-cell figures of the fit domain, as the maps show them: with the faces
         # fitted, the median over the window and over every face of the cell
         if domain == "faces":
@@ -1038,6 +1054,7 @@ def adjust_roughness(
 
     final = Path(os.fspath(out)).expanduser().absolute()
     warn_partial_coverage(ids, covered_fraction, stacklevel=2)
+    warn_missing_flat_elevation(ids, cell_flat, elevation_rule, elevation_field, stacklevel=2)
     mism = mismatch_faces if domain == "faces" else mismatch_cells
     if mism:
         warn(

@@ -26,6 +26,7 @@ from .errors import GeometryError, InputError
 
 __all__ = [
     "PixelWeights",
+    "area_share_inside",
     "centre_coverage",
     "exact_coverage",
     "exact_coverage_stage_sums",
@@ -419,3 +420,34 @@ def centre_coverage(polygons, transform: Affine, shape: tuple[int, int]) -> Pixe
     val = val[ok]
     weights = _row_runs(item[e][ok], r[ok], c[ok], val, val, rows, cols, threshold=0.5)
     return PixelWeights(weights.item, weights.row, weights.col, np.ones(len(weights)))
+
+
+def area_share_inside(polygons, bounds: tuple[float, float, float, float]) -> np.ndarray:
+    """Share of each polygon's area inside the box ``bounds`` = (left, bottom, right, top),
+    in [0, 1] (0 for a polygon without area).
+
+    Only polygons reaching beyond the box are intersected with it; the rest give 1.
+
+    Examples
+    --------
+    >>> from shapely import box
+    >>> area_share_inside([box(0, 0, 1, 1), box(1, 0, 3, 1)], (0, 0, 2, 2)).tolist()
+    [1.0, 0.5]
+    """
+    geoms = _as_geometry_array(polygons)
+    share = np.zeros(geoms.size)
+    if geoms.size == 0:
+        return share
+    area = shapely.area(geoms)
+    has_area = np.nan_to_num(area, nan=0.0) > 0
+    left, bottom, right, top = (float(v) for v in bounds)
+    with np.errstate(invalid="ignore"):
+        b = shapely.bounds(geoms)
+        within = ((b[:, 0] >= left) & (b[:, 1] >= bottom) & (b[:, 2] <= right)
+                  & (b[:, 3] <= top))
+    share[has_area & within] = 1.0
+    cut = has_area & ~within
+    if cut.any():
+        inside = shapely.area(shapely.intersection(geoms[cut], shapely.box(left, bottom, right, top)))
+        share[cut] = np.clip(inside / area[cut], 0.0, 1.0)
+    return share

@@ -470,7 +470,8 @@ def run_tile(
     -------
     dict with ``tile`` (index) and four column dicts: ``cell_rows`` (one row per own
     cell and stage, ``cell`` = global cell index), ``cell_summary`` (one row per own
-    cell), ``face_rows`` (one row per face and stage, ``face`` = global face index,
+    cell; under the centre rule with ``assigned_area``, the plan area of every pixel the
+    rule gives the cell, nodata included), ``face_rows`` (one row per face and stage, ``face`` = global face index,
     ``cell_a`` / ``cell_b`` global, -1 on the boundary) and ``face_summary``.
     """
     from ._kernels import entry_values
@@ -509,6 +510,7 @@ def run_tile(
         summary, table = tables_from_sums(sums, lv, order, relative=relative)
     else:
         if elevation.size == 0:
+            assigned = np.zeros(n_own)
             item = np.zeros(0, dtype=np.int64)
             z, plan, bed = np.empty(0), np.empty(0), np.empty(0)
         elif settings.coverage == "exact":
@@ -519,6 +521,8 @@ def run_tile(
             w = centre_coverage(task.polygons, transform, elevation.shape)
             item = np.asarray(w.item, dtype=np.int64)
             z, plan, bed = entry_values(w.row, w.col, w.fraction, elevation, sf, pixel_area)
+            # every pixel the rule gives a cell, nodata included: the covered fraction's base
+            assigned = np.bincount(item, minlength=n_all)[:n_own] * pixel_area
         summary, table = cell_tables(item, z, plan, bed, n_all, levels, relative=relative,
                                      median=median)
     centroid_z = None
@@ -565,6 +569,8 @@ def run_tile(
         "flat_elevation": flat_z[:n_own],
         "bed_factor": bed_factor,
     }
+    if settings.coverage == "centre":
+        cell_summary["assigned_area"] = assigned
 
     out: dict[str, Any] = {"tile": tile.index, "cell_rows": cell_rows, "cell_summary": cell_summary}
     if settings.faces:

@@ -81,6 +81,11 @@ class PartialCoverageWarning(NtransWarning):
     """Some cells or faces are partly outside the DEM or over nodata."""
 
 
+class FlatElevationWarning(NtransWarning):
+    """Some cells have no flat-bed elevation: the elevation rule found no value for them
+    (a centroid over nodata or outside the DEM, an empty elevation field)."""
+
+
 class RoughnessRangeWarning(NtransWarning):
     """An n value lies outside the published range for its kind of surface."""
 

@@ -716,14 +716,17 @@ def face_flat_bed(
     rule : {"higher", "mean", "min", "profile_mean"}
         ``higher`` (default in the product): the higher of the two cells; ``mean``,
         ``min`` of the two; ``profile_mean``: the face profile's mean elevation
-        (``summary["mean_elevation"]``).  A boundary face (``cell_flat_b`` NaN) takes
-        its one cell's elevation.
+        (``summary["mean_elevation"]``).  A side without a flat elevation (NaN: a
+        boundary face's missing cell, or a cell the elevation rule gave no value) is
+        left out: the face takes the other cell's elevation under ``higher``, ``mean``
+        and ``min``, and is NaN when neither side has one.
     cell_flat_a, cell_flat_b : (n_faces,) arrays
     summary : output of :func:`face_profile_summary` (for ``profile_mean``)
     """
     za = np.asarray(cell_flat_a, dtype=np.float64).ravel()
     zb = np.asarray(cell_flat_b, dtype=np.float64).ravel()
     zb = np.where(np.isnan(zb), za, zb)
+    za = np.where(np.isnan(za), zb, za)
     if rule == "higher":
         return np.fmax(za, zb)
     if rule == "mean":

@@ -880,7 +880,10 @@ _DESCRIPTIONS: dict[str, str] = {
     "flat_hydraulic_radius": "hydraulic radius of the flat cell (= flat_depth)",
     "area": "plan area",
     "covered_area": "plan area over valid DEM pixels",
-    "covered_fraction": "share of the item over valid DEM pixels",
+    "covered_fraction": (
+        "share of the item over valid DEM pixels (a cell under the centre rule: of the "
+        "pixels the rule gives it, times its share inside the DEM)"
+    ),
     "z_min": "lowest terrain elevation", "z_max": "highest terrain elevation",
     "z_mean": "area-weighted mean terrain elevation",
     "z_median": "area-weighted median terrain elevation",

@@ -38,6 +38,7 @@ import pyarrow as pa
 import shapely
 
 from . import __version__
+from .coverage import area_share_inside
 from .engine import (
     COVERAGE_MODES,
     ELEVATION_RULES,
@@ -50,7 +51,14 @@ from .engine import (
     plan_tiles,
     rows_of,
 )
-from .errors import InputError, MemoryEstimateWarning, PartialCoverageWarning, check_choice, warn
+from .errors import (
+    FlatElevationWarning,
+    InputError,
+    MemoryEstimateWarning,
+    PartialCoverageWarning,
+    check_choice,
+    warn,
+)
 from .inputs import RASTER_CACHE_BYTES, rasters_kept_open
 from .memory import available_memory, collection_paused, release_free_memory
 from .stages import StageSpec
@@ -117,12 +125,32 @@ def _check_stage_rows_fit(tile_items: list[int], n_stages: int, in_flight: int) 
 
 def covered_fractions(covered_area: np.ndarray, area: np.ndarray) -> np.ndarray:
     """Share of each cell's plan area over valid DEM pixels, in [0, 1] (0 for a cell of no
-    area or without terrain)."""
+    area or without terrain): covered plan area / cell area, as the exact rule gives it."""
     covered_area = np.asarray(covered_area, dtype=float)
     area = np.asarray(area, dtype=float)
     with np.errstate(invalid="ignore", divide="ignore"):
         fraction = np.where(area > 0, covered_area / np.where(area > 0, area, 1.0), np.nan)
     return np.clip(np.nan_to_num(fraction, nan=0.0), 0.0, 1.0)
+
+
+def centre_covered_fractions(covered_area: np.ndarray, assigned_area: np.ndarray,
+                             inside_share: np.ndarray) -> np.ndarray:
+    """Share of each cell over valid DEM pixels under the centre rule, in [0, 1].
+
+    Whole pixels by their centres never add up to a polygon's area, so the covered plan
+    area is set against the plan area of every pixel the rule gives the cell (nodata
+    included; ``assigned_area``), times the share of the cell's area inside the DEM's
+    bounds (``inside_share``, :func:`ntrans.coverage.area_share_inside`).  A cell that
+    holds no pixel centre has no terrain under this rule and gets 0.
+    """
+    covered_area = np.asarray(covered_area, dtype=float)
+    assigned_area = np.asarray(assigned_area, dtype=float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        valid = np.where(assigned_area > 0,
+                         covered_area / np.where(assigned_area > 0, assigned_area, 1.0), 0.0)
+    fraction = np.nan_to_num(valid, nan=0.0) * np.asarray(inside_share, dtype=float)
+    return np.clip(np.nan_to_num(fraction, nan=0.0), 0.0, 1.0)
+
 
 
 @dataclass(frozen=True)
@@ -180,6 +208,33 @@ def warn_partial_coverage(ids: np.ndarray, covered_fraction: np.ndarray, *,
     if message is not None:
         warn(message, PartialCoverageWarning, stacklevel=stacklevel + 1)
     return found
+
+
+def warn_missing_flat_elevation(ids: np.ndarray, flat_elevation: np.ndarray, rule: str,
+                                elevation_field: str | None = None, *,
+                                stacklevel: int = 2) -> int:
+    """Emit :class:`FlatElevationWarning` for cells the ``centroid`` or ``field`` elevation
+    rule gave no flat elevation (NaN); return how many.
+
+    The terrain statistics (``mean``, ``min``, ``median``) lack a value only for cells
+    without terrain, which :func:`warn_partial_coverage` reports already.
+    """
+    if rule not in ("centroid", "field"):
+        return 0
+    missing = ~np.isfinite(np.asarray(flat_elevation, dtype=float))
+    count = int(missing.sum())
+    if not count:
+        return count
+    one = count == 1
+    its = "its" if one else "their"
+    why = (f"the terrain at {its} centroid is nodata or outside the DEM" if rule == "centroid"
+           else f"{its} {elevation_field!r} attribute is empty")
+    first = ", ".join(map(str, np.asarray(ids)[missing][:5].tolist()))
+    warn(f"{count} {'cell has' if one else 'cells have'} no flat elevation because {why} "
+         f"(first: {first}); {its} flat columns are NaN and a face beside "
+         f"{'it' if one else 'one'} takes the other cell's flat elevation",
+         FlatElevationWarning, stacklevel=stacklevel + 1)
+    return count
 
 
 @dataclass
@@ -430,11 +485,16 @@ def build_tables(
         vertical units.  Depths are above each cell's / face's lowest terrain point.
     vertical_units : ``metre``, ``foot`` or ``us_survey_foot`` when the elevations are not
         in the CRS unit.
-    coverage : ``exact`` (area fractions) or ``centre`` (pixel centre inside).
-    elevation_rule : flat cell bed: ``mean | min | median | centroid | field``.
+    coverage : ``exact`` (area fractions) or ``centre`` (pixel centre inside); the
+        cells' ``covered_fraction`` is the share of the cell over valid DEM pixels under
+        either (:func:`centre_covered_fractions`).
+    elevation_rule : flat cell bed: ``mean | min | median | centroid | field``.  A cell
+        the rule gives no value (NaN) has NaN flat columns; with ``centroid`` and
+        ``field`` that warns (:class:`~ntrans.errors.FlatElevationWarning`).
     elevation_field : attribute with the flat bed elevations (rule ``field``).
     face_rule : flat face bed: ``higher | mean | min`` of the two flat cell elevations
-        (the one cell's on the boundary) or ``profile_mean`` of the face's terrain.
+        (the one cell's on the boundary or beside a cell without a flat elevation) or
+        ``profile_mean`` of the face's terrain.
     face_spacing : profile sampling step along faces, CRS units (default half a pixel).
     snap_tolerance : border sharing distance, CRS units (default 1% of the pixel size).
     faces : also build the face tables.
@@ -548,6 +608,7 @@ def build_tables(
         )
 
         cell_sum = {k: np.full(n_cells, np.nan) for k in CELL_SUMMARY_COLUMNS[3:]}
+        assigned_area = np.zeros(n_cells) if coverage == "centre" else None
         face_sum = {k: np.full(n_faces, np.nan) for k in ("low_point", "relief", "covered_fraction", "perimeter_ratio")}
 
         cell_path = tmp / "cell_stage.parquet"
@@ -589,6 +650,8 @@ def build_tables(
                 cs = res["cell_summary"]
                 for name in cell_sum:
                     cell_sum[name][cs["cell"]] = cs[name]
+                if assigned_area is not None:
+                    assigned_area[cs["cell"]] = cs["assigned_area"]
                 if face_writer is not None:
                     fr = rows_of(res["face_rows"])
                     fchunk: dict[str, Any] = {
@@ -625,7 +688,12 @@ def build_tables(
         import pandas as pd
 
         area = shapely.area(geoms)
-        covered_fraction = covered_fractions(cell_sum["covered_area"], area)
+        if assigned_area is None:
+            covered_fraction = covered_fractions(cell_sum["covered_area"], area)
+        else:
+            covered_fraction = centre_covered_fractions(
+                cell_sum["covered_area"], assigned_area,
+                area_share_inside(geoms, tuple(dem_info.bounds)))
         layer.covered_fraction = covered_fraction
         crs = layer.frame.crs
         cell_frame = gpd.GeoDataFrame(
@@ -693,6 +761,8 @@ def build_tables(
 
     final = Path(os.fspath(out)).expanduser().absolute()
     warn_partial_coverage(ids, covered_fraction, stacklevel=2)
+    warn_missing_flat_elevation(ids, cell_sum["flat_elevation"], elevation_rule,
+                                elevation_field, stacklevel=2)
     log.info("tables written to %s in %.1f s", final, seconds)
     return TablesResult(
         out=final,

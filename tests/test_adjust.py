@@ -446,7 +446,8 @@ def test_deep_window_warns(flat_case, tmp_path, depth, units, deep):
     assert len(found) == int(deep)
 
 
-def test_cells_over_nodata_warn_and_carry_their_covered_fraction(tmp_path):
+@pytest.mark.parametrize("coverage", ["exact", "centre"])
+def test_cells_over_nodata_warn_and_carry_their_covered_fraction(tmp_path, coverage):
     import pyogrio
 
     from ntrans.errors import PartialCoverageWarning
@@ -458,9 +459,10 @@ def test_cells_over_nodata_warn_and_carry_their_covered_fraction(tmp_path):
     dem = write_dem(tmp_path / "dem.tif", z)
     cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(3, 2, 10.0))
     with pytest.warns(PartialCoverageWarning) as adj:
-        _quiet(dem=dem, cells=cells, out=tmp_path / "adj", n=0.03, depths="1")
+        _quiet(dem=dem, cells=cells, out=tmp_path / "adj", n=0.03, depths="1",
+               coverage=coverage)
     with pytest.warns(PartialCoverageWarning) as tab:
-        build_tables(dem, cells, out=tmp_path / "tab", depths="1")
+        build_tables(dem, cells, out=tmp_path / "tab", depths="1", coverage=coverage)
     # the same sentence from both jobs: one cell wholly, one partly without terrain
     assert [str(w.message) for w in adj] == [str(w.message) for w in tab]
     assert str(adj[0].message).startswith("2 cells lie outside the DEM or over nodata, "
@@ -473,6 +475,23 @@ def test_cells_over_nodata_warn_and_carry_their_covered_fraction(tmp_path):
     np.testing.assert_array_equal(a["covered_fraction"], t["covered_fraction"])
     summary = json.loads((tmp_path / "adj" / "adjust_summary.json").read_text())
     assert summary["partial_cells"] == 2 and summary["cells_without_terrain"] == 1
+
+
+def test_centre_rule_finds_cells_off_pixel_lines_wholly_covered(tmp_path):
+    import pyogrio
+
+    from ntrans.errors import PartialCoverageWarning
+
+    dem = write_dem(tmp_path / "dem.tif", channel_dem())
+    # 9.3 m cells off the pixel lines over the 40 m DEM: 81, 90 or 100 pixel centres
+    # each, never the polygon's 86.49 m2, and all of them over terrain
+    cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(3, 3, 9.3, origin=(2.3, 1.7)))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", PartialCoverageWarning)
+        _quiet(dem=dem, cells=cells, out=tmp_path / "adj", n=0.03, depths="1",
+               coverage="centre")
+    a = pyogrio.read_dataframe(tmp_path / "adj" / "cells.gpkg")
+    np.testing.assert_array_equal(a["covered_fraction"], 1.0)
 
 
 #: (horizontal, vertical) units of the same terrain and mesh; None: vertical as horizontal
@@ -567,3 +586,18 @@ def test_cell_layer_holds_the_fit_domains_medians_and_says_which(channel_case, t
         assert "cell's own" in described["n_ratio_median"]
         assert "face" not in described["stage_bias_unadjusted_median"]
     assert res.summary["cell_layer"] == described
+
+
+def test_centroid_over_nodata_warns(tmp_path):
+    from ntrans.errors import FlatElevationWarning, PartialCoverageWarning
+
+    z = np.full((20, 20), 10.0)
+    z[14:16, 4:6] = np.nan  # the four pixels around cell 1's centroid (5, 5)
+    dem = write_dem(tmp_path / "dem.tif", z)
+    cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(2, 2, 10.0))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", PartialCoverageWarning)
+        with pytest.warns(FlatElevationWarning, match="^1 cell has no flat elevation .*"
+                          r"\(first: 1\)"):
+            _quiet(dem=dem, cells=cells, out=tmp_path / "adj", n=0.03, depths="1",
+                   elevation_rule="centroid")

@@ -7,7 +7,13 @@ import pytest
 import shapely
 from affine import Affine
 
-from ntrans.coverage import PixelWeights, centre_coverage, exact_coverage, exact_coverage_values
+from ntrans.coverage import (
+    PixelWeights,
+    area_share_inside,
+    centre_coverage,
+    exact_coverage,
+    exact_coverage_values,
+)
 from ntrans.errors import GeometryError, InputError
 
 # Exact-area checks: fractions are sums of O(100) terms of order 1 -> round-off ~1e-13.
@@ -233,6 +239,19 @@ def test_polygon_partly_outside_window():
     want = np.array([[1.0, 0.5, 0.0], [1.0, 0.5, 0.0], [0.5, 0.25, 0.0]])
     # geometry identity: overlap of the box with each unit pixel, by hand
     np.testing.assert_allclose(got, want, atol=ROUND_OFF)
+
+
+def test_area_share_inside_a_box():
+    polys = [shapely.box(1, 1, 2, 2),                       # inside
+             shapely.box(-1, 0, 1, 1),                      # half off the west edge
+             shapely.box(3, 3, 5, 5),                       # a quarter inside
+             shapely.Polygon([(0, 0), (4, 0), (0, 4)]),     # corner of the box cut off
+             shapely.box(7, 7, 8, 8),                       # outside
+             None, shapely.Polygon()]                       # no area
+    got = area_share_inside(polys, (0.0, 0.0, 4.0, 4.0))
+    # geometry identity: overlap areas by hand; the triangle (area 8) lies wholly inside
+    np.testing.assert_allclose(got, [1.0, 0.5, 0.25, 1.0, 0.0, 0.0, 0.0], atol=ROUND_OFF)
+    assert area_share_inside([], (0.0, 0.0, 1.0, 1.0)).shape == (0,)
 
 
 def test_inside_on_the_border_and_across_it_against_brute_force():

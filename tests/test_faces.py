@@ -239,6 +239,17 @@ def test_flat_face_table_and_rules():
     np.testing.assert_allclose(face_flat_bed("profile_mean", za, zb, summ), [7.0, 8.0])
 
 
+@pytest.mark.parametrize("rule", ["higher", "mean", "min"])
+def test_face_beside_a_cell_without_flat_elevation_takes_the_other_cell(rule):
+    # a cell without a flat elevation (NaN) beside a cell with one, beside a boundary (or
+    # another such cell), and a cell with one beside a boundary; then the sides swapped
+    za = np.array([np.nan, np.nan, 4.0])
+    zb = np.array([2.0, np.nan, np.nan])
+    got = face_flat_bed(rule, za, zb)
+    np.testing.assert_allclose(got, [2.0, np.nan, 4.0])
+    np.testing.assert_allclose(face_flat_bed(rule, zb, za), got)
+
+
 # --- properties of any piecewise-linear profile --------------------------------------
 
 profiles_strategy = st.lists(

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 import pandas as pd
 import pyogrio
@@ -17,7 +19,12 @@ from conftest import (
     write_in_units,
 )
 
-from ntrans.errors import OutputExistsError, PartialCoverageWarning, StageSpecError
+from ntrans.errors import (
+    FlatElevationWarning,
+    OutputExistsError,
+    PartialCoverageWarning,
+    StageSpecError,
+)
 from ntrans.outputs import read_table_metadata
 from ntrans.tables import (
     CELL_STAGE_COLUMNS,
@@ -354,6 +361,105 @@ def test_cells_partly_off_the_dem(tmp_path):
     np.testing.assert_allclose(gpkg.loc[[2, 5], "covered_fraction"], 1.0, rtol=1e-12)
 
 
+@pytest.mark.parametrize("coverage", ["exact", "centre"])
+def test_covered_fraction_counts_only_nodata_and_off_the_dem(tmp_path, coverage):
+    z = bumpy(20, 20)
+    z[:, 12:15] = np.nan  # x 12-15 m is nodata
+    dem = write_dem(tmp_path / "dem.tif", z, dtype="float64")
+    # 10 m cells from x = -5: the west column hangs 5 m off the DEM, the east one 5 m
+    cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(3, 2, 10.0, origin=(-5.0, 0.0)))
+    with pytest.warns(PartialCoverageWarning, match="6 cells lie partly outside"):
+        build_tables(dem, cells, out=tmp_path / "out", stages="11", coverage=coverage)
+    gpkg = pyogrio.read_dataframe(tmp_path / "out" / "cells.gpkg").set_index("cell_id")
+    # geometry identity on pixel-aligned cells, under either rule: west cells half off the
+    # DEM (0.5), middle cells x 5-15 with 3 of 10 m over nodata (0.7), east cells x 15-25
+    # half off the DEM (0.5)
+    np.testing.assert_allclose(gpkg.loc[[1, 4, 2, 5, 3, 6], "covered_fraction"],
+                               [0.5, 0.5, 0.7, 0.7, 0.5, 0.5], rtol=1e-12)
+
+
+def test_centre_rule_finds_cells_off_pixel_lines_wholly_covered(case, tmp_path):
+    dem, _, _, _ = case
+    # 10.6 m cells off the pixel lines: 100, 110 or 121 pixel centres each, never the
+    # polygon's 112.36 m2, and all of them over the 40 m DEM's terrain
+    polys = grid_polygons(3, 3, 10.6, origin=(2.3, 1.7))
+    cells = write_cells(tmp_path / "cells.gpkg", polys)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", PartialCoverageWarning)
+        res = build_tables(dem, cells, out=tmp_path / "out", stages="11", coverage="centre")
+    assert res.n_partial == 0
+    gpkg = pyogrio.read_dataframe(tmp_path / "out" / "cells.gpkg")
+    np.testing.assert_array_equal(gpkg["covered_fraction"], 1.0)
+
+
+@pytest.mark.parametrize("coverage", ["exact", "centre"])
+def test_centre_rule_coverage_near_the_exact_one_off_pixel_lines(tmp_path, coverage):
+    z = bumpy(20, 20)
+    z[:, 14:] = np.nan  # x 14-20 m is nodata
+    dem = write_dem(tmp_path / "dem.tif", z, dtype="float64")
+    cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(2, 1, 9.3, origin=(-3.7, 2.2)))
+    with pytest.warns(PartialCoverageWarning, match="2 cells lie partly outside"):
+        build_tables(dem, cells, out=tmp_path / "out", stages="11", coverage=coverage)
+    gpkg = pyogrio.read_dataframe(tmp_path / "out" / "cells.gpkg").set_index("cell_id")
+    # geometry identity: cell 1 (x -3.7-5.6) has 5.6 of 9.3 m over the DEM, cell 2
+    # (x 5.6-14.9) 8.4 of 9.3 m over terrain; the centre rule counts whole pixel
+    # columns, so it may be off by up to one pixel column's share (1 / 9.3)
+    expected = [5.6 / 9.3, 8.4 / 9.3]
+    tol = 1e-12 if coverage == "exact" else 1.0 / 9.3
+    np.testing.assert_allclose(gpkg.loc[[1, 2], "covered_fraction"], expected, atol=tol)
+
+
+def _centroid_over_nodata(tmp_path):
+    """20 m DEM, 2 x 2 cells of 10 m; the four pixels around cell 1's centroid (5, 5)
+    are nodata."""
+    z = bumpy(20, 20)
+    z[14:16, 4:6] = np.nan  # rows 14-15 are y 4-6, columns 4-5 are x 4-6
+    return write_dem(tmp_path / "dem.tif", z, dtype="float64"), grid_polygons(2, 2, 10.0)
+
+
+@pytest.mark.parametrize("face_rule", ["higher", "mean", "min"])
+def test_centroid_over_nodata_warns_and_faces_take_the_other_cell(tmp_path, face_rule):
+    dem, polys = _centroid_over_nodata(tmp_path)
+    cells = write_cells(tmp_path / "cells.gpkg", polys)
+    out = tmp_path / "out"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", PartialCoverageWarning)  # the four nodata pixels
+        with pytest.warns(FlatElevationWarning, match="^1 cell has no flat elevation because "
+                          "the terrain at its centroid is nodata or outside the DEM"):
+            build_tables(dem, cells, out=out, stages="12", elevation_rule="centroid",
+                         face_rule=face_rule)
+    cell, face = _read(out)
+    flat = cell.groupby("cell_id").flat_elevation.first()
+    assert np.isnan(flat[1]) and np.isfinite(flat[[2, 3, 4]]).all()
+    beside = face[(face.cell_a == 1) & face.cell_b.notna()]
+    assert len(beside) == 2
+    # a face beside cell 1 takes its other cell's flat elevation under every rule
+    np.testing.assert_allclose(beside.flat_bed, flat[beside.cell_b.astype(int)].to_numpy(),
+                               rtol=1e-12)
+    # its boundary faces have no flat cell beside them at all
+    assert face[(face.cell_a == 1) & face.cell_b.isna()].flat_bed.isna().all()
+
+
+def test_empty_elevation_field_warns(case, tmp_path):
+    dem, _, _, polys = case
+    bed = np.arange(9) + 10.0
+    bed[[2, 6]] = np.nan
+    cells = write_cells(tmp_path / "f.gpkg", polys, attributes={"bed": bed})
+    with pytest.warns(FlatElevationWarning, match="^2 cells have no flat elevation because "
+                      "their 'bed' attribute is empty \\(first: 3, 7\\)"):
+        build_tables(dem, cells, out=tmp_path / "out", stages="12", elevation_rule="field",
+                     elevation_field="bed")
+
+
+def test_terrain_statistics_rules_do_not_warn_of_flat_elevations(tmp_path):
+    dem, polys = _centroid_over_nodata(tmp_path)
+    cells = write_cells(tmp_path / "cells.gpkg", polys)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", PartialCoverageWarning)
+        warnings.simplefilter("error", FlatElevationWarning)
+        build_tables(dem, cells, out=tmp_path / "out", stages="12")
+
+
 @pytest.mark.parametrize("rule", ["mean", "centroid"])
 def test_elevation_rules_on_a_plane(tmp_path, rule):
     z = tilted_plane(30, 30, sx=0.2, sy=-0.1)
@@ -399,3 +505,22 @@ def test_partial_coverage_counts_wholly_and_partly(fractions, partly, wholly, st
     assert (found.partly, found.wholly) == (partly, wholly)
     message = found.message()
     assert (message is None) if start is None else message.startswith(start)
+
+
+@pytest.mark.parametrize(
+    ("covered", "assigned", "inside", "expected"),
+    [
+        (121.0, 121.0, 1.0, 1.0),    # more pixel centres than the polygon's area: whole
+        (100.0, 100.0, 1.0, 1.0),    # fewer: whole too
+        (70.0, 100.0, 1.0, 0.7),     # 30 of the 100 pixels given to it are nodata
+        (50.0, 50.0, 0.5, 0.5),      # half the cell off the DEM, the rest over terrain
+        (30.0, 60.0, 0.5, 0.25),     # both
+        (0.0, 0.0, 1.0, 0.0),        # no pixel centre inside: no terrain
+        (0.0, 0.0, 0.0, 0.0),        # wholly off the DEM
+    ],
+)
+def test_centre_covered_fractions(covered, assigned, inside, expected):
+    from ntrans.tables import centre_covered_fractions
+
+    got = centre_covered_fractions(np.array([covered]), np.array([assigned]), np.array([inside]))
+    np.testing.assert_allclose(got, [expected], rtol=1e-12)
