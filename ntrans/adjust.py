@@ -332,25 +332,36 @@ class _Window:
         for j, ws in enumerate(self.surfaces):  # loop over events
             if prof.n_stations:
                 v = ws.sample(prof.x, prof.y, crs=self.dem.crs)
-                ok = np.isfinite(v)
-                num = np.bincount(prof.face[ok], weights=v[ok], minlength=n_f)
-                cnt = np.bincount(prof.face[ok], minlength=n_f)
-                with np.errstate(invalid="ignore", divide="ignore"):
-                    fst[:, j] = np.where(cnt > 0, num / np.where(cnt > 0, cnt, 1), np.nan)
+                fst[:, j] = _mean_above_lowest(prof.face, v, np.ones(v.size), n_f)
             if item.size and shape[0] and shape[1]:
                 grid = ws.on_dem_window(self.dem, row_off, col_off, shape[0], shape[1])
-                v = grid[rows, cols]
-                ok = np.isfinite(v)
-                num = np.bincount(item[ok], weights=(v * area)[ok], minlength=n_cells)
-                den = np.bincount(item[ok], weights=area[ok], minlength=n_cells)
-                with np.errstate(invalid="ignore", divide="ignore"):
-                    cst[:, j] = np.where(den > 0, num / np.where(den > 0, den, 1.0), np.nan)
+                cst[:, j] = _mean_above_lowest(item, grid[rows, cols], area, n_cells)
         # a face whose line has no water-surface value (e.g. on the raster's edge) takes
         # the value of its first cell
         if n_f and n_cells:
             fallback = np.where(face_a < n_cells, face_a, 0)
             fst = np.where(np.isnan(fst) & (face_a < n_cells)[:, None], cst[fallback], fst)
         return fst, cst
+
+
+def _mean_above_lowest(item: np.ndarray, values: np.ndarray, weights: np.ndarray,
+                       n_items: int) -> np.ndarray:
+    """Weighted mean of the finite ``values`` per item (NaN for items without any), formed
+    as the item's lowest value plus the weighted mean excess over it.
+
+    A water surface level over a whole cell or face then gives that level exactly, whatever
+    the weights' round-off (the plan areas of a cell's pixels differ in their last bits
+    from tile window to tile window); formed directly, the mean could land a last bit
+    below the level and count every pixel of a flattened pond at that level as wet.
+    """
+    ok = np.isfinite(values)
+    item, values, weights = item[ok], values[ok], weights[ok]
+    lowest = np.full(n_items, np.inf)
+    np.minimum.at(lowest, item, values)
+    excess = np.bincount(item, weights=(values - lowest[item]) * weights, minlength=n_items)
+    total = np.bincount(item, weights=weights, minlength=n_items)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(total > 0, lowest + excess / np.where(total > 0, total, 1.0), np.nan)
 
 
 def _families_for(tg: _TileGeometry, plan: _Plan, domain: str) -> tuple[_Family, _Family]:

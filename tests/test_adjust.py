@@ -19,7 +19,7 @@ from conftest import (
 )
 
 from ntrans.adjust import CLASS_COLUMNS, adjust_roughness
-from ntrans.errors import DryWetMismatchWarning, InputError, RoughnessError
+from ntrans.errors import DryWetMismatchWarning, InputError, NtransWarning, RoughnessError
 
 FACE_CONTRACT = ["face_id", "stage", "n_ratio", "conveyance_source", "conveyance_target",
                  "stage_bias_unadjusted", "stage_bias_adjusted"]  # DESIGN.md section 4
@@ -236,6 +236,42 @@ def test_threads_same_result_to_the_bit(channel_case, tmp_path, closure):
         pd.testing.assert_frame_equal(pd.read_parquet(tmp_path / "one" / name),
                                       pd.read_parquet(tmp_path / "two" / name),
                                       check_exact=True)
+
+
+def test_a_flat_pond_level_stays_exact_whatever_the_tiling(tmp_path):
+    """Under a water surface that is level over a cell, the cell's stage is that level
+    exactly (its lowest value plus a zero mean excess), so a pond flattened in the DEM at
+    the same level stays dry at every tile size: a stage a last bit off would count all
+    its pixels as wet.  Every output then agrees across tilings to round-off (1e-7 for the
+    stage solver's tolerance, relative to the stage bias)."""
+    y, x = np.mgrid[0:40, 0:40] + 0.5
+    z = 10.0 + 0.05 * x
+    pond = (x > 4) & (x < 36) & (y > 4) & (y < 36)
+    z[pond] = 10.0  # flattened water body
+    dem = write_dem(tmp_path / "dem.tif", z)
+    surface = write_dem(tmp_path / "ws.tif", np.where(pond, 10.0, 12.0))
+    # 9.7 m cells off the pixel grid: plan areas with fractions in every window
+    cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(4, 4, 9.7, origin=(0.35, 0.45)))
+    tables = {}
+    for tile in (7, 13, 64):
+        out = tmp_path / f"t{tile}"
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", NtransWarning)
+            _quiet(dem=dem, cells=cells, out=out, n=0.03, water_surface=[surface],
+                   tile_size=tile)
+        cell = pd.read_parquet(out / "cell_adjustment.parquet").set_index("cell_id")
+        inner = cell.loc[[6, 7, 10, 11]]  # wholly inside the pond
+        assert (inner["stage"] == 10.0).all()
+        tables[tile] = {name: pd.read_parquet(out / name).sort_values(
+            [c for c in ("face_id", "cell_id") if c in pd.read_parquet(out / name).columns][:1])
+            .reset_index(drop=True)
+            for name in ("face_adjustment.parquet", "cell_adjustment.parquet")}
+        tables[tile]["n_by_class"] = (out / "n_by_class.csv").read_bytes()
+    for tile in (7, 13):
+        assert tables[tile]["n_by_class"] == tables[64]["n_by_class"]
+        for name in ("face_adjustment.parquet", "cell_adjustment.parquet"):
+            pd.testing.assert_frame_equal(tables[tile][name], tables[64][name],
+                                          check_exact=False, rtol=1e-7, atol=1e-7)
 
 
 def test_nanmedian_rows_without_values_is_nan_and_quiet():
