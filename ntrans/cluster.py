@@ -18,9 +18,12 @@ import functools
 import logging
 import multiprocessing
 import os
+import re
+import threading
 from collections import deque
 from collections.abc import Callable, Iterable, Iterator
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import Future, ThreadPoolExecutor
+from concurrent.futures import TimeoutError as FutureTimeout
 from typing import Any
 
 from .errors import InputError
@@ -72,6 +75,20 @@ def check_where(workers: int | None, scheduler: str | None, threads: int | None 
         raise InputError(
             "threads run tiles in this process; give either threads or workers / a scheduler"
         )
+    if scheduler is not None and _SCHEDULER_ADDRESS.fullmatch(str(scheduler).strip()) is None:
+        raise InputError(
+            f"scheduler address {scheduler!r} is not a Dask scheduler's address; give "
+            "tcp://HOST:PORT (the scheduler's port, usually 8786, not its dashboard's)"
+        )
+
+
+#: a Dask scheduler's address: an optional comm scheme, a host (or [IPv6]) and a port;
+#: or a scheduler in this process (``inproc://``)
+_SCHEDULER_ADDRESS = re.compile(
+    r"(?:(?:tcp|tls|ws|wss|ucx)://)?(?:\[[0-9A-Fa-f:.]+\]|[^\s:/\[\]]+):\d{1,5}|inproc://\S+")
+#: seconds to wait for an existing scheduler to answer before giving up (the client's
+#: own connect timeout does not cover a server that accepts and then says nothing)
+SCHEDULER_WAIT_SECONDS = 60.0
 
 
 def _warm_worker() -> None:
@@ -110,9 +127,10 @@ def _connect(workers: int | None, scheduler: str | None) -> tuple[Any, Any]:
     if scheduler is not None:
         try:
             client = Client(scheduler, timeout=SCHEDULER_TIMEOUT)
-        except OSError as exc:
+        except Exception as exc:  # refused, timed out, or something else answered there
             raise InputError(
-                f"no Dask scheduler answered at {scheduler}; check the address or drop --scheduler"
+                f"no Dask scheduler answered at {scheduler} ({type(exc).__name__}); check the "
+                "address (the scheduler's port, not its dashboard's) or drop --scheduler"
             ) from exc
     else:
         import dask
@@ -173,8 +191,21 @@ class WorkerConnection:
         if note is not None:
             log.info(note)
         self._pool = ThreadPoolExecutor(1, thread_name_prefix="ntrans-workers")
-        self._future = self._pool.submit(_connect, workers, scheduler)
+        self._scheduler = scheduler
+        # the connection is made in a daemon thread of its own: a scheduler that never
+        # answers must not keep the job (or its interruption) waiting
+        self._future: Future[Any] = Future()
+        threading.Thread(target=self._connect, args=(workers, scheduler),
+                         name="ntrans-connect", daemon=True).start()
         self._closing: Any = None
+
+    def _connect(self, workers: int | None, scheduler: str | None) -> None:
+        if not self._future.set_running_or_notify_cancel():  # pragma: no cover
+            return
+        try:
+            self._future.set_result(_connect(workers, scheduler))
+        except BaseException as exc:
+            self._future.set_exception(exc)
 
     def ready(self) -> bool:
         """True once the workers are up and warm (never waits)."""
@@ -186,8 +217,17 @@ class WorkerConnection:
 
     @property
     def client(self) -> Any:
-        """The connected client (waits for the start-up to finish)."""
-        return self._future.result()[0]
+        """The connected client (waits for the start-up to finish; for an existing
+        scheduler at most :data:`SCHEDULER_WAIT_SECONDS`)."""
+        wait = None if self.local else SCHEDULER_WAIT_SECONDS
+        try:
+            return self._future.result(timeout=wait)[0]
+        except FutureTimeout:
+            raise InputError(
+                f"the Dask scheduler at {self._scheduler} did not answer within "
+                f"{wait:g} s; check the address (the scheduler's port, not its dashboard's) "
+                "or drop --scheduler"
+            ) from None
 
     def release(self) -> None:
         """Start closing the client and local cluster in the background (no waiting).
@@ -199,6 +239,8 @@ class WorkerConnection:
             self._closing = self._pool.submit(self._shut_down)
 
     def _shut_down(self) -> None:
+        if not self._future.done() and not self.local:
+            return  # a scheduler that never answered: nothing to close, nothing to wait for
         if self._future.exception() is None:
             client, cluster = self._future.result()
             client.close()

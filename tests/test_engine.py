@@ -181,6 +181,43 @@ def test_worker_connection_checks_its_options_at_once(workers, scheduler):
     assert connect_workers(None, None) is None  # neither: run in this process
 
 
+@pytest.mark.parametrize("address, valid", [
+    ("tcp://127.0.0.1:8786", True), ("127.0.0.1:8786", True), ("tls://[::1]:8786", True),
+    ("tcp://scheduler.example.org:8786", True), ("inproc://10.0.0.1/123/1", True),
+    ("garbage", False), ("http://example.com:80", False), ("tcp://127.0.0.1", False),
+    ("tcp://host:port", False),
+])
+def test_scheduler_address_is_checked_before_connecting(address, valid):
+    from ntrans.cluster import check_where
+
+    if valid:
+        check_where(None, address)
+        return
+    with pytest.raises(InputError, match="tcp://HOST:PORT"):
+        check_where(None, address)
+
+
+def test_a_server_that_never_answers_is_given_up_on(monkeypatch):
+    """Something listening at the address that is not a Dask scheduler (e.g. its
+    dashboard's port): the job gives up after the wait with one sentence instead of
+    hanging, and closing does not wait for the connection attempt."""
+    import socket
+    import time
+
+    import ntrans.cluster as cluster
+
+    monkeypatch.setattr(cluster, "SCHEDULER_WAIT_SECONDS", 1.0)
+    with socket.socket() as server:
+        server.bind(("127.0.0.1", 0))
+        server.listen()  # accepts connections, never says a word
+        address = f"tcp://127.0.0.1:{server.getsockname()[1]}"
+        started = time.perf_counter()
+        with pytest.raises(InputError, match="did not answer within 1 s"):
+            with cluster.WorkerConnection(None, address) as connection:
+                connection.n_workers()
+        assert time.perf_counter() - started < 8.0  # the wait, not the client's timeouts
+
+
 def test_task_travels_as_wkb_and_comes_back_identical():
     import pickle
 
