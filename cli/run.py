@@ -65,7 +65,8 @@ def command(ctx: click.Context, project: str, overwrite: bool | None) -> None:
     """Run the whole job of PROJECT (a TOML project file): stage tables, n per class,
     maps, plots, report and manifest, written as one bundle folder.
 
-    Create a project file with ``ntrans init``.
+    Create a project file with ``ntrans init``.  Settings such as csv, tile_size,
+    threads, workers and scheduler are keys of the project file ([outputs], [run]).
     """
     from ntrans.project import run_project
 

@@ -723,6 +723,10 @@ def adjust_roughness(
     horizontal unit, stages and stage bias in the DEM's vertical unit; conveyance
     k A R^(2/3) / n with A and R converted to the horizontal unit L and k = 1.0 (metre) or
     1.486 (foot): L^3/s on faces, L^4/s on cells (k V R^(2/3) / n).
+
+    The adjusted n values are a starting point for calibration in the target model, not a
+    substitute for it; a qualified engineer must review them; local codes, agency guidance
+    and licensed practice take precedence (:data:`ntrans.cautions.CAUTIONS`).
     """
     from .coverage import area_share_inside
     from .inputs import check_water_surfaces_reach, read_water_surfaces

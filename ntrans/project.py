@@ -43,6 +43,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from .cautions import CAUTIONS
 from .errors import OutputError, OutputExistsError, ProjectFileError, collect_warnings
 from .memory import release_free_memory
 
@@ -518,6 +519,10 @@ def run_project(
     RoughnessError
         A class (or the default class) is missing from the n table, or an n is not a
         Manning's n; checked before the stage tables.
+
+    The adjusted n values are a starting point for calibration in the target model, not a
+    substitute for it; a qualified engineer must review them; local codes, agency guidance
+    and licensed practice take precedence (:data:`ntrans.cautions.CAUTIONS`).
     """
     import pandas as pd
 
@@ -586,6 +591,8 @@ def run_project(
                         "size": project.path.stat().st_size,
                     },
                     "run_seconds": {**step_seconds, **{k: round(v, 3) for k, v in timings.items()}},
+                    # with every copy of the bundle, whichever file is passed on
+                    "cautions": list(CAUTIONS),
                 },
             )
     final = Path(folder.final)

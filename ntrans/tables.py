@@ -510,6 +510,20 @@ def build_tables(
     -------
     TablesResult
 
+    Raises
+    ------
+    InputFileError
+        A missing or unreadable DEM or cells file.
+    CRSError
+        No CRS, a geographic CRS, a projection that distorts lengths by more than 2 %, or
+        cells that cannot be brought into the DEM's CRS.
+    InputError
+        Among others: a bad stage or depth range, several layers and no ``cells_layer``,
+        duplicate or empty ids, stage rows that could not fit in memory, or workers and a
+        scheduler given together (:class:`~ntrans.errors.NtransError` covers them all).
+    OutputExistsError, OutputError
+        The output folder exists without ``overwrite``, or is not an ntrans output.
+
     Writes ``cell_stage.parquet``, ``face_stage.parquet``, ``cells.gpkg``, ``faces.gpkg``
     (face outputs only with ``faces``), ``tables_summary.json`` and with ``csv`` the
     ``.csv`` copies of the stage tables.  Column units are in each Parquet file's

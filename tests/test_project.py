@@ -348,6 +348,9 @@ def test_manifest_hashes_every_output_and_input(two_runs):
     assert effective["adjust_roughness"]["class_field"] == "landcover"
     assert roles["dem"]["units"] == {"horizontal": "metre", "vertical": "metre"}
     assert "ntrans" in manifest["versions"] and "rasterio" in manifest["versions"]
+    from ntrans.cautions import CAUTIONS
+
+    assert manifest["cautions"] == list(CAUTIONS)  # travel with the bundle's hashes
     assert proj.load_project(manifest["project_file"]["path"]).families["target"] == "subgrid"
 
 
