@@ -50,7 +50,7 @@ from .errors import (
     check_choice,
     warn,
 )
-from .inputs import conveyance_factor, rasters_kept_open
+from .inputs import conveyance_factor, rasters_kept_open, unit_name
 from .memory import available_memory, release_free_memory
 from .quantiles import SpilledQuantiles
 from .roughness import (
@@ -1046,6 +1046,8 @@ def adjust_roughness(
             "tiles": len(tiles),
             "horizontal_unit": dem_info.horizontal_unit,
             "vertical_unit": dem_info.vertical_unit,
+            "horizontal_unit_name": unit_name(dem_info.horizontal_unit, dem_info.xy_metres_per_unit),
+            "vertical_unit_name": unit_name(dem_info.vertical_unit, dem_info.z_metres_per_unit),
             "classes": json.loads(frame.to_json(orient="records")),
             "stage_bias": {"unadjusted": bias["unadjusted"]["overall"],
                            "adjusted": bias["adjusted"]["overall"]},

@@ -877,6 +877,30 @@ def _source_crs(frame: Any, text: str, source: _VectorInput) -> pyproj.CRS:
     return _to_pyproj(frame.crs)
 
 
+def unit_name(unit: str, metres_per_unit: float) -> str:
+    """A length unit as a reader needs it: which foot, when it is a foot."""
+    if unit != "foot":
+        return unit
+    if math.isclose(metres_per_unit, _US_SURVEY_FOOT, rel_tol=1e-9):
+        return "US survey foot (1200/3937 m)"
+    if math.isclose(metres_per_unit, _INTERNATIONAL_FOOT, rel_tol=1e-9):
+        return "foot (international, 0.3048 m)"
+    return f"foot ({metres_per_unit:.9g} m)"
+
+
+def crs_label(crs: pyproj.CRS) -> str:
+    """A CRS as a reader names it: its name and EPSG code, or for a CRS without a proper
+    name (often 'unknown' in a GeoTIFF) its projection and unit."""
+    epsg = crs.to_epsg(min_confidence=90)
+    name = crs.name if crs.name and crs.name.lower() != "unknown" else None
+    if name is None:
+        method = crs.coordinate_operation.method_name if crs.coordinate_operation else None
+        unit = crs.axis_info[0].unit_name if crs.axis_info else None
+        name = ", ".join(v for v in ("a CRS without a name", method, unit and f"in {unit}")
+                         if v)
+    return f"'{name}' (EPSG:{epsg})" if epsg is not None else f"'{name}'"
+
+
 def _in_crs(frame: Any, text: str, source: _VectorInput,
             dem_crs: CRS | pyproj.CRS | str) -> tuple[Any, bool]:
     """``(frame in the horizontal part of dem_crs, whether it was reprojected)``: the
@@ -888,13 +912,13 @@ def _in_crs(frame: Any, text: str, source: _VectorInput,
     if _same_crs(own, target) or _same_crs(own, full):
         return frame.set_crs(target, allow_override=True), False
     logger.info("%s %s: reprojecting from %s to the DEM's CRS %s",
-                source.what, text, own.name, target.name)
+                source.what, text, crs_label(own), crs_label(target))
     try:
         return frame.to_crs(target), True
     except Exception as exc:
         raise CRSError(
-            f"{source.what} layer '{text}' cannot be reprojected from '{own.name}' to the "
-            f"DEM's CRS '{target.name}' ({_reason(exc, text)}); reproject it yourself first"
+            f"{source.what} layer '{text}' cannot be reprojected from {crs_label(own)} to the "
+            f"DEM's CRS {crs_label(target)} ({_reason(exc, text)}); reproject it yourself first"
         ) from exc
 
 

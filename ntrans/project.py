@@ -796,6 +796,9 @@ def _gather(project: Project, folder: Path) -> dict[str, Any]:
     units = {
         "horizontal": tsum.get("horizontal_unit", "metre"),
         "vertical": tsum.get("vertical_unit", "metre"),
+        # which foot, for the report (the short names above make the unit symbols)
+        "horizontal_name": tsum.get("horizontal_unit_name"),
+        "vertical_name": tsum.get("vertical_unit_name"),
     }
     units["manning_k"] = asum.get("manning_k", 1.486 if units["horizontal"] == "foot" else 1.0)
     summary = {

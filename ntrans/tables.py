@@ -59,7 +59,7 @@ from .errors import (
     check_choice,
     warn,
 )
-from .inputs import RASTER_CACHE_BYTES, rasters_kept_open
+from .inputs import RASTER_CACHE_BYTES, rasters_kept_open, unit_name
 from .memory import available_memory, collection_paused, release_free_memory
 from .stages import StageSpec
 
@@ -761,6 +761,8 @@ def build_tables(
             "snap_tolerance": job.snap_tolerance,
             "horizontal_unit": dem_info.horizontal_unit,
             "vertical_unit": dem_info.vertical_unit,
+            "horizontal_unit_name": unit_name(dem_info.horizontal_unit, dem_info.xy_metres_per_unit),
+            "vertical_unit_name": unit_name(dem_info.vertical_unit, dem_info.z_metres_per_unit),
             "manning_k": dem_info.manning_k,
             **partial.summary(),
             "seconds": round(seconds, 3),

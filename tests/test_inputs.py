@@ -1087,3 +1087,27 @@ def test_geometry_test_in_chunks_matches_one_call(monkeypatch, threads: int) -> 
                      dtype=object)
     got = inputs._chunked(shapely.is_valid, polys)
     assert got.tolist() == [bool(i % 5) for i in range(23)]
+
+
+@pytest.mark.parametrize(("unit", "metres", "name"), [
+    ("metre", 1.0, "metre"),
+    ("foot", INT_FOOT, "foot (international, 0.3048 m)"),
+    ("foot", US_FOOT, "US survey foot (1200/3937 m)"),
+])
+def test_unit_names_say_which_foot(unit, metres, name):
+    # the two feet differ by 2 parts per million (definitions: 0.3048 m; 1200/3937 m)
+    from ntrans.inputs import unit_name
+
+    assert unit_name(unit, metres) == name
+
+
+def test_crs_label_names_a_crs_without_a_name():
+    import pyproj
+
+    from ntrans.inputs import crs_label
+
+    assert crs_label(pyproj.CRS("EPSG:32630")) == "'WGS 84 / UTM zone 30N' (EPSG:32630)"
+    unnamed = pyproj.CRS.from_proj4("+proj=tmerc +lat_0=0 +lon_0=-3 +k=0.9996 +x_0=500000 "
+                                    "+y_0=0 +ellps=WGS84 +units=us-ft +no_defs")
+    label = crs_label(unnamed)
+    assert "unknown" not in label.lower() and "US survey foot" in label

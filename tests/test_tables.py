@@ -524,3 +524,16 @@ def test_centre_covered_fractions(covered, assigned, inside, expected):
 
     got = centre_covered_fractions(np.array([covered]), np.array([assigned]), np.array([inside]))
     np.testing.assert_allclose(got, [expected], rtol=1e-12)
+
+
+@pytest.mark.parametrize(("vertical", "name"), [(None, "metre"),
+                                                ("foot", "foot (international, 0.3048 m)"),
+                                                ("us_survey_foot", "US survey foot (1200/3937 m)")])
+def test_summary_says_which_foot(case, tmp_path, vertical, name):
+    import json
+
+    dem, cells, _, _ = case
+    build_tables(dem, cells, out=tmp_path / "out", stages="11", vertical_units=vertical)
+    summary = json.loads((tmp_path / "out" / "tables_summary.json").read_text())
+    assert summary["vertical_unit_name"] == name
+    assert summary["horizontal_unit_name"] == "metre"
