@@ -26,6 +26,7 @@ the classes against the n table without building the class map, before long work
 
 from __future__ import annotations
 
+import functools
 import logging
 import threading
 from collections.abc import Callable
@@ -684,7 +685,6 @@ def raster_file_model(
     gathered strip by strip and tiles read their own windows (:class:`RasterClasses`)."""
     import rasterio
 
-
     path = str(path)
     with rasterio.open(path) as src:
         transform, crs, width, height = src.transform, src.crs, src.width, src.height
@@ -698,12 +698,28 @@ def raster_file_model(
 
 def raster_file_codes(path: str | Path) -> np.ndarray:
     """Sorted distinct class codes (float64) of a class raster file, read in strips of
-    about 4 million pixels; RoughnessError if any is not an integer."""
+    about 4 million pixels; RoughnessError if any is not an integer.
+
+    Read once per version of the file: a job checks the codes against the n table before
+    its long work and builds its class map from them later.
+    """
+    from .inputs import file_stamp
+
+    path = str(path)
+    stamp = file_stamp(path)
+    if stamp is None:  # not a local file (a URL): its identity is not known, read it again
+        return _raster_codes.__wrapped__(path, None)
+    return _raster_codes(path, stamp).copy()
+
+
+@functools.lru_cache(maxsize=4)
+def _raster_codes(path: str, stamp: tuple[int, ...] | None) -> np.ndarray:
+    """:func:`raster_file_codes` of ``path`` as it is at ``stamp`` (its file identity:
+    a file replaced or rewritten is read again)."""
     import rasterio
 
     from .inputs import _read_band1
 
-    path = str(path)
     with rasterio.open(path) as src:
         width, height = src.width, src.height
     codes = np.empty(0)

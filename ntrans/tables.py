@@ -152,7 +152,6 @@ def centre_covered_fractions(covered_area: np.ndarray, assigned_area: np.ndarray
     return np.clip(np.nan_to_num(fraction, nan=0.0), 0.0, 1.0)
 
 
-
 @dataclass(frozen=True)
 class PartialCoverage:
     """Cells not wholly over valid terrain: ``partly`` (some of their area over valid DEM

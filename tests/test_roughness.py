@@ -398,3 +398,32 @@ def test_check_roughness_inputs_other_forms(tmp_path):
     assert "['2']" in str(err.value)
     (tmp_path / "n.csv").write_text("class,n\n1,0.03\n2,0.05\n")
     check_roughness_inputs(class_raster=tmp_path / "codes.tif", n_table=tmp_path / "n.csv")
+
+
+def test_class_raster_codes_are_read_once_per_file_version(tmp_path, monkeypatch):
+    # a job checks the codes before its long work and builds the class map later: the
+    # raster is read once, and again only when the file has changed
+    import os
+
+    import rasterio
+
+    import ntrans.inputs as inputs_module
+    from ntrans.roughness import raster_file_codes
+
+    def write(codes):
+        with rasterio.open(tmp_path / "codes.tif", "w", driver="GTiff", width=4, height=4,
+                           count=1, dtype="int16", crs="EPSG:32633", transform=TRANSFORM,
+                           nodata=0) as dst:
+            dst.write(codes, 1)
+
+    write(np.full((4, 4), 3, dtype=np.int16))
+    reads = []
+    real = inputs_module._read_band1
+    monkeypatch.setattr(inputs_module, "_read_band1", lambda *a: reads.append(1) or real(*a))
+    assert raster_file_codes(tmp_path / "codes.tif").tolist() == [3.0]
+    assert raster_file_codes(tmp_path / "codes.tif").tolist() == [3.0]
+    assert len(reads) == 1
+    write(np.full((4, 4), 5, dtype=np.int16))
+    os.utime(tmp_path / "codes.tif", ns=(1, 1))  # another modification time for sure
+    assert raster_file_codes(tmp_path / "codes.tif").tolist() == [5.0]
+    assert len(reads) == 2
