@@ -429,6 +429,85 @@ def _agreement_lines(case: str, agreement: dict) -> list[str]:
     return lines
 
 
+MIB_PER_GB = 1e9 / 2**20  # peak memory is measured in MiB; the targets are in decimal GB
+TARGET_STAGES = 30  # the timing targets are stated for 30 stages per cell
+
+
+def _seconds(by: dict, case: str, pipeline: str) -> float | None:
+    row = by.get((case, pipeline))
+    return None if row is None else row.get("seconds")
+
+
+def check_targets(rows: list[dict], n_stages: int, workers: int) -> list[dict]:
+    """Each scale target with the figure this run measured and whether it is met.
+
+    ``rows``: the table's rows (median runs; ``case`` labels such as ``1e7``).  A target
+    whose pipelines did not run (or failed) in this run is ``not measured``; the timing
+    ratios count only with 30 stages and the cluster target only with 2 workers, as the
+    targets are stated.  Returns dicts with ``target``, ``measured`` (text), ``value``,
+    ``limit`` and ``verdict`` (``met``, ``NOT MET`` or ``not measured``).
+    """
+    by = {(r["case"], r["pipeline"]): r for r in rows
+          if "error" not in r and r.get("seconds") is not None}
+    out: list[dict] = []
+
+    def add(target: str, value: float | None, limit: float, ok, measured: str,
+            why_not: str | None = None) -> None:
+        if value is None or why_not is not None:
+            out.append({"target": target, "measured": why_not or "not in this run",
+                        "value": value, "limit": limit, "verdict": "not measured"})
+        else:
+            out.append({"target": target, "measured": measured, "value": value,
+                        "limit": limit, "verdict": "met" if ok(value) else "NOT MET"})
+
+    stages_note = (None if n_stages == TARGET_STAGES
+                   else f"run with {n_stages} stages, the target is for {TARGET_STAGES}")
+    cells = _seconds(by, "1e7", "ntrans_cells")
+    for ref, factor in (("exactextract", 2.0), ("rasterstats", 50.0)):
+        other = _seconds(by, "1e7", ref)
+        ratio = other / cells if cells and other else None
+        add(f"1e7 cell tables at least {factor:g}x faster than {ref}", ratio, factor,
+            lambda v, f=factor: v >= f,
+            f"{ratio:.1f}x ({other:.2f} s / {cells:.2f} s)" if ratio else "", stages_note)
+    cases = sorted({case for case, _ in by}, key=float)
+    for case in cases:
+        mine, floor = _seconds(by, case, "ntrans_cells"), _seconds(by, case, "floor")
+        ratio = mine / floor if mine and floor else None
+        add(f"{case} cell tables within 3x of the read-and-sort floor", ratio, 3.0,
+            lambda v: v <= 3.0,
+            f"{ratio:.1f}x ({mine:.2f} s / {floor:.2f} s)" if ratio else "",
+            stages_note if case == "1e7" else None)
+    for case, gb in (("1e7", 1.0), ("1e8", 1.5)):
+        row = by.get((case, "ntrans_cells"))
+        peak = None if row is None else row.get("peak_mb")
+        add(f"{case} cell tables peak memory under {gb:g} GB", peak, gb * MIB_PER_GB,
+            lambda v, g=gb: v < g * MIB_PER_GB,
+            f"{peak / MIB_PER_GB:.2f} GB ({peak:.0f} MiB)" if peak else "")
+    speeds = [(case, by[(case, "ntrans_cells")].get("mpx_per_s")) for case in cases
+              if (case, "ntrans_cells") in by]
+    for (small, slow), (large, fast) in zip(speeds, speeds[1:], strict=False):
+        ratio = fast / slow if slow and fast else None
+        add(f"cell tables' throughput does not fall from {small} to {large}", ratio, 1.0,
+            lambda v: v >= 1.0,
+            f"{fast:.2f} Mpx/s against {slow:.2f} ({ratio:.2f}x)" if ratio else "")
+    one, cluster = _seconds(by, "1e7", "ntrans_faces"), _seconds(by, "1e7", "ntrans_workers")
+    ratio = cluster / one if one and cluster else None
+    add("1e7 local 2-worker cluster not slower than one process", ratio, 1.0,
+        lambda v: v <= 1.0,
+        f"{ratio:.2f}x ({cluster:.2f} s / {one:.2f} s)" if ratio else "",
+        None if workers == 2 else f"run with {workers} workers, the target is for 2")
+    return out
+
+
+def print_targets(checks: list[dict]) -> str:
+    """The targets as lines of text (also printed)."""
+    width = max(len(c["target"]) for c in checks) if checks else 0
+    lines = [f"{c['verdict']:<12} {c['target']:<{width}}  {c['measured']}" for c in checks]
+    text = "\n".join(lines)
+    print(text, flush=True)
+    return text
+
+
 def _median_run(outcomes: list[dict]) -> dict:
     """The run with the median seconds (the lower middle of an even count), with the
     seconds of every run, the largest peak memory and the errors of the runs that failed
@@ -558,11 +637,28 @@ def run(sizes: list[float], n_stages: int, workers: int, pipelines: list[str],
     print("x ntrans = seconds / seconds of ntrans_cells of the same case; x n.cpu = the same "
           "with cpu_s; x floor = seconds / seconds of floor (read DEM + sort all pixels).")
     results["table"] = table
+    print("\ntargets (medians of this run; ratios are within one run):")
+    results["targets"] = check_targets(all_rows, n_stages, workers)
+    results["targets_text"] = print_targets(results["targets"])
     results["agreement_text"] = all_agree
     results["finished"] = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
     results_path.write_text(json.dumps(results, indent=2, default=str))
     print(f"results: {results_path}")
     return results
+
+
+def show_saved(path: Path) -> list[dict]:
+    """Print the table and the targets of a results file written by :func:`run`."""
+    saved = json.loads(Path(path).read_text())
+    rows = [row for case in saved.get("cases", []) for row in case.get("rows", [])]
+    print(f"{path}: started {saved.get('started')}, {saved.get('stages')} stages, "
+          f"{saved.get('workers')} workers, {saved.get('repeat', 1)} round(s)")
+    print_table(rows)
+    print("\ntargets (medians of this run; ratios are within one run):")
+    checks = check_targets(rows, int(saved.get("stages", TARGET_STAGES)),
+                           int(saved.get("workers", 2)))
+    print_targets(checks)
+    return checks
 
 
 def main() -> None:
@@ -590,10 +686,16 @@ def main() -> None:
     parser.add_argument("--repeat", type=int, default=1,
                         help="rounds of all pipelines (in turn); each reports its median run "
                              "(default 1)")
+    parser.add_argument("--targets-of", type=Path, metavar="RESULTS_JSON",
+                        help="print the table and the targets of a saved results file "
+                             "instead of running")
     parser.add_argument("--child", type=Path, help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.child is not None:
         _run_child(args.child)
+        return
+    if args.targets_of is not None:
+        show_saved(args.targets_of)
         return
     sizes = [float(s) for s in args.sizes.split(",") if s.strip()]
     pipelines = [p.strip() for p in args.pipelines.split(",") if p.strip()]
