@@ -568,7 +568,9 @@ def read_table_metadata(path: str | os.PathLike[str]) -> dict[str, Any]:
 def write_csv(parquet_path: str | os.PathLike[str], csv_path: str | os.PathLike[str]) -> Path:
     """Copy a Parquet table to CSV, one row group at a time (bounded memory).
 
-    Nulls become empty fields; floats are written with enough digits to round-trip.
+    Nulls and NaN become empty fields (a spreadsheet reads them as blank cells, pandas as
+    NaN; the text ``nan`` would be a word to a spreadsheet); floats are written with
+    enough digits to round-trip.
     """
     source = pq.ParquetFile(os.fspath(parquet_path))
     schema = source.schema_arrow.remove_metadata()
@@ -576,8 +578,19 @@ def write_csv(parquet_path: str | os.PathLike[str], csv_path: str | os.PathLike[
     options = pacsv.WriteOptions(include_header=True, quoting_style="needed")
     with pacsv.CSVWriter(os.fspath(target), schema, write_options=options) as writer:
         for i in range(source.num_row_groups):
-            writer.write_table(source.read_row_group(i).replace_schema_metadata(None))
+            writer.write_table(_nan_as_null(source.read_row_group(i).replace_schema_metadata(None)))
     return target
+
+
+def _nan_as_null(table: pa.Table) -> pa.Table:
+    """``table`` with every NaN of its floating-point columns made a null."""
+    import pyarrow.compute as pc
+
+    for i, column in enumerate(table.columns):
+        if pa.types.is_floating(column.type):
+            nulled = pc.if_else(pc.is_nan(column), pa.scalar(None, column.type), column)
+            table = table.set_column(i, table.field(i), nulled)
+    return table
 
 
 @dataclass(frozen=True)
