@@ -616,7 +616,8 @@ def encode_geometry(geometry: np.ndarray) -> EncodedGeometry:
 @dataclass(frozen=True)
 class EncodedLayer:
     """A GeoPackage layer read without making geometry objects: the attributes as
-    geopandas reads them, the geometry as :class:`EncodedGeometry` and the CRS (a pyproj
+    geopandas reads them (integer columns with empty fields as nullable ``Int64``), the
+    geometry as :class:`EncodedGeometry` and the CRS (a pyproj
     CRS or None)."""
 
     frame: pd.DataFrame
@@ -633,10 +634,23 @@ def read_encoded_layer(path: str | os.PathLike[str], columns: list[str] | None =
     import pyogrio.raw
     import pyproj
 
-    frame = pyogrio.read_dataframe(path, columns=columns, read_geometry=False)
+    frame = pyogrio.read_dataframe(
+        path, columns=columns, read_geometry=False, use_arrow=True,
+        arrow_to_pandas_kwargs={"types_mapper": _nullable_integers})
+    for name in frame.columns:
+        # an id column with empty fields (cell_b on the boundary) stays integer, exact
+        # beyond 2^53, and is written back as one; a column without them is plain int64
+        if isinstance(frame[name].dtype, pd.Int64Dtype) and not frame[name].hasnans:
+            frame[name] = frame[name].to_numpy(dtype=np.int64)
     meta, _, wkb, _ = pyogrio.raw.read(path, columns=[])
     crs = pyproj.CRS(meta["crs"]) if meta.get("crs") else None
     return EncodedLayer(frame, EncodedGeometry(str(meta["geometry_type"]), wkb), crs)
+
+
+def _nullable_integers(arrow_type: pa.DataType) -> Any:
+    """pandas type of an Arrow integer column read from a layer: nullable Int64 (NumPy
+    would make a column with nulls float, rounding ids beyond 2^53)."""
+    return pd.Int64Dtype() if pa.types.is_integer(arrow_type) else None
 
 
 def write_geopackage(
