@@ -146,7 +146,8 @@ csv = click.option(
     "--csv",
     is_flag=True,
     default=False,
-    help="Also write every Parquet table as CSV beside it (the same name with .csv).",
+    help="Also write every Parquet table as CSV beside it (the same name with .csv; an "
+    "empty field is a missing value).",
 )
 
 tile_size = click.option(

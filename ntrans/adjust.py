@@ -889,6 +889,13 @@ def adjust_roughness(
                                                f"{unit_symbol(dem_info.horizontal_unit)}4/s")}
         descriptions = _descriptions()
         cell_descriptions = {**descriptions, **_cell_conveyance_descriptions()}
+        if domain == "faces":
+            # the stage errors are solved on the fit domain only: say why these are empty
+            for column in ("stage_bias_unadjusted", "stage_bias_adjusted"):
+                cell_descriptions[column] += (
+                    "; solved only when the class fit runs on cells (closure 'cell'), so "
+                    "empty here: the stage errors of this run are per face, in "
+                    "face_adjustment.parquet")
         id_type = id_arrow_type(ids)
         f64 = pa.float64()
         face_schema = pa.schema(

@@ -239,9 +239,34 @@ def write_geotiff(
     return p
 
 
-def write_face_layer(path: str | os.PathLike[str], faces: Any, values: pd.DataFrame, *, face_id: str = "face_id") -> Path:
+def face_layer_descriptions(vertical_unit: str = "m") -> dict[str, str]:
+    """What each column of the bundle's ``maps/faces.gpkg`` holds (its
+    ``gpkg_data_columns``); stage errors are in ``vertical_unit``."""
+    bias = ("median over the window of the face's stage error (target minus source stage "
+            "at equal conveyance, face_adjustment.parquet's {column}) {how} ({unit})")
+    return {
+        "face_id": "face number, as in face_adjustment.parquet",
+        "cell_a": "cell id on one side of the face",
+        "cell_b": "cell id on the other side (empty on the mesh boundary)",
+        "length": "face length in plan (horizontal unit)",
+        "n_ratio_median": "median over the window of the face's n ratio (n target / n source "
+                          "at equal conveyance, face_adjustment.parquet's n_ratio; "
+                          "dimensionless)",
+        "stage_bias_unadjusted_median": bias.format(column="stage_bias_unadjusted",
+                                                    how="with n carried over unchanged",
+                                                    unit=vertical_unit),
+        "stage_bias_adjusted_median": bias.format(column="stage_bias_adjusted",
+                                                  how="with the fitted n", unit=vertical_unit),
+        "dominant_class": "roughness class with the largest length along the face",
+    }
+
+
+def write_face_layer(path: str | os.PathLike[str], faces: Any, values: pd.DataFrame, *,
+                     face_id: str = "face_id",
+                     descriptions: dict[str, str] | None = None) -> Path:
     """Write ``faces`` joined to ``values`` (indexed by face id; its columns become
-    attributes), in face id order.
+    attributes), in face id order; ``descriptions`` (column -> text) go to its
+    ``gpkg_data_columns``.
 
     ``faces``: a GeoDataFrame of lines with ``face_id``, or the same layer as an
     :class:`ntrans.outputs.EncodedLayer` (attributes and WKB: no geometry objects made).
@@ -265,7 +290,8 @@ def write_face_layer(path: str | os.PathLike[str], faces: Any, values: pd.DataFr
         crs = faces.crs
     if p.exists():
         p.unlink()
-    return write_geopackage(layer, p, "faces", encoded=encoded, crs=crs)
+    return write_geopackage(layer, p, "faces", encoded=encoded, crs=crs,
+                            descriptions=descriptions)
 
 
 # --------------------------------------------------------------------------- quick-looks
@@ -567,7 +593,8 @@ def write_maps(
                 length_unit=length_unit, scale=scale, shade=shade,
             )
     if faces is not None and face_values is not None:
-        written["faces"] = write_face_layer(out / "faces.gpkg", faces, face_values)
+        written["faces"] = write_face_layer(out / "faces.gpkg", faces, face_values,
+                                            descriptions=face_layer_descriptions(vertical_unit))
     return written
 
 

@@ -568,7 +568,9 @@ def read_table_metadata(path: str | os.PathLike[str]) -> dict[str, Any]:
 def write_csv(parquet_path: str | os.PathLike[str], csv_path: str | os.PathLike[str]) -> Path:
     """Copy a Parquet table to CSV, one row group at a time (bounded memory).
 
-    Nulls become empty fields; floats are written with enough digits to round-trip.
+    Nulls and NaN become empty fields (a spreadsheet reads them as blank cells, pandas as
+    NaN; the text ``nan`` would be a word to a spreadsheet); floats are written with
+    enough digits to round-trip.
     """
     source = pq.ParquetFile(os.fspath(parquet_path))
     schema = source.schema_arrow.remove_metadata()
@@ -576,8 +578,19 @@ def write_csv(parquet_path: str | os.PathLike[str], csv_path: str | os.PathLike[
     options = pacsv.WriteOptions(include_header=True, quoting_style="needed")
     with pacsv.CSVWriter(os.fspath(target), schema, write_options=options) as writer:
         for i in range(source.num_row_groups):
-            writer.write_table(source.read_row_group(i).replace_schema_metadata(None))
+            writer.write_table(_nan_as_null(source.read_row_group(i).replace_schema_metadata(None)))
     return target
+
+
+def _nan_as_null(table: pa.Table) -> pa.Table:
+    """``table`` with every NaN of its floating-point columns made a null."""
+    import pyarrow.compute as pc
+
+    for i, column in enumerate(table.columns):
+        if pa.types.is_floating(column.type):
+            nulled = pc.if_else(pc.is_nan(column), pa.scalar(None, column.type), column)
+            table = table.set_column(i, table.field(i), nulled)
+    return table
 
 
 @dataclass(frozen=True)
@@ -603,7 +616,8 @@ def encode_geometry(geometry: np.ndarray) -> EncodedGeometry:
 @dataclass(frozen=True)
 class EncodedLayer:
     """A GeoPackage layer read without making geometry objects: the attributes as
-    geopandas reads them, the geometry as :class:`EncodedGeometry` and the CRS (a pyproj
+    geopandas reads them (integer columns with empty fields as nullable ``Int64``), the
+    geometry as :class:`EncodedGeometry` and the CRS (a pyproj
     CRS or None)."""
 
     frame: pd.DataFrame
@@ -620,10 +634,23 @@ def read_encoded_layer(path: str | os.PathLike[str], columns: list[str] | None =
     import pyogrio.raw
     import pyproj
 
-    frame = pyogrio.read_dataframe(path, columns=columns, read_geometry=False)
+    frame = pyogrio.read_dataframe(
+        path, columns=columns, read_geometry=False, use_arrow=True,
+        arrow_to_pandas_kwargs={"types_mapper": _nullable_integers})
+    for name in frame.columns:
+        # an id column with empty fields (cell_b on the boundary) stays integer, exact
+        # beyond 2^53, and is written back as one; a column without them is plain int64
+        if isinstance(frame[name].dtype, pd.Int64Dtype) and not frame[name].hasnans:
+            frame[name] = frame[name].to_numpy(dtype=np.int64)
     meta, _, wkb, _ = pyogrio.raw.read(path, columns=[])
     crs = pyproj.CRS(meta["crs"]) if meta.get("crs") else None
     return EncodedLayer(frame, EncodedGeometry(str(meta["geometry_type"]), wkb), crs)
+
+
+def _nullable_integers(arrow_type: pa.DataType) -> Any:
+    """pandas type of an Arrow integer column read from a layer: nullable Int64 (NumPy
+    would make a column with nulls float, rounding ids beyond 2^53)."""
+    return pd.Int64Dtype() if pa.types.is_integer(arrow_type) else None
 
 
 def write_geopackage(

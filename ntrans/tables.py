@@ -297,6 +297,46 @@ def _descriptions() -> dict[str, str]:
     return d
 
 
+def layer_descriptions(columns: tuple[str, ...], units: dict[str, str], *, mode: str,
+                       reference: float, item: str) -> dict[str, str]:
+    """What each column of the tables' ``cells.gpkg`` (``item`` "cell") or ``faces.gpkg``
+    (``item`` "face") holds, with its unit, for ``gpkg_data_columns``.
+
+    ``bed_factor`` and ``perimeter_ratio`` name the reference they are taken at: the
+    middle of the table's depths (``mode`` "depth", above the item's lowest terrain) or
+    of its stages (``mode`` "stage").
+    """
+    z = units.get("stage", "")
+    at = (f"at the reference depth, {reference:g} {z} above the {item}'s lowest terrain "
+          "(the middle of the table's depths)" if mode == "depth"
+          else f"at the reference stage, {reference:g} {z} (the middle of the table's stages)")
+    special = {
+        "area": f"plan area of the {item}",
+        "covered_area": f"plan area of the {item} over valid DEM pixels",
+        "z_min": f"lowest terrain elevation in the {item}",
+        "z_mean": f"area-weighted mean terrain elevation in the {item}",
+        "z_max": f"highest terrain elevation in the {item}",
+        "bed_factor": f"wetted bed area (3-D) / wet plan area {at}",
+        "perimeter_ratio": f"wetted perimeter / top width {at}",
+    }
+    special["covered_fraction"] = (
+        "share of the face's length over valid DEM pixels" if item == "face"
+        else "share of the cell over valid DEM pixels (under the centre rule: of the pixels "
+             "the rule gives it, times its share inside the DEM)")
+    base = _descriptions()
+    out = {}
+    for column in columns:
+        text = special.get(column, base.get(column, ""))
+        unit = units.get(column, "")
+        if text and unit and unit != "1":
+            text = f"{text} ({unit})"
+        elif text and unit == "1":
+            text = f"{text} (dimensionless)"
+        if text:
+            out[column] = text
+    return out
+
+
 @dataclass
 class MeshJob:
     """What every job reads and builds before its tiles run.
@@ -719,8 +759,14 @@ def build_tables(
             geometry=gpd.GeoSeries(geoms, crs=crs),
             crs=crs,
         )
+        layer_texts = {
+            item: layer_descriptions(columns, units, mode=spec.mode,
+                                     reference=settings.reference, item=item)
+            for item, columns in (("cell", CELL_SUMMARY_COLUMNS), ("face", FACE_SUMMARY_COLUMNS))
+        }
         files.append(write_geopackage(cell_frame, tmp / "cells.gpkg", "cells",
-                                      encoded=None if encoded is None else encoded.result()))
+                                      encoded=None if encoded is None else encoded.result(),
+                                      descriptions=layer_texts["cell"]))
         del cell_frame
         if mesh is not None:
             columns: dict[str, Any] = {
@@ -732,7 +778,8 @@ def build_tables(
             }
             face_frame = pd.DataFrame({name: columns.pop(name) for name in FACE_SUMMARY_COLUMNS})
             files.append(write_geopackage(face_frame, tmp / "faces.gpkg", "faces",
-                                          encoded=job.face_geometry, crs=crs))
+                                          encoded=job.face_geometry, crs=crs,
+                                          descriptions=layer_texts["face"]))
             del face_frame
         if csv:
             files.append(write_csv(cell_path, tmp / "cell_stage.csv"))
@@ -768,6 +815,9 @@ def build_tables(
             "units": {k: v for k, v in units.items() if k in set(CELL_STAGE_COLUMNS)
                       | set(FACE_STAGE_COLUMNS) | set(CELL_SUMMARY_COLUMNS)
                       | set(FACE_SUMMARY_COLUMNS)},
+            # what each column of cells.gpkg and faces.gpkg holds, as in the layers
+            "cell_layer": layer_texts["cell"],
+            "face_layer": layer_texts["face"] if mesh is not None else {},
         }
         summary_path = tmp / "tables_summary.json"
         summary_path.write_text(json.dumps(summary, indent=2))

@@ -624,6 +624,28 @@ def test_cell_layer_holds_the_fit_domains_medians_and_says_which(channel_case, t
     assert res.summary["cell_layer"] == described
 
 
+@pytest.mark.parametrize("closure", ["lumped", "cell"])
+def test_cell_table_says_when_its_stage_errors_are_empty(channel_case, tmp_path, closure):
+    # the stage errors are solved on the fit domain only: with faces fitted the cell
+    # table's columns are empty throughout, and their description has to say why
+    from ntrans.outputs import read_table_metadata
+
+    dem, cells, classes, table = channel_case
+    out = tmp_path / "out"
+    res = _quiet(dem=dem, cells=cells, out=out, classes=classes, class_field="kind",
+                 n_table=table, depths="0.5:2.5:0.5", closure=closure)
+    rows = pd.read_parquet(out / "cell_adjustment.parquet")
+    described = read_table_metadata(out / "cell_adjustment.parquet")["description"]
+    for column in ("stage_bias_unadjusted", "stage_bias_adjusted"):
+        if res.summary["fit_domain"] == "faces":
+            assert rows[column].isna().all()
+            assert "empty here" in described[column]
+            assert "face_adjustment.parquet" in described[column]
+        else:
+            assert rows[column].notna().any()
+            assert "empty" not in described[column]
+
+
 def test_centroid_over_nodata_warns(tmp_path):
     from ntrans.errors import FlatElevationWarning, PartialCoverageWarning
 

@@ -388,6 +388,38 @@ def test_face_layer_from_wkb_is_the_face_layer_from_geometry(tmp_path):
     assert shapely.equals_exact(a.geometry.to_numpy(), b.geometry.to_numpy(), 0.0).all()
 
 
+def test_face_layer_keeps_integer_cell_ids_exact_and_describes_its_columns(tmp_path):
+    # the boundary faces leave cell_b empty: read back through NumPy such a column turned
+    # float, and the bundle's maps/faces.gpkg stored ids as REAL (2^62 + 1 became 2^62)
+    import sqlite3
+
+    from ntrans.outputs import column_descriptions_of, read_encoded_layer, write_geopackage
+
+    big = 2**62 + 1
+    faces = pd.DataFrame({"face_id": np.arange(3, dtype=np.int64),
+                          "cell_a": pd.array([big, big, big + 2], dtype="Int64"),
+                          "cell_b": pd.array([None, big + 2, big + 4], dtype="Int64"),
+                          "length": [1.0, 2.0, 3.0]})
+    lines = [shapely.LineString([(i, 0), (i, 1)]) for i in range(3)]
+    write_geopackage(gpd.GeoDataFrame(faces, geometry=lines, crs="EPSG:32633"),
+                     tmp_path / "faces.gpkg", "faces")
+    values = pd.DataFrame({"n_ratio_median": [0.9, 1.1, np.nan],
+                           "stage_bias_unadjusted_median": [0.1, -0.2, np.nan]},
+                          index=pd.Index(np.arange(3), name="face_id"))
+    out = maps.write_face_layer(tmp_path / "map_faces.gpkg",
+                                read_encoded_layer(tmp_path / "faces.gpkg"), values,
+                                descriptions=maps.face_layer_descriptions("ft"))
+    with sqlite3.connect(out) as db:
+        types = {row[1]: row[2] for row in db.execute('PRAGMA table_info("faces")')}
+        rows = db.execute("SELECT cell_a, cell_b FROM faces ORDER BY face_id").fetchall()
+    assert (types["face_id"], types["cell_a"], types["cell_b"]) == ("INTEGER",) * 3
+    assert rows == [(big, None), (big, big + 2), (big + 2, big + 4)]
+    texts = column_descriptions_of(out, "faces")
+    assert set(texts) == {"face_id", "cell_a", "cell_b", "length", "n_ratio_median",
+                          "stage_bias_unadjusted_median"}
+    assert texts["stage_bias_unadjusted_median"].endswith("(ft)")
+
+
 def test_map_compressed_on_every_core_is_the_one_thread_file(tmp_path, monkeypatch):
     """GDAL's multi-threaded block compression writes the same GeoTIFF, byte for byte, as
     one thread (file reproducibility: the manifest hashes every map)."""

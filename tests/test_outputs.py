@@ -432,6 +432,26 @@ def test_write_csv_equals_parquet(tmp_path: Path) -> None:
     np.testing.assert_array_equal(got["stage"].to_numpy(), want["stage"].to_numpy())
 
 
+def test_write_csv_writes_nan_as_an_empty_field(tmp_path: Path) -> None:
+    # a NaN (n_ratio where one family is dry) must read back as missing in a spreadsheet
+    # and in pandas: the text "nan" is a word to a spreadsheet, and it differed from the
+    # empty field written for a null in the same file
+    parquet = tmp_path / "t.parquet"
+    with TableWriter(parquet, schema={"face_id": "int64", "n_ratio": "float64",
+                                      "stage_bias": "float32"}) as w:
+        w.write({"face_id": np.array([0, 1, 2]),
+                 "n_ratio": np.array([1.25, np.nan, 0.5]),
+                 "stage_bias": np.array([np.nan, -0.125, 0.0], dtype=np.float32)})
+    csv = write_csv(parquet, tmp_path / "t.csv")
+    lines = csv.read_text().splitlines()
+    assert lines[1:] == ["0,1.25,", "1,,-0.125", "2,0.5,0"]
+    got = pd.read_csv(csv)
+    want = pq.read_table(parquet).to_pandas()
+    np.testing.assert_array_equal(got["n_ratio"].to_numpy(), want["n_ratio"].to_numpy())
+    np.testing.assert_array_equal(got["stage_bias"].to_numpy(dtype=np.float32),
+                                  want["stage_bias"].to_numpy())
+
+
 def test_write_geopackage_round_trip(tmp_path: Path) -> None:
     import geopandas as gpd
 

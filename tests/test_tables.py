@@ -199,6 +199,35 @@ def test_same_terrain_in_other_units_converts_by_the_unit_factors(tmp_path, hori
                     ref_units[col], 1.0), rtol=1e-9, atol=1e-9, err_msg=col)
 
 
+@pytest.mark.parametrize(
+    ("window", "reference"),
+    [({"depths": "0.5:2:0.5"}, "at the reference depth, 1.25 m above the cell's lowest"),
+     ({"stages": "10:12:0.5"}, "at the reference stage, 11 m")],
+)
+def test_layers_say_what_each_column_holds_with_its_unit(case, tmp_path, window, reference):
+    # cells.gpkg and faces.gpkg carry their columns' meanings in gpkg_data_columns, as
+    # the adjustment's layers do: bed_factor here is taken at one reference level, the
+    # adjustment's bed_factor is a median over its window, and without a description
+    # the two read as the same figure
+    import json
+
+    from ntrans.outputs import column_descriptions_of
+
+    dem, cells, _, _ = case
+    out = tmp_path / "out"
+    build_tables(dem, cells, out=out, **window)
+    cell_texts = column_descriptions_of(out / "cells.gpkg", "cells")
+    face_texts = column_descriptions_of(out / "faces.gpkg", "faces")
+    assert set(cell_texts) == set(CELL_SUMMARY_COLUMNS)
+    assert set(face_texts) == set(FACE_SUMMARY_COLUMNS)
+    assert reference in cell_texts["bed_factor"]
+    assert cell_texts["bed_factor"].endswith("(dimensionless)")
+    assert cell_texts["z_min"].endswith("(m)") and cell_texts["area"].endswith("(m2)")
+    assert face_texts["low_point"].endswith("(m)") and "top width" in face_texts["perimeter_ratio"]
+    summary = json.loads((out / "tables_summary.json").read_text())
+    assert (summary["cell_layer"], summary["face_layer"]) == (cell_texts, face_texts)
+
+
 def test_tilted_plane_bed_factor(tmp_path):
     z = tilted_plane(30, 30, sx=0.3, sy=0.4)
     dem = write_dem(tmp_path / "dem.tif", z, dtype="float64")
