@@ -345,8 +345,9 @@ cells = "cells.gpkg"            # mesh cells as polygons, same CRS as the DEM
 classes = "landcover.gpkg"      # roughness class polygons ...
 class_field = "landcover"       # ... their class attribute ...
 n_table = "n_table.csv"         # ... and a CSV with columns class, n (optional surface)
-#                                 (names match the classes exactly, case included;
-#                                 n in s/m^(1/3), 0.005 to 1)
+#                                 (names match the classes exactly, case included,
+#                                 codes by number: 7 = 07 = 7.0; n in s/m^(1/3), 0.005 to 1,
+#                                 with a decimal point; separator , or ; or tab)
 # classes_layer = "landcover"   # layer of the classes file to read (when it holds several)
 # n_field = "n"                 # or: polygons that carry their own n
 # class_raster = "classes.tif"  # or: an integer class raster (with n_table)
