@@ -36,7 +36,7 @@ from typing import Any, Literal
 
 import numpy as np
 
-from .errors import InputFileError, RoughnessError, RoughnessRangeWarning, warn
+from .errors import CRSError, InputFileError, RoughnessError, RoughnessRangeWarning, warn
 
 log = logging.getLogger(__name__)
 
@@ -964,7 +964,8 @@ def check_roughness_inputs(
     Jobs call it before their long work, so a bad n table fails in seconds; the checks
     that need the mesh (the layer meets it, uncovered ground, overlaps) stay with
     :func:`load_roughness`.  Emits no warning.  Raises :class:`RoughnessError` (or
-    :class:`InputFileError` for a missing file) with the same sentence as :func:`load_roughness`.
+    :class:`InputFileError` for a missing file, :class:`CRSError` for a class raster
+    without a CRS) with the same sentence as :func:`load_roughness`.
     """
     import shapely
 
@@ -990,7 +991,9 @@ def check_roughness_inputs(
         if default_class is not None:
             _check_n_values(["default"], [default_class], "the default n")
         return
-    path, _ = _open_class_raster(class_raster)  # type: ignore[arg-type]
+    path, rcrs = _open_class_raster(class_raster)  # type: ignore[arg-type]
+    if rcrs is None:  # a job's DEM always has one, so load_roughness would refuse it
+        raise CRSError(f"class raster {str(path)!r} has no CRS; assign the CRS it was made in")
     table = read_n_table(n_table)  # type: ignore[arg-type]
     names = [str(int(c)) for c in raster_file_codes(path)]
     _table_lookup(names, table, what="the class raster",
@@ -1018,8 +1021,8 @@ def load_roughness(
     ``n_field``) or ``class_raster`` (with ``n_table``) must be given.  ``classes_layer``
     names the layer of ``classes`` to read (needed when the file holds several).  Layers
     in another CRS than ``crs`` (the DEM's) are reprojected, with a log line; with
-    ``crs``, class polygons without a CRS raise :class:`~ntrans.errors.CRSError`, as
-    cells do.  ``mesh_area`` is the
+    ``crs``, class polygons or a class raster without a CRS raise
+    :class:`~ntrans.errors.CRSError`, as cells do.  ``mesh_area`` is the
     union of the mesh cells, used for the coverage checks.
     """
     _check_forms(n=n, classes=classes, class_field=class_field, n_table=n_table,
@@ -1040,6 +1043,8 @@ def load_roughness(
                              mesh_area=mesh_area)
     # class raster
     path, rcrs = _open_class_raster(class_raster)  # type: ignore[arg-type]
+    if crs is not None and rcrs is None:  # never assumed to be the DEM's, as for polygons
+        raise CRSError(f"class raster {str(path)!r} has no CRS; assign the CRS it was made in")
     if crs is not None and rcrs is not None and rcrs != crs:
         log.info("class raster %s will be resampled (nearest) from %s to the DEM's CRS", path.name, rcrs)
     mesh_bounds = None

@@ -536,3 +536,18 @@ def test_text_classes_and_code_written_twice_are_not_matched_by_number(tmp_path)
     with pytest.raises(RoughnessError, match="class code 1 more than once"):
         check_roughness_inputs(class_raster=raster, n_table=tmp_path / "n.csv")
 
+
+def test_class_raster_without_crs_is_refused_like_class_polygons(tmp_path):
+    import rasterio
+
+    path = tmp_path / "codes.tif"
+    with warnings.catch_warnings():  # a raster without a CRS on purpose
+        warnings.simplefilter("ignore", rasterio.errors.NotGeoreferencedWarning)
+        with rasterio.open(path, "w", driver="GTiff", width=10, height=10, count=1,
+                           dtype="int16", transform=TRANSFORM, nodata=0) as dst:
+            dst.write(np.ones((10, 10), dtype="int16"), 1)
+    (tmp_path / "n.csv").write_text("class,n\n1,0.03\n")
+    with pytest.raises(CRSError, match="class raster .* has no CRS"):
+        load_roughness(class_raster=path, n_table=tmp_path / "n.csv", crs="EPSG:32633")
+    with pytest.raises(CRSError, match="class raster .* has no CRS"):  # before long work
+        check_roughness_inputs(class_raster=path, n_table=tmp_path / "n.csv")
