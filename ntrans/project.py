@@ -251,6 +251,15 @@ def _resolve(base: Path, value: str) -> Path:
     return p if p.is_absolute() else (base / p).resolve()
 
 
+def _did_you_mean(name: str, valid: list[str], form: str) -> str:
+    """`` (did you mean 'x'?)`` for the valid name nearest ``name`` (any case), else ``""``."""
+    import difflib
+
+    folded = {v.casefold(): v for v in valid}
+    near = difflib.get_close_matches(name.casefold(), list(folded), n=1, cutoff=0.6)
+    return f" (did you mean {form.format(folded[near[0]])}?)" if near else ""
+
+
 def parse_project(data: Mapping[str, Any], *, base: str | os.PathLike[str], path: str | os.PathLike[str] = "project.toml") -> Project:
     """Validate an already-parsed project mapping; relative paths resolve against ``base``.
 
@@ -264,9 +273,14 @@ def parse_project(data: Mapping[str, Any], *, base: str | os.PathLike[str], path
     tables: dict[str, dict[str, Any]] = {name: {} for name in SCHEMA}
     for table, content in data.items():
         if table not in SCHEMA:
+            home = [t for t, keys in SCHEMA.items() if table in keys]
+            if home:
+                raise ProjectFileError(
+                    f"key {table!r} stands above every table header; move it under [{home[0]}]"
+                )
             raise ProjectFileError(
-                f"unknown table or top-level key {table!r}; valid tables: "
-                + ", ".join(f"[{t}]" for t in SCHEMA)
+                f"unknown table or top-level key {table!r}{_did_you_mean(table, list(SCHEMA), '[{}]')}; "
+                "valid tables: " + ", ".join(f"[{t}]" for t in SCHEMA)
             )
         if not isinstance(content, dict):
             raise ProjectFileError(
@@ -276,8 +290,11 @@ def parse_project(data: Mapping[str, Any], *, base: str | os.PathLike[str], path
         valid = SCHEMA[table]
         for key, value in content.items():
             if key not in valid:
+                home = [t for t, keys in SCHEMA.items() if key in keys]
+                hint = (f" (it belongs under [{home[0]}])" if home
+                        else _did_you_mean(key, list(valid), "{!r}"))
                 raise ProjectFileError(
-                    f"unknown key {key!r} in [{table}]; valid keys of [{table}]: "
+                    f"unknown key {key!r} in [{table}]{hint}; valid keys of [{table}]: "
                     + ", ".join(valid)
                 )
             tables[table][key] = _check_value(table, key, value, valid[key], base_path)
@@ -317,9 +334,19 @@ def load_project(path: str | os.PathLike[str]) -> Project:
     p = Path(path)
     if not p.is_file():
         raise InputFileError(f"project file {str(p)!r} does not exist; create one with ntrans init")
+    raw = p.read_bytes()
+    # a byte-order mark, as some editors write, is dropped; UTF-16 is known by its mark
+    encoding = "utf-16" if raw.startswith((b"\xff\xfe", b"\xfe\xff")) else "utf-8-sig"
     try:
-        with open(p, "rb") as handle:
-            data = tomllib.load(handle)
+        text = raw.decode(encoding)
+    except UnicodeDecodeError as exc:
+        line = raw[:exc.start].count(b"\n") + 1
+        raise ProjectFileError(
+            f"project file {str(p)!r} is not UTF-8 text (line {line} holds a character in "
+            "another encoding); save it as UTF-8"
+        ) from None
+    try:
+        data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ProjectFileError(f"project file {str(p)!r} is not valid TOML: {exc}") from exc
     return parse_project(data, base=p.resolve().parent, path=p)
@@ -345,8 +372,9 @@ cells = "cells.gpkg"            # mesh cells as polygons, same CRS as the DEM
 classes = "landcover.gpkg"      # roughness class polygons ...
 class_field = "landcover"       # ... their class attribute ...
 n_table = "n_table.csv"         # ... and a CSV with columns class, n (optional surface)
-#                                 (names match the classes exactly, case included;
-#                                 n in s/m^(1/3), 0.005 to 1)
+#                                 (names match the classes exactly, case included,
+#                                 codes by number: 7 = 07 = 7.0; n in s/m^(1/3), 0.005 to 1,
+#                                 with a decimal point; separator , or ; or tab)
 # classes_layer = "landcover"   # layer of the classes file to read (when it holds several)
 # n_field = "n"                 # or: polygons that carry their own n
 # class_raster = "classes.tif"  # or: an integer class raster (with n_table)

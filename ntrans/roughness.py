@@ -36,7 +36,7 @@ from typing import Any, Literal
 
 import numpy as np
 
-from .errors import InputFileError, RoughnessError, RoughnessRangeWarning, warn
+from .errors import CRSError, InputFileError, RoughnessError, RoughnessRangeWarning, warn
 
 log = logging.getLogger(__name__)
 
@@ -256,9 +256,11 @@ def _check_n_values(names: list[str], values: list[Any], what: str, *,
             continue
         out[i] = number
     if bad:
+        comma = any(_is_number(str(v).replace(",", ".", 1)) and "," in str(v) for v in values)
         raise RoughnessError(
             f"{what} holds n values that are not positive numbers ({', '.join(bad)}); "
-            "give every n as a number above zero"
+            + ("write n with a decimal point (0.035, not 0,035)" if comma else
+               "give every n as a number above zero")
         )
     outside = [i for i, v in enumerate(out) if not N_MIN <= v <= N_MAX]
     if outside:
@@ -330,35 +332,118 @@ def outside_range(model: RoughnessModel, n: np.ndarray) -> np.ndarray:
     return out
 
 
+def _decode_n_table(raw: bytes, where: str) -> str:
+    """The text of an n table file: UTF-8 (with or without a byte-order mark) or UTF-16
+    with a byte-order mark; RoughnessError for a workbook or other binary file."""
+    if raw.startswith((b"\xff\xfe", b"\xfe\xff")):
+        try:
+            return raw.decode("utf-16")
+        except UnicodeDecodeError:
+            pass
+    elif raw.startswith(b"PK\x03\x04") or raw.startswith(b"\xd0\xcf\x11\xe0"):
+        raise RoughnessError(f"n table {where} is a spreadsheet workbook or archive, not CSV text; "
+                             "save it as CSV (comma-separated, UTF-8)")
+    try:
+        text = raw.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        raise RoughnessError(
+            f"n table {where} is not UTF-8 text (byte {exc.start + 1} cannot be read); save it "
+            "as CSV UTF-8 (comma-separated)"
+        ) from None
+    if "\x00" in text:
+        raise RoughnessError(f"n table {where} holds binary data, not CSV text; save it as CSV "
+                             "(comma-separated, UTF-8)")
+    return text
+
+
+def _is_number(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
+
+
 def read_n_table(path: str | Path) -> tuple[list[str], list[Any], list[str | None]]:
-    """Read an n table CSV: columns ``class, n`` and optional ``surface``."""
-    import pandas as pd
+    """Read an n table CSV: columns ``class, n`` and optional ``surface``.
+
+    Accepted as well: a byte-order mark, Windows line ends, semicolons or tabs as the
+    separator (told by the header line), spaces around names and numbers, blank lines,
+    lines that start with ``#`` (comments), other columns (ignored), header names in any
+    case, and a class given twice with the same values.  A class given twice with
+    different values, a row with more fields than the header, or n with a decimal comma
+    raise :class:`~ntrans.errors.RoughnessError` saying what to change.
+    """
+    import csv
 
     path = Path(path)
+    where = repr(str(path))
+    if path.is_dir():
+        raise InputFileError(f"n table {where} is a folder; give the path of a CSV file")
     if not path.is_file():
-        raise InputFileError(f"n table {str(path)!r} does not exist; give the path of a CSV file")
-    try:
-        table = pd.read_csv(path, dtype=str, keep_default_na=False)
-    except Exception as exc:  # pandas raises many kinds
-        raise RoughnessError(f"n table {str(path)!r} cannot be read as CSV ({exc}); "
-                             "give a CSV with columns class,n") from exc
-    table.columns = [str(c).strip().lower() for c in table.columns]
-    if "class" not in table.columns or "n" not in table.columns:
+        raise InputFileError(f"n table {where} does not exist; give the path of a CSV file")
+    text = _decode_n_table(path.read_bytes(), where)
+    lines = [(number, line) for number, line in enumerate(text.splitlines(), start=1)
+             if line.strip() and not line.lstrip().startswith("#")]
+    if not lines:
+        raise RoughnessError(f"n table {where} is empty; give a header line class,n and one row "
+                             "per class")
+    header_line = lines[0][1]
+    delimiter = next((d for d in (",", ";", "\t") if d in header_line), ",")
+    parsed = list(csv.reader([line for _, line in lines], delimiter=delimiter))
+    header = [h.strip().lstrip("\ufeff").lower() for h in parsed[0]]
+    if "class" not in header or "n" not in header:
+        if any(_is_number(h) for h in header):
+            raise RoughnessError(
+                f"n table {where} has no header line (its first line is {header_line.strip()!r}); "
+                "add the line class,n (or class,n,surface) above the rows"
+            )
         raise RoughnessError(
-            f"n table {str(path)!r} has columns {list(table.columns)}; it needs columns class,n "
+            f"n table {where} has columns {header}; it needs columns class,n "
             "(and optionally surface)"
         )
-    names = [str(v).strip() for v in table["class"]]
-    dup = sorted({v for v in names if names.count(v) > 1})
-    if dup:
-        raise RoughnessError(f"n table {str(path)!r} lists classes {dup} more than once; "
-                             "give each class one row")
-    values = [str(v).strip() for v in table["n"]]
-    if "surface" in table.columns:
-        surf = [str(v).strip() or None for v in table["surface"]]
-    else:
-        surf = [None] * len(names)
-    return names, values, surf
+    twice = sorted({h for h in header if h and header.count(h) > 1} & {"class", "n", "surface"})
+    if twice:
+        raise RoughnessError(f"n table {where} has column {twice[0]!r} more than once; keep one")
+    column = {name: header.index(name) for name in ("class", "n", "surface") if name in header}
+    rows: dict[str, tuple[int, str, str | None]] = {}
+    for (number, line), fields in zip(lines[1:], parsed[1:], strict=True):
+        fields = [f.strip() for f in fields]
+        if len(fields) > len(header) and any(fields[len(header):]):
+            at = column["n"]
+            if delimiter == "," and fields[at].isdigit() and fields[at + 1][:1].isdigit():
+                hint = "write n with a decimal point (0.035, not 0,035)"
+            else:
+                hint = "name the extra column in the header, or quote values that hold the separator"
+            raise RoughnessError(
+                f"line {number} of n table {where} ({line.strip()!r}) has {len(fields)} fields but "
+                f"the header has {len(header)}; {hint}"
+            )
+        fields += [""] * (len(header) - len(fields))
+        if not any(fields):
+            continue  # a row of separators only, as spreadsheets write below a table
+        name, value = fields[column["class"]], fields[column["n"]]
+        surface = fields[column["surface"]] or None if "surface" in column else None
+        if not name:
+            raise RoughnessError(f"line {number} of n table {where} ({line.strip()!r}) has no "
+                                 "class name; add it or delete the row")
+        if name in rows:
+            first_number, first_value, first_surface = rows[name]
+            same_n = value == first_value or (_is_number(value) and _is_number(first_value)
+                                              and float(value) == float(first_value))
+            if not (same_n and surface == first_surface):
+                raise RoughnessError(
+                    f"n table {where} gives class {name!r} twice with different values (line "
+                    f"{first_number}: n {first_value or 'empty'}, line {number}: n "
+                    f"{value or 'empty'}"
+                    + ("" if surface == first_surface else
+                       f"; surfaces {first_surface or 'empty'} and {surface or 'empty'}")
+                    + "); keep one row per class"
+                )
+            continue
+        rows[name] = (number, value, surface)
+    names = list(rows)
+    return names, [rows[n][1] for n in names], [rows[n][2] for n in names]
 
 
 def _check_surfaces(surfaces: list[str | None]) -> None:
@@ -394,13 +479,53 @@ def _close_match(name: str, candidates: list[str]) -> str | None:
     return folded[near[0]] if near else None
 
 
+def _integer_key(name: str) -> int | None:
+    """The whole number a class code such as ``'7'``, ``'07'`` or ``'7.0'`` stands for,
+    else None."""
+    try:
+        value = float(name)
+    except ValueError:
+        return None
+    return int(value) if np.isfinite(value) and value == int(value) else None
+
+
+def _is_numeric_labels(labels: np.ndarray) -> bool:
+    """True when every class label is a number (a numeric attribute), not text."""
+    return all(isinstance(v, (int, float, np.integer, np.floating))
+               and not isinstance(v, (bool, np.bool_)) for v in labels)
+
+
 def _table_lookup(classes_used: list[str], table: tuple[list[str], list[Any], list[str | None]],
-                  *, what: str, default_class: str | None) -> tuple[list[str], np.ndarray,
-                                                                    list[str | None], int]:
+                  *, what: str, default_class: str | None, numeric: bool = False
+                  ) -> tuple[list[str], np.ndarray, list[str | None], int, dict[str, int]]:
+    """The n table's rows for the classes used and the default class: (class names as
+    the table spells them, n, surfaces, index of the default class or -1, index of each
+    class used).
+
+    With ``numeric`` (codes of a class raster or of a numeric attribute) a class also
+    matches a table row that writes the same whole number another way (``7`` matches
+    ``07`` and ``7.0``).
+    """
     names, values, surfaces = table
     lookup = dict(zip(names, range(len(names)), strict=True))
+
+    def row_of(name: str) -> int | None:
+        if name in lookup:
+            return lookup[name]
+        key = _integer_key(name) if numeric else None
+        if key is None:
+            return None
+        rows = [i for i, other in enumerate(names) if _integer_key(other) == key]
+        if len(rows) > 1:
+            raise RoughnessError(
+                f"the n table gives class code {key} more than once "
+                f"({', '.join(repr(names[i]) for i in rows)}); keep one row per code"
+            )
+        return rows[0] if rows else None
+
     needed = list(dict.fromkeys(classes_used))
-    missing = [c for c in needed if c not in lookup]
+    row = {c: row_of(c) for c in needed}
+    missing = [c for c in needed if row[c] is None]
     if missing:
         close = [(c, m) for c in missing if (m := _close_match(c, names)) is not None]
         hint = ""
@@ -414,7 +539,8 @@ def _table_lookup(classes_used: list[str], table: tuple[list[str], list[Any], li
             f"classes {missing} of {what} are missing from the n table{hint}; add a row for "
             "each (columns class,n) or correct the names"
         )
-    if default_class is not None and default_class not in lookup:
+    default_row = None if default_class is None else row_of(default_class)
+    if default_class is not None and default_row is None:
         match = _close_match(default_class, names)
         near = f" (closest: {match!r})" if match is not None else ""
         listed = ", ".join(names[:10]) + (f" and {len(names) - 10} more" if len(names) > 10
@@ -423,15 +549,14 @@ def _table_lookup(classes_used: list[str], table: tuple[list[str], list[Any], li
             f"default class {default_class!r} is not in the n table{near}; give one of its "
             f"classes ({listed}) or add a row for it"
         )
-    if default_class is not None and default_class not in needed:
-        needed.append(default_class)
-    idx = [lookup[c] for c in needed]
+    idx = list(dict.fromkeys([row[c] for c in needed]
+                             + ([] if default_row is None else [default_row])))
     n = _check_n_values([names[i] for i in idx], [values[i] for i in idx], "the n table",
                         labels=[f"class {names[i]!r}" for i in idx])
     surf = [surfaces[i] for i in idx]
     _check_surfaces(surf)
-    default = needed.index(default_class) if default_class is not None else -1
-    return needed, n, surf, default
+    default = idx.index(default_row) if default_row is not None else -1
+    return [names[i] for i in idx], n, surf, default, {c: idx.index(row[c]) for c in needed}
 
 
 def _overlap_area(polygons: np.ndarray) -> tuple[float, int]:
@@ -517,10 +642,10 @@ def polygon_model(
     else:
         assert table is not None
         label_str = _class_labels(labels)
-        classes, n, surf, default_index = _table_lookup(
+        classes, n, surf, default_index, lookup = _table_lookup(
             sorted(set(label_str)), table, what="the class polygons",
-            default_class=None if default_class is None else str(default_class))
-        lookup = {c: i for i, c in enumerate(classes)}
+            default_class=None if default_class is None else str(default_class),
+            numeric=_is_numeric_labels(labels))
         poly_class = np.array([lookup[v] for v in label_str], dtype=np.int64)
         source = "polygons"
 
@@ -755,10 +880,9 @@ def _raster_classes_model(codes: np.ndarray, transform: Any, shape: tuple[int, i
                 "the class raster does not overlap the mesh at all; check its extent and CRS"
             )
     names = [str(int(c)) for c in codes]
-    classes, n, surf, default_index = _table_lookup(
+    classes, n, surf, default_index, lookup = _table_lookup(
         names, table, what="the class raster",
-        default_class=None if default_class is None else str(default_class))
-    lookup = {c: i for i, c in enumerate(classes)}
+        default_class=None if default_class is None else str(default_class), numeric=True)
     code_class = np.array([lookup[name] for name in names], dtype=np.int32)
     model = RoughnessModel(
         classes=tuple(classes), n=n, surface=tuple(surf), default=default_index,
@@ -840,8 +964,8 @@ def check_roughness_inputs(
     Jobs call it before their long work, so a bad n table fails in seconds; the checks
     that need the mesh (the layer meets it, uncovered ground, overlaps) stay with
     :func:`load_roughness`.  Emits no warning.  Raises :class:`RoughnessError` (or
-    :class:`InputFileError` for a missing file) with the same sentence as
-    :func:`load_roughness`.
+    :class:`InputFileError` for a missing file, :class:`CRSError` for a class raster
+    without a CRS) with the same sentence as :func:`load_roughness`.
     """
     import shapely
 
@@ -859,18 +983,22 @@ def check_roughness_inputs(
         if class_field is not None:
             table = read_n_table(n_table)  # type: ignore[arg-type]
             _table_lookup(sorted(set(_class_labels(values))), table, what="the class polygons",
-                          default_class=None if default_class is None else str(default_class))
+                          default_class=None if default_class is None else str(default_class),
+                          numeric=_is_numeric_labels(values))
             return
         names = [f"polygon {i}" for i in range(values.size)]
         _check_n_values(names, list(values), "the n field of the class polygons", labels=names)
         if default_class is not None:
             _check_n_values(["default"], [default_class], "the default n")
         return
-    path, _ = _open_class_raster(class_raster)  # type: ignore[arg-type]
+    path, rcrs = _open_class_raster(class_raster)  # type: ignore[arg-type]
+    if rcrs is None:  # a job's DEM always has one, so load_roughness would refuse it
+        raise CRSError(f"class raster {str(path)!r} has no CRS; assign the CRS it was made in")
     table = read_n_table(n_table)  # type: ignore[arg-type]
     names = [str(int(c)) for c in raster_file_codes(path)]
     _table_lookup(names, table, what="the class raster",
-                  default_class=None if default_class is None else str(default_class))
+                  default_class=None if default_class is None else str(default_class),
+                  numeric=True)
 
 
 def load_roughness(
@@ -893,8 +1021,8 @@ def load_roughness(
     ``n_field``) or ``class_raster`` (with ``n_table``) must be given.  ``classes_layer``
     names the layer of ``classes`` to read (needed when the file holds several).  Layers
     in another CRS than ``crs`` (the DEM's) are reprojected, with a log line; with
-    ``crs``, class polygons without a CRS raise :class:`~ntrans.errors.CRSError`, as
-    cells do.  ``mesh_area`` is the
+    ``crs``, class polygons or a class raster without a CRS raise
+    :class:`~ntrans.errors.CRSError`, as cells do.  ``mesh_area`` is the
     union of the mesh cells, used for the coverage checks.
     """
     _check_forms(n=n, classes=classes, class_field=class_field, n_table=n_table,
@@ -915,6 +1043,8 @@ def load_roughness(
                              mesh_area=mesh_area)
     # class raster
     path, rcrs = _open_class_raster(class_raster)  # type: ignore[arg-type]
+    if crs is not None and rcrs is None:  # never assumed to be the DEM's, as for polygons
+        raise CRSError(f"class raster {str(path)!r} has no CRS; assign the CRS it was made in")
     if crs is not None and rcrs is not None and rcrs != crs:
         log.info("class raster %s will be resampled (nearest) from %s to the DEM's CRS", path.name, rcrs)
     mesh_bounds = None

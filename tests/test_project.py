@@ -223,6 +223,45 @@ def test_missing_required_bad_toml_and_bad_values(tmp_path, text):
         proj.load_project(_write(tmp_path, text))
 
 
+@pytest.mark.parametrize(
+    "encode",
+    [lambda t: "\ufeff".encode() + t.encode("utf-8"),  # byte-order mark, as Notepad writes
+     lambda t: t.replace("\n", "\r\n").encode("utf-8"),
+     lambda t: t.encode("utf-16")],
+    ids=["bom", "crlf", "utf16"],
+)
+def test_project_file_from_windows_editors_is_read(tmp_path, encode):
+    (tmp_path / "p.toml").write_bytes(encode(BASE.replace("dem.tif", "Höhe dem.tif")))
+    project = proj.load_project(tmp_path / "p.toml")
+    assert project.inputs["dem"] == (tmp_path / "Höhe dem.tif").resolve()
+
+
+def test_project_file_in_another_encoding_names_the_line(tmp_path):
+    text = BASE.replace('n = 0.03', 'n = 0.03\nclasses = "forêt.gpkg"')
+    (tmp_path / "p.toml").write_bytes(text.encode("latin-1"))
+    with pytest.raises(ProjectFileError, match="not UTF-8 text \\(line 6 .*save it as UTF-8"):
+        proj.load_project(tmp_path / "p.toml")
+
+
+@pytest.mark.parametrize(
+    ("text", "words"),
+    [
+        (BASE.replace("depths =", "depth ="), ["'depth'", "did you mean 'depths'"]),
+        (BASE + "[family]\nsource = \"flat\"\n", ["'family'", "did you mean [families]"]),
+        (BASE.replace("dem =", "DEM ="), ["'DEM'", "did you mean 'dem'"]),
+        (BASE + "[run]\nn_table = \"n.csv\"\n", ["'n_table'", "belongs under [inputs]"]),
+        ('dem = "dem.tif"\n' + BASE.replace('dem = "dem.tif"\n', ""),
+         ["'dem'", "move it under [inputs]"]),
+    ],
+    ids=["typo", "table_typo", "case", "wrong_table", "above_headers"],
+)
+def test_misspelt_or_misplaced_key_names_the_right_one(tmp_path, text, words):
+    with pytest.raises(ProjectFileError) as info:
+        proj.load_project(_write(tmp_path, text))
+    for word in words:
+        assert word in str(info.value)
+
+
 def test_missing_project_file_is_an_input_file_error(tmp_path):
     with pytest.raises(InputFileError):
         proj.load_project(tmp_path / "absent.toml")

@@ -26,6 +26,7 @@ from ntrans.roughness import (
     load_roughness,
     polygon_model,
     raster_model,
+    read_n_table,
     uniform_model,
 )
 
@@ -427,3 +428,126 @@ def test_class_raster_codes_are_read_once_per_file_version(tmp_path, monkeypatch
     os.utime(tmp_path / "codes.tif", ns=(1, 1))  # another modification time for sure
     assert raster_file_codes(tmp_path / "codes.tif").tolist() == [5.0]
     assert len(reads) == 2
+
+
+# ---------------------------------------------------------------------------------------
+# n tables as spreadsheets and editors write them
+
+N_ROWS = "class,n,surface\na,0.03,channel_clean\nb,0.045,\n"
+
+
+@pytest.mark.parametrize(
+    "raw",
+    [
+        ("\ufeff" + N_ROWS).encode("utf-8"),  # byte-order mark
+        N_ROWS.replace("\n", "\r\n").encode("utf-8"),  # Windows line ends
+        ("\ufeff" + N_ROWS.replace("\n", "\r\n")).encode("utf-8"),
+        N_ROWS.encode("utf-16"),  # "Unicode text", with its byte-order mark
+        N_ROWS.replace(",", ";").encode("utf-8"),  # semicolon-separated, decimal point
+        N_ROWS.replace(",", "\t").encode("utf-8"),  # tab-separated
+        b"Class , N , Surface\n a , 0.03 , channel_clean \nb,0.045,\n",  # spaces, header case
+        b"# n per class, field visit\nclass,n,surface\n\na,0.03,channel_clean\n# b from photos\n"
+        b"b,0.045,\n\n",  # comment and blank lines
+        b"class,n,surface,note\na,0.03,channel_clean,x\nb,0.045,,\n,,,\n,,,\n",  # extra column,
+        # rows of separators only
+        (N_ROWS + "a,0.030,channel_clean\n").encode("utf-8"),  # the same row twice
+    ],
+    ids=["bom", "crlf", "bom_crlf", "utf16", "semicolon", "tab", "spaces", "comments",
+         "extra_column", "same_row_twice"],
+)
+def test_n_table_variants_read_as_the_plain_table(tmp_path, raw):
+    (tmp_path / "n.csv").write_bytes(raw)
+    names, values, surfaces = read_n_table(tmp_path / "n.csv")
+    assert names == ["a", "b"]
+    assert [float(v) for v in values] == [0.03, 0.045]
+    assert surfaces == ["channel_clean", None]
+
+
+@pytest.mark.parametrize(
+    ("raw", "words"),
+    [
+        (b"class,n\na,0,03\nb,0,045\n", ["line 2", "decimal point"]),
+        (b"class;n\na;0,03\nb;0,045\n", ["a='0,03'", "decimal point"]),
+        (b'class,n\na,"0,03"\nb,0.045\n', ["a='0,03'", "decimal point"]),
+        (b"class,n\na,0.03,wet\nb,0.045\n", ["line 2", "3 fields", "header has 2"]),
+        (b"class,n\na,0.03\nb,0.045\na,0.05\n", ["'a'", "line 2: n 0.03", "line 4: n 0.05"]),
+        (b"a,0.03\nb,0.045\n", ["no header line", "class,n"]),
+        (b"class,n\na,0.03\n,0.045\n", ["line 3", "no class name"]),
+        ("class,n\nforêt,0.1\n".encode("latin-1"), ["not UTF-8", "CSV UTF-8"]),
+        (b"PK\x03\x04\x14\x00\x06\x00", ["workbook", "save it as CSV"]),
+        (b"", ["empty"]),
+        (b"\n# only a comment\n", ["empty"]),
+    ],
+    ids=["decimal_comma", "semicolon_decimal_comma", "quoted_decimal_comma", "extra_field",
+         "class_twice_differing", "no_header", "no_class_name", "latin1", "workbook", "empty",
+         "comment_only"],
+)
+def test_n_table_mistakes_say_what_to_change(tmp_path, raw, words):
+    (tmp_path / "n.csv").write_bytes(raw)
+    with pytest.raises(RoughnessError) as err:
+        check_roughness_inputs(classes=_write_classes(tmp_path / "c.gpkg"), class_field="kind",
+                               n_table=tmp_path / "n.csv")
+    for word in words:
+        assert word in str(err.value)
+
+
+def test_n_table_that_is_a_folder_says_so(tmp_path):
+    with pytest.raises(InputFileError, match="is a folder"):
+        read_n_table(tmp_path)
+
+
+def _write_codes(path, codes, *, dtype="int16", nodata=0):
+    import rasterio
+
+    with rasterio.open(path, "w", driver="GTiff", width=codes.shape[1], height=codes.shape[0],
+                       count=1, dtype=dtype, crs="EPSG:32633", transform=TRANSFORM,
+                       nodata=nodata) as dst:
+        dst.write(codes.astype(dtype), 1)
+    return path
+
+
+@pytest.mark.parametrize("spelling", ["{}", "0{}", "{}.0", " {} "])
+def test_class_codes_match_table_rows_that_write_the_number_another_way(tmp_path, spelling):
+    codes = np.ones((10, 10))
+    codes[:, 5:] = 2
+    raster = _write_codes(tmp_path / "codes.tif", codes)
+    rows = "".join(f"{spelling.format(c)},{n}\n" for c, n in ((1, 0.03), (2, 0.05), (3, 0.07)))
+    (tmp_path / "n.csv").write_text("class,n\n" + rows)
+    check_roughness_inputs(class_raster=raster, n_table=tmp_path / "n.csv", default_class="3")
+    m = load_roughness(class_raster=raster, n_table=tmp_path / "n.csv", default_class="3")
+    assert m.classes == tuple(spelling.format(c).strip() for c in (1, 2, 3))
+    np.testing.assert_array_equal(m.n, [0.03, 0.05, 0.07])
+    index = class_index_on_window(m, TRANSFORM, (10, 10))
+    assert set(np.unique(index[:, :5])) == {0} and set(np.unique(index[:, 5:])) == {1}
+    # a numeric class attribute (here real numbers, as a float field holds) matches alike
+    p = polygon_model(two_halves(), np.array([1.0, 2.0], dtype=object),
+                      table=read_n_table(tmp_path / "n.csv"), mesh_area=MESH)
+    assert p.classes == tuple(spelling.format(c).strip() for c in (1, 2))
+
+
+def test_text_classes_and_code_written_twice_are_not_matched_by_number(tmp_path):
+    # text labels match exactly: "01" and "1" may be different classes
+    with pytest.raises(RoughnessError, match="missing from the n table"):
+        polygon_model(two_halves(), np.array(["1", "2"], dtype=object),
+                      table=table([("01", "0.03"), ("02", "0.05")]), mesh_area=MESH)
+    codes = np.ones((10, 10))
+    raster = _write_codes(tmp_path / "codes.tif", codes)
+    (tmp_path / "n.csv").write_text("class,n\n01,0.03\n1.0,0.05\n")
+    with pytest.raises(RoughnessError, match="class code 1 more than once"):
+        check_roughness_inputs(class_raster=raster, n_table=tmp_path / "n.csv")
+
+
+def test_class_raster_without_crs_is_refused_like_class_polygons(tmp_path):
+    import rasterio
+
+    path = tmp_path / "codes.tif"
+    with warnings.catch_warnings():  # a raster without a CRS on purpose
+        warnings.simplefilter("ignore", rasterio.errors.NotGeoreferencedWarning)
+        with rasterio.open(path, "w", driver="GTiff", width=10, height=10, count=1,
+                           dtype="int16", transform=TRANSFORM, nodata=0) as dst:
+            dst.write(np.ones((10, 10), dtype="int16"), 1)
+    (tmp_path / "n.csv").write_text("class,n\n1,0.03\n")
+    with pytest.raises(CRSError, match="class raster .* has no CRS"):
+        load_roughness(class_raster=path, n_table=tmp_path / "n.csv", crs="EPSG:32633")
+    with pytest.raises(CRSError, match="class raster .* has no CRS"):  # before long work
+        check_roughness_inputs(class_raster=path, n_table=tmp_path / "n.csv")

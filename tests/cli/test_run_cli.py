@@ -74,6 +74,14 @@ def test_missing_project_file_exits_2(runner, tmp_path):
     _one_error_line(result)
 
 
+def test_project_file_not_in_utf8_exits_2(runner, tmp_path):
+    path = tmp_path / "p.toml"
+    path.write_bytes(BASE.replace("dem.tif", "modèle.tif").encode("latin-1"))
+    result = runner.invoke(cli, ["-q", "run", str(path)])
+    assert result.exit_code == 2
+    assert "save it as UTF-8" in _one_error_line(result)
+
+
 def _bundle(folder):
     folder.mkdir()
     (folder / "report.html").write_text("<html></html>\n", encoding="utf-8")
