@@ -77,6 +77,11 @@ class GeometryRepairedWarning(NtransWarning):
     """Invalid polygons were repaired before use."""
 
 
+class MeshGapWarning(NtransWarning):
+    """Cell borders meant to be shared lie just beyond the snap tolerance (small gaps or
+    overlaps in the mesh), so they count as mesh boundary."""
+
+
 class PartialCoverageWarning(NtransWarning):
     """Some cells or faces are partly outside the DEM or over nodata."""
 

@@ -55,6 +55,7 @@ from .errors import (
     FlatElevationWarning,
     InputError,
     MemoryEstimateWarning,
+    MeshGapWarning,
     PartialCoverageWarning,
     check_choice,
     warn,
@@ -342,6 +343,40 @@ def _block_as_wkb(fn: Callable[[Any], Any], job: Any) -> Any:
     return result
 
 
+def _round_up(value: float) -> float:
+    """``value`` rounded up to one significant digit (0.047 -> 0.05, 0.13 -> 0.2)."""
+    step = 10.0 ** np.floor(np.log10(value))
+    return float(np.ceil(value / step - 1e-9) * step)
+
+
+def warn_border_gaps(ids: np.ndarray, polygons: np.ndarray, mesh: Any, *, snap_tolerance: float,
+                     pixel: float, snap_given: bool, unit: str = "",
+                     stacklevel: int = 2) -> None:
+    """Emit :class:`MeshGapWarning` when boundary faces run along another cell within half
+    a pixel (or twice the tolerance, when larger) but beyond the snap tolerance
+    (:func:`ntrans.mesh.border_gaps`): gaps or overlaps that cut faces the two cells
+    should share, which then carry no flow between them.  Lengths in horizontal CRS
+    units, named by ``unit`` (a symbol such as ``m``) in the sentence."""
+    from .mesh import border_gaps
+
+    gaps = border_gaps(polygons, mesh, snap_tolerance=snap_tolerance,
+                       reach=max(0.5 * pixel, 2.0 * snap_tolerance))
+    if not gaps.faces:
+        return
+    pairs = ", ".join(f"{ids[a]}/{ids[b]}" for a, b in gaps.first)
+    more = f" and {gaps.faces - len(gaps.first)} more" if gaps.faces > len(gaps.first) else ""
+    source = "" if snap_given else ", 1 % of a pixel"
+    u = f" {unit}" if unit else ""
+    suggest = _round_up(1.5 * max(gaps.width, snap_tolerance))
+    warn(f"{gaps.faces} stretches of cell border ({gaps.length:.4g}{u} in all) run "
+         f"along a neighbouring cell across a gap or overlap wider than the snap tolerance "
+         f"({snap_tolerance:g}{u}{source}), so they count as mesh boundary and carry no flow "
+         f"between the cells (cells {pairs}{more}); give a snap tolerance of about "
+         f"{suggest:g}{u} (--snap-tolerance; snap_tolerance in a project file) or make "
+         "neighbouring cells share their borders",
+         MeshGapWarning, stacklevel=stacklevel + 1)
+
+
 @collection_paused()
 def prepare_mesh_job(
     dem: str | os.PathLike[str],
@@ -417,6 +452,10 @@ def prepare_mesh_job(
 
     mesh = (build_faces(geoms, snap_tolerance=snap, map_blocks=map_blocks, lines_as_wkb=True)
             if faces else None)
+    if mesh is not None:
+        warn_border_gaps(np.asarray(layer.ids), geoms, mesh, snap_tolerance=snap, pixel=pixel,
+                         snap_given=snap_tolerance is not None,
+                         unit=table_units(dem_info)["length"], stacklevel=3)
     release_free_memory()
     tiles = plan_tiles(
         geoms,

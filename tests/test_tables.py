@@ -21,6 +21,7 @@ from conftest import (
 
 from ntrans.errors import (
     FlatElevationWarning,
+    MeshGapWarning,
     OutputExistsError,
     PartialCoverageWarning,
     StageSpecError,
@@ -260,6 +261,41 @@ def test_partial_coverage_warns(tmp_path):
     gpkg = pyogrio.read_dataframe(out / "cells.gpkg").set_index("cell_id")
     np.testing.assert_allclose(gpkg.loc[[3, 6, 9], "covered_fraction"], 0.0, atol=1e-12)
     np.testing.assert_allclose(gpkg.loc[[1, 2, 4, 5, 7, 8], "covered_fraction"], 1.0, rtol=1e-12)
+
+
+def _jittered_grid(seed: int = 3) -> list[shapely.Polygon]:
+    """3 x 3 cells of 10 m whose corners each move up to 3 cm on their own, so that
+    neighbours' borders are apart or overlap by up to about 6 cm."""
+    rng = np.random.default_rng(seed)
+    return [shapely.Polygon(np.asarray(c.exterior.coords)[:-1] + rng.uniform(-0.03, 0.03, (4, 2)))
+            for c in grid_polygons(3, 3, 10.0, origin=(1.0, 1.0))]
+
+
+def test_borders_cut_by_small_gaps_warn_with_a_tolerance_that_joins_them(tmp_path):
+    dem = write_dem(tmp_path / "dem.tif", bumpy(32, 32))
+    cells = write_cells(tmp_path / "cells.gpkg", _jittered_grid())
+    # the default tolerance (1 % of the 1 m pixel) leaves some shared borders open
+    with pytest.warns(MeshGapWarning, match=r"snap tolerance \(0.01 m, 1 % of a pixel\)") as rec:
+        build_tables(dem, cells, out=tmp_path / "a", stages="11")
+    line = str(rec[0].message)
+    suggested = float(line.split("give a snap tolerance of about ")[1].split(" m ")[0])
+    assert "--snap-tolerance" in line and 0.01 < suggested <= 0.2
+    # the tolerance the warning gives joins every border: the grid's 12 interior borders
+    # are faces and the boundary faces trace only the outline (4 sides of 30 m, give or
+    # take the 3 cm the corners moved)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", MeshGapWarning)
+        build_tables(dem, cells, out=tmp_path / "b", stages="11", snap_tolerance=suggested)
+    faces = pyogrio.read_dataframe(tmp_path / "b" / "faces.gpkg")
+    assert faces.cell_b.notna().sum() == 12
+    assert faces.length[faces.cell_b.isna()].sum() == pytest.approx(120.0, abs=0.5)
+
+
+def test_an_exact_mesh_does_not_warn_of_gaps(case, tmp_path):
+    dem, cells, _, _ = case
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", MeshGapWarning)
+        build_tables(dem, cells, out=tmp_path / "out", stages="11")
 
 
 def test_output_exists_and_overwrite(case, tmp_path):
