@@ -85,7 +85,8 @@ FACE_SUMMARY_COLUMNS: tuple[str, ...] = (
     "perimeter_ratio",
 )
 
-#: Fractions below 1 - this count as partly outside the DEM / over nodata (round-off).
+#: Fractions below 1 - this count as partly outside the DEM / over nodata (round-off);
+#: fractions within it of 1 are written as 1 (:func:`whole_within_round_off`).
 PARTIAL_TOLERANCE = 1e-6
 #: cells whose WKB takes at most this many bytes (about) are encoded for ``cells.gpkg``
 #: beside the tiles instead of after them; larger layers are encoded batch by batch at
@@ -124,14 +125,24 @@ def _check_stage_rows_fit(tile_items: list[int], n_stages: int, in_flight: int) 
          "or --threads 1", MemoryEstimateWarning, stacklevel=3)
 
 
+def whole_within_round_off(fraction: np.ndarray) -> np.ndarray:
+    """``fraction`` clipped to [0, 1], with values within :data:`PARTIAL_TOLERANCE` of 1
+    set to 1: a cell or face wholly over valid terrain sums its pieces to 1 only up to
+    round-off (0.9999999999999875), and ``covered_fraction < 1`` must pick the items
+    the partial-coverage warning counts, not half the mesh."""
+    fraction = np.clip(np.asarray(fraction, dtype=float), 0.0, 1.0)
+    return np.where(fraction >= 1.0 - PARTIAL_TOLERANCE, 1.0, fraction)
+
+
 def covered_fractions(covered_area: np.ndarray, area: np.ndarray) -> np.ndarray:
     """Share of each cell's plan area over valid DEM pixels, in [0, 1] (0 for a cell of no
-    area or without terrain): covered plan area / cell area, as the exact rule gives it."""
+    area or without terrain): covered plan area / cell area, as the exact rule gives it
+    (1 within round-off, :func:`whole_within_round_off`)."""
     covered_area = np.asarray(covered_area, dtype=float)
     area = np.asarray(area, dtype=float)
     with np.errstate(invalid="ignore", divide="ignore"):
         fraction = np.where(area > 0, covered_area / np.where(area > 0, area, 1.0), np.nan)
-    return np.clip(np.nan_to_num(fraction, nan=0.0), 0.0, 1.0)
+    return whole_within_round_off(np.nan_to_num(fraction, nan=0.0))
 
 
 def centre_covered_fractions(covered_area: np.ndarray, assigned_area: np.ndarray,
@@ -150,7 +161,7 @@ def centre_covered_fractions(covered_area: np.ndarray, assigned_area: np.ndarray
         valid = np.where(assigned_area > 0,
                          covered_area / np.where(assigned_area > 0, assigned_area, 1.0), 0.0)
     fraction = np.nan_to_num(valid, nan=0.0) * np.asarray(inside_share, dtype=float)
-    return np.clip(np.nan_to_num(fraction, nan=0.0), 0.0, 1.0)
+    return whole_within_round_off(np.nan_to_num(fraction, nan=0.0))
 
 
 @dataclass(frozen=True)

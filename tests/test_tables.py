@@ -543,6 +543,51 @@ def test_partial_coverage_counts_wholly_and_partly(fractions, partly, wholly, st
     assert (message is None) if start is None else message.startswith(start)
 
 
+def _voronoi_cells(n: int, size: float, seed: int) -> list[shapely.Geometry]:
+    rng = np.random.default_rng(seed)
+    frame = shapely.box(1.0, 1.0, size - 1.0, size - 1.0)
+    cells = shapely.get_parts(shapely.voronoi_polygons(
+        shapely.multipoints(rng.uniform(1.0, size - 1.0, (n, 2))), extend_to=frame))
+    return list(shapely.intersection(cells, frame))
+
+
+@pytest.mark.parametrize("coverage", ["exact", "centre"])
+def test_cells_wholly_over_terrain_have_covered_fraction_exactly_one(tmp_path, coverage):
+    # a Voronoi mesh off the pixel lines, wholly inside a DEM without nodata: its pieces
+    # of pixel add up to each cell's area only to round-off, yet every cell is whole, and
+    # filtering covered_fraction < 1 must find none of them (as the warning finds none)
+    dem = write_dem(tmp_path / "dem.tif", bumpy(40, 40), dtype="float64")
+    cells = write_cells(tmp_path / "cells.gpkg", _voronoi_cells(60, 40.0, 5))
+    out = tmp_path / "out"
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", PartialCoverageWarning)
+        build_tables(dem, cells, out=out, stages="11", coverage=coverage)
+    layer = pyogrio.read_dataframe(out / "cells.gpkg")
+    assert (layer.covered_fraction == 1.0).all()
+    faces = pyogrio.read_dataframe(out / "faces.gpkg")
+    assert (faces.covered_fraction == 1.0).all()
+    # geometry identity: the covered area is still the polygon's area, to round-off
+    if coverage == "exact":
+        np.testing.assert_allclose(layer.covered_area, layer.area, rtol=1e-12)
+
+
+@pytest.mark.parametrize(
+    ("covered", "area", "expected"),
+    [(100.0 * (1 - 1e-14), 100.0, 1.0),   # round-off: whole
+     (100.0 * (1 + 1e-14), 100.0, 1.0),
+     (99.999, 100.0, 0.99999),            # 1e-5 of the cell off the DEM: partly, as it is
+     (40.0, 100.0, 0.4), (0.0, 100.0, 0.0), (0.0, 0.0, 0.0)],
+)
+def test_covered_fractions_are_one_within_round_off(covered, area, expected):
+    from ntrans.tables import covered_fractions
+
+    got = covered_fractions(np.array([covered]), np.array([area]))[0]
+    if expected in (0.0, 1.0):
+        assert got == expected  # exactly: users filter on it
+    else:
+        assert got == pytest.approx(expected, rel=1e-12)
+
+
 @pytest.mark.parametrize(
     ("covered", "assigned", "inside", "expected"),
     [
