@@ -746,6 +746,7 @@ def adjust_roughness(
         covered_fractions,
         partial_coverage,
         prepare_mesh_job,
+        refuse_without_terrain,
         table_units,
         warn_missing_flat_elevation,
         warn_partial_coverage,
@@ -844,6 +845,7 @@ def adjust_roughness(
             parts.append(terms.without_spread())
             del res, terms
         layer.finish_checks()
+        refuse_without_terrain(cell_covered, dem_info)
         z_unit = table_units(dem_info)["stage"]
         _check_window_wets(wetting, spec=spec, domain=domain, z_unit=z_unit, surfaces=surfaces)
         _warn_if_window_deep(wetting, spec=spec, z_unit=z_unit,

@@ -125,6 +125,21 @@ def _check_stage_rows_fit(tile_items: list[int], n_stages: int, in_flight: int) 
          "or --threads 1", MemoryEstimateWarning, stacklevel=3)
 
 
+def refuse_without_terrain(covered_area: np.ndarray, dem: Any) -> None:
+    """InputError when no cell covers any valid DEM pixel (``covered_area``, square CRS
+    units, all 0 or NaN): every table would be empty, and the cause is the DEM (its
+    nodata value, or another area's terrain), which the sentence names."""
+    covered = np.nan_to_num(np.asarray(covered_area, dtype=float), nan=0.0)
+    if covered.size == 0 or np.any(covered > 0):
+        return
+    nodata = getattr(dem, "nodata", None)
+    value = "" if nodata is None else f" ({nodata:g})"
+    raise InputError(
+        f"none of the {covered.size} cells lies over valid terrain: the DEM '{dem.path}' "
+        f"holds only nodata{value} under them; check the DEM's nodata value and that it is "
+        "the terrain of this mesh")
+
+
 def whole_within_round_off(fraction: np.ndarray) -> np.ndarray:
     """``fraction`` clipped to [0, 1], with values within :data:`PARTIAL_TOLERANCE` of 1
     set to 1: a cell or face wholly over valid terrain sums its pieces to 1 only up to
@@ -750,6 +765,7 @@ def build_tables(
         import geopandas as gpd
         import pandas as pd
 
+        refuse_without_terrain(cell_sum["covered_area"], dem_info)
         area = shapely.area(geoms)
         if assigned_area is None:
             covered_fraction = covered_fractions(cell_sum["covered_area"], area)

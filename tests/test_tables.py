@@ -21,6 +21,7 @@ from conftest import (
 
 from ntrans.errors import (
     FlatElevationWarning,
+    InputError,
     MeshGapWarning,
     OutputExistsError,
     PartialCoverageWarning,
@@ -296,6 +297,18 @@ def test_an_exact_mesh_does_not_warn_of_gaps(case, tmp_path):
     with warnings.catch_warnings():
         warnings.simplefilter("error", MeshGapWarning)
         build_tables(dem, cells, out=tmp_path / "out", stages="11")
+
+
+def test_a_dem_of_only_nodata_under_the_mesh_is_refused(tmp_path):
+    # nodata over the whole mesh, terrain only beside it: every table would be empty
+    z = bumpy(30, 30)
+    z[:, :20] = np.nan
+    dem = write_dem(tmp_path / "dem.tif", z)
+    cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(2, 2, 10.0))
+    out = tmp_path / "out"
+    with pytest.raises(InputError, match=r"none of the 4 cells lies over valid terrain"):
+        build_tables(dem, cells, out=out, stages="11")
+    assert not out.exists()
 
 
 def test_output_exists_and_overwrite(case, tmp_path):
