@@ -360,9 +360,18 @@ def _read_window(path: str, window: Window) -> np.ndarray:
     return _valid_float64(*session.read(path, functools.partial(_read_raw, window=window)))
 
 
-def _read_raw(src: Any, window: Window) -> tuple[np.ndarray, float | None, bool]:
-    """``(values, nodata, masked)`` of band 1 in ``window`` as stored (the part that
-    needs the dataset)."""
+def band_scale_offset(src: Any) -> tuple[float, float]:
+    """Band 1's GDAL scale and offset: a stored value v stands for ``v * scale + offset``
+    (e.g. an int16 DEM of centimetres with scale 0.01); (1, 0) when the file sets none."""
+    scale = (src.scales or (1.0,))[0]
+    offset = (src.offsets or (0.0,))[0]
+    return (1.0 if scale is None else float(scale)), (0.0 if offset is None else float(offset))
+
+
+def _read_raw(src: Any, window: Window) -> tuple[np.ndarray, float | None, bool, float, float]:
+    """``(values, nodata, masked, scale, offset)`` of band 1 in ``window`` as stored (the
+    part that needs the dataset)."""
+    scale, offset = band_scale_offset(src)
     flags = src.mask_flag_enums[0]
     if flags == [MaskFlags.all_valid] or flags == [MaskFlags.nodata]:
         # GDAL's nodata mask compares in the band's own type (a float32 band with
@@ -370,18 +379,25 @@ def _read_raw(src: Any, window: Window) -> tuple[np.ndarray, float | None, bool]
         # band read, which costs as much as the data (0.33 s -> 0.2 s for every window
         # of a 10^7-pixel DEM)
         nodata = src.nodatavals[0] if flags == [MaskFlags.nodata] else None
-        return src.read(1, window=window), nodata, False
-    return src.read(1, window=window, masked=True), None, True  # alpha or mask bands
+        return src.read(1, window=window), nodata, False, scale, offset
+    # alpha or mask bands
+    return src.read(1, window=window, masked=True), None, True, scale, offset
 
 
-def _valid_float64(raw: np.ndarray, nodata: float | None, masked: bool) -> np.ndarray:
+def _valid_float64(raw: np.ndarray, nodata: float | None, masked: bool, scale: float = 1.0,
+                   offset: float = 0.0) -> np.ndarray:
+    """Stored values as float64 in the band's units (scale and offset applied; the nodata
+    value is compared as stored), NaN where invalid."""
     if masked:
-        return np.ma.filled(raw.astype(np.float64), np.nan)
-    values = raw.astype(np.float64)
-    if nodata is not None:
-        invalid = _equals_nodata(raw, nodata)
-        if invalid is not None:
-            values[invalid] = np.nan
+        values = np.ma.filled(raw.astype(np.float64), np.nan)
+    else:
+        values = raw.astype(np.float64)
+        if nodata is not None:
+            invalid = _equals_nodata(raw, nodata)
+            if invalid is not None:
+                values[invalid] = np.nan
+    if scale != 1.0 or offset != 0.0:
+        values = values * scale + offset
     return values
 
 
@@ -638,6 +654,7 @@ def open_dem(path: str | os.PathLike[str], *, vertical_units: str | None = None,
             width, height, count = src.width, src.height, src.count
             nodata = src.nodata
             dtype = src.dtypes[0] if count else ""
+            scale, offset = band_scale_offset(src) if count else (1.0, 0.0)
             block_shape = tuple(int(b) for b in src.block_shapes[0]) if count else None
     except rasterio.errors.RasterioIOError as exc:
         raise InputFileError(
@@ -648,6 +665,9 @@ def open_dem(path: str | os.PathLike[str], *, vertical_units: str | None = None,
         raise InputFileError(f"DEM file '{text}' holds no raster band; give a single-band DEM")
     if count > 1:
         logger.warning("DEM %s has %d bands; only band 1 is used as elevation", text, count)
+    if scale != 1.0 or offset != 0.0:
+        logger.info("DEM %s: stored values scaled by %g and offset by %g (the file's scale "
+                     "and offset) to give elevations", text, scale, offset)
     if not np.issubdtype(np.dtype(dtype), np.integer) and not np.issubdtype(
         np.dtype(dtype), np.floating
     ):

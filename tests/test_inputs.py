@@ -313,6 +313,23 @@ def test_read_window_outside_is_nan(tmp_path: Path) -> None:
     assert dem.read_window(0, 0, 0, 3).shape == (0, 3)
 
 
+@pytest.mark.parametrize(("scale", "offset", "dtype"),
+                         [(0.01, 0.0, "int16"), (0.001, 40.0, "int16"), (0.5, -3.0, "float32")])
+def test_read_window_applies_the_band_scale_and_offset(tmp_path: Path, scale: float,
+                                                       offset: float, dtype: str) -> None:
+    # GDAL's convention: a stored value v stands for v * scale + offset (an int16 DEM of
+    # centimetres has scale 0.01); the nodata value is compared as stored
+    elevation = np.array([[41.23, 42.5, 57.01], [44.0, np.nan, 45.67]])
+    stored = np.round((elevation - offset) / scale)
+    path = write_dem(tmp_path / "d.tif", stored, nodata=-32768, dtype=dtype)
+    with rasterio.open(path, "r+") as dst:
+        dst.scales = (scale,)
+        dst.offsets = (offset,)
+    got = open_dem(path).read_window(0, 0, 2, 3)
+    assert np.isnan(got[1, 1]) and np.isnan(got).sum() == 1
+    np.testing.assert_allclose(got, elevation, atol=scale)  # to the stored step
+
+
 def test_read_window_gdal_mask(tmp_path: Path) -> None:
     """A GDAL per-dataset mask (no nodata value) is honoured."""
     path = write_dem(tmp_path / "d.tif", np.full((3, 3), 5.0), nodata=None)

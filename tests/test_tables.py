@@ -8,6 +8,7 @@ import numpy as np
 import pandas as pd
 import pyogrio
 import pytest
+import rasterio
 import shapely
 from conftest import (
     METRES_PER_UNIT,
@@ -297,6 +298,21 @@ def test_an_exact_mesh_does_not_warn_of_gaps(case, tmp_path):
     with warnings.catch_warnings():
         warnings.simplefilter("error", MeshGapWarning)
         build_tables(dem, cells, out=tmp_path / "out", stages="11")
+
+
+def test_a_dem_of_scaled_integers_gives_the_tables_of_its_elevations(case, tmp_path):
+    # the same terrain stored as int16 centimetres with the GeoTIFF scale 0.01 (GDAL:
+    # elevation = stored * scale + offset) gives the float DEM's tables, to the centimetre
+    _, cells, z, _ = case
+    stored = write_dem(tmp_path / "cm.tif", np.round(z * 100.0), dtype="int16", nodata=-32768)
+    with rasterio.open(stored, "r+") as dst:
+        dst.scales = (0.01,)
+    rounded = write_dem(tmp_path / "m.tif", np.round(z * 100.0) / 100.0, dtype="float64")
+    build_tables(stored, cells, out=tmp_path / "a", stages="10:13:1")
+    build_tables(rounded, cells, out=tmp_path / "b", stages="10:13:1")
+    (a, _), (b, _) = _read(tmp_path / "a"), _read(tmp_path / "b")
+    for column in ("wet_area", "volume", "bed_area", "flat_elevation"):
+        np.testing.assert_allclose(a[column], b[column], rtol=1e-9, atol=1e-9)
 
 
 def test_a_dem_of_only_nodata_under_the_mesh_is_refused(tmp_path):
