@@ -140,6 +140,33 @@ def refuse_without_terrain(covered_area: np.ndarray, dem: Any) -> None:
         "the terrain of this mesh")
 
 
+#: Elevations (metres) beyond these are no terrain on Earth (the deepest ocean trench lies
+#: about 11 km down, from memory; the upper limit leaves room for any local datum): a
+#: DEM that holds them holds an undeclared nodata value (-3.4e38, -32767, -99999, ...).
+LOWEST_TERRAIN_METRES = -11_000.0
+HIGHEST_TERRAIN_METRES = 100_000.0
+
+
+def refuse_implausible_terrain(lowest: float | None, highest: float | None, dem: Any) -> None:
+    """InputError when the terrain under the cells reaches below
+    :data:`LOWEST_TERRAIN_METRES` or above :data:`HIGHEST_TERRAIN_METRES` (``lowest``,
+    ``highest`` in the DEM's vertical units; NaN / None: not known)."""
+    per_unit = float(getattr(dem, "z_metres_per_unit", 1.0))
+    nodata = getattr(dem, "nodata", None)
+    declared = ("declares no nodata value" if nodata is None
+                else f"declares {nodata:g} as nodata")
+    unit = table_units(dem)["stage"]
+    for value, beyond, limit in ((lowest, "lower", LOWEST_TERRAIN_METRES),
+                                 (highest, "higher", HIGHEST_TERRAIN_METRES)):
+        if value is None or not np.isfinite(value):
+            continue
+        if (value * per_unit < limit) if beyond == "lower" else (value * per_unit > limit):
+            raise InputError(
+                f"the DEM '{dem.path}' holds elevations of {value:.6g} {unit} under the cells, "
+                f"{beyond} than any terrain on Earth, and {declared}: declare the value its "
+                f"gaps hold as nodata (e.g. gdal_edit.py -a_nodata {value:.9g}) and run again")
+
+
 def whole_within_round_off(fraction: np.ndarray) -> np.ndarray:
     """``fraction`` clipped to [0, 1], with values within :data:`PARTIAL_TOLERANCE` of 1
     set to 1: a cell or face wholly over valid terrain sums its pieces to 1 only up to
@@ -766,6 +793,10 @@ def build_tables(
         import pandas as pd
 
         refuse_without_terrain(cell_sum["covered_area"], dem_info)
+        low, high = cell_sum["z_min"], cell_sum["z_max"]
+        low, high = low[np.isfinite(low)], high[np.isfinite(high)]  # none: no terrain
+        refuse_implausible_terrain(float(low.min()) if low.size else None,
+                                   float(high.max()) if high.size else None, dem_info)
         area = shapely.area(geoms)
         if assigned_area is None:
             covered_fraction = covered_fractions(cell_sum["covered_area"], area)

@@ -315,6 +315,30 @@ def test_a_dem_of_scaled_integers_gives_the_tables_of_its_elevations(case, tmp_p
         np.testing.assert_allclose(a[column], b[column], rtol=1e-9, atol=1e-9)
 
 
+@pytest.mark.parametrize(("gap", "nodata", "dtype"), [
+    (-3.4028234663852886e38, None, "float32"),  # float32's lowest, declared nowhere
+    (-32767.0, -9999.0, "float32"),              # a declared value the gaps do not hold
+    (-99999.0, None, "float64"),
+])
+def test_undeclared_nodata_under_the_cells_is_refused(case, tmp_path, gap, nodata, dtype):
+    _, cells, z, _ = case
+    z = z.copy()
+    z[5:9, 5:9] = gap
+    dem = write_dem(tmp_path / "dem.tif", z, nodata=nodata, dtype=dtype)
+    out = tmp_path / "out"
+    with pytest.raises(InputError, match=r"lower than any terrain on Earth.*-a_nodata"):
+        build_tables(dem, cells, out=out, stages="11")
+    assert not out.exists()
+
+
+@pytest.mark.parametrize("shift", [-440.0, 4000.0])  # the Dead Sea shore; a high plateau
+def test_terrain_far_below_or_above_sea_level_is_accepted(case, tmp_path, shift):
+    _, cells, z, _ = case
+    dem = write_dem(tmp_path / "dem.tif", z + shift, dtype="float64")
+    res = build_tables(dem, cells, out=tmp_path / "out", stages=str(11 + shift))
+    assert res.n_cells == 9
+
+
 def test_a_dem_of_only_nodata_under_the_mesh_is_refused(tmp_path):
     # nodata over the whole mesh, terrain only beside it: every table would be empty
     z = bumpy(30, 30)
