@@ -652,6 +652,7 @@ def open_dem(path: str | os.PathLike[str], *, vertical_units: str | None = None,
         with rasterio.open(text) as src:
             crs, transform = src.crs, src.transform
             width, height, count = src.width, src.height, src.count
+            gcps = src.gcps[0] if transform.is_identity else []
             nodata = src.nodata
             dtype = src.dtypes[0] if count else ""
             scale, offset = band_scale_offset(src) if count else (1.0, 0.0)
@@ -663,6 +664,16 @@ def open_dem(path: str | os.PathLike[str], *, vertical_units: str | None = None,
         ) from exc
     if count < 1:
         raise InputFileError(f"DEM file '{text}' holds no raster band; give a single-band DEM")
+    if transform.is_identity:
+        # GDAL's stand-in when a file has no geotransform: pixel (col, row) at map (col, row)
+        if gcps:
+            raise InputError(
+                f"DEM '{text}' is placed only by {len(gcps)} ground control points; warp it "
+                "to a north-up grid in a projected CRS (e.g. gdalwarp) first")
+        raise InputError(
+            f"DEM '{text}' has no geotransform (its pixels have no map position); give it "
+            "its corner coordinates (e.g. gdal_translate -a_ullr) or use the georeferenced "
+            "original")
     if count > 1:
         logger.warning("DEM %s has %d bands; only band 1 is used as elevation", text, count)
     if scale != 1.0 or offset != 0.0:

@@ -226,6 +226,50 @@ def _text_file(tmp_path: Path) -> Path:
     return path
 
 
+def _without_geotransform(tmp_path: Path) -> Path:
+    path = tmp_path / "d.tif"
+    with warnings.catch_warnings():  # writing an ungeoreferenced file on purpose
+        warnings.simplefilter("ignore", rasterio.errors.NotGeoreferencedWarning)
+        with rasterio.open(path, "w", driver="GTiff", width=4, height=4, count=1,
+                           dtype="float32", crs="EPSG:32633") as dst:
+            dst.write(np.ones((1, 4, 4), dtype="float32"))
+    return path
+
+
+def _ground_control_points_only(tmp_path: Path) -> Path:
+    from rasterio.control import GroundControlPoint
+
+    path = tmp_path / "d.tif"
+    corners = [(0, 0, 500.0, 1004.0), (0, 4, 504.0, 1004.0), (4, 0, 500.0, 1000.0),
+               (4, 4, 504.0, 1000.0)]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", rasterio.errors.NotGeoreferencedWarning)
+        with rasterio.open(path, "w", driver="GTiff", width=4, height=4, count=1,
+                           dtype="float32") as dst:
+            dst.write(np.ones((1, 4, 4), dtype="float32"))
+            dst.gcps = ([GroundControlPoint(row=r, col=c, x=x, y=y) for r, c, x, y in corners],
+                        rasterio.crs.CRS.from_epsg(32633))
+    return path
+
+
+@pytest.mark.parametrize(
+    ("make", "error", "words"),
+    [
+        (_without_geotransform, InputError, "has no geotransform"),
+        (_ground_control_points_only, InputError, "ground control points"),
+    ],
+    ids=["no-geotransform", "gcps-only"],
+)
+def test_open_dem_names_missing_georeferencing(tmp_path: Path, make, error, words) -> None:
+    # before, these were refused as 'not stored north-up' or as having no CRS
+    path = make(tmp_path)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", rasterio.errors.NotGeoreferencedWarning)
+        with pytest.raises(error, match=words) as info:
+            open_dem(path)
+    assert_one_sentence(str(info.value), "DEM")
+
+
 @pytest.mark.parametrize(
     ("make", "error"),
     [
