@@ -944,7 +944,8 @@ def border_gaps(polygons: object, faces: Faces, *, snap_tolerance: float,
     Each boundary face is sampled at 20 points (its ends left out).  A point is in such a
     gap when a cell other than the face's own lies within ``reach`` of it, farther than
     half the tolerance, in a direction across the face (more than 80 degrees from the
-    face's direction there); a face needs two such points.  A boundary face that only ends where a neighbour starts (a
+    face's direction there), with none of the face's own cell half-way to it (the ring of
+    a hole near the cell's border has); a face needs two such points.  A boundary face that only ends where a neighbour starts (a
     mesh corner) has that neighbour along its own direction, and the mesh's outer
     boundary has no cell beyond it: neither counts.
     """
@@ -979,6 +980,10 @@ def border_gaps(polygons: object, faces: Faces, *, snap_tolerance: float,
     t = tangent[pt]
     along = np.abs(v[:, 0] * t[:, 0] + v[:, 1] * t[:, 1])
     gap = (dist > 0.5 * tol) & (along < _ACROSS_COS * dist * np.hypot(t[:, 0], t[:, 1]))
+    # a gap is empty between the two cells; a hole's ring (a building cut out) near the
+    # cell's border has the cell's own ground between it and the neighbour
+    half_way = 0.5 * (to_cell[0::2] + to_cell[1::2])
+    gap &= ~shapely.intersects_xy(geoms[own[face[pt]]], half_way[:, 0], half_way[:, 1])
     pt, cell, dist = pt[gap], cell[gap], dist[gap]
     if pt.size == 0:
         return none

@@ -489,6 +489,9 @@ def test_gap_wider_than_the_tolerance_is_found_on_both_sides():
     ([box(0, 0, 1, 1), box(3, 0, 4, 1)], 1e-3),           # farther apart than the reach
     (grid(3, 3), 1e-6),                                   # boundary faces meet at mesh corners
     ([box(0, 0, 3, 3).difference(box(1, 1, 2, 2))], 1e-6),  # a hole with nothing in it
+    # a building cut out 0.1 from the border with the next cell: the cell's own ground lies
+    # between the hole's ring and that cell
+    ([box(0, 0, 3, 3).difference(box(1, 1, 2.9, 2)), box(3, 0, 6, 3)], 1e-3),
     (list(voronoi_mesh(40, 3)), 1e-6),
 ])
 def test_shared_borders_and_the_mesh_outline_are_no_gaps(cells, tol):
