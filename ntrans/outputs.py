@@ -881,8 +881,10 @@ _DESCRIPTIONS: dict[str, str] = {
     "area": "plan area",
     "covered_area": "plan area over valid DEM pixels",
     "covered_fraction": (
-        "share of the item over valid DEM pixels (a cell under the centre rule: of the "
-        "pixels the rule gives it, times its share inside the DEM)"
+        "share of the item over valid DEM pixels (a face: of its line where the terrain, "
+        "bilinear between the four nearest pixel centres, has no nodata pixel among them; "
+        "a cell under the centre rule: of the pixels the rule gives it, times its share "
+        "inside the DEM)"
     ),
     "z_min": "lowest terrain elevation", "z_max": "highest terrain elevation",
     "z_mean": "area-weighted mean terrain elevation",
