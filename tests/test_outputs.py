@@ -599,3 +599,13 @@ def test_covered_fraction_says_how_a_face_counts_its_terrain():
 
     text = column_descriptions()["covered_fraction"]
     assert "a face" in text and "bilinear" in text
+
+
+def test_flat_columns_say_they_use_the_covered_area():
+    # a cell partly off the DEM is flat over its covered area only (so the two families
+    # compare on the same ground); the descriptions must not promise the whole cell
+    from ntrans.outputs import column_descriptions
+
+    described = column_descriptions()
+    assert "covered_area" in described["flat_wet_area"]
+    assert "covered_area" in described["flat_volume"]
