@@ -103,6 +103,11 @@ class ProjectionScaleWarning(NtransWarning):
     """The DEM's projection stretches or shrinks lengths noticeably where the DEM lies."""
 
 
+class ReprojectionAccuracyWarning(NtransWarning):
+    """A layer was reprojected to the DEM's CRS by a datum transformation less accurate
+    than half a DEM pixel (or of unknown accuracy), so it may sit beside its terrain."""
+
+
 class DeepWindowWarning(NtransWarning):
     """The calibration window stands implausibly deep above the terrain (e.g. a water
     surface in feet over terrain in metres)."""

@@ -44,6 +44,7 @@ from .errors import (
     InputFileError,
     OutputError,
     ProjectionScaleWarning,
+    ReprojectionAccuracyWarning,
     warn,
 )
 from .mesh import is_valid
@@ -932,11 +933,52 @@ def crs_label(crs: pyproj.CRS) -> str:
     return f"'{name}' (EPSG:{epsg})" if epsg is not None else f"'{name}'"
 
 
+def transformation_accuracy(source: pyproj.CRS, target: pyproj.CRS,
+                            x: float, y: float) -> tuple[str, float] | None:
+    """``(name, accuracy in metres)`` of the operation PROJ uses from ``source`` to
+    ``target`` at point (x, y) of ``source``: the transformation's stated accuracy (EPSG),
+    0 for a conversion within one datum, -1 when unknown (a ballpark shift); None when it
+    cannot be found."""
+    try:
+        transformer = pyproj.Transformer.from_crs(source, target, always_xy=True)
+        transformer.transform(x, y)
+        operation = transformer.get_last_used_operation()
+        name = operation.description or operation.name  # a pipeline's name is 'pipeline'
+        return str(name), float(operation.accuracy)
+    except Exception:  # pyproj / PROJ errors of every kind: the check is only advice
+        return None
+
+
+def _warn_if_reprojection_coarse(frame: Any, source: _VectorInput, own: pyproj.CRS,
+                                 target: pyproj.CRS, pixel_metres: float) -> None:
+    """:class:`ReprojectionAccuracyWarning` when ``frame`` (in ``own``) goes to ``target``
+    by a transformation less accurate than half a pixel (``pixel_metres``, metres), or of
+    unknown accuracy."""
+    xmin, ymin, xmax, ymax = (float(v) for v in frame.total_bounds)
+    if not all(map(math.isfinite, (xmin, ymin, xmax, ymax))):
+        return
+    found = transformation_accuracy(own, target, 0.5 * (xmin + xmax), 0.5 * (ymin + ymax))
+    if found is None:
+        return
+    name, accuracy = found
+    if 0.0 <= accuracy <= 0.5 * pixel_metres:
+        return
+    how = (f"accurate to about {accuracy:g} m, more than half the DEM's {pixel_metres:g} m "
+           "pixel" if accuracy >= 0 else "of unknown accuracy")
+    warn(f"{source.what} were reprojected from {crs_label(own)} to the DEM's CRS "
+         f"{crs_label(target)} by '{name}', {how}, so they may sit beside their terrain; "
+         "reproject them yourself with the datum grid the two CRSs need (PROJ grid files "
+         "or network), or give them in the DEM's CRS", ReprojectionAccuracyWarning,
+         stacklevel=4)
+
+
 def _in_crs(frame: Any, text: str, source: _VectorInput,
-            dem_crs: CRS | pyproj.CRS | str) -> tuple[Any, bool]:
+            dem_crs: CRS | pyproj.CRS | str,
+            pixel_metres: float | None = None) -> tuple[Any, bool]:
     """``(frame in the horizontal part of dem_crs, whether it was reprojected)``: the
-    reprojection is logged; :class:`CRSError` when the layer has no CRS or cannot be
-    reprojected."""
+    reprojection is logged, and with ``pixel_metres`` (the DEM's pixel, metres) a
+    transformation coarser than half of it warns; :class:`CRSError` when the layer has no
+    CRS or cannot be reprojected."""
     own = _source_crs(frame, text, source)
     full = _to_pyproj(dem_crs)
     target = _split_compound(full)[0]
@@ -945,12 +987,15 @@ def _in_crs(frame: Any, text: str, source: _VectorInput,
     logger.info("%s %s: reprojecting from %s to the DEM's CRS %s",
                 source.what, text, crs_label(own), crs_label(target))
     try:
-        return frame.to_crs(target), True
+        moved = frame.to_crs(target)
     except Exception as exc:
         raise CRSError(
             f"{source.what} layer '{text}' cannot be reprojected from {crs_label(own)} to the "
             f"DEM's CRS {crs_label(target)} ({_reason(exc, text)}); reproject it yourself first"
         ) from exc
+    if pixel_metres is not None:
+        _warn_if_reprojection_coarse(frame, source, own, target, pixel_metres)
+    return moved, True
 
 
 def read_class_polygons(
@@ -1351,7 +1396,8 @@ def read_cells(
         )
 
     target = dem.horizontal_crs
-    frame, reprojected = _in_crs(frame, text, _CELLS, dem.crs)
+    frame, reprojected = _in_crs(frame, text, _CELLS, dem.crs,
+                                 pixel_metres=min(dem.pixel_size) * dem.xy_metres_per_unit)
     if reprojected:
         geoms = np.asarray(frame.geometry.array, dtype=object)
     as_read = geoms  # the frame's own geometry, until something below changes it

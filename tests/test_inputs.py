@@ -455,6 +455,45 @@ def test_read_cells_flatgeobuf_spatial_index(tmp_path: Path, tmp_dem: Path) -> N
     assert all(shapely.equals(cells.geometry, expected))
 
 
+#: UTM 33N on the international ellipsoid, its datum shift given only as three numbers:
+#: PROJ cannot say how accurate that shift is
+_OWN_DATUM = "+proj=utm +zone=33 +ellps=intl +towgs84=-87,-98,-121,0,0,0,0 +units=m +no_defs"
+
+
+@pytest.mark.parametrize(("crs", "warns"), [
+    (_OWN_DATUM, True),   # a datum shift of unknown accuracy
+    ("EPSG:4326", False),  # the DEM's own datum: a conversion, exact
+])
+def test_read_cells_warns_of_a_coarse_datum_shift(tmp_path: Path, tmp_dem: Path, crs: str,
+                                                  warns: bool) -> None:
+    import geopandas as gpd
+
+    from ntrans.errors import ReprojectionAccuracyWarning
+
+    frame = gpd.GeoDataFrame({"cell_id": range(1, 10)}, geometry=grid_polygons(3, 3, 10.0),
+                             crs="EPSG:32633").to_crs(crs)
+    path = tmp_path / "c.gpkg"
+    frame.to_file(path, engine="pyogrio")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        read_cells(path, dem=open_dem(tmp_dem))
+    found = [w for w in caught if issubclass(w.category, ReprojectionAccuracyWarning)]
+    assert len(found) == (1 if warns else 0)
+    if warns:
+        assert "unknown accuracy" in str(found[0].message)
+
+
+def test_transformation_accuracy_is_that_of_the_datum_shift() -> None:
+    from ntrans.inputs import transformation_accuracy
+
+    # EPSG states the accuracy of every datum transformation; a conversion is exact
+    found = transformation_accuracy(pyproj.CRS("EPSG:4326"), pyproj.CRS("EPSG:32633"), 15, 45)
+    assert found is not None and found[1] == 0.0
+    found = transformation_accuracy(pyproj.CRS(_OWN_DATUM), pyproj.CRS("EPSG:32633"),
+                                    500_000, 5_000_000)
+    assert found is not None and found[1] < 0  # unknown
+
+
 def test_read_cells_reprojects(tmp_path: Path, tmp_dem: Path) -> None:
     """Cells drawn in another CRS are moved into the DEM's CRS."""
     dem_crs = "EPSG:32633"
