@@ -827,6 +827,10 @@ class _VectorInput:
     key: str     # project key and keyword argument naming the layer
 
 
+_UTF8_VECTOR_SUFFIXES = frozenset({".gpkg", ".fgb", ".geojson", ".json"})
+#: GeoParquet files, read with pyarrow (one layer each)
+_GEOPARQUET_SUFFIXES = frozenset({".parquet", ".geoparquet"})
+
 _CELLS = _VectorInput("cells", "--cells-layer", "cells_layer")
 _CLASSES = _VectorInput("class polygon", "--classes-layer", "classes_layer")
 
@@ -840,12 +844,15 @@ def _choose_layer(path: str, layer: str | int | None, source: _VectorInput = _CE
     """
     import pyogrio
 
+    if Path(path).suffix.lower() in _GEOPARQUET_SUFFIXES:
+        return Path(path).stem if layer is None else str(layer)  # one layer, read whole
     try:
         layers = pyogrio.list_layers(path)
     except Exception as exc:  # pyogrio raises DataSourceError and friends
         raise InputFileError(
             f"{source.what} file '{path}' cannot be read as a vector layer "
-            f"({_reason(exc, path)}); give a GeoPackage, Shapefile, GeoJSON or FlatGeobuf file"
+            f"({_reason(exc, path)}); give a GeoPackage, Shapefile, GeoJSON, FlatGeobuf or "
+            "GeoParquet file"
         ) from exc
     names = [str(row[0]) for row in layers]
     if not names:
@@ -885,12 +892,17 @@ def _read_layer(text: str, layer: str, source: _VectorInput) -> Any:
     # UTF-8 by their specification (a Shapefile's may be in any code page)
     use_arrow = Path(text).suffix.lower() in _UTF8_VECTOR_SUFFIXES
     try:
-        frame = gpd.read_file(text, layer=layer, engine="pyogrio", fid_as_index=True,
-                              use_arrow=use_arrow)
+        if Path(text).suffix.lower() in _GEOPARQUET_SUFFIXES:
+            # read by pyarrow: GDAL's Parquet driver is often missing or half-built
+            frame = gpd.read_parquet(text)
+            frame.index = np.arange(len(frame))
+        else:
+            frame = gpd.read_file(text, layer=layer, engine="pyogrio", fid_as_index=True,
+                                  use_arrow=use_arrow)
     except Exception as exc:  # pyogrio / GDAL errors of every kind
         raise InputFileError(
             f"{source.what} file '{text}' cannot be read ({_reason(exc, text)}); give a "
-            "GeoPackage, Shapefile, GeoJSON or FlatGeobuf polygon layer"
+            "GeoPackage, Shapefile, GeoJSON, FlatGeobuf or GeoParquet polygon layer"
         ) from exc
     if not isinstance(frame, gpd.GeoDataFrame) or frame.geometry is None:
         raise GeometryError(
@@ -1315,7 +1327,6 @@ def _check_overlaps(geoms: np.ndarray, ids: np.ndarray, tolerance: float) -> Non
 
 
 #: vector formats whose text is UTF-8 by specification
-_UTF8_VECTOR_SUFFIXES = frozenset({".gpkg", ".fgb", ".geojson", ".json"})
 
 
 def read_cells(

@@ -425,6 +425,25 @@ def test_read_cells_formats(tmp_path: Path, tmp_dem: Path, suffix: str) -> None:
     assert all(shapely.equals(cells.geometry, grid_polygons(3, 3, 10.0)))
 
 
+def test_read_cells_geoparquet(tmp_path: Path, tmp_dem: Path) -> None:
+    """A GeoParquet mesh is read (with pyarrow; GDAL's Parquet driver is often missing),
+    and a Parquet file without geometry is refused in one sentence."""
+    import geopandas as gpd
+    import pandas as pd
+
+    path = tmp_path / "c.parquet"
+    gpd.GeoDataFrame({"cell_id": [11, 12, 13, 21, 22, 23, 31, 32, 33]},
+                     geometry=grid_polygons(3, 3, 10.0), crs="EPSG:32633").to_parquet(path)
+    cells = read_cells(path, dem=open_dem(tmp_dem))
+    np.testing.assert_array_equal(cells.ids, [11, 12, 13, 21, 22, 23, 31, 32, 33])
+    assert all(shapely.equals(cells.geometry, grid_polygons(3, 3, 10.0)))
+    plain = tmp_path / "plain.parquet"
+    pd.DataFrame({"cell_id": [1]}).to_parquet(plain)
+    with pytest.raises(InputFileError) as info:
+        read_cells(plain, dem=open_dem(tmp_dem))
+    assert_one_sentence(str(info.value), "cells")
+
+
 def test_read_cells_shapefile_not_in_utf8(tmp_path: Path, tmp_dem: Path) -> None:
     """A Windows-1252 Shapefile without its .cpg loads with its text intact: Shapefiles
     are read without Arrow, which would pass the bytes on as invalid UTF-8."""
