@@ -108,6 +108,11 @@ class ReprojectionAccuracyWarning(NtransWarning):
     than half a DEM pixel (or of unknown accuracy), so it may sit beside its terrain."""
 
 
+class CoarseFaceSpacingWarning(NtransWarning):
+    """Face profiles are sampled more coarsely than half a DEM pixel, so they miss terrain
+    between their stations (flow areas off by several per cent in shallow water)."""
+
+
 class DeepWindowWarning(NtransWarning):
     """The calibration window stands implausibly deep above the terrain (e.g. a water
     surface in feet over terrain in metres)."""

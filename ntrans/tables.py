@@ -52,6 +52,7 @@ from .engine import (
     rows_of,
 )
 from .errors import (
+    CoarseFaceSpacingWarning,
     FlatElevationWarning,
     InputError,
     MemoryEstimateWarning,
@@ -477,6 +478,13 @@ def prepare_mesh_job(
         raise InputError(f"face spacing {face_spacing!r} is not a positive length; give e.g. {0.5 * pixel:g}")
     if not (np.isfinite(snap) and snap > 0):
         raise InputError(f"snap tolerance {snap_tolerance!r} is not a positive length; give e.g. {0.01 * pixel:g}")
+    if spacing > 0.5 * pixel * (1.0 + 1e-9) and faces:
+        u = table_units(dem_info)["length"]
+        warn(f"face spacing {spacing:g} {u} is coarser than half a DEM pixel "
+             f"({0.5 * pixel:g} {u}), so face profiles miss terrain between their stations "
+             f"(flow areas in shallow water can be off by several per cent); give "
+             f"{0.5 * pixel:g} {u} or less, or leave the default", CoarseFaceSpacingWarning,
+             stacklevel=3)
     geoms = np.asarray(layer.geometry, dtype=object)
     map_blocks = None
     if connection is not None:

@@ -21,6 +21,7 @@ from conftest import (
 )
 
 from ntrans.errors import (
+    CoarseFaceSpacingWarning,
     FlatElevationWarning,
     InputError,
     MeshGapWarning,
@@ -291,6 +292,19 @@ def test_borders_cut_by_small_gaps_warn_with_a_tolerance_that_joins_them(tmp_pat
     faces = pyogrio.read_dataframe(tmp_path / "b" / "faces.gpkg")
     assert faces.cell_b.notna().sum() == 12
     assert faces.length[faces.cell_b.isna()].sum() == pytest.approx(120.0, abs=0.5)
+
+
+@pytest.mark.parametrize(("spacing", "warns"), [(2.0, True), (0.5, False), (0.25, False)])
+def test_face_spacing_coarser_than_half_a_pixel_warns(case, tmp_path, spacing, warns):
+    # 1 m pixels: profiles sampled every 2 m miss terrain the default 0.5 m sees
+    dem, cells, _, _ = case
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        build_tables(dem, cells, out=tmp_path / "out", stages="11", face_spacing=spacing)
+    found = [w for w in caught if issubclass(w.category, CoarseFaceSpacingWarning)]
+    assert len(found) == (1 if warns else 0)
+    if warns:
+        assert "give 0.5 m or less" in str(found[0].message)
 
 
 def test_an_exact_mesh_does_not_warn_of_gaps(case, tmp_path):
