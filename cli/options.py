@@ -115,7 +115,7 @@ face_spacing = click.option(
     default=None,
     metavar="LENGTH",
     help="Profile sampling step along faces, in horizontal CRS units "
-    "(default: half a pixel).",
+    "(default: half a pixel; a coarser step warns).",
 )
 
 snap_tolerance = click.option(

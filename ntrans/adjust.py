@@ -448,7 +448,8 @@ class _WindowWetting:
     lowest terrain at some window stage, ``nearest`` the largest stage minus lowest
     terrain of any item-stage (at most 0 when none is wet), ``lowest`` the lowest
     terrain.  Cells: ``cell_wet`` cell-stages above the cell's lowest terrain, ``cell_deep``
-    those more than the deep limit above it.
+    those more than the deep limit above it.  ``terrain_low``: the lowest terrain of any
+    cell or face (NaN pixels left out).
     """
 
     reached: int = 0
@@ -457,6 +458,7 @@ class _WindowWetting:
     lowest: float = np.inf
     cell_wet: int = 0
     cell_deep: int = 0
+    terrain_low: float = np.inf
 
     @classmethod
     def of(cls, stages: np.ndarray, low: np.ndarray, cell_stages: np.ndarray,
@@ -467,12 +469,16 @@ class _WindowWetting:
                           - np.asarray(cell_low, dtype=float)[:, None])
         finite = np.isfinite(depth)
         has_low = np.isfinite(low)
+        every_low = np.concatenate([np.asarray(low, dtype=float).ravel(),
+                                    np.asarray(cell_low, dtype=float).ravel()])
+        every_low = every_low[np.isfinite(every_low)]
         return cls(reached=int(finite.any(axis=1).sum()),
                    wet=int((depth > 0).any(axis=1).sum()),
                    nearest=float(depth[finite].max()) if finite.any() else -np.inf,
                    lowest=float(np.min(low[has_low])) if has_low.any() else np.inf,
                    cell_wet=int(np.count_nonzero(cell_depth > 0)),
-                   cell_deep=int(np.count_nonzero(cell_depth > deep)))
+                   cell_deep=int(np.count_nonzero(cell_depth > deep)),
+                   terrain_low=float(every_low.min()) if every_low.size else np.inf)
 
     def add(self, other: _WindowWetting) -> None:
         self.reached += other.reached
@@ -481,6 +487,7 @@ class _WindowWetting:
         self.lowest = min(self.lowest, other.lowest)
         self.cell_wet += other.cell_wet
         self.cell_deep += other.cell_deep
+        self.terrain_low = min(self.terrain_low, other.terrain_low)
 
 
 def _check_window_wets(wetting: _WindowWetting, *, spec: StageSpec | None, domain: str,
@@ -746,6 +753,8 @@ def adjust_roughness(
         covered_fractions,
         partial_coverage,
         prepare_mesh_job,
+        refuse_implausible_terrain,
+        refuse_without_terrain,
         table_units,
         warn_missing_flat_elevation,
         warn_partial_coverage,
@@ -844,6 +853,8 @@ def adjust_roughness(
             parts.append(terms.without_spread())
             del res, terms
         layer.finish_checks()
+        refuse_without_terrain(cell_covered, dem_info)
+        refuse_implausible_terrain(wetting.terrain_low, None, dem_info)
         z_unit = table_units(dem_info)["stage"]
         _check_window_wets(wetting, spec=spec, domain=domain, z_unit=z_unit, surfaces=surfaces)
         _warn_if_window_deep(wetting, spec=spec, z_unit=z_unit,

@@ -77,6 +77,11 @@ class GeometryRepairedWarning(NtransWarning):
     """Invalid polygons were repaired before use."""
 
 
+class MeshGapWarning(NtransWarning):
+    """Cell borders meant to be shared lie just beyond the snap tolerance (small gaps or
+    overlaps in the mesh), so they count as mesh boundary."""
+
+
 class PartialCoverageWarning(NtransWarning):
     """Some cells or faces are partly outside the DEM or over nodata."""
 
@@ -96,6 +101,16 @@ class DryWetMismatchWarning(NtransWarning):
 
 class ProjectionScaleWarning(NtransWarning):
     """The DEM's projection stretches or shrinks lengths noticeably where the DEM lies."""
+
+
+class ReprojectionAccuracyWarning(NtransWarning):
+    """A layer was reprojected to the DEM's CRS by a datum transformation less accurate
+    than half a DEM pixel (or of unknown accuracy), so it may sit beside its terrain."""
+
+
+class CoarseFaceSpacingWarning(NtransWarning):
+    """Face profiles are sampled more coarsely than half a DEM pixel, so they miss terrain
+    between their stations (flow areas off by several per cent in shallow water)."""
 
 
 class DeepWindowWarning(NtransWarning):

@@ -651,7 +651,8 @@ def face_profile_summary(profiles: Profiles) -> dict[str, np.ndarray]:
     -------
     dict of (n_faces,) arrays: ``low_point``, ``high_point``, ``relief`` (high - low),
     ``mean_elevation`` (length-weighted mean of the piecewise-linear profile),
-    ``covered_fraction`` (valid segment length / face length; 0 for a zero-length face).
+    ``covered_fraction`` (valid segment length / face length; 0 for a zero-length face;
+    1 within 1e-6 of it, round-off).
     NaN elevations where a face has no valid segment.
     """
     seg = profile_segments(profiles)
@@ -671,7 +672,8 @@ def face_profile_summary(profiles: Profiles) -> dict[str, np.ndarray]:
         "high_point": high,
         "relief": high - seg.low,
         "mean_elevation": mean,
-        "covered_fraction": np.clip(covered, 0.0, 1.0),
+        # 1 within round-off, as the cells' (ntrans.tables.whole_within_round_off)
+        "covered_fraction": np.where(covered >= 1.0 - 1e-6, 1.0, np.clip(covered, 0.0, 1.0)),
     }
 
 

@@ -44,6 +44,7 @@ from .errors import (
     InputFileError,
     OutputError,
     ProjectionScaleWarning,
+    ReprojectionAccuracyWarning,
     warn,
 )
 from .mesh import is_valid
@@ -360,9 +361,18 @@ def _read_window(path: str, window: Window) -> np.ndarray:
     return _valid_float64(*session.read(path, functools.partial(_read_raw, window=window)))
 
 
-def _read_raw(src: Any, window: Window) -> tuple[np.ndarray, float | None, bool]:
-    """``(values, nodata, masked)`` of band 1 in ``window`` as stored (the part that
-    needs the dataset)."""
+def band_scale_offset(src: Any) -> tuple[float, float]:
+    """Band 1's GDAL scale and offset: a stored value v stands for ``v * scale + offset``
+    (e.g. an int16 DEM of centimetres with scale 0.01); (1, 0) when the file sets none."""
+    scale = (src.scales or (1.0,))[0]
+    offset = (src.offsets or (0.0,))[0]
+    return (1.0 if scale is None else float(scale)), (0.0 if offset is None else float(offset))
+
+
+def _read_raw(src: Any, window: Window) -> tuple[np.ndarray, float | None, bool, float, float]:
+    """``(values, nodata, masked, scale, offset)`` of band 1 in ``window`` as stored (the
+    part that needs the dataset)."""
+    scale, offset = band_scale_offset(src)
     flags = src.mask_flag_enums[0]
     if flags == [MaskFlags.all_valid] or flags == [MaskFlags.nodata]:
         # GDAL's nodata mask compares in the band's own type (a float32 band with
@@ -370,18 +380,25 @@ def _read_raw(src: Any, window: Window) -> tuple[np.ndarray, float | None, bool]
         # band read, which costs as much as the data (0.33 s -> 0.2 s for every window
         # of a 10^7-pixel DEM)
         nodata = src.nodatavals[0] if flags == [MaskFlags.nodata] else None
-        return src.read(1, window=window), nodata, False
-    return src.read(1, window=window, masked=True), None, True  # alpha or mask bands
+        return src.read(1, window=window), nodata, False, scale, offset
+    # alpha or mask bands
+    return src.read(1, window=window, masked=True), None, True, scale, offset
 
 
-def _valid_float64(raw: np.ndarray, nodata: float | None, masked: bool) -> np.ndarray:
+def _valid_float64(raw: np.ndarray, nodata: float | None, masked: bool, scale: float = 1.0,
+                   offset: float = 0.0) -> np.ndarray:
+    """Stored values as float64 in the band's units (scale and offset applied; the nodata
+    value is compared as stored), NaN where invalid."""
     if masked:
-        return np.ma.filled(raw.astype(np.float64), np.nan)
-    values = raw.astype(np.float64)
-    if nodata is not None:
-        invalid = _equals_nodata(raw, nodata)
-        if invalid is not None:
-            values[invalid] = np.nan
+        values = np.ma.filled(raw.astype(np.float64), np.nan)
+    else:
+        values = raw.astype(np.float64)
+        if nodata is not None:
+            invalid = _equals_nodata(raw, nodata)
+            if invalid is not None:
+                values[invalid] = np.nan
+    if scale != 1.0 or offset != 0.0:
+        values = values * scale + offset
     return values
 
 
@@ -636,8 +653,10 @@ def open_dem(path: str | os.PathLike[str], *, vertical_units: str | None = None,
         with rasterio.open(text) as src:
             crs, transform = src.crs, src.transform
             width, height, count = src.width, src.height, src.count
+            gcps = src.gcps[0] if transform.is_identity else []
             nodata = src.nodata
             dtype = src.dtypes[0] if count else ""
+            scale, offset = band_scale_offset(src) if count else (1.0, 0.0)
             block_shape = tuple(int(b) for b in src.block_shapes[0]) if count else None
     except rasterio.errors.RasterioIOError as exc:
         raise InputFileError(
@@ -646,8 +665,21 @@ def open_dem(path: str | os.PathLike[str], *, vertical_units: str | None = None,
         ) from exc
     if count < 1:
         raise InputFileError(f"DEM file '{text}' holds no raster band; give a single-band DEM")
+    if transform.is_identity:
+        # GDAL's stand-in when a file has no geotransform: pixel (col, row) at map (col, row)
+        if gcps:
+            raise InputError(
+                f"DEM '{text}' is placed only by {len(gcps)} ground control points; warp it "
+                "to a north-up grid in a projected CRS (e.g. gdalwarp) first")
+        raise InputError(
+            f"DEM '{text}' has no geotransform (its pixels have no map position); give it "
+            "its corner coordinates (e.g. gdal_translate -a_ullr) or use the georeferenced "
+            "original")
     if count > 1:
         logger.warning("DEM %s has %d bands; only band 1 is used as elevation", text, count)
+    if scale != 1.0 or offset != 0.0:
+        logger.info("DEM %s: stored values scaled by %g and offset by %g (the file's scale "
+                     "and offset) to give elevations", text, scale, offset)
     if not np.issubdtype(np.dtype(dtype), np.integer) and not np.issubdtype(
         np.dtype(dtype), np.floating
     ):
@@ -795,6 +827,10 @@ class _VectorInput:
     key: str     # project key and keyword argument naming the layer
 
 
+_UTF8_VECTOR_SUFFIXES = frozenset({".gpkg", ".fgb", ".geojson", ".json"})
+#: GeoParquet files, read with pyarrow (one layer each)
+_GEOPARQUET_SUFFIXES = frozenset({".parquet", ".geoparquet"})
+
 _CELLS = _VectorInput("cells", "--cells-layer", "cells_layer")
 _CLASSES = _VectorInput("class polygon", "--classes-layer", "classes_layer")
 
@@ -808,12 +844,15 @@ def _choose_layer(path: str, layer: str | int | None, source: _VectorInput = _CE
     """
     import pyogrio
 
+    if Path(path).suffix.lower() in _GEOPARQUET_SUFFIXES:
+        return Path(path).stem if layer is None else str(layer)  # one layer, read whole
     try:
         layers = pyogrio.list_layers(path)
     except Exception as exc:  # pyogrio raises DataSourceError and friends
         raise InputFileError(
             f"{source.what} file '{path}' cannot be read as a vector layer "
-            f"({_reason(exc, path)}); give a GeoPackage, Shapefile, GeoJSON or FlatGeobuf file"
+            f"({_reason(exc, path)}); give a GeoPackage, Shapefile, GeoJSON, FlatGeobuf or "
+            "GeoParquet file"
         ) from exc
     names = [str(row[0]) for row in layers]
     if not names:
@@ -853,12 +892,17 @@ def _read_layer(text: str, layer: str, source: _VectorInput) -> Any:
     # UTF-8 by their specification (a Shapefile's may be in any code page)
     use_arrow = Path(text).suffix.lower() in _UTF8_VECTOR_SUFFIXES
     try:
-        frame = gpd.read_file(text, layer=layer, engine="pyogrio", fid_as_index=True,
-                              use_arrow=use_arrow)
+        if Path(text).suffix.lower() in _GEOPARQUET_SUFFIXES:
+            # read by pyarrow: GDAL's Parquet driver is often missing or half-built
+            frame = gpd.read_parquet(text)
+            frame.index = np.arange(len(frame))
+        else:
+            frame = gpd.read_file(text, layer=layer, engine="pyogrio", fid_as_index=True,
+                                  use_arrow=use_arrow)
     except Exception as exc:  # pyogrio / GDAL errors of every kind
         raise InputFileError(
             f"{source.what} file '{text}' cannot be read ({_reason(exc, text)}); give a "
-            "GeoPackage, Shapefile, GeoJSON or FlatGeobuf polygon layer"
+            "GeoPackage, Shapefile, GeoJSON, FlatGeobuf or GeoParquet polygon layer"
         ) from exc
     if not isinstance(frame, gpd.GeoDataFrame) or frame.geometry is None:
         raise GeometryError(
@@ -901,11 +945,52 @@ def crs_label(crs: pyproj.CRS) -> str:
     return f"'{name}' (EPSG:{epsg})" if epsg is not None else f"'{name}'"
 
 
+def transformation_accuracy(source: pyproj.CRS, target: pyproj.CRS,
+                            x: float, y: float) -> tuple[str, float] | None:
+    """``(name, accuracy in metres)`` of the operation PROJ uses from ``source`` to
+    ``target`` at point (x, y) of ``source``: the transformation's stated accuracy (EPSG),
+    0 for a conversion within one datum, -1 when unknown (a ballpark shift); None when it
+    cannot be found."""
+    try:
+        transformer = pyproj.Transformer.from_crs(source, target, always_xy=True)
+        transformer.transform(x, y)
+        operation = transformer.get_last_used_operation()
+        name = operation.description or operation.name  # a pipeline's name is 'pipeline'
+        return str(name), float(operation.accuracy)
+    except Exception:  # pyproj / PROJ errors of every kind: the check is only advice
+        return None
+
+
+def _warn_if_reprojection_coarse(frame: Any, source: _VectorInput, own: pyproj.CRS,
+                                 target: pyproj.CRS, pixel_metres: float) -> None:
+    """:class:`ReprojectionAccuracyWarning` when ``frame`` (in ``own``) goes to ``target``
+    by a transformation less accurate than half a pixel (``pixel_metres``, metres), or of
+    unknown accuracy."""
+    xmin, ymin, xmax, ymax = (float(v) for v in frame.total_bounds)
+    if not all(map(math.isfinite, (xmin, ymin, xmax, ymax))):
+        return
+    found = transformation_accuracy(own, target, 0.5 * (xmin + xmax), 0.5 * (ymin + ymax))
+    if found is None:
+        return
+    name, accuracy = found
+    if 0.0 <= accuracy <= 0.5 * pixel_metres:
+        return
+    how = (f"accurate to about {accuracy:g} m, more than half the DEM's {pixel_metres:g} m "
+           "pixel" if accuracy >= 0 else "of unknown accuracy")
+    warn(f"{source.what} were reprojected from {crs_label(own)} to the DEM's CRS "
+         f"{crs_label(target)} by '{name}', {how}, so they may sit beside their terrain; "
+         "reproject them yourself with the datum grid the two CRSs need (PROJ grid files "
+         "or network), or give them in the DEM's CRS", ReprojectionAccuracyWarning,
+         stacklevel=4)
+
+
 def _in_crs(frame: Any, text: str, source: _VectorInput,
-            dem_crs: CRS | pyproj.CRS | str) -> tuple[Any, bool]:
+            dem_crs: CRS | pyproj.CRS | str,
+            pixel_metres: float | None = None) -> tuple[Any, bool]:
     """``(frame in the horizontal part of dem_crs, whether it was reprojected)``: the
-    reprojection is logged; :class:`CRSError` when the layer has no CRS or cannot be
-    reprojected."""
+    reprojection is logged, and with ``pixel_metres`` (the DEM's pixel, metres) a
+    transformation coarser than half of it warns; :class:`CRSError` when the layer has no
+    CRS or cannot be reprojected."""
     own = _source_crs(frame, text, source)
     full = _to_pyproj(dem_crs)
     target = _split_compound(full)[0]
@@ -914,12 +999,15 @@ def _in_crs(frame: Any, text: str, source: _VectorInput,
     logger.info("%s %s: reprojecting from %s to the DEM's CRS %s",
                 source.what, text, crs_label(own), crs_label(target))
     try:
-        return frame.to_crs(target), True
+        moved = frame.to_crs(target)
     except Exception as exc:
         raise CRSError(
             f"{source.what} layer '{text}' cannot be reprojected from {crs_label(own)} to the "
             f"DEM's CRS {crs_label(target)} ({_reason(exc, text)}); reproject it yourself first"
         ) from exc
+    if pixel_metres is not None:
+        _warn_if_reprojection_coarse(frame, source, own, target, pixel_metres)
+    return moved, True
 
 
 def read_class_polygons(
@@ -1239,7 +1327,6 @@ def _check_overlaps(geoms: np.ndarray, ids: np.ndarray, tolerance: float) -> Non
 
 
 #: vector formats whose text is UTF-8 by specification
-_UTF8_VECTOR_SUFFIXES = frozenset({".gpkg", ".fgb", ".geojson", ".json"})
 
 
 def read_cells(
@@ -1320,7 +1407,8 @@ def read_cells(
         )
 
     target = dem.horizontal_crs
-    frame, reprojected = _in_crs(frame, text, _CELLS, dem.crs)
+    frame, reprojected = _in_crs(frame, text, _CELLS, dem.crs,
+                                 pixel_metres=min(dem.pixel_size) * dem.xy_metres_per_unit)
     if reprojected:
         geoms = np.asarray(frame.geometry.array, dtype=object)
     as_read = geoms  # the frame's own geometry, until something below changes it

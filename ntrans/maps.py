@@ -664,6 +664,9 @@ def _decimated(elevation: np.ndarray | str | os.PathLike[str], step: int,
     import rasterio
     from rasterio.enums import Resampling
 
+    from .inputs import band_scale_offset
+
     with rasterio.open(elevation) as src:
         data = src.read(1, out_shape=shape, resampling=Resampling.nearest, masked=True)
-    return data.astype(float).filled(np.nan)
+        scale, offset = band_scale_offset(src)
+    return data.astype(float).filled(np.nan) * scale + offset

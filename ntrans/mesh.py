@@ -48,7 +48,7 @@ from .errors import GeometryError, InputError
 
 logger = logging.getLogger(__name__)
 
-__all__ = ["Faces", "build_faces"]
+__all__ = ["BorderGaps", "Faces", "border_gaps", "build_faces"]
 
 _LINESTRING = 1
 _POLYGON = 3
@@ -908,3 +908,100 @@ def build_faces(
         len(blocks),
     )
     return faces
+
+
+#: points sampled along each boundary face (ends left out) to find gaps along it
+_GAP_SAMPLES = 20
+#: cosine of the smallest angle (80 degrees) between a face and the way to another cell
+#: across a gap; a neighbour that only meets the face's end at a sharp corner lies at a
+#: smaller angle near that end
+_ACROSS_COS = float(np.cos(np.radians(87.0)))
+
+
+@dataclass(frozen=True)
+class BorderGaps:
+    """Stretches of boundary faces that run along another cell just beyond the snap
+    tolerance (:func:`border_gaps`).
+
+    ``faces`` counts the boundary faces with such a stretch and ``length`` sums the
+    stretches (CRS units, to 1/20 of each face's length); ``width`` is the gap's width at
+    nine faces in ten or more (CRS units): the 90th percentile over the faces of their
+    widest sampled gap; ``first`` holds the first few ``(cell_a, other cell)`` pairs of
+    local cell indices, in face order.
+    """
+
+    faces: int
+    length: float
+    width: float
+    first: list[tuple[int, int]]
+
+
+def border_gaps(polygons: object, faces: Faces, *, snap_tolerance: float,
+                reach: float) -> BorderGaps:
+    """Where boundary faces run along another cell across a gap or overlap wider than
+    ``snap_tolerance`` but within ``reach`` (CRS units): borders two cells meant to share.
+
+    Each boundary face is sampled at 20 points (its ends left out).  A point is in such a
+    gap when a cell other than the face's own lies within ``reach`` of it, farther than
+    half the tolerance, in a direction across the face (more than 80 degrees from the
+    face's direction there), with none of the face's own cell half-way to it (the ring of
+    a hole near the cell's border has); a face needs two such points.  A boundary face that only ends where a neighbour starts (a
+    mesh corner) has that neighbour along its own direction, and the mesh's outer
+    boundary has no cell beyond it: neither counts.
+    """
+    geoms = np.asarray(polygons, dtype=object)
+    tol = float(snap_tolerance)
+    reach = float(reach)
+    bnd = np.flatnonzero(faces.cell_b < 0)
+    none = BorderGaps(0, 0.0, 0.0, [])
+    if bnd.size == 0 or geoms.size < 2:
+        return none
+    lines = faces.geometry[bnd]
+    if lines.size and isinstance(lines[0], (bytes, bytearray)):
+        lines = shapely.from_wkb(lines)
+    lines = shapely.force_2d(lines)
+    length = shapely.length(lines)
+    own = faces.cell_a[bnd]
+    n = _GAP_SAMPLES
+    face = np.repeat(np.arange(bnd.size), n)
+    at = np.tile((np.arange(n) + 0.5) / n, bnd.size) * length[face]
+    half = np.minimum(0.5 / n, 0.25) * length[face]
+    point = shapely.line_interpolate_point(lines[face], at)
+    tangent = (shapely.get_coordinates(shapely.line_interpolate_point(lines[face], at + half))
+               - shapely.get_coordinates(shapely.line_interpolate_point(lines[face], at - half)))
+    pt, cell = shapely.STRtree(geoms).query(point, predicate="dwithin", distance=reach)
+    keep = cell != own[face[pt]]
+    pt, cell = pt[keep], cell[keep]
+    if pt.size == 0:
+        return none
+    to_cell = shapely.get_coordinates(shapely.shortest_line(point[pt], geoms[cell]))
+    v = to_cell[1::2] - to_cell[0::2]
+    dist = np.hypot(v[:, 0], v[:, 1])
+    t = tangent[pt]
+    along = np.abs(v[:, 0] * t[:, 0] + v[:, 1] * t[:, 1])
+    gap = (dist > 0.5 * tol) & (along < _ACROSS_COS * dist * np.hypot(t[:, 0], t[:, 1]))
+    # a gap is empty between the two cells; a hole's ring (a building cut out) near the
+    # cell's border has the cell's own ground between it and the neighbour
+    half_way = 0.5 * (to_cell[0::2] + to_cell[1::2])
+    gap &= ~shapely.intersects_xy(geoms[own[face[pt]]], half_way[:, 0], half_way[:, 1])
+    pt, cell, dist = pt[gap], cell[gap], dist[gap]
+    if pt.size == 0:
+        return none
+    # a point counts once (its nearest such cell); then per face
+    order = np.lexsort((dist, pt))
+    pt, cell, dist = pt[order], cell[order], dist[order]
+    first = np.ones(pt.size, dtype=bool)
+    first[1:] = pt[1:] != pt[:-1]
+    pt, cell, dist = pt[first], cell[first], dist[first]
+    of_face = face[pt]
+    hit, start, count = np.unique(of_face, return_index=True, return_counts=True)
+    widest = np.maximum.reduceat(dist, start)
+    # one sample alone is no stretch (a neighbour's sharp corner near the face)
+    two = count >= 2
+    hit, start, count, widest = hit[two], start[two], count[two], widest[two]
+    if hit.size == 0:
+        return none
+    a = own[hit]
+    return BorderGaps(int(hit.size), float(np.sum(length[hit] * count / n)),
+                      float(np.percentile(widest, 90.0)),
+                      [(int(x), int(y)) for x, y in zip(a[:5], cell[start][:5], strict=True)])

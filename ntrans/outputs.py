@@ -902,14 +902,17 @@ _DESCRIPTIONS: dict[str, str] = {
     "mean_depth": "volume / wet_area",
     "flat_elevation": "bed elevation of the flat cell (elevation rule)",
     "flat_depth": "stage minus flat_elevation, zero when dry",
-    "flat_wet_area": "cell area when the flat cell is wet",
-    "flat_volume": "cell area times flat_depth",
+    "flat_wet_area": ("cell area over valid terrain (covered_area, as the subgrid columns "
+                      "count it) when the flat cell is wet"),
+    "flat_volume": "covered_area times flat_depth",
     "flat_hydraulic_radius": "hydraulic radius of the flat cell (= flat_depth)",
     "area": "plan area",
     "covered_area": "plan area over valid DEM pixels",
     "covered_fraction": (
-        "share of the item over valid DEM pixels (a cell under the centre rule: of the "
-        "pixels the rule gives it, times its share inside the DEM)"
+        "share of the item over valid DEM pixels (a face: of its line where the terrain, "
+        "bilinear between the four nearest pixel centres, has no nodata pixel among them; "
+        "a cell under the centre rule: of the pixels the rule gives it, times its share "
+        "inside the DEM)"
     ),
     "z_min": "lowest terrain elevation", "z_max": "highest terrain elevation",
     "z_mean": "area-weighted mean terrain elevation",

@@ -410,6 +410,8 @@ coverage = "exact"              # pixel-to-cell weights: exact | centre
 tile_size = 512                 # tile edge in DEM pixels (bounds memory)
 # threads = 2                   # tiles at once in this process (default: one per core, up to 4)
 # workers = 4                   # local worker processes (default: this process)
+# snap_tolerance = 0.05         # cell borders closer than this count as shared (default:
+#                               # 1 % of a pixel; raise it when a mesh gap warning says so)
 """
 
 

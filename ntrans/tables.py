@@ -52,9 +52,11 @@ from .engine import (
     rows_of,
 )
 from .errors import (
+    CoarseFaceSpacingWarning,
     FlatElevationWarning,
     InputError,
     MemoryEstimateWarning,
+    MeshGapWarning,
     PartialCoverageWarning,
     check_choice,
     warn,
@@ -84,7 +86,8 @@ FACE_SUMMARY_COLUMNS: tuple[str, ...] = (
     "perimeter_ratio",
 )
 
-#: Fractions below 1 - this count as partly outside the DEM / over nodata (round-off).
+#: Fractions below 1 - this count as partly outside the DEM / over nodata (round-off);
+#: fractions within it of 1 are written as 1 (:func:`whole_within_round_off`).
 PARTIAL_TOLERANCE = 1e-6
 #: cells whose WKB takes at most this many bytes (about) are encoded for ``cells.gpkg``
 #: beside the tiles instead of after them; larger layers are encoded batch by batch at
@@ -123,14 +126,66 @@ def _check_stage_rows_fit(tile_items: list[int], n_stages: int, in_flight: int) 
          "or --threads 1", MemoryEstimateWarning, stacklevel=3)
 
 
+def refuse_without_terrain(covered_area: np.ndarray, dem: Any) -> None:
+    """InputError when no cell covers any valid DEM pixel (``covered_area``, square CRS
+    units, all 0 or NaN): every table would be empty, and the cause is the DEM (its
+    nodata value, or another area's terrain), which the sentence names."""
+    covered = np.nan_to_num(np.asarray(covered_area, dtype=float), nan=0.0)
+    if covered.size == 0 or np.any(covered > 0):
+        return
+    nodata = getattr(dem, "nodata", None)
+    value = "" if nodata is None else f" ({nodata:g})"
+    raise InputError(
+        f"none of the {covered.size} cells lies over valid terrain: the DEM '{dem.path}' "
+        f"holds only nodata{value} under them; check the DEM's nodata value and that it is "
+        "the terrain of this mesh")
+
+
+#: Elevations (metres) beyond these are no terrain on Earth (the deepest ocean trench lies
+#: about 11 km down, from memory; the upper limit leaves room for any local datum): a
+#: DEM that holds them holds an undeclared nodata value (-3.4e38, -32767, -99999, ...).
+LOWEST_TERRAIN_METRES = -11_000.0
+HIGHEST_TERRAIN_METRES = 100_000.0
+
+
+def refuse_implausible_terrain(lowest: float | None, highest: float | None, dem: Any) -> None:
+    """InputError when the terrain under the cells reaches below
+    :data:`LOWEST_TERRAIN_METRES` or above :data:`HIGHEST_TERRAIN_METRES` (``lowest``,
+    ``highest`` in the DEM's vertical units; NaN / None: not known)."""
+    per_unit = float(getattr(dem, "z_metres_per_unit", 1.0))
+    nodata = getattr(dem, "nodata", None)
+    declared = ("declares no nodata value" if nodata is None
+                else f"declares {nodata:g} as nodata")
+    unit = table_units(dem)["stage"]
+    for value, beyond, limit in ((lowest, "lower", LOWEST_TERRAIN_METRES),
+                                 (highest, "higher", HIGHEST_TERRAIN_METRES)):
+        if value is None or not np.isfinite(value):
+            continue
+        if (value * per_unit < limit) if beyond == "lower" else (value * per_unit > limit):
+            raise InputError(
+                f"the DEM '{dem.path}' holds elevations of {value:.6g} {unit} under the cells, "
+                f"{beyond} than any terrain on Earth, and {declared}: declare the value its "
+                f"gaps hold as nodata (e.g. gdal_edit.py -a_nodata {value:.9g}) and run again")
+
+
+def whole_within_round_off(fraction: np.ndarray) -> np.ndarray:
+    """``fraction`` clipped to [0, 1], with values within :data:`PARTIAL_TOLERANCE` of 1
+    set to 1: a cell or face wholly over valid terrain sums its pieces to 1 only up to
+    round-off (0.9999999999999875), and ``covered_fraction < 1`` must pick the items
+    the partial-coverage warning counts, not half the mesh."""
+    fraction = np.clip(np.asarray(fraction, dtype=float), 0.0, 1.0)
+    return np.where(fraction >= 1.0 - PARTIAL_TOLERANCE, 1.0, fraction)
+
+
 def covered_fractions(covered_area: np.ndarray, area: np.ndarray) -> np.ndarray:
     """Share of each cell's plan area over valid DEM pixels, in [0, 1] (0 for a cell of no
-    area or without terrain): covered plan area / cell area, as the exact rule gives it."""
+    area or without terrain): covered plan area / cell area, as the exact rule gives it
+    (1 within round-off, :func:`whole_within_round_off`)."""
     covered_area = np.asarray(covered_area, dtype=float)
     area = np.asarray(area, dtype=float)
     with np.errstate(invalid="ignore", divide="ignore"):
         fraction = np.where(area > 0, covered_area / np.where(area > 0, area, 1.0), np.nan)
-    return np.clip(np.nan_to_num(fraction, nan=0.0), 0.0, 1.0)
+    return whole_within_round_off(np.nan_to_num(fraction, nan=0.0))
 
 
 def centre_covered_fractions(covered_area: np.ndarray, assigned_area: np.ndarray,
@@ -149,7 +204,7 @@ def centre_covered_fractions(covered_area: np.ndarray, assigned_area: np.ndarray
         valid = np.where(assigned_area > 0,
                          covered_area / np.where(assigned_area > 0, assigned_area, 1.0), 0.0)
     fraction = np.nan_to_num(valid, nan=0.0) * np.asarray(inside_share, dtype=float)
-    return np.clip(np.nan_to_num(fraction, nan=0.0), 0.0, 1.0)
+    return whole_within_round_off(np.nan_to_num(fraction, nan=0.0))
 
 
 @dataclass(frozen=True)
@@ -320,7 +375,8 @@ def layer_descriptions(columns: tuple[str, ...], units: dict[str, str], *, mode:
         "perimeter_ratio": f"wetted perimeter / top width {at}",
     }
     special["covered_fraction"] = (
-        "share of the face's length over valid DEM pixels" if item == "face"
+        "share of the face's line where the terrain, bilinear between the four nearest "
+        "pixel centres, has no nodata pixel among them" if item == "face"
         else "share of the cell over valid DEM pixels (under the centre rule: of the pixels "
              "the rule gives it, times its share inside the DEM)")
     base = _descriptions()
@@ -382,6 +438,40 @@ def _block_as_wkb(fn: Callable[[Any], Any], job: Any) -> Any:
     return result
 
 
+def _round_up(value: float) -> float:
+    """``value`` rounded up to one significant digit (0.047 -> 0.05, 0.13 -> 0.2)."""
+    step = 10.0 ** np.floor(np.log10(value))
+    return float(np.ceil(value / step - 1e-9) * step)
+
+
+def warn_border_gaps(ids: np.ndarray, polygons: np.ndarray, mesh: Any, *, snap_tolerance: float,
+                     pixel: float, snap_given: bool, unit: str = "",
+                     stacklevel: int = 2) -> None:
+    """Emit :class:`MeshGapWarning` when boundary faces run along another cell within half
+    a pixel (or twice the tolerance, when larger) but beyond the snap tolerance
+    (:func:`ntrans.mesh.border_gaps`): gaps or overlaps that cut faces the two cells
+    should share, which then carry no flow between them.  Lengths in horizontal CRS
+    units, named by ``unit`` (a symbol such as ``m``) in the sentence."""
+    from .mesh import border_gaps
+
+    gaps = border_gaps(polygons, mesh, snap_tolerance=snap_tolerance,
+                       reach=max(0.5 * pixel, 2.0 * snap_tolerance))
+    if not gaps.faces:
+        return
+    pairs = ", ".join(f"{ids[a]}/{ids[b]}" for a, b in gaps.first)
+    more = f" and {gaps.faces - len(gaps.first)} more" if gaps.faces > len(gaps.first) else ""
+    source = "" if snap_given else ", 1 % of a pixel"
+    u = f" {unit}" if unit else ""
+    suggest = _round_up(1.5 * max(gaps.width, snap_tolerance))
+    warn(f"{gaps.faces} stretches of cell border ({gaps.length:.4g}{u} in all) run "
+         f"along a neighbouring cell across a gap or overlap wider than the snap tolerance "
+         f"({snap_tolerance:g}{u}{source}), so they count as mesh boundary and carry no flow "
+         f"between the cells (cells {pairs}{more}); give a snap tolerance of about "
+         f"{suggest:g}{u} (--snap-tolerance; snap_tolerance in a project file) or make "
+         "neighbouring cells share their borders",
+         MeshGapWarning, stacklevel=stacklevel + 1)
+
+
 @collection_paused()
 def prepare_mesh_job(
     dem: str | os.PathLike[str],
@@ -429,6 +519,13 @@ def prepare_mesh_job(
         raise InputError(f"face spacing {face_spacing!r} is not a positive length; give e.g. {0.5 * pixel:g}")
     if not (np.isfinite(snap) and snap > 0):
         raise InputError(f"snap tolerance {snap_tolerance!r} is not a positive length; give e.g. {0.01 * pixel:g}")
+    if spacing > 0.5 * pixel * (1.0 + 1e-9) and faces:
+        u = table_units(dem_info)["length"]
+        warn(f"face spacing {spacing:g} {u} is coarser than half a DEM pixel "
+             f"({0.5 * pixel:g} {u}), so face profiles miss terrain between their stations "
+             f"(flow areas in shallow water can be off by several per cent); give "
+             f"{0.5 * pixel:g} {u} or less, or leave the default", CoarseFaceSpacingWarning,
+             stacklevel=3)
     geoms = np.asarray(layer.geometry, dtype=object)
     map_blocks = None
     if connection is not None:
@@ -457,6 +554,10 @@ def prepare_mesh_job(
 
     mesh = (build_faces(geoms, snap_tolerance=snap, map_blocks=map_blocks, lines_as_wkb=True)
             if faces else None)
+    if mesh is not None:
+        warn_border_gaps(np.asarray(layer.ids), geoms, mesh, snap_tolerance=snap, pixel=pixel,
+                         snap_given=snap_tolerance is not None,
+                         unit=table_units(dem_info)["length"], stacklevel=3)
     release_free_memory()
     tiles = plan_tiles(
         geoms,
@@ -740,6 +841,11 @@ def build_tables(
         import geopandas as gpd
         import pandas as pd
 
+        refuse_without_terrain(cell_sum["covered_area"], dem_info)
+        low, high = cell_sum["z_min"], cell_sum["z_max"]
+        low, high = low[np.isfinite(low)], high[np.isfinite(high)]  # none: no terrain
+        refuse_implausible_terrain(float(low.min()) if low.size else None,
+                                   float(high.max()) if high.size else None, dem_info)
         area = shapely.area(geoms)
         if assigned_area is None:
             covered_fraction = covered_fractions(cell_sum["covered_area"], area)

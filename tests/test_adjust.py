@@ -444,6 +444,31 @@ def test_window_that_wets_nothing_is_refused_before_anything_is_written(flat_cas
     assert _nothing_written(out)
 
 
+@pytest.mark.parametrize("window", [{"stages": "11"}, {"depths": "0.5"}])
+@pytest.mark.parametrize("coverage", ["exact", "centre"])
+def test_a_dem_of_only_nodata_under_the_mesh_is_refused_as_such(tmp_path, window, coverage):
+    # the cells lie over the DEM's extent, every pixel is nodata: the sentence names the
+    # DEM and its nodata value, not the window
+    dem = write_dem(tmp_path / "dem.tif", np.full((20, 20), np.nan))
+    cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(2, 2, 10.0))
+    out = tmp_path / "out"
+    with pytest.raises(InputError, match=r"none of the 4 cells lies over valid terrain.*"
+                                         r"nodata \(-9999\)"):
+        _quiet(dem=dem, cells=cells, out=out, n=0.03, coverage=coverage, **window)
+    assert _nothing_written(out)
+
+
+def test_undeclared_nodata_under_the_mesh_is_refused(tmp_path):
+    z = np.full((20, 20), 10.0)
+    z[3:6, 3:6] = -32767.0  # gaps that hold a value the file does not declare
+    dem = write_dem(tmp_path / "dem.tif", z, nodata=-9999.0)
+    cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(2, 2, 10.0))
+    out = tmp_path / "out"
+    with pytest.raises(InputError, match=r"-32767 m under the cells, lower than any terrain"):
+        _quiet(dem=dem, cells=cells, out=out, n=0.03, depths="0.5")
+    assert _nothing_written(out)
+
+
 def test_water_surface_off_the_mesh_refused_before_the_tile_passes(flat_case, tmp_path,
                                                                     monkeypatch):
     import ntrans.adjust as adjust_module

@@ -226,6 +226,50 @@ def _text_file(tmp_path: Path) -> Path:
     return path
 
 
+def _without_geotransform(tmp_path: Path) -> Path:
+    path = tmp_path / "d.tif"
+    with warnings.catch_warnings():  # writing an ungeoreferenced file on purpose
+        warnings.simplefilter("ignore", rasterio.errors.NotGeoreferencedWarning)
+        with rasterio.open(path, "w", driver="GTiff", width=4, height=4, count=1,
+                           dtype="float32", crs="EPSG:32633") as dst:
+            dst.write(np.ones((1, 4, 4), dtype="float32"))
+    return path
+
+
+def _ground_control_points_only(tmp_path: Path) -> Path:
+    from rasterio.control import GroundControlPoint
+
+    path = tmp_path / "d.tif"
+    corners = [(0, 0, 500.0, 1004.0), (0, 4, 504.0, 1004.0), (4, 0, 500.0, 1000.0),
+               (4, 4, 504.0, 1000.0)]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", rasterio.errors.NotGeoreferencedWarning)
+        with rasterio.open(path, "w", driver="GTiff", width=4, height=4, count=1,
+                           dtype="float32") as dst:
+            dst.write(np.ones((1, 4, 4), dtype="float32"))
+            dst.gcps = ([GroundControlPoint(row=r, col=c, x=x, y=y) for r, c, x, y in corners],
+                        rasterio.crs.CRS.from_epsg(32633))
+    return path
+
+
+@pytest.mark.parametrize(
+    ("make", "error", "words"),
+    [
+        (_without_geotransform, InputError, "has no geotransform"),
+        (_ground_control_points_only, InputError, "ground control points"),
+    ],
+    ids=["no-geotransform", "gcps-only"],
+)
+def test_open_dem_names_missing_georeferencing(tmp_path: Path, make, error, words) -> None:
+    # before, these were refused as 'not stored north-up' or as having no CRS
+    path = make(tmp_path)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", rasterio.errors.NotGeoreferencedWarning)
+        with pytest.raises(error, match=words) as info:
+            open_dem(path)
+    assert_one_sentence(str(info.value), "DEM")
+
+
 @pytest.mark.parametrize(
     ("make", "error"),
     [
@@ -313,6 +357,23 @@ def test_read_window_outside_is_nan(tmp_path: Path) -> None:
     assert dem.read_window(0, 0, 0, 3).shape == (0, 3)
 
 
+@pytest.mark.parametrize(("scale", "offset", "dtype"),
+                         [(0.01, 0.0, "int16"), (0.001, 40.0, "int16"), (0.5, -3.0, "float32")])
+def test_read_window_applies_the_band_scale_and_offset(tmp_path: Path, scale: float,
+                                                       offset: float, dtype: str) -> None:
+    # GDAL's convention: a stored value v stands for v * scale + offset (an int16 DEM of
+    # centimetres has scale 0.01); the nodata value is compared as stored
+    elevation = np.array([[41.23, 42.5, 57.01], [44.0, np.nan, 45.67]])
+    stored = np.round((elevation - offset) / scale)
+    path = write_dem(tmp_path / "d.tif", stored, nodata=-32768, dtype=dtype)
+    with rasterio.open(path, "r+") as dst:
+        dst.scales = (scale,)
+        dst.offsets = (offset,)
+    got = open_dem(path).read_window(0, 0, 2, 3)
+    assert np.isnan(got[1, 1]) and np.isnan(got).sum() == 1
+    np.testing.assert_allclose(got, elevation, atol=scale)  # to the stored step
+
+
 def test_read_window_gdal_mask(tmp_path: Path) -> None:
     """A GDAL per-dataset mask (no nodata value) is honoured."""
     path = write_dem(tmp_path / "d.tif", np.full((3, 3), 5.0), nodata=None)
@@ -364,6 +425,25 @@ def test_read_cells_formats(tmp_path: Path, tmp_dem: Path, suffix: str) -> None:
     assert all(shapely.equals(cells.geometry, grid_polygons(3, 3, 10.0)))
 
 
+def test_read_cells_geoparquet(tmp_path: Path, tmp_dem: Path) -> None:
+    """A GeoParquet mesh is read (with pyarrow; GDAL's Parquet driver is often missing),
+    and a Parquet file without geometry is refused in one sentence."""
+    import geopandas as gpd
+    import pandas as pd
+
+    path = tmp_path / "c.parquet"
+    gpd.GeoDataFrame({"cell_id": [11, 12, 13, 21, 22, 23, 31, 32, 33]},
+                     geometry=grid_polygons(3, 3, 10.0), crs="EPSG:32633").to_parquet(path)
+    cells = read_cells(path, dem=open_dem(tmp_dem))
+    np.testing.assert_array_equal(cells.ids, [11, 12, 13, 21, 22, 23, 31, 32, 33])
+    assert all(shapely.equals(cells.geometry, grid_polygons(3, 3, 10.0)))
+    plain = tmp_path / "plain.parquet"
+    pd.DataFrame({"cell_id": [1]}).to_parquet(plain)
+    with pytest.raises(InputFileError) as info:
+        read_cells(plain, dem=open_dem(tmp_dem))
+    assert_one_sentence(str(info.value), "cells")
+
+
 def test_read_cells_shapefile_not_in_utf8(tmp_path: Path, tmp_dem: Path) -> None:
     """A Windows-1252 Shapefile without its .cpg loads with its text intact: Shapefiles
     are read without Arrow, which would pass the bytes on as invalid UTF-8."""
@@ -392,6 +472,45 @@ def test_read_cells_flatgeobuf_spatial_index(tmp_path: Path, tmp_dem: Path) -> N
     assert sorted(cells.ids.tolist()) == list(range(1, 10))
     expected = np.array(polys, dtype=object)[cells.ids - 1]
     assert all(shapely.equals(cells.geometry, expected))
+
+
+#: UTM 33N on the international ellipsoid, its datum shift given only as three numbers:
+#: PROJ cannot say how accurate that shift is
+_OWN_DATUM = "+proj=utm +zone=33 +ellps=intl +towgs84=-87,-98,-121,0,0,0,0 +units=m +no_defs"
+
+
+@pytest.mark.parametrize(("crs", "warns"), [
+    (_OWN_DATUM, True),   # a datum shift of unknown accuracy
+    ("EPSG:4326", False),  # the DEM's own datum: a conversion, exact
+])
+def test_read_cells_warns_of_a_coarse_datum_shift(tmp_path: Path, tmp_dem: Path, crs: str,
+                                                  warns: bool) -> None:
+    import geopandas as gpd
+
+    from ntrans.errors import ReprojectionAccuracyWarning
+
+    frame = gpd.GeoDataFrame({"cell_id": range(1, 10)}, geometry=grid_polygons(3, 3, 10.0),
+                             crs="EPSG:32633").to_crs(crs)
+    path = tmp_path / "c.gpkg"
+    frame.to_file(path, engine="pyogrio")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        read_cells(path, dem=open_dem(tmp_dem))
+    found = [w for w in caught if issubclass(w.category, ReprojectionAccuracyWarning)]
+    assert len(found) == (1 if warns else 0)
+    if warns:
+        assert "unknown accuracy" in str(found[0].message)
+
+
+def test_transformation_accuracy_is_that_of_the_datum_shift() -> None:
+    from ntrans.inputs import transformation_accuracy
+
+    # EPSG states the accuracy of every datum transformation; a conversion is exact
+    found = transformation_accuracy(pyproj.CRS("EPSG:4326"), pyproj.CRS("EPSG:32633"), 15, 45)
+    assert found is not None and found[1] == 0.0
+    found = transformation_accuracy(pyproj.CRS(_OWN_DATUM), pyproj.CRS("EPSG:32633"),
+                                    500_000, 5_000_000)
+    assert found is not None and found[1] < 0  # unknown
 
 
 def test_read_cells_reprojects(tmp_path: Path, tmp_dem: Path) -> None:

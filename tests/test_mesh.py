@@ -5,10 +5,11 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import shapely
+from conftest import grid_polygons
 from shapely import Polygon, box
 
 from ntrans.errors import GeometryError, InputError
-from ntrans.mesh import Faces, build_faces
+from ntrans.mesh import Faces, border_gaps, build_faces
 
 TOL = 1e-6
 
@@ -465,3 +466,50 @@ def test_validity_test_leaves_the_warning_filters_alone(monkeypatch):
     monkeypatch.setattr(warnings, "simplefilter", refuse)
     np.testing.assert_array_equal(is_valid(geoms), expected)
     assert expected.tolist() == [True, False, False]
+
+
+# --- border_gaps: borders two cells should share, cut apart by a gap wider than the tolerance
+
+
+def test_gap_wider_than_the_tolerance_is_found_on_both_sides():
+    # two unit squares 0.05 apart: each one's side along the gap is such a stretch
+    cells = [box(0, 0, 1, 1), box(1.05, 0, 2.05, 1)]
+    f = build_faces(cells, snap_tolerance=1e-3)
+    gaps = border_gaps(cells, f, snap_tolerance=1e-3, reach=0.5)
+    assert gaps.faces == 2
+    # geometry identity: the stretches are the two unit sides along the gap (the samples
+    # fall 1/20 of a perimeter of 4 apart, five on each side)
+    assert gaps.length == pytest.approx(2.0)
+    assert gaps.width == pytest.approx(0.05)
+    assert sorted(gaps.first) == [(0, 1), (1, 0)]
+
+
+@pytest.mark.parametrize("cells, tol", [
+    ([box(0, 0, 1, 1), box(1.05, 0, 2.05, 1)], 0.1),      # the gap is within the tolerance
+    ([box(0, 0, 1, 1), box(3, 0, 4, 1)], 1e-3),           # farther apart than the reach
+    (grid(3, 3), 1e-6),                                   # boundary faces meet at mesh corners
+    ([box(0, 0, 3, 3).difference(box(1, 1, 2, 2))], 1e-6),  # a hole with nothing in it
+    # a building cut out 0.1 from the border with the next cell: the cell's own ground lies
+    # between the hole's ring and that cell
+    ([box(0, 0, 3, 3).difference(box(1, 1, 2.9, 2)), box(3, 0, 6, 3)], 1e-3),
+    (list(voronoi_mesh(40, 3)), 1e-6),
+])
+def test_shared_borders_and_the_mesh_outline_are_no_gaps(cells, tol):
+    f = build_faces(cells, snap_tolerance=tol)
+    assert border_gaps(cells, f, snap_tolerance=tol, reach=0.5).faces == 0
+
+
+def test_jittered_borders_are_gaps_until_the_tolerance_covers_them():
+    # a 4 x 4 grid of 10 m cells whose vertices each move up to 3 cm on their own: shared
+    # borders open gaps and overlaps of up to about 6 cm
+    rng = np.random.default_rng(7)
+    cells = [Polygon(np.asarray(c.exterior.coords)[:-1] + rng.uniform(-0.03, 0.03, (4, 2)))
+             for c in grid_polygons(4, 4, 10.0)]
+    f = build_faces(cells, snap_tolerance=0.01)
+    gaps = border_gaps(cells, f, snap_tolerance=0.01, reach=1.0)
+    assert gaps.faces > 0 and 0.01 < gaps.width < 0.09
+    wide = 1.5 * gaps.width
+    f = build_faces(cells, snap_tolerance=wide)
+    assert border_gaps(cells, f, snap_tolerance=wide, reach=1.0).faces == 0
+    # with it, the 24 interior borders of the grid are faces again
+    assert len(pairs(f)) == 24

@@ -610,3 +610,22 @@ def test_every_contract_column_has_unit_and_description() -> None:
 def test_column_units_rejects_unknown_unit() -> None:
     with pytest.raises(ValueError):
         column_units("yard")
+
+
+def test_covered_fraction_says_how_a_face_counts_its_terrain():
+    # a face's share is that of its bilinear profile, smaller than its share over valid
+    # pixels near nodata; the description written into faces.gpkg must say so
+    from ntrans.outputs import column_descriptions
+
+    text = column_descriptions()["covered_fraction"]
+    assert "a face" in text and "bilinear" in text
+
+
+def test_flat_columns_say_they_use_the_covered_area():
+    # a cell partly off the DEM is flat over its covered area only (so the two families
+    # compare on the same ground); the descriptions must not promise the whole cell
+    from ntrans.outputs import column_descriptions
+
+    described = column_descriptions()
+    assert "covered_area" in described["flat_wet_area"]
+    assert "covered_area" in described["flat_volume"]

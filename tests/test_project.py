@@ -577,3 +577,13 @@ def test_worse_fit_remark_names_the_items_and_only_flagged_classes(fit_domain, f
 def test_report_counts_the_window_stages_not_the_table_levels(window, stages, levels):
     counts = _context_for("faces", ["", ""], window)["counts"]
     assert counts["stages"] == stages and counts["table_stages"] == levels
+
+
+def test_template_names_the_snap_tolerance_the_mesh_gap_warning_points_to(tmp_path):
+    # the mesh gap warning tells a project's user to set snap_tolerance: the template
+    # shows where, with a value that loads
+    text = proj.write_project_template(tmp_path / "job.toml").read_text()
+    line = next(s for s in text.splitlines() if s.startswith("# snap_tolerance ="))
+    values = _template_values(text)
+    assert ("run", "snap_tolerance") in values and "1 % of a pixel" in text
+    assert line.split("=")[1].split("#")[0].strip() == "0.05"

@@ -8,6 +8,7 @@ import numpy as np
 import pandas as pd
 import pyogrio
 import pytest
+import rasterio
 import shapely
 from conftest import (
     METRES_PER_UNIT,
@@ -20,7 +21,10 @@ from conftest import (
 )
 
 from ntrans.errors import (
+    CoarseFaceSpacingWarning,
     FlatElevationWarning,
+    InputError,
+    MeshGapWarning,
     OutputExistsError,
     PartialCoverageWarning,
     StageSpecError,
@@ -291,6 +295,105 @@ def test_partial_coverage_warns(tmp_path):
     np.testing.assert_allclose(gpkg.loc[[1, 2, 4, 5, 7, 8], "covered_fraction"], 1.0, rtol=1e-12)
 
 
+def _jittered_grid(seed: int = 3) -> list[shapely.Polygon]:
+    """3 x 3 cells of 10 m whose corners each move up to 3 cm on their own, so that
+    neighbours' borders are apart or overlap by up to about 6 cm."""
+    rng = np.random.default_rng(seed)
+    return [shapely.Polygon(np.asarray(c.exterior.coords)[:-1] + rng.uniform(-0.03, 0.03, (4, 2)))
+            for c in grid_polygons(3, 3, 10.0, origin=(1.0, 1.0))]
+
+
+def test_borders_cut_by_small_gaps_warn_with_a_tolerance_that_joins_them(tmp_path):
+    dem = write_dem(tmp_path / "dem.tif", bumpy(32, 32))
+    cells = write_cells(tmp_path / "cells.gpkg", _jittered_grid())
+    # the default tolerance (1 % of the 1 m pixel) leaves some shared borders open
+    with pytest.warns(MeshGapWarning, match=r"snap tolerance \(0.01 m, 1 % of a pixel\)") as rec:
+        build_tables(dem, cells, out=tmp_path / "a", stages="11")
+    line = str(rec[0].message)
+    suggested = float(line.split("give a snap tolerance of about ")[1].split(" m ")[0])
+    assert "--snap-tolerance" in line and 0.01 < suggested <= 0.2
+    # the tolerance the warning gives joins every border: the grid's 12 interior borders
+    # are faces and the boundary faces trace only the outline (4 sides of 30 m, give or
+    # take the 3 cm the corners moved)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", MeshGapWarning)
+        build_tables(dem, cells, out=tmp_path / "b", stages="11", snap_tolerance=suggested)
+    faces = pyogrio.read_dataframe(tmp_path / "b" / "faces.gpkg")
+    assert faces.cell_b.notna().sum() == 12
+    assert faces.length[faces.cell_b.isna()].sum() == pytest.approx(120.0, abs=0.5)
+
+
+@pytest.mark.parametrize(("spacing", "warns"), [(2.0, True), (0.5, False), (0.25, False)])
+def test_face_spacing_coarser_than_half_a_pixel_warns(case, tmp_path, spacing, warns):
+    # 1 m pixels: profiles sampled every 2 m miss terrain the default 0.5 m sees
+    dem, cells, _, _ = case
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        build_tables(dem, cells, out=tmp_path / "out", stages="11", face_spacing=spacing)
+    found = [w for w in caught if issubclass(w.category, CoarseFaceSpacingWarning)]
+    assert len(found) == (1 if warns else 0)
+    if warns:
+        assert "give 0.5 m or less" in str(found[0].message)
+
+
+def test_an_exact_mesh_does_not_warn_of_gaps(case, tmp_path):
+    dem, cells, _, _ = case
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", MeshGapWarning)
+        build_tables(dem, cells, out=tmp_path / "out", stages="11")
+
+
+def test_a_dem_of_scaled_integers_gives_the_tables_of_its_elevations(case, tmp_path):
+    # the same terrain stored as int16 centimetres with the GeoTIFF scale 0.01 (GDAL:
+    # elevation = stored * scale + offset) gives the float DEM's tables, to the centimetre
+    _, cells, z, _ = case
+    stored = write_dem(tmp_path / "cm.tif", np.round(z * 100.0), dtype="int16", nodata=-32768)
+    with rasterio.open(stored, "r+") as dst:
+        dst.scales = (0.01,)
+    rounded = write_dem(tmp_path / "m.tif", np.round(z * 100.0) / 100.0, dtype="float64")
+    build_tables(stored, cells, out=tmp_path / "a", stages="10:13:1")
+    build_tables(rounded, cells, out=tmp_path / "b", stages="10:13:1")
+    (a, _), (b, _) = _read(tmp_path / "a"), _read(tmp_path / "b")
+    for column in ("wet_area", "volume", "bed_area", "flat_elevation"):
+        np.testing.assert_allclose(a[column], b[column], rtol=1e-9, atol=1e-9)
+
+
+@pytest.mark.parametrize(("gap", "nodata", "dtype"), [
+    (-3.4028234663852886e38, None, "float32"),  # float32's lowest, declared nowhere
+    (-32767.0, -9999.0, "float32"),              # a declared value the gaps do not hold
+    (-99999.0, None, "float64"),
+])
+def test_undeclared_nodata_under_the_cells_is_refused(case, tmp_path, gap, nodata, dtype):
+    _, cells, z, _ = case
+    z = z.copy()
+    z[5:9, 5:9] = gap
+    dem = write_dem(tmp_path / "dem.tif", z, nodata=nodata, dtype=dtype)
+    out = tmp_path / "out"
+    with pytest.raises(InputError, match=r"lower than any terrain on Earth.*-a_nodata"):
+        build_tables(dem, cells, out=out, stages="11")
+    assert not out.exists()
+
+
+@pytest.mark.parametrize("shift", [-440.0, 4000.0])  # the Dead Sea shore; a high plateau
+def test_terrain_far_below_or_above_sea_level_is_accepted(case, tmp_path, shift):
+    _, cells, z, _ = case
+    dem = write_dem(tmp_path / "dem.tif", z + shift, dtype="float64")
+    res = build_tables(dem, cells, out=tmp_path / "out", stages=str(11 + shift))
+    assert res.n_cells == 9
+
+
+def test_a_dem_of_only_nodata_under_the_mesh_is_refused(tmp_path):
+    # nodata over the whole mesh, terrain only beside it: every table would be empty
+    z = bumpy(30, 30)
+    z[:, :20] = np.nan
+    dem = write_dem(tmp_path / "dem.tif", z)
+    cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(2, 2, 10.0))
+    out = tmp_path / "out"
+    with pytest.raises(InputError, match=r"none of the 4 cells lies over valid terrain"):
+        build_tables(dem, cells, out=out, stages="11")
+    assert not out.exists()
+
+
 def test_output_exists_and_overwrite(case, tmp_path):
     dem, cells, _, _ = case
     out = tmp_path / "out"
@@ -534,6 +637,51 @@ def test_partial_coverage_counts_wholly_and_partly(fractions, partly, wholly, st
     assert (found.partly, found.wholly) == (partly, wholly)
     message = found.message()
     assert (message is None) if start is None else message.startswith(start)
+
+
+def _voronoi_cells(n: int, size: float, seed: int) -> list[shapely.Geometry]:
+    rng = np.random.default_rng(seed)
+    frame = shapely.box(1.0, 1.0, size - 1.0, size - 1.0)
+    cells = shapely.get_parts(shapely.voronoi_polygons(
+        shapely.multipoints(rng.uniform(1.0, size - 1.0, (n, 2))), extend_to=frame))
+    return list(shapely.intersection(cells, frame))
+
+
+@pytest.mark.parametrize("coverage", ["exact", "centre"])
+def test_cells_wholly_over_terrain_have_covered_fraction_exactly_one(tmp_path, coverage):
+    # a Voronoi mesh off the pixel lines, wholly inside a DEM without nodata: its pieces
+    # of pixel add up to each cell's area only to round-off, yet every cell is whole, and
+    # filtering covered_fraction < 1 must find none of them (as the warning finds none)
+    dem = write_dem(tmp_path / "dem.tif", bumpy(40, 40), dtype="float64")
+    cells = write_cells(tmp_path / "cells.gpkg", _voronoi_cells(60, 40.0, 5))
+    out = tmp_path / "out"
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", PartialCoverageWarning)
+        build_tables(dem, cells, out=out, stages="11", coverage=coverage)
+    layer = pyogrio.read_dataframe(out / "cells.gpkg")
+    assert (layer.covered_fraction == 1.0).all()
+    faces = pyogrio.read_dataframe(out / "faces.gpkg")
+    assert (faces.covered_fraction == 1.0).all()
+    # geometry identity: the covered area is still the polygon's area, to round-off
+    if coverage == "exact":
+        np.testing.assert_allclose(layer.covered_area, layer.area, rtol=1e-12)
+
+
+@pytest.mark.parametrize(
+    ("covered", "area", "expected"),
+    [(100.0 * (1 - 1e-14), 100.0, 1.0),   # round-off: whole
+     (100.0 * (1 + 1e-14), 100.0, 1.0),
+     (99.999, 100.0, 0.99999),            # 1e-5 of the cell off the DEM: partly, as it is
+     (40.0, 100.0, 0.4), (0.0, 100.0, 0.0), (0.0, 0.0, 0.0)],
+)
+def test_covered_fractions_are_one_within_round_off(covered, area, expected):
+    from ntrans.tables import covered_fractions
+
+    got = covered_fractions(np.array([covered]), np.array([area]))[0]
+    if expected in (0.0, 1.0):
+        assert got == expected  # exactly: users filter on it
+    else:
+        assert got == pytest.approx(expected, rel=1e-12)
 
 
 @pytest.mark.parametrize(

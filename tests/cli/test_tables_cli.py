@@ -135,6 +135,13 @@ def _outside(tmp_path, b):
     return dem, cells, InputError
 
 
+def _only_nodata_under_the_cells(tmp_path, b):
+    # the cells lie over the DEM's extent, but every pixel there is nodata
+    dem = b.write_dem(tmp_path / "dem.tif", np.full((10, 10), np.nan))
+    cells = b.write_cells(tmp_path / "c.gpkg", b.grid_polygons(2, 2, 5.0))
+    return dem, cells, InputError
+
+
 def _two_layers(tmp_path, b):
     dem = b.write_dem(tmp_path / "dem.tif", np.ones((10, 10)))
     cells = b.write_cells(tmp_path / "c.gpkg", b.grid_polygons(2, 2, 5.0), layer="cells")
@@ -162,9 +169,10 @@ def _unreadable(tmp_path, b):
 @pytest.mark.parametrize(
     "make",
     [_geographic, _no_crs, _empty_layer, _points, _duplicate_ids, _overlapping, _outside,
-     _two_layers, _web_mercator_at_45_degrees, _unreadable],
+     _only_nodata_under_the_cells, _two_layers, _web_mercator_at_45_degrees, _unreadable],
     ids=["geographic-crs", "no-crs", "empty-layer", "not-polygons", "duplicate-ids",
-         "overlapping", "no-cell-on-dem", "several-layers", "web-mercator", "unreadable"],
+         "overlapping", "no-cell-on-dem", "only-nodata", "several-layers", "web-mercator",
+         "unreadable"],
 )
 def test_user_errors_exit_2_one_line_nothing_written(runner, tmp_path, builders, make):
     dem, cells, error_class = make(tmp_path, builders)
