@@ -1074,12 +1074,15 @@ def adjust_roughness(
                         "cell_stage_dry_wet_mismatch": mismatch_cells,
                         "classes_flagged": int(sum(1 for f in flags if f))},
             "fit": {"success": fit.success, "cost": fit.cost},
-            "weighting": "source conveyance share per window stage; spread = weighted "
-                         "quantiles with weight x class share of the item's extent",
+            "weighting": "source conveyance share per window stage, split among the wet "
+                         "classes by their part of the conveyance (weight_share); spread = "
+                         "weighted quantiles with weight x class share of the item's extent",
             "cautions": list(CAUTIONS),
             "seconds": round(seconds, 3),
             "units": {c: units.get(c, "") for c in (*FACE_COLUMNS, *CELL_COLUMNS)},
             "cell_units": {c: cell_units.get(c, "") for c in CELL_COLUMNS},
+            "class_units": class_table_units(z_unit),
+            "class_descriptions": class_table_descriptions(domain),
             "cell_layer": cell_layer_descriptions(domain),
             "face_layer": dict(FACE_LAYER_DESCRIPTIONS),
         }
@@ -1247,6 +1250,49 @@ def cell_layer_descriptions(domain: str) -> dict[str, str]:
         "bed_factor": "wetted bed area / wet plan area, median over the window",
         "dominant_class": "roughness class with the largest area in the cell",
     }
+
+
+def class_table_units(z_unit: str) -> dict[str, str]:
+    """Unit of each column of ``n_by_class.csv`` (``z_unit``: the DEM's vertical unit symbol,
+    of the stage errors); Manning's n is in s/m^(1/3) whatever the DEM's units."""
+    from .outputs import N_UNIT
+
+    bias = {f"bias_{kind}_{stat}": z_unit for kind in ("unadjusted", "adjusted")
+            for stat in ("median", "p90_abs", "max_abs")}
+    return {"class": "", "n_source": N_UNIT, "n_target": N_UNIT, "ratio": "1",
+            "ratio_p10": "1", "ratio_p50": "1", "ratio_p90": "1", "faces": "count",
+            "weight_share": "1", "flags": "", "surface": "", **bias}
+
+
+def class_table_descriptions(domain: str) -> dict[str, str]:
+    """What each column of ``n_by_class.csv`` holds when the class fit ran on ``domain``
+    ("faces" or "cells")."""
+    item = domain[:-1]
+    out = {
+        "class": "roughness class",
+        "n_source": "Manning's n of the source model (the n table)",
+        "n_target": "fitted Manning's n for the target model (n_source where not_fitted)",
+        "ratio": "n_target / n_source",
+        "ratio_p10": f"10th percentile of the per-{item} n ratios with n carried over "
+                     "(weighted; empty where not_fitted)",
+        "ratio_p50": f"weighted median of the per-{item} n ratios with n carried over",
+        "ratio_p90": f"90th percentile of the per-{item} n ratios with n carried over",
+        "faces": f"number of {domain} holding the class, wet in the window or not",
+        "weight_share": "the class's share of the fit's weight: each wet "
+                        f"{item}-stage's weight (its share of the source conveyance at "
+                        "that stage) split among the classes wet in it by their part of its "
+                        "conveyance; 0 where not_fitted",
+        "flags": "warnings about the fit, separated by ';'",
+        "surface": "surface kind of the class in the n table, if given",
+    }
+    for kind, what in (("unadjusted", "with n carried over unchanged"),
+                       ("adjusted", "with the fitted n")):
+        stage_error = (f"stage error (target minus source stage, vertical unit) {what}, over "
+                       f"the {item}-stages of the {domain} whose largest class is this one")
+        out[f"bias_{kind}_median"] = f"median {stage_error}"
+        out[f"bias_{kind}_p90_abs"] = f"90th percentile of the absolute {stage_error}"
+        out[f"bias_{kind}_max_abs"] = f"largest absolute {stage_error}"
+    return out
 
 
 #: conveyance columns of cell_adjustment.parquet (L^4/s: k V R^(2/3) / n)

@@ -933,7 +933,7 @@ _DESCRIPTIONS: dict[str, str] = {
     "ratio_p50": "median of per-face n ratios",
     "ratio_p90": "90th percentile of per-face n ratios",
     "faces": "number of faces (cells, when the fit is on cells) holding the class",
-    "weight_share": "share of the total conveyance weight",
+    "weight_share": "the class's share of the fit's weight (0 where not fitted)",
     "flags": "warnings about the fit, separated by ';'",
     "n_ratio": "n ratio target/source at equal conveyance; NaN where one family is dry",
     "conveyance_source": "conveyance of the source family at n = 1",

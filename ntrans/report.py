@@ -408,7 +408,8 @@ def render_report(context: Mapping[str, Any], images: Mapping[str, Any]) -> str:
         "<p>n source is the calibrated value; n target the value that reproduces the source "
         "conveyance in the target family over the window; ratio = n target / n source, with its "
         f"10, 50 and 90 % across {words['items']} and stages. Weight share is the class's "
-        "share of the conveyance weights of the fit. Stage errors are medians over the "
+        "share of the fit's weights (its part of the conveyance where it is under water; 0 "
+        "for a class not fitted). Stage errors are medians over the "
         f"class's {words['items']} and stages.</p>",
         _class_table(context.get("classes") or [], vertical, words),
         _flag_legend(context.get("classes") or []),

@@ -915,7 +915,7 @@ class FitTerms:
     present: np.ndarray             # (n_classes,) class wet in an entry: its n can move
     items: np.ndarray               # (n_classes,) items holding the class
     mismatch: np.ndarray            # (n_classes,) item-stages wet in one family only
-    class_weight: np.ndarray        # (n_classes, n_stages) sum K_source x class share
+    class_weight: np.ndarray        # (n_classes, n_stages) sum K_source x class part of K
     spread_class: np.ndarray        # (s,) class of each wet (pair, stage)
     spread_stage: np.ndarray        # (s,)
     spread_ratio: np.ndarray        # (s,) carried-over ratio of the pair's item
@@ -942,6 +942,22 @@ def _per_class_stage(cls: np.ndarray, stage: np.ndarray, weights: np.ndarray, n_
     """Sum ``weights`` into a (n_classes, n_stages) table."""
     return np.bincount(cls * n_stages + stage, weights=weights,
                        minlength=n_classes * n_stages).reshape(n_classes, n_stages)
+
+
+def _fit_class_weight(mat: sparse.csr_matrix, lumped: _LumpedSums | None, source: np.ndarray,
+                      cols: np.ndarray, n_source: np.ndarray, n_stages: int) -> np.ndarray:
+    """Each entry's fit weight (K_source) split among the classes wet in it by their part
+    of the entry's conveyance sum at n carried over, which is minus d ln K / d ln n_c (see
+    :func:`solve_class_n`'s Jacobian), summed into a (n_classes, n_stages) table.  A class
+    dry at every entry gets none of the weight, as it gets none of the fit."""
+    per_class = (n_source ** lumped.expo if lumped is not None else 1.0 / n_source)
+    part = mat.data * per_class[mat.indices]
+    entry = np.repeat(np.arange(mat.shape[0]), np.diff(mat.indptr))
+    total = np.bincount(entry, weights=part, minlength=mat.shape[0])
+    alive = total > 0 if lumped is None else (total > 0) & lumped.wet
+    factor = np.where(alive, source / np.where(alive, total, 1.0), 0.0)
+    return _per_class_stage(mat.indices, cols[entry], part * factor[entry], n_source.size,
+                            n_stages)
 
 
 def fit_terms(
@@ -988,7 +1004,6 @@ def fit_terms(
     spread_ratio = ratio[st.item[pair_row], pair_col]
     spread_weight = weight_p[pair_row, pair_col]
     del weight_p, ratio, pair_row
-    class_weight = _per_class_stage(spread_class, pair_col, spread_weight, n_cls, n_st)
     spread_stage = pair_col.astype(np.int32)
     del pair_col
 
@@ -997,6 +1012,7 @@ def fit_terms(
     mat, lumped = _entry_sums(st, rows, cols, closure=closure, composite=composite, k=k)
     del rows
     mat.eliminate_zeros()  # classes dry at the entry's stage do not enter K
+    class_weight = _fit_class_weight(mat, lumped, source, cols, n_source, n_st)
     one = np.diff(mat.indptr) == 1
     if lumped is not None:
         one &= lumped.wet
@@ -1125,7 +1141,9 @@ def fit_class_n(
     Spread: the per-item ratio ``K_target(n_source) / K_source`` at each stage is given to
     every class of the item with weight w x (class share of the item's extent); p10 /
     p50 / p90 are weighted quantiles (:func:`weighted_quantile`).  ``items`` counts items
-    holding the class, ``weight_share`` the class's share of the total weight.  Flags:
+    holding the class, ``weight_share`` the class's share of the fit's total weight (each
+    entry's weight split among the classes wet in it by their part of its conveyance at n
+    carried over; 0 for a class wet nowhere, flagged ``not_fitted``).  Flags:
     ``few_faces`` (< 10 items), ``wide_spread`` (p90 / p10 > 1.5),
     ``outside_published_range`` (from ``outside_range`` evaluated by the caller on the
     fitted n), ``dry_wet_mismatch:N`` (N item-stages wet in one family only),

@@ -606,6 +606,19 @@ def test_same_terrain_in_other_units_converts_by_the_unit_factors(tmp_path, hori
                 # 1e-7 covers the stage solver's tolerance (1e-9 x depth)
                 np.testing.assert_allclose(got[col] * to_si, ref[col] * metres_per(
                     ref_units[col], 1.0), rtol=1e-9, atol=1e-7, err_msg=col)
+    # n_by_class.csv's columns carry their units in the summary too: every column labelled,
+    # n in s/m^(1/3) whatever the DEM's units (k carries them), the stage errors in Z, and
+    # each number converts by its label (same tolerances as above)
+    ref_units, units = runs["m"].summary["class_units"], runs["u"].summary["class_units"]
+    assert list(units) == list(CLASS_COLUMNS)
+    assert list(runs["u"].summary["class_descriptions"]) == list(CLASS_COLUMNS)
+    assert units["n_target"] == ref_units["n_target"] == "s/m^(1/3)"
+    assert units["bias_adjusted_median"] == runs["u"].summary["units"]["stage"]
+    ref, got = runs["m"].classes, runs["u"].classes
+    for col in (c for c in CLASS_COLUMNS if got[c].dtype.kind == "f"):
+        np.testing.assert_allclose(got[col] * metres_per(units[col], fz),
+                                   ref[col] * metres_per(ref_units[col], 1.0), rtol=1e-9,
+                                   atol=1e-7, err_msg=col)
 
 
 @pytest.mark.parametrize("closure", ["lumped", "cell"])

@@ -502,6 +502,28 @@ def test_a_class_wet_nowhere_has_no_spread_of_its_own():
     # the channel's ratios are all 1 (the source is the target at the same n)
     np.testing.assert_allclose([fit.ratio_p10[0], fit.ratio_p90[0]], 1.0, rtol=1e-9)
     assert fit.n_target[1] == n[1]
+    # the flag and the weight agree: the fit gives the dry class none of its weight
+    assert fit.weight_share.tolist() == [1.0, 0.0]
+
+
+@pytest.mark.parametrize("method, part", [
+    # Horton-Einstein: n_e^1.5 = sum P_c n_c^1.5 / P, so d ln K / d ln n_c = -P_c n_c^1.5 / sum
+    ("horton_einstein", 2 * 0.02**1.5 / (2 * 0.02**1.5 + 3 * 0.04**1.5)),
+    # Pavlovskii: n_e^2 = sum P_c n_c^2 / P
+    ("pavlovskii", 2 * 0.02**2 / (2 * 0.02**2 + 3 * 0.04**2)),
+    # Lotter: K = sum P_c R_c^(5/3) / n_c, each part of K its own (R = 1 and 0.5)
+    ("lotter", (2 / 0.02) / (2 / 0.02 + 3 * 0.5 ** (5 / 3) / 0.04)),
+])
+def test_weight_share_is_the_class_part_of_the_fit(method, part):
+    # definition: the weight of an entry is split among its wet classes by minus
+    # d ln K / d ln n_c at n carried over (derivative of the composite formulas, Chow 1959
+    # 6-7), so the shares are the classes' parts of the entry's composite sum
+    area = TWO_P * TWO_R
+    stats = ClassStats(np.array([0, 0]), np.array([0, 1]), 1, 2, TWO_P, TWO_P[:, None],
+                       TWO_P[:, None], area[:, None], np.zeros((2, 1)))
+    ks = conveyance(stats, TWO_N, closure="lumped", composite=method)
+    fit = fit_class_n(ks, stats, TWO_N, composite=method)
+    np.testing.assert_allclose(fit.weight_share, [part, 1 - part], rtol=1e-12)  # rounding
 
 
 @pytest.mark.parametrize("bad", [35.0, 10.0, 0.0004, 0.0049, 1.5])
