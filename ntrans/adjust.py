@@ -46,7 +46,6 @@ from .errors import (
     DryWetMismatchWarning,
     InputError,
     MemoryEstimateWarning,
-    RoughnessError,
     check_choice,
     warn,
 )
@@ -57,9 +56,11 @@ from .roughness import (
     AREA_TOLERANCE,
     OVERLAP_RULES,
     RoughnessModel,
+    check_class_raster_holes,
     check_roughness_inputs,
     class_at_points,
     class_index_on_window,
+    class_raster_holes_error,
     load_roughness,
     outside_range,
 )
@@ -171,10 +172,12 @@ def _families(source: str, target: str, closure: str, source_closure: str | None
         check_choice("source closure", source_closure, SUBGRID_CLOSURES)
     if source == "flat" and target == "flat":
         raise InputError("source and target are both flat; one side must be subgrid "
-                         "(use --from subgrid or --to subgrid)")
+                         "(--from subgrid or --to subgrid; source or target in a project "
+                         "file)")
     if source_closure is not None and not (source == "subgrid" and target == "subgrid"):
         raise InputError("a source closure applies only when both sides are subgrid; drop it "
-                         "or use --from subgrid --to subgrid")
+                         "or use subgrid on both sides (--from subgrid --to subgrid; source "
+                         "and target in a project file)")
     if source == "subgrid" and target == "subgrid":
         sc = source_closure or "lumped"
         tc = closure
@@ -714,7 +717,9 @@ def adjust_roughness(
     ------
     RoughnessError
         A class or the default class missing from the n table, or an n outside 0.005-1
-        (checked before the mesh is read).
+        (checked before the mesh is read); a class raster with nodata under the mesh and
+        no default class (before the tile passes where the holes are clear, else after
+        the first).
     InputError
         Among others: a water surface off the mesh (before the tile passes), or a window
         that wets no face (cell) of the fit domain (after the first pass, before anything
@@ -802,6 +807,9 @@ def adjust_roughness(
                                n_field=n_field, class_raster=class_raster,
                                default_class=default_class, overlap_rule=overlap_rule,  # type: ignore[arg-type]
                                crs=dem_info.crs, mesh_area=mesh_area)
+        # holes of a class raster under the mesh, in seconds where they are clear (the
+        # exact count follows the statistics pass)
+        check_class_raster_holes(class_raster, geoms, dem_info, default_class=default_class)
         surfaces = read_water_surfaces(water_surface, dem=dem_info) if water_surface else []
         if surfaces:
             check_water_surfaces_reach(surfaces, dem_info, tuple(shapely.total_bounds(geoms)))
@@ -861,10 +869,7 @@ def adjust_roughness(
                              z_metres=float(dem_info.z_metres_per_unit))
         share = uncovered / covered if covered > 0 else 0.0
         if model.source == "raster" and model.default < 0 and share > AREA_TOLERANCE:
-            raise RoughnessError(
-                f"{100 * share:.3g}% of the mesh ground has no class in the class raster; give a "
-                "default class (--default-class) or fill the raster"
-            )
+            raise class_raster_holes_error(share)
         release_free_memory()  # the tiles' temporaries, before the fit
         if not parts:  # no tile: nothing to fit
             none = np.empty(0, dtype=np.int64)

@@ -1010,6 +1010,21 @@ def _in_crs(frame: Any, text: str, source: _VectorInput,
     return moved, True
 
 
+def read_cell_outlines(path: str | os.PathLike[str], *, dem: DemInfo,
+                       layer: str | int | None = None) -> np.ndarray:
+    """The cells' geometries in the DEM's CRS, unchecked (null and empty ones left out):
+    for quick checks before a job's long work, which reads them again with
+    :func:`read_cells`.  Raises as :func:`read_cells` does for a missing or unreadable
+    file, an unknown layer or a layer without CRS."""
+    import shapely
+
+    text = _check_exists(path, _CELLS.what)
+    frame = _read_layer(text, _choose_layer(text, layer, _CELLS), _CELLS)
+    frame, _ = _in_crs(frame, text, _CELLS, dem.crs)
+    geoms = np.asarray(frame.geometry.array, dtype=object)
+    return geoms[~(shapely.is_missing(geoms) | shapely.is_empty(geoms))]
+
+
 def read_class_polygons(
     path: str | os.PathLike[str],
     *,

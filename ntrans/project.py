@@ -32,6 +32,7 @@ and, when ``zip = true``, ``<out>.zip`` beside the folder.
 from __future__ import annotations
 
 import contextlib
+import functools
 import inspect
 import logging
 import os
@@ -378,7 +379,7 @@ n_table = "n_table.csv"         # ... and a CSV with columns class, n (optional 
 # classes_layer = "landcover"   # layer of the classes file to read (when it holds several)
 # n_field = "n"                 # or: polygons that carry their own n
 # class_raster = "classes.tif"  # or: an integer class raster (with n_table)
-# default_class = "pasture"     # class for ground no polygon covers
+# default_class = "pasture"     # class for ground no polygon (or raster code) covers
 # water_surface = "wse.tif"     # calibrated water surface(s) of the source model (or a list)
 #                                 (elevations, not depths, in the DEM's vertical unit)
 # vertical_units = "metre"      # metre | foot | us_survey_foot (default: as horizontal)
@@ -548,7 +549,8 @@ def run_project(
         replaced), or would replace an input.
     RoughnessError
         A class (or the default class) is missing from the n table, or an n is not a
-        Manning's n; checked before the stage tables.
+        Manning's n, or a class raster clearly leaves mesh ground without a class and
+        no default class is given; checked before the stage tables.
 
     The adjusted n values are a starting point for calibration in the target model, not a
     substitute for it; a qualified engineer must review them; local codes, agency guidance
@@ -558,8 +560,9 @@ def run_project(
 
     from . import bundle
     from .adjust import adjust_roughness
+    from .inputs import open_dem, read_cell_outlines
     from .outputs import OutputFolder
-    from .roughness import check_roughness_inputs
+    from .roughness import check_class_raster_holes, check_roughness_inputs
     from .tables import build_tables
 
     project = load_project(path)
@@ -570,12 +573,21 @@ def run_project(
     for key in ("out", "zip", "overwrite", "dem", "cells"):
         options.pop(key, None)
     dem, cells = str(project.inputs["dem"]), str(project.inputs["cells"])
+
+    @functools.cache
+    def dem_info() -> Any:
+        return open_dem(dem, vertical_units=options.get("vertical_units"), check_scale=False)
     timings: dict[str, float] = {}
     logger.info("project %s -> %s", project.path, target)
     if project.outputs.get("zip", False):  # before the run, as the folder is checked
         bundle.check_zip_target(target, overwrite=overwrite)
     # the classes against the n table, before the stage tables take their minutes
     check_roughness_inputs(**_call_kwargs(check_roughness_inputs, options))
+    # and a class raster's holes under the mesh (the DEM and mesh read only if it has any)
+    check_class_raster_holes(
+        options.get("class_raster"),
+        lambda: read_cell_outlines(cells, dem=dem_info(), layer=options.get("cells_layer")),
+        dem_info, default_class=options.get("default_class"))
 
     with fixed_gdal_dates(), OutputFolder(
         target, overwrite=overwrite, inputs=[*_input_paths(project), project.path]

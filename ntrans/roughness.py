@@ -80,6 +80,11 @@ STRICKLER_LOW = 5.0
 #: Overlaps and uncovered ground smaller than this share of the area are ignored.
 AREA_TOLERANCE = 1e-6
 
+#: how messages name a setting: its command-line option and its project-file key
+DEFAULT_CLASS_OPTION = "--default-class; default_class in a project file"
+OVERLAP_RULE_OPTION = "--overlap-rule; overlap_rule in a project file"
+N_OPTION = "--n; n in a project file"
+
 
 @dataclass(frozen=True)
 class RoughnessModel:
@@ -461,7 +466,7 @@ def _check_surfaces(surfaces: list[str | None]) -> None:
 
 def uniform_model(n: float | str) -> RoughnessModel:
     """One class ``"all"`` with one n for the whole mesh."""
-    values = _check_n_values(["n"], [n], "the --n option")
+    values = _check_n_values(["n"], [n], f"the uniform n ({N_OPTION})")
     model = RoughnessModel(classes=("all",), n=values, surface=(None,), default=0,
                            source="uniform")
     check_ranges(model)
@@ -667,7 +672,8 @@ def polygon_model(
             raise RoughnessError(
                 f"class polygons overlap ({pairs} overlapping pairs, {overlap:.6g} square units "
                 "in all); "
-                "remove the overlaps or choose an overlap rule (first, last or max_n)"
+                "remove the overlaps or choose an overlap rule: first, last or max_n "
+                f"({OVERLAP_RULE_OPTION})"
             )
         log.info("%d overlapping class polygon pairs resolved by rule %r", pairs, overlap_rule)
     if overlap_rule == "first":
@@ -683,7 +689,7 @@ def polygon_model(
         if share > AREA_TOLERANCE and default_index < 0:
             raise RoughnessError(
                 f"{100 * share:.3g}% of the mesh area is covered by no class polygon; "
-                "give a default class (--default-class) or extend the polygons"
+                f"give a default class ({DEFAULT_CLASS_OPTION}) or extend the polygons"
             )
 
     model = RoughnessModel(
@@ -972,7 +978,7 @@ def check_roughness_inputs(
     _check_forms(n=n, classes=classes, class_field=class_field, n_table=n_table,
                  n_field=n_field, class_raster=class_raster)
     if n is not None:
-        _check_n_values(["n"], [n], "the --n option")
+        _check_n_values(["n"], [n], f"the uniform n ({N_OPTION})")
         return
     if classes is not None:
         column = class_field if class_field is not None else n_field
@@ -1056,3 +1062,120 @@ def load_roughness(
             mesh_bounds = transform_bounds(crs, rcrs, *mesh_bounds)
     return raster_file_model(path, read_n_table(n_table), default_class=default_class,
                              mesh_bounds=mesh_bounds)
+
+
+#: the early check of a class raster's holes refuses a job only above this many times
+#: :data:`AREA_TOLERANCE` (its estimate counts whole pixels by their centres): nearer the
+#: tolerance the job's own exact count decides, after its statistics pass
+HOLE_ESTIMATE_MARGIN = 10.0
+#: hole pixels the early check places on the mesh at most (a fixed random sample beyond)
+HOLE_SAMPLE = 2_000_000
+
+
+@dataclass(frozen=True)
+class RasterHoles:
+    """Nodata pixels of a class raster (:func:`class_raster_holes`): ``rows``, ``cols``
+    of all of them or of a fixed random sample of ``count``."""
+
+    count: int
+    rows: np.ndarray
+    cols: np.ndarray
+    transform: Any
+    crs: Any
+
+
+def class_raster_holes(class_raster: str | Path) -> RasterHoles | None:
+    """The nodata pixels of a class raster, read strip by strip; None when it has none.
+    Beyond :data:`HOLE_SAMPLE` of them a fixed random sample is kept."""
+    import rasterio
+
+    from .inputs import _read_band1
+
+    path = str(class_raster)
+    with rasterio.open(path) as src:
+        transform, crs, width, height = src.transform, src.crs, src.width, src.height
+    rows_per_strip = max(1, (1 << 22) // max(width, 1))  # strips of about 4 million pixels
+    hole_rows, hole_cols = [], []
+    for row in range(0, height, rows_per_strip):
+        values = _read_band1(path, row, 0, min(rows_per_strip, height - row), width,
+                             (height, width))
+        r, c = np.nonzero(np.isnan(values))
+        hole_rows.append(r + row)
+        hole_cols.append(c)
+    rows, cols = np.concatenate(hole_rows), np.concatenate(hole_cols)
+    if rows.size == 0:
+        return None
+    count = int(rows.size)
+    if count > HOLE_SAMPLE:
+        pick = np.random.default_rng(0).choice(count, HOLE_SAMPLE, replace=False)
+        rows, cols = rows[pick], cols[pick]
+    return RasterHoles(count, rows, cols, transform, crs)
+
+
+def class_raster_hole_share(holes: RasterHoles, geoms: np.ndarray, dem: Any) -> float:
+    """Estimated share of the mesh ground (valid DEM pixels under the cells) that has no
+    class in the class raster, from its nodata pixels (:func:`class_raster_holes`).
+
+    Each nodata pixel whose centre lies in a cell (``geoms``, polygons in the DEM's CRS)
+    over a valid DEM pixel counts its whole area, over the cells' total area.  The pixels
+    of a raster in another CRS than the DEM's are not compared by area: 0.0 (the job's
+    exact count still applies).  Ground outside the raster is not counted here.
+    """
+    import pyproj
+    import shapely
+
+    if (holes.crs is None or geoms.size == 0
+            or pyproj.CRS.from_user_input(holes.crs) != dem.horizontal_crs):
+        return 0.0
+    x, y = holes.transform @ (holes.cols + 0.5, holes.rows + 0.5)
+    # a valid DEM pixel under the hole's centre? read strip by strip where holes are
+    col_f, row_f = ~dem.transform @ (x, y)
+    dem_col, dem_row = np.floor(col_f).astype(np.int64), np.floor(row_f).astype(np.int64)
+    inside = (dem_row >= 0) & (dem_row < dem.height) & (dem_col >= 0) & (dem_col < dem.width)
+    dem_strip = max(1, (1 << 22) // max(dem.width, 1))
+    strip_of = np.where(inside, dem_row // dem_strip, -1)
+    valid = np.zeros(x.size, dtype=bool)
+    for strip in np.unique(strip_of[inside]):
+        at = np.flatnonzero(strip_of == strip)
+        r0 = int(strip) * dem_strip
+        block = dem.read_window(r0, 0, min(dem_strip, dem.height - r0), dem.width)
+        valid[at] = np.isfinite(block[dem_row[at] - r0, dem_col[at]])
+    points = shapely.points(x[valid], y[valid])
+    if points.size == 0:
+        return 0.0
+    in_mesh = np.unique(shapely.STRtree(geoms).query(points, predicate="within")[0]).size
+    t = holes.transform
+    hole_area = in_mesh * (holes.count / holes.rows.size) * abs(t.a * t.e - t.b * t.d)
+    mesh_area = float(shapely.area(geoms).sum())
+    return hole_area / mesh_area if mesh_area > 0 else 0.0
+
+
+def class_raster_holes_error(share: float, *, about: bool = False) -> RoughnessError:
+    """The error for ``share`` of the mesh ground without a class in the class raster and
+    no default class (``about``: the share is an estimate)."""
+    return RoughnessError(
+        f"{'about ' if about else ''}{100 * share:.3g}% of the mesh ground has no class in "
+        f"the class raster; give a default class ({DEFAULT_CLASS_OPTION}) or fill the raster")
+
+
+def check_class_raster_holes(class_raster: str | Path | None, geoms: Any, dem: Any, *,
+                             default_class: str | None = None) -> None:
+    """Refuse a class raster with nodata holes under the mesh and no default class before
+    a job's long work, where :func:`class_raster_hole_share` leaves no doubt (above
+    :data:`HOLE_ESTIMATE_MARGIN` x :data:`AREA_TOLERANCE`); the job's exact count still
+    decides nearer the tolerance.
+
+    ``geoms`` and ``dem`` (cell polygons in the DEM's CRS, :class:`ntrans.inputs.DemInfo`)
+    may be callables that return them: they are then only called when the raster has
+    nodata pixels, so a raster without holes costs one read of itself.
+    """
+    if class_raster is None or default_class is not None:
+        return
+    holes = class_raster_holes(class_raster)
+    if holes is None:
+        return
+    dem = dem() if callable(dem) else dem
+    geoms = geoms() if callable(geoms) else geoms
+    share = class_raster_hole_share(holes, np.asarray(geoms, dtype=object), dem)
+    if share > HOLE_ESTIMATE_MARGIN * AREA_TOLERANCE:
+        raise class_raster_holes_error(share, about=True)

@@ -206,16 +206,25 @@ def test_bad_options(flat_case, tmp_path, kw):
     assert _nothing_written(tmp_path / "out")
 
 
-def test_class_raster_gap_needs_default(flat_case, tmp_path):
+def _not_reached(*args, **kwargs):
+    raise AssertionError("the tiles' passes started")
+
+
+def test_class_raster_gap_needs_default(flat_case, tmp_path, monkeypatch):
+    import ntrans.adjust as adjust_module
+
     dem, cells = flat_case
     codes = np.ones((20, 20))
     codes[:, 15:] = 0  # a quarter of the mesh without a class (nodata)
     raster = write_dem(tmp_path / "codes.tif", codes, nodata=0, dtype="int16")
     table = tmp_path / "n.csv"
     table.write_text("class,n\n1,0.03\n")
-    with pytest.raises(RoughnessError):
-        adjust_roughness(dem, cells, out=tmp_path / "out", class_raster=raster, n_table=table,
-                         depths="1")
+    with monkeypatch.context() as patch:  # refused before the tiles' statistics pass
+        patch.setattr(adjust_module, "_run_tiles", _not_reached)
+        with pytest.raises(RoughnessError, match="about 25% of the mesh ground .* "
+                           r"\(--default-class; default_class in a project file\)"):
+            adjust_roughness(dem, cells, out=tmp_path / "out", class_raster=raster,
+                             n_table=table, depths="1")
     assert _nothing_written(tmp_path / "out")
     res = _quiet(dem=dem, cells=cells, out=tmp_path / "out", class_raster=raster, n_table=table,
                  depths="1", default_class="1")
@@ -697,3 +706,16 @@ def test_centroid_over_nodata_warns(tmp_path):
                           r"\(first: 1\)"):
             _quiet(dem=dem, cells=cells, out=tmp_path / "adj", n=0.03, depths="1",
                    elevation_rule="centroid")
+
+
+@pytest.mark.parametrize("kw, setting", [
+    ({"source": "flat", "target": "flat"}, "(--from subgrid or --to subgrid; source or target "
+                                           "in a project file)"),
+    ({"source_closure": "strip"}, "(--from subgrid --to subgrid; source and target in a "
+                                  "project file)"),
+])
+def test_family_mistakes_name_the_option_and_the_project_key(flat_case, tmp_path, kw, setting):
+    dem, cells = flat_case
+    with pytest.raises(InputError) as err:
+        adjust_roughness(dem, cells, out=tmp_path / "out", n=0.03, depths="1", **kw)
+    assert setting in str(err.value)

@@ -21,6 +21,7 @@ from ntrans.errors import (
     OutputError,
     OutputExistsError,
     ProjectFileError,
+    RoughnessError,
 )
 
 BASE = """
@@ -587,3 +588,38 @@ def test_template_names_the_snap_tolerance_the_mesh_gap_warning_points_to(tmp_pa
     values = _template_values(text)
     assert ("run", "snap_tolerance") in values and "1 % of a pixel" in text
     assert line.split("=")[1].split("#")[0].strip() == "0.05"
+
+
+@pytest.mark.parametrize("default", [None, '"1"'])
+def test_run_refuses_class_raster_holes_under_the_mesh_before_the_stage_tables(
+        tmp_path, monkeypatch, default):
+    # a class raster without codes over a third of the mesh and no default class: refused
+    # in seconds, before the stage tables; with a default class the run goes on
+    project = write_small_project(tmp_path)
+    codes = np.ones((30, 40))
+    codes[:, 27:] = 0  # nodata
+    write_dem(tmp_path / "codes.tif", codes, nodata=0, dtype="int16")
+    (tmp_path / "n_codes.csv").write_text("class,n\n1,0.03\n", encoding="utf-8")
+    text = project.read_text(encoding="utf-8")
+    text = text.replace('classes = "landcover.gpkg"\nclass_field = "landcover"\n'
+                        'n_table = "n_table.csv"',
+                        'class_raster = "codes.tif"\nn_table = "n_codes.csv"'
+                        + (f"\ndefault_class = {default}" if default else ""))
+    project.write_text(text, encoding="utf-8")
+
+    class Reached(Exception):
+        pass
+
+    def reached(*args, **kwargs):
+        raise Reached
+
+    import ntrans.tables
+
+    monkeypatch.setattr(ntrans.tables, "build_tables", reached)
+    if default is None:
+        with pytest.raises(RoughnessError, match=r"about 32.5% of the mesh ground has no class"
+                           r".*\(--default-class; default_class in a project file\)"):
+            proj.run_project(project)
+    else:
+        with pytest.raises(Reached):
+            proj.run_project(project)

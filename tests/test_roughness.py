@@ -143,7 +143,9 @@ def test_overlap_rules():
     polys = np.array([shapely.box(0, 0, 6, 10), shapely.box(4, 0, 10, 10)], dtype=object)
     labels = np.array(["a", "b"], dtype=object)
     tab = table([("a", "0.03"), ("b", "0.06")])
-    with pytest.raises(RoughnessError):
+    # the message names the setting both ways: option and project-file key
+    with pytest.raises(RoughnessError, match=r"first, last or max_n \(--overlap-rule; "
+                       r"overlap_rule in a project file\)"):
         polygon_model(polys, labels, table=tab, mesh_area=MESH)
     col = 4  # pixel column 4 (x 4..5) lies in both polygons
     first = class_index_on_window(polygon_model(polys, labels, table=tab, overlap_rule="first",
@@ -162,6 +164,7 @@ def test_uncovered_ground_needs_default():
     with pytest.raises(RoughnessError) as err:
         polygon_model(polys, labels, table=table([("a", "0.03")]), mesh_area=MESH)
     assert "50%" in str(err.value)
+    assert "(--default-class; default_class in a project file)" in str(err.value)
     m = polygon_model(polys, labels, table=table([("a", "0.03"), ("b", "0.05")]),
                       default_class="b", mesh_area=MESH)
     idx = class_index_on_window(m, TRANSFORM, (10, 10))
@@ -551,3 +554,41 @@ def test_class_raster_without_crs_is_refused_like_class_polygons(tmp_path):
         load_roughness(class_raster=path, n_table=tmp_path / "n.csv", crs="EPSG:32633")
     with pytest.raises(CRSError, match="class raster .* has no CRS"):  # before long work
         check_roughness_inputs(class_raster=path, n_table=tmp_path / "n.csv")
+
+
+@pytest.mark.parametrize("where, share", [
+    ("under_mesh", 0.25),      # a quarter of the mesh ground: refused
+    ("outside_mesh", None),    # holes beside the mesh are nobody's ground
+    ("dem_nodata", None),      # nor holes where the terrain itself has no data
+    ("none", None),
+])
+def test_class_raster_holes_are_refused_early_only_under_the_mesh_ground(tmp_path, where, share):
+    from conftest import write_dem
+
+    from ntrans.inputs import open_dem
+    from ntrans.roughness import check_class_raster_holes
+
+    z = np.full((10, 20), 5.0)       # 20 x 10 m of terrain, mesh on its left half
+    codes = np.ones((10, 20))
+    if where == "under_mesh":
+        codes[5:, 5:10] = 0          # 25 of the mesh's 100 m2 (geometry: pixel count)
+    elif where == "outside_mesh":
+        codes[:, 12:] = 0
+    elif where == "dem_nodata":
+        codes[:, 7:10] = 0
+        z[:, 7:10] = np.nan
+    write_dem(tmp_path / "codes.tif", codes, nodata=0, dtype="int16")
+    dem = open_dem(write_dem(tmp_path / "dem.tif", z))
+    mesh = np.array([shapely.box(0, 0, 5, 10), shapely.box(5, 0, 10, 10)])
+
+    def not_needed():
+        raise AssertionError("the mesh was read for a raster without holes")
+
+    geoms = not_needed if where == "none" else mesh
+    if share is None:
+        check_class_raster_holes(tmp_path / "codes.tif", geoms, dem)
+    else:
+        # the estimate counts whole pixels by their centres: exact on this grid
+        with pytest.raises(RoughnessError, match=rf"about {100 * share:g}% of the mesh ground"):
+            check_class_raster_holes(tmp_path / "codes.tif", geoms, dem)
+        check_class_raster_holes(tmp_path / "codes.tif", geoms, dem, default_class="1")

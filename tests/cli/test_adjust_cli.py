@@ -156,10 +156,13 @@ def test_bad_roughness_exit_2(runner, inputs, tmp_path, builders, rows, polys, k
     assert _nothing_written(out)
 
 
+UNIFORM_N = "the uniform n (--n; n in a project file)"  # names the option and the key
+
+
 @pytest.mark.parametrize(("value", "start"), [
-    ("0", "the --n option"), ("-0.02", "the --n option"), ("abc", "the --n option"),
+    ("0", UNIFORM_N), ("-0.02", UNIFORM_N), ("abc", UNIFORM_N),
     # outside the fit's bounds (0.005-1): said with the value given
-    ("35", "the --n option gives n 35"), ("0.0004", "the --n option gives n 0.0004"),
+    ("35", f"{UNIFORM_N} gives n 35"), ("0.0004", f"{UNIFORM_N} gives n 0.0004"),
 ])
 def test_bad_uniform_n_exit_2(runner, inputs, tmp_path, value, start):
     dem, cells = inputs
