@@ -110,7 +110,10 @@ def describe_input(path: str | os.PathLike[str], *, role: str) -> dict[str, Any]
     """
     p = Path(path)
     if not p.is_file():
-        raise InputFileError(f"input {role} {str(p)!r} does not exist; check the project file")
+        from .inputs import missing_path_hint
+
+        raise InputFileError(f"input {role} {str(p)!r} does not exist{missing_path_hint(p)}; "
+                             "check the project file")
     entry: dict[str, Any] = {
         "role": role,
         "path": str(p.resolve()),

@@ -116,10 +116,29 @@ def _is_local_path(path: str) -> bool:
     return not (path.startswith("/vsi") or "://" in path)
 
 
+def missing_path_hint(path: str | os.PathLike[str]) -> str:
+    """A hint for a path that does not exist, or ``""``: written with Windows backslashes
+    where the same path with forward slashes exists (only Windows reads a backslash as a
+    separator), or holding a tab or line break (a backslash escape of a double-quoted TOML
+    string, such as ``\\n`` in ``"data\\new.tif"``)."""
+    text = os.fspath(path)
+    if "\\" in text:
+        forward = text.replace("\\", "/")
+        if Path(forward).exists():
+            return (f" ({forward!r} exists: write paths with forward slashes, which every "
+                    "system reads)")
+    if any(c in text for c in "\t\n\r\b\f"):
+        return (" (it holds a tab, line break or other control character: in a double-quoted TOML "
+                "string a backslash starts an escape such as \\n; write paths with forward "
+                "slashes)")
+    return ""
+
+
 def _check_exists(path: str | os.PathLike[str], what: str) -> str:
     text = os.fspath(path)
     if _is_local_path(text) and not Path(text).exists():
-        raise InputFileError(f"{what} file '{text}' does not exist; check the path")
+        raise InputFileError(f"{what} file '{text}' does not exist{missing_path_hint(text)}; "
+                             "check the path")
     return text
 
 

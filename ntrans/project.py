@@ -349,7 +349,9 @@ def load_project(path: str | os.PathLike[str]) -> Project:
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
-        raise ProjectFileError(f"project file {str(p)!r} is not valid TOML: {exc}") from exc
+        hint = ("; write paths with forward slashes (a backslash in a double-quoted string "
+                "starts an escape)" if "Unescaped '\\'" in str(exc) else "")
+        raise ProjectFileError(f"project file {str(p)!r} is not valid TOML: {exc}{hint}") from exc
     return parse_project(data, base=p.resolve().parent, path=p)
 
 
@@ -358,8 +360,8 @@ def load_project(path: str | os.PathLike[str]) -> Project:
 TEMPLATE = """\
 # ntrans project file (TOML).  Run it with:  ntrans run {name}
 # Keys are the keyword names of the Python API (build_tables, adjust_roughness).
-# Paths are relative to this file.  Lengths are in the DEM's horizontal CRS units,
-# elevations and depths in its vertical units.
+# Paths are relative to this file; write them with forward slashes, also on Windows.
+# Lengths are in the DEM's horizontal CRS units, elevations and depths in its vertical units.
 
 [inputs]
 dem = "dem.tif"                 # terrain raster (GeoTIFF), projected CRS

@@ -386,7 +386,10 @@ def read_n_table(path: str | Path) -> tuple[list[str], list[Any], list[str | Non
     if path.is_dir():
         raise InputFileError(f"n table {where} is a folder; give the path of a CSV file")
     if not path.is_file():
-        raise InputFileError(f"n table {where} does not exist; give the path of a CSV file")
+        from .inputs import missing_path_hint
+
+        raise InputFileError(f"n table {where} does not exist{missing_path_hint(path)}; give "
+                             "the path of a CSV file")
     text = _decode_n_table(path.read_bytes(), where)
     lines = [(number, line) for number, line in enumerate(text.splitlines(), start=1)
              if line.strip() and not line.lstrip().startswith("#")]
@@ -943,7 +946,10 @@ def _open_class_raster(class_raster: str | Path) -> tuple[Path, Any]:
 
     path = Path(class_raster)
     if not path.exists():
-        raise InputFileError(f"class raster {str(path)!r} does not exist; give an existing file")
+        from .inputs import missing_path_hint
+
+        raise InputFileError(f"class raster {str(path)!r} does not exist"
+                             f"{missing_path_hint(path)}; give an existing file")
     try:
         with rasterio.open(path) as src:
             return path, src.crs

@@ -623,3 +623,26 @@ def test_run_refuses_class_raster_holes_under_the_mesh_before_the_stage_tables(
     else:
         with pytest.raises(Reached):
             proj.run_project(project)
+
+
+@pytest.mark.parametrize("line, hint", [
+    ('dem = "data\\\\dem.tif"', "data/dem.tif' exists: write paths with forward slashes"),
+    ("dem = 'data\\dem.tif'", "data/dem.tif' exists: write paths with forward slashes"),
+    ('dem = "data\\new.tif"', "control character"),  # \n: a line break in the path
+    ('dem = "data\\dem.tif"', "write paths with forward slashes"),  # \d: not TOML at all
+    ('dem = "data/other.tif"', None),  # simply missing: no hint
+])
+def test_a_windows_path_in_a_project_file_gets_a_hint(tmp_path, line, hint):
+    project = write_small_project(tmp_path)
+    (tmp_path / "data").mkdir()
+    (tmp_path / "dem.tif").rename(tmp_path / "data" / "dem.tif")
+    text = project.read_text(encoding="utf-8").replace('dem = "dem.tif"', line)
+    project.write_text(text, encoding="utf-8")
+    with pytest.raises((InputFileError, ProjectFileError)) as err:
+        proj.run_project(project)
+    message = str(err.value)
+    assert "does not exist" in message or "not valid TOML" in message
+    if hint is None:
+        assert "slashes" not in message and "control character" not in message
+    else:
+        assert hint in message

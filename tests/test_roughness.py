@@ -592,3 +592,18 @@ def test_class_raster_holes_are_refused_early_only_under_the_mesh_ground(tmp_pat
         with pytest.raises(RoughnessError, match=rf"about {100 * share:g}% of the mesh ground"):
             check_class_raster_holes(tmp_path / "codes.tif", geoms, dem)
         check_class_raster_holes(tmp_path / "codes.tif", geoms, dem, default_class="1")
+
+
+@pytest.mark.parametrize("kind", ["n_table", "class_raster", "classes"])
+def test_missing_roughness_file_written_with_backslashes_gets_a_hint(tmp_path, kind):
+    (tmp_path / "data").mkdir()
+    (tmp_path / "data" / "x").write_text("")
+    given = f"{tmp_path}/data\\x"  # exists with a forward slash
+    hint = r"data/x' exists: write paths with forward slashes"
+    with pytest.raises(InputFileError, match=hint):
+        if kind == "n_table":
+            read_n_table(given)
+        elif kind == "class_raster":
+            check_roughness_inputs(class_raster=given, n_table=tmp_path / "data" / "x")
+        else:
+            check_roughness_inputs(classes=given, class_field="c", n_table=tmp_path / "x")
