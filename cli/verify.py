@@ -26,7 +26,12 @@ def command(bundle: str) -> None:
         click.echo("note: this manifest predates its own check; edits to it cannot be detected")
     click.echo(f"manifest.json sha256: {result.manifest_sha256} (record it with the handover "
                "to recognise this exact bundle later)")
+    note = result.beside_note()
     if result.ok:
         click.echo(f"ok: {result.summary()}")
+        if note:
+            click.echo(note)
         return
+    if note:
+        click.echo(note)
     result.raise_for_differences()

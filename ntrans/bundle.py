@@ -268,6 +268,11 @@ class VerifyResult:
     manifest_edited: bool | None = False
     #: SHA-256 of the manifest file itself (empty when not read)
     manifest_sha256: str = ""
+    #: what was checked: "folder" or "zip"
+    kind: str = "folder"
+    #: the other form of the same bundle found beside it (the zip of a folder, the folder
+    #: of a zip), which was not checked; None when there is none
+    beside: Path | None = None
 
     @property
     def ok(self) -> bool:
@@ -289,13 +294,22 @@ class VerifyResult:
 
     def summary(self) -> str:
         """One sentence describing the outcome."""
+        what = f"the bundle {self.kind} '{self.folder}'"
         if self.ok:
-            return f"all {self.checked} files of the bundle match its manifest"
+            return f"all {self.checked} files of {what} match its manifest"
         edited = "the manifest was edited after the run; " if self.manifest_edited else ""
         return (
-            f"the bundle does not match its manifest: {edited}{len(self.missing)} missing, "
+            f"{what} does not match its manifest: {edited}{len(self.missing)} missing, "
             f"{len(self.changed)} changed, {len(self.extra)} extra file(s) of {self.checked} listed"
         )
+
+    def beside_note(self) -> str | None:
+        """A line saying that the other form of the bundle beside it was not checked."""
+        if self.beside is None:
+            return None
+        other = "zip" if self.kind == "folder" else "folder"
+        return (f"note: the bundle {other} '{self.beside}' beside it was not checked and may "
+                f"differ; check it too with: ntrans verify {self.beside}")
 
     def raise_for_differences(self) -> None:
         """Raise :class:`BundleError` with :meth:`summary` when anything differs."""
@@ -321,10 +335,15 @@ def verify_bundle(path: str | os.PathLike[str]) -> VerifyResult:
                 archive.extractall(tmp)
             roots = [d for d in Path(tmp).iterdir()]
             root = roots[0] if len(roots) == 1 and roots[0].is_dir() else Path(tmp)
-            return dataclasses.replace(_verify_folder(root), folder=p)
+            folder = p.with_suffix("") if p.suffix.lower() == ".zip" else None
+            beside = folder if folder is not None and folder.is_dir() else None
+            return dataclasses.replace(_verify_folder(root), folder=p, kind="zip",
+                                       beside=beside)
     if not p.is_dir():
         raise BundleError(f"{str(p)!r} is neither a bundle folder nor a bundle zip; check the path")
-    return _verify_folder(p)
+    beside = zip_path(p)
+    return dataclasses.replace(_verify_folder(p),
+                               beside=beside if beside.is_file() else None)
 
 
 def _verify_folder(root: Path) -> VerifyResult:
@@ -364,9 +383,16 @@ def check_zip_target(folder: str | os.PathLike[str], *, overwrite: bool) -> None
     """Refuse, before a run starts, to replace the zip of ``folder`` (:func:`zip_path`)
     without ``overwrite``, or ever when it is not the zip of an ntrans bundle (no
     ``<name>/manifest.json`` inside)."""
+    from .outputs import OVERWRITE_SETTING, _replace_refusal
+
     dest = zip_path(folder)
     if not (dest.exists() or dest.is_symlink()):
         return
+    root = Path(folder)
+    folder_exists = root.exists() or root.is_symlink()
+    refusal = _replace_refusal(root) if folder_exists else None
+    if refusal is not None:  # the folder is never replaced: --overwrite would not help
+        raise (OutputError if overwrite else OutputExistsError)(refusal)
     try:
         with zipfile.ZipFile(dest) as archive:
             ours = f"{Path(folder).name}/{MANIFEST_NAME}" in archive.namelist()
@@ -379,9 +405,12 @@ def check_zip_target(folder: str | os.PathLike[str], *, overwrite: bool) -> None
             "replaced; choose another output folder or remove it yourself"
         )
     if not overwrite:
+        what = (f"bundle folder '{root}' and its zip '{dest}' exist" if folder_exists
+                else f"zip '{dest}' exists")
+        them = "both" if folder_exists else "it"
         raise OutputExistsError(
-            f"zip '{dest}' exists; pass --overwrite (overwrite=True from Python) to replace "
-            "it or choose another folder"
+            f"{what}; pass --overwrite ({OVERWRITE_SETTING}) to replace {them} or choose "
+            "another folder"
         )
 
 

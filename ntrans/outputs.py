@@ -114,6 +114,10 @@ def _is_disk_full(exc: BaseException | None) -> bool:
     return False
 
 
+#: where else than ``--overwrite`` the setting that replaces an earlier output is set
+OVERWRITE_SETTING = "overwrite = true in a project file, overwrite=True from Python"
+
+
 def _replace_refusal(final: Path) -> str | None:
     """Why the existing ``final`` is never replaced, even with ``overwrite`` (a file; the
     current, home or root folder; a folder of other files than an ntrans output), or
@@ -185,9 +189,8 @@ class OutputFolder:
             refusal = _replace_refusal(final)
             if not self.overwrite:  # suggest --overwrite only where it would help
                 raise OutputExistsError(refusal or (
-                    f"output folder '{final}' exists; pass --overwrite (overwrite=True from "
-                    "Python) to replace it or choose "
-                    "another folder"
+                    f"output folder '{final}' exists; pass --overwrite ({OVERWRITE_SETTING}) "
+                    "to replace it or choose another folder"
                 ))
             if refusal is not None:
                 raise OutputError(refusal)
@@ -250,8 +253,7 @@ class OutputFolder:
             if not self.overwrite:  # appeared while we were working
                 raise OutputExistsError(
                     f"output folder '{final}' appeared while writing; pass --overwrite "
-                    "(overwrite=True from Python) to replace "
-                    "it or choose another folder"
+                    f"({OVERWRITE_SETTING}) to replace it or choose another folder"
                 )
             old = final.parent / f".{final.name}.old-{secrets.token_hex(4)}"
             try:

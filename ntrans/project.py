@@ -428,7 +428,8 @@ def write_project_template(path: str | os.PathLike[str], *, overwrite: bool = Fa
     """
     p = Path(path)
     if p.exists() and not overwrite:
-        raise OutputExistsError(f"{str(p)!r} already exists; choose another name or pass overwrite")
+        raise OutputExistsError(f"{str(p)!r} already exists; choose another name or pass "
+                                "--overwrite (overwrite=True from Python) to replace it")
     if p.exists() and p.is_dir():
         raise OutputError(f"{str(p)!r} is a folder; give a file name such as project.toml")
     text = TEMPLATE.format(

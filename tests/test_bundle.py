@@ -162,6 +162,45 @@ def test_zip_target_replaced_only_when_it_is_a_bundle_zip_and_overwrite(tmp_path
     assert ours.read_bytes() == b"someone's archive"
 
 
+def test_zip_target_message_names_the_folder_too_when_both_exist(tmp_path):
+    folder = _make_bundle(tmp_path / "b")
+    zipped = bundle.write_zip(folder)
+    with pytest.raises(OutputExistsError) as err:
+        bundle.check_zip_target(folder, overwrite=False)
+    text = str(err.value)
+    assert f"bundle folder '{folder}' and its zip '{zipped}' exist" in text
+    assert "pass --overwrite (overwrite = true in a project file" in text
+    # a folder that is never replaced is said first: --overwrite would not help
+    other = tmp_path / "c"
+    other.mkdir()
+    (other / "notes.txt").write_text("mine")
+    zipped.rename(bundle.zip_path(other))
+    with pytest.raises(OutputExistsError, match="does not look like ntrans output"):
+        bundle.check_zip_target(other, overwrite=False)
+
+
+@pytest.mark.parametrize("given", ["folder", "zip"])
+def test_verify_names_what_it_checked_and_the_other_form_beside_it(tmp_path, given):
+    folder = _make_bundle(tmp_path / "b")
+    zipped = bundle.write_zip(folder)
+    checked, other = (folder, zipped) if given == "folder" else (zipped, folder)
+    result = bundle.verify_bundle(checked)
+    assert result.ok and result.kind == given and result.beside == other
+    assert f"the bundle {given} '{checked}'" in result.summary()
+    assert f"ntrans verify {other}" in result.beside_note()
+    other_kind = "zip" if given == "folder" else "folder"
+    assert f"the bundle {other_kind} '{other}' beside it was not checked" in result.beside_note()
+    # alone, nothing is noted
+    if given == "folder":
+        zipped.unlink()
+    else:
+        for path in sorted(folder.rglob("*"), reverse=True):
+            path.rmdir() if path.is_dir() else path.unlink()
+        folder.rmdir()
+    alone = bundle.verify_bundle(checked)
+    assert alone.beside is None and alone.beside_note() is None
+
+
 def test_interrupted_zip_leaves_no_part_file(tmp_path, monkeypatch):
     folder = _make_bundle(tmp_path / "b")
 

@@ -100,6 +100,16 @@ def test_output_folder_exists_without_overwrite(tmp_path: Path) -> None:
     assert _entries(target) == ["old.txt"]
 
 
+def test_earlier_output_names_the_option_and_the_project_key(tmp_path: Path) -> None:
+    target = tmp_path / "out"
+    target.mkdir()
+    (target / "manifest.json").write_text("{}")  # an earlier ntrans output
+    with pytest.raises(OutputExistsError, match=r"output folder '.*out' exists; pass "
+                       r"--overwrite \(overwrite = true in a project file, overwrite=True "
+                       r"from Python\)"), OutputFolder(target):
+        pytest.fail("the body must not run")  # pragma: no cover
+
+
 @pytest.mark.parametrize("marker", OUTPUT_MARKERS)
 def test_output_folder_overwrite_replaces(tmp_path: Path, marker: str) -> None:
     target = tmp_path / "out"

@@ -193,3 +193,13 @@ def test_demo_prints_report_and_bundle_then_the_cautions(runner, tmp_path, monke
     assert refused.exit_code == 2
     assert "does not look like ntrans output" in _one_error_line(refused)
     assert [p.name for p in other.iterdir()] == ["notes.txt"]
+
+
+def test_verify_notes_the_zip_beside_a_folder(runner, tmp_path):
+    folder = _bundle(tmp_path / "b")
+    zipped = bundle.write_zip(folder)
+    result = runner.invoke(cli, ["verify", str(folder)])
+    assert result.exit_code == 0, result.output
+    lines = result.stdout.splitlines()
+    assert lines[1] == f"ok: all 2 files of the bundle folder '{folder}' match its manifest"
+    assert lines[2].startswith(f"note: the bundle zip '{zipped}' beside it was not checked")
