@@ -16,8 +16,9 @@ from . import options
     type=click.Path(dir_okay=False, path_type=str),
     metavar="RASTER",
     help="Water-surface elevation raster exported from the calibrated source model "
-    "(vertical units); repeat for several events.  Each face and cell is evaluated at its "
-    "own mean stage per raster.  Instead of --stages / --depths.",
+    "(vertical units); repeat for several events.  Each face is evaluated at the raster's "
+    "mean along its line (by length), each cell at its mean over the cell (by area).  "
+    "Instead of --stages / --depths.",
 )
 @click.option("--n", "n", default=None, metavar="VALUE",
               help="One Manning's n for the whole mesh (s/m^(1/3) or its US equivalent).")

@@ -332,10 +332,17 @@ class _Window:
         inv = ~self.dem.transform
         col_off = int(round(inv.a * transform.c + inv.b * transform.f + inv.c))
         row_off = int(round(inv.d * transform.c + inv.e * transform.f + inv.f))
+        # a face's stage is the mean along its line: stations weighted by the length they
+        # stand for (profiles are denser where they cross pixel-centre rows and columns);
+        # a face of one point takes that point's value
+        station_weight = prof.station_weights() if prof.n_stations else np.empty(0)
+        if station_weight.size:
+            no_length = np.bincount(prof.face, weights=station_weight, minlength=n_f) <= 0
+            station_weight = np.where(no_length[prof.face], 1.0, station_weight)
         for j, ws in enumerate(self.surfaces):  # loop over events
             if prof.n_stations:
                 v = ws.sample(prof.x, prof.y, crs=self.dem.crs)
-                fst[:, j] = _mean_above_lowest(prof.face, v, np.ones(v.size), n_f)
+                fst[:, j] = _mean_above_lowest(prof.face, v, station_weight, n_f)
             if item.size and shape[0] and shape[1]:
                 grid = ws.on_dem_window(self.dem, row_off, col_off, shape[0], shape[1])
                 cst[:, j] = _mean_above_lowest(item, grid[rows, cols], area, n_cells)
@@ -698,7 +705,8 @@ def adjust_roughness(
     composite : composite n along a face: ``horton_einstein | pavlovskii | lotter``.
     depths, stages, water_surface : the calibration window (exactly one): depths above
         each item's low point, absolute stages, or water-surface rasters exported from
-        the calibrated source model (each face / cell at its mean value per raster).
+        the calibrated source model (each face at the raster's length-weighted mean along
+        its line, each cell at its area-weighted mean, per raster).
     elevation_rule, elevation_field, face_rule : flat beds (see ``build_tables``).
     coverage, face_spacing, snap_tolerance, vertical_units, tile_size : as in
         ``build_tables``.

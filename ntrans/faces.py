@@ -135,6 +135,17 @@ class Profiles:
         """Start-station index of every segment (both ends on the same face)."""
         return np.flatnonzero(self.face[1:] == self.face[:-1]).astype(np.int64)
 
+    def station_weights(self) -> np.ndarray:
+        """Plan length each station stands for (CRS units): half of each adjacent segment
+        of its face, so a weighted mean over the stations is the trapezoidal mean along
+        the line whatever the station spacing."""
+        k = self.segment_index()
+        half = 0.5 * (self.station[k + 1] - self.station[k])
+        weights = np.zeros(self.station.size)
+        np.add.at(weights, k, half)
+        np.add.at(weights, k + 1, half)
+        return weights
+
     def segment_midpoints(self) -> tuple[np.ndarray, np.ndarray]:
         """Plan coordinates (x, y) of the midpoint of every segment of :meth:`segment_index`."""
         if self.x is None or self.y is None:

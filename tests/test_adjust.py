@@ -719,3 +719,34 @@ def test_family_mistakes_name_the_option_and_the_project_key(flat_case, tmp_path
     with pytest.raises(InputError) as err:
         adjust_roughness(dem, cells, out=tmp_path / "out", n=0.03, depths="1", **kw)
     assert setting in str(err.value)
+
+
+def test_water_surface_stage_of_a_face_is_its_length_weighted_mean(tmp_path):
+    """A face's stage from a water-surface raster is the mean of the surface along the
+    line, weighted by length, whatever the density of its profile stations (a segment
+    crossing pixel-centre rows and columns carries more stations than one along them)."""
+    margin = 3.0  # raster beyond the mesh: bilinear sampling is exact on a plane only
+    rows, cols = 36, 46  # between the outermost pixel centres
+    origin = (-margin, 30.0 + margin)
+    x = -margin + np.arange(cols) + 0.5
+    y = 30.0 + margin - np.arange(rows) - 0.5
+    dem = write_dem(tmp_path / "dem.tif", np.zeros((rows, cols)), origin=origin)
+    plane = 1.0 + 0.05 * x[None, :] + 0.02 * y[:, None]
+    ws = write_dem(tmp_path / "ws.tif", plane, origin=origin, dtype="float64")
+    # two cells split by a skew line: boundary chains mix axis-aligned and skew segments
+    left = shapely.Polygon([(0, 0), (13, 0), (27, 30), (0, 30)])
+    right = shapely.Polygon([(13, 0), (40, 0), (40, 30), (27, 30)])
+    cells = write_cells(tmp_path / "cells.gpkg", [left, right])
+    _quiet(dem=dem, cells=cells, out=tmp_path / "out", n=0.03, water_surface=[ws])
+    import geopandas as gpd
+
+    lines = gpd.read_file(tmp_path / "out" / "faces.gpkg").set_index("face_id").geometry
+    faces = pd.read_parquet(tmp_path / "out" / "face_adjustment.parquet")
+    for face_id, stage in zip(faces["face_id"], faces["stage"], strict=True):
+        xy = np.asarray(lines[face_id].coords)
+        length = np.hypot(*np.diff(xy, axis=0).T)
+        mid = 0.5 * (xy[1:] + xy[:-1])
+        # geometry identity: the mean of a linear function along a segment is its value at
+        # the midpoint; along a polyline, the length-weighted mean of those
+        expected = np.sum(length * (1.0 + 0.05 * mid[:, 0] + 0.02 * mid[:, 1])) / length.sum()
+        assert stage == pytest.approx(expected, abs=1e-9)  # round-off

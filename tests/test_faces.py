@@ -353,3 +353,11 @@ def test_distance_along_sums_each_line_alone(sizes):
         expected = np.concatenate([[0.0], np.cumsum(seg[at:at + n - 1])])
         assert got[at:at + n].tobytes() == expected.tobytes()
         at += n
+
+
+def test_station_weights_are_the_length_each_station_stands_for():
+    prof = Profiles(np.array([0, 0, 0, 1, 1, 2]), np.array([0.0, 1.0, 4.0, 0.0, 2.0, 0.0]),
+                    np.zeros(6), 3)
+    # geometry identity (trapezoidal rule): half of each adjacent segment; a lone station
+    # stands for no length; the weights of a face add up to its length
+    np.testing.assert_allclose(prof.station_weights(), [0.5, 2.0, 1.5, 1.0, 1.0, 0.0])
