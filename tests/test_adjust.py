@@ -750,3 +750,130 @@ def test_water_surface_stage_of_a_face_is_its_length_weighted_mean(tmp_path):
         # the midpoint; along a polyline, the length-weighted mean of those
         expected = np.sum(length * (1.0 + 0.05 * mid[:, 0] + 0.02 * mid[:, 1])) / length.sum()
         assert stage == pytest.approx(expected, abs=1e-9)  # round-off
+
+
+# --- closed-form channel, end to end (DEM -> profiles -> flat beds -> fit -> tables) -------
+
+#: trapezoidal channel along x: bottom 4 m, side slope 2:1, 1.5 m deep, axis at y = 15.5,
+#: in level ground at z = 0; cells 10 m x 30 m across it (1 m pixels; the kinks of the
+#: section lie on pixel centres, so the bilinear profile is the section exactly)
+B, SIDE, DEEP, AXIS, WIDTH = 4.0, 2.0, 1.5, 15.5, 30.0
+
+
+def trapezoid_channel_case(tmp_path):
+    margin = 2
+    x = -margin + np.arange(40 + 2 * margin) + 0.5
+    y = WIDTH + margin - np.arange(30 + 2 * margin) - 0.5
+    dist = np.abs(y - AXIS)
+    z = np.clip((dist - B / 2) / SIDE - DEEP, -DEEP, 0.0)
+    dem = write_dem(tmp_path / "dem.tif", np.tile(z[:, None], (1, x.size)),
+                    origin=(-margin, WIDTH + margin), dtype="float64")
+    cells = write_cells(tmp_path / "cells.gpkg",
+                        [shapely.box(10.0 * i, 0.0, 10.0 * (i + 1), WIDTH) for i in range(4)])
+    return dem, cells
+
+
+def channel_face_geometry(eta, lines):
+    """Per face at stage eta > 0 (above the banks): flow area, wetted perimeter, strip
+    integral of h^(5/3) and plan length, from the lines (segments across the channel at
+    x = const, the others along level ground)."""
+    top = B + 2 * SIDE * DEEP
+    area_ch = (B + SIDE * DEEP) * DEEP  # Chow (1959) Table 2-1, trapezoid A = (b + zy) y
+    per_ch = B + 2 * DEEP * np.sqrt(1 + SIDE**2)  # Chow (1959) Table 2-1, P = b + 2y sqrt(1+z^2)
+    y = eta + DEEP
+    # integral of h^(5/3) over the section (linear banks: [h^(8/3)] / ((8/3) slope))
+    strip_ch = B * y ** (5 / 3) + 2 * SIDE * (y ** (8 / 3) - eta ** (8 / 3)) / (8 / 3)
+    out = []
+    for line in lines:
+        xy = np.asarray(line.coords)
+        seg = np.hypot(*np.diff(xy, axis=0).T)
+        across = np.isclose(xy[1:, 0], xy[:-1, 0]) & np.isclose(seg, WIDTH)
+        length = seg.sum()
+        n_across = int(across.sum())
+        level = length - n_across * top
+        out.append((n_across * area_ch + length * eta,  # channel below the banks + L eta
+                    n_across * per_ch + level,
+                    n_across * strip_ch + level * eta ** (5 / 3),
+                    length))
+    return np.array(out)
+
+
+@pytest.mark.parametrize("closure", ["lumped", "strip"])
+def test_channel_ratios_bias_and_class_n_against_closed_form(tmp_path, closure):
+    import geopandas as gpd
+    from scipy.optimize import brentq
+
+    dem, cells = trapezoid_channel_case(tmp_path)
+    n_s = 0.03
+    stages = [0.25, 0.5, 1.0]  # above the banks: both families wet on every face
+    _quiet(dem=dem, cells=cells, out=tmp_path / "out", n=n_s, closure=closure,
+           stages=",".join(map(str, stages)))
+    faces = pd.read_parquet(tmp_path / "out" / "face_adjustment.parquet")
+    lines = gpd.read_file(tmp_path / "out" / "faces.gpkg").set_index("face_id").geometry
+    # flat bed of every face: the cells' mean terrain (mean rule, all cells alike), which
+    # the pixel sum gives exactly here (section linear between pixel centres)
+    z_flat = -(B + SIDE * DEEP) * DEEP / WIDTH
+
+    def geometric(eta, face_lines):
+        area, per, strip, length = channel_face_geometry(eta, face_lines).T
+        if closure == "lumped":
+            return area * (area / per) ** (2 / 3)  # Manning, K n = A R^(2/3)
+        return strip  # divided conveyance, K n = sum h^(5/3) ds
+
+    log_sum = weight_sum = 0.0
+    for eta in stages:
+        rows = faces[faces["stage"] == eta].sort_values("face_id")
+        face_lines = [lines[f] for f in rows["face_id"]]
+        length = channel_face_geometry(eta, face_lines)[:, 3]
+        g_source = length * (eta - z_flat) ** (5 / 3)  # flat face, K n = L h^(5/3)
+        ratio = geometric(eta, face_lines) / g_source  # equal conveyance at equal stage
+        # boundary faces end 1e-5 m short of the corners (snap), hence rel 1e-6
+        np.testing.assert_allclose(rows["n_ratio"], ratio, rtol=1e-6)
+        np.testing.assert_allclose(rows["conveyance_source"], g_source / n_s, rtol=1e-6)
+        for face_line, bias in zip(face_lines, rows["stage_bias_unadjusted"], strict=True):
+            k_source = channel_face_geometry(eta, [face_line])[0, 3] * (eta - z_flat) ** (5 / 3)
+            expected = brentq(lambda e, fl=face_line, ks=k_source: geometric(e, [fl])[0] - ks,
+                              1e-6, 5.0) - eta
+            assert bias == pytest.approx(expected, abs=1e-6)  # bisection tolerance
+        # one class: the least-squares fit in ln K is the weighted mean of ln ratio, each
+        # face weighing its share of the stage's source conveyance (DESIGN.md section 2)
+        share = g_source / g_source.sum()
+        log_sum += np.sum(share * np.log(ratio))
+        weight_sum += share.sum()
+    fitted = pd.read_csv(tmp_path / "out" / "n_by_class.csv")["n_target"].iloc[0]
+    assert fitted == pytest.approx(n_s * np.exp(log_sum / weight_sum), rel=2e-6)  # 6 digits
+    interior = faces["cell_b"].notna()
+    if closure == "lumped":
+        # equal flow area, more wetted perimeter: a lower n, and stages too high with n
+        # carried over (DESIGN.md section 2); here n_t / n_s = (L / P)^(2/3) exactly
+        p = WIDTH - (B + 2 * SIDE * DEEP) + B + 2 * DEEP * np.sqrt(1 + SIDE**2)
+        np.testing.assert_allclose(faces.loc[interior, "n_ratio"], (WIDTH / p) ** (2 / 3),
+                                   rtol=1e-12)
+        assert (faces.loc[interior, "stage_bias_unadjusted"] > 0).all()
+    else:
+        # h^(5/3) is convex: the strip sum exceeds L hbar^(5/3) at equal flow area, so a
+        # higher n (METHODS.md, divided conveyance), and stages too low with n carried over
+        assert (faces.loc[interior, "n_ratio"] > 1).all()
+        assert (faces.loc[interior, "stage_bias_unadjusted"] < 0).all()
+
+
+def test_cell_closure_on_a_tilted_plane_against_closed_form(tmp_path):
+    slope = 0.1
+    margin = 2
+    x = -margin + np.arange(40 + 2 * margin) + 0.5
+    dem = write_dem(tmp_path / "dem.tif", np.tile(slope * x, (20 + 2 * margin, 1)),
+                    origin=(-margin, 20 + margin), dtype="float64")
+    cells = write_cells(tmp_path / "cells.gpkg", grid_polygons(4, 2, 10.0))
+    _quiet(dem=dem, cells=cells, out=tmp_path / "out", n=0.04, closure="cell",
+           stages="4.5,5,6")  # above the highest terrain (4): every cell wholly wet
+    table = pd.read_parquet(tmp_path / "out" / "cell_adjustment.parquet")
+    # geometry identity: on a plane A_bed = A_w sqrt(1 + s^2) and the flat cell at the mean
+    # terrain holds the same volume, so at equal volume n_t / n_s = (A_w / A_bed)^(2/3)
+    # (METHODS.md) and carrying n over the stage rises by hbar ((1 + s^2)^(1/5) - 1)
+    np.testing.assert_allclose(table["n_ratio"], (1 + slope**2) ** (-1 / 3), rtol=1e-12)
+    mean_z = slope * (10.0 * ((table["cell_id"] - 1) % 4) + 5.0)
+    hbar = table["stage"] - mean_z
+    np.testing.assert_allclose(table["stage_bias_unadjusted"],
+                               hbar * ((1 + slope**2) ** 0.2 - 1), rtol=1e-6)  # bisection
+    fitted = pd.read_csv(tmp_path / "out" / "n_by_class.csv")["n_target"].iloc[0]
+    assert fitted == pytest.approx(0.04 * (1 + slope**2) ** (-1 / 3), rel=2e-6)  # 6 digits
