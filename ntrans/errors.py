@@ -33,6 +33,18 @@ def check_choice(name: str, value: object, allowed: tuple[str, ...]) -> None:
         raise InputError(f"{name} {value!r} is not one of {', '.join(allowed)}; choose one of them")
 
 
+def closest_name(name: str, candidates: list[str], *, cutoff: float = 0.75) -> str | None:
+    """The candidate ``name`` most likely meant, for a "did you mean" hint: equal but for
+    case, else the nearest spelling at least ``cutoff`` alike (difflib's ratio); None."""
+    import difflib
+
+    folded = {c.casefold(): c for c in candidates}
+    if name.casefold() in folded:
+        return folded[name.casefold()]
+    near = difflib.get_close_matches(name.casefold(), list(folded), n=1, cutoff=cutoff)
+    return folded[near[0]] if near else None
+
+
 class InputFileError(NtransError, OSError):
     """An input file is missing or cannot be read."""
 

@@ -45,7 +45,13 @@ from pathlib import Path
 from typing import Any
 
 from .cautions import CAUTIONS
-from .errors import OutputError, OutputExistsError, ProjectFileError, collect_warnings
+from .errors import (
+    OutputError,
+    OutputExistsError,
+    ProjectFileError,
+    closest_name,
+    collect_warnings,
+)
 from .memory import release_free_memory
 
 logger = logging.getLogger(__name__)
@@ -254,11 +260,8 @@ def _resolve(base: Path, value: str) -> Path:
 
 def _did_you_mean(name: str, valid: list[str], form: str) -> str:
     """`` (did you mean 'x'?)`` for the valid name nearest ``name`` (any case), else ``""``."""
-    import difflib
-
-    folded = {v.casefold(): v for v in valid}
-    near = difflib.get_close_matches(name.casefold(), list(folded), n=1, cutoff=0.6)
-    return f" (did you mean {form.format(folded[near[0]])}?)" if near else ""
+    near = closest_name(name, valid, cutoff=0.6)
+    return f" (did you mean {form.format(near)}?)" if near else ""
 
 
 def parse_project(data: Mapping[str, Any], *, base: str | os.PathLike[str], path: str | os.PathLike[str] = "project.toml") -> Project:

@@ -36,7 +36,14 @@ from typing import Any, Literal
 
 import numpy as np
 
-from .errors import CRSError, InputFileError, RoughnessError, RoughnessRangeWarning, warn
+from .errors import (
+    CRSError,
+    InputFileError,
+    RoughnessError,
+    RoughnessRangeWarning,
+    closest_name,
+    warn,
+)
 
 log = logging.getLogger(__name__)
 
@@ -476,17 +483,6 @@ def uniform_model(n: float | str) -> RoughnessModel:
     return model
 
 
-def _close_match(name: str, candidates: list[str]) -> str | None:
-    """The candidate ``name`` most likely meant: equal but for case, else a near spelling."""
-    import difflib
-
-    folded = {c.casefold(): c for c in candidates}
-    if name.casefold() in folded:
-        return folded[name.casefold()]
-    near = difflib.get_close_matches(name.casefold(), list(folded), n=1, cutoff=0.75)
-    return folded[near[0]] if near else None
-
-
 def _integer_key(name: str) -> int | None:
     """The whole number a class code such as ``'7'``, ``'07'`` or ``'7.0'`` stands for,
     else None."""
@@ -535,7 +531,7 @@ def _table_lookup(classes_used: list[str], table: tuple[list[str], list[Any], li
     row = {c: row_of(c) for c in needed}
     missing = [c for c in needed if row[c] is None]
     if missing:
-        close = [(c, m) for c in missing if (m := _close_match(c, names)) is not None]
+        close = [(c, m) for c in missing if (m := closest_name(c, names)) is not None]
         hint = ""
         if close:
             shown = ", ".join(f"{m!r} for {c!r}" for c, m in close[:3])
@@ -549,7 +545,7 @@ def _table_lookup(classes_used: list[str], table: tuple[list[str], list[Any], li
         )
     default_row = None if default_class is None else row_of(default_class)
     if default_class is not None and default_row is None:
-        match = _close_match(default_class, names)
+        match = closest_name(default_class, names)
         near = f" (closest: {match!r})" if match is not None else ""
         listed = ", ".join(names[:10]) + (f" and {len(names) - 10} more" if len(names) > 10
                                           else "")
