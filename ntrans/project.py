@@ -258,6 +258,19 @@ def _resolve(base: Path, value: str) -> Path:
     return p if p.is_absolute() else (base / p).resolve()
 
 
+@contextlib.contextmanager
+def _info_silenced(name: str) -> Iterator[None]:
+    """Logger ``name`` passes warnings and errors only, within the block (for a quick
+    early read of inputs that the job reads, and logs, again)."""
+    log = logging.getLogger(name)
+    level = log.level
+    log.setLevel(max(level, logging.WARNING))
+    try:
+        yield
+    finally:
+        log.setLevel(level)
+
+
 def _did_you_mean(name: str, valid: list[str], form: str) -> str:
     """`` (did you mean 'x'?)`` for the valid name nearest ``name`` (any case), else ``""``."""
     near = closest_name(name, valid, cutoff=0.6)
@@ -590,10 +603,11 @@ def run_project(
     # the classes against the n table, before the stage tables take their minutes
     check_roughness_inputs(**_call_kwargs(check_roughness_inputs, options))
     # and a class raster's holes under the mesh (the DEM and mesh read only if it has any)
-    check_class_raster_holes(
-        options.get("class_raster"),
-        lambda: read_cell_outlines(cells, dem=dem_info(), layer=options.get("cells_layer")),
-        dem_info, default_class=options.get("default_class"))
+    with _info_silenced("ntrans.inputs"):  # the stage tables read and log them again
+        check_class_raster_holes(
+            options.get("class_raster"),
+            lambda: read_cell_outlines(cells, dem=dem_info(), layer=options.get("cells_layer")),
+            dem_info, default_class=options.get("default_class"))
 
     with fixed_gdal_dates(), OutputFolder(
         target, overwrite=overwrite, inputs=[*_input_paths(project), project.path]

@@ -5,6 +5,7 @@ from __future__ import annotations
 import html
 import inspect
 import json
+import logging
 import warnings
 from pathlib import Path
 
@@ -646,3 +647,41 @@ def test_a_windows_path_in_a_project_file_gets_a_hint(tmp_path, line, hint):
         assert "slashes" not in message and "control character" not in message
     else:
         assert hint in message
+
+
+def test_early_class_raster_check_does_not_log_the_inputs_twice(tmp_path, monkeypatch, caplog):
+    # a hole beside the mesh makes the check read the DEM and the cells (and find no
+    # ground without a class); the job reads and logs them again, so the check's own
+    # reads stay quiet
+    project = write_small_project(tmp_path)
+    codes = np.ones((30, 41))
+    codes[:, 40] = 0  # nodata in a column east of the DEM and the mesh
+    write_dem(tmp_path / "codes.tif", codes, nodata=0, dtype="int16")
+    (tmp_path / "n_codes.csv").write_text("class,n\n1,0.03\n", encoding="utf-8")
+    text = project.read_text(encoding="utf-8")
+    text = text.replace('classes = "landcover.gpkg"\nclass_field = "landcover"\n'
+                        'n_table = "n_table.csv"',
+                        'class_raster = "codes.tif"\nn_table = "n_codes.csv"')
+    project.write_text(text, encoding="utf-8")
+
+    class Reached(Exception):
+        pass
+
+    def reached(*args, **kwargs):
+        raise Reached
+
+    import ntrans.roughness
+    import ntrans.tables
+
+    read = []
+    holes = ntrans.roughness.class_raster_holes
+    monkeypatch.setattr(ntrans.roughness, "class_raster_holes",
+                        lambda path: read.append(path) or holes(path))
+    monkeypatch.setattr(ntrans.tables, "build_tables", reached)
+    caplog.set_level(logging.INFO, logger="ntrans")
+    with pytest.raises(Reached):
+        proj.run_project(project)
+    assert read and read[0] is not None  # the raster has a hole: the DEM was read
+    assert not [r for r in caplog.records if r.name == "ntrans.inputs"
+                and r.levelno < logging.WARNING]
+    assert logging.getLogger("ntrans.inputs").level == logging.NOTSET  # restored
